@@ -1,0 +1,69 @@
+"""The `pledge` command line: a thin layer over the planner and forecasting APIs.
+
+Each command group lives in its own module and registers itself on `app`.
+Exit status: 0 answered (a not-deliverable verdict is an answer), 2 bad input, 1 internal error.
+"""
+from __future__ import annotations
+
+import sys
+
+import click
+import typer
+
+from planner.errors import InputError
+
+from .common import err_console, set_quiet
+
+app = typer.Typer(
+    name="pledge",
+    help="Forecast daypart audiences and plan risk-aware airtime buys for guaranteed deals.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+
+
+@app.callback()
+def _root(quiet: bool = typer.Option(False, "--quiet", "-q", help="Silence progress output.")) -> None:
+    set_quiet(quiet)
+
+
+def _register() -> None:
+    # Import for side effects: each module adds its commands to `app`.
+    import importlib
+
+    for name in ("scenario_cmds", "forecast_cmds", "deal_cmds", "book_cmds", "stress_cmds", "report_cmds"):
+        try:
+            importlib.import_module(f"planner.cli.{name}")
+        except ModuleNotFoundError as exc:  # a command group not written yet
+            if exc.name != f"planner.cli.{name}":
+                raise
+
+
+_register()
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Console entry point. Returns (and exits with) the documented status code."""
+    try:
+        app(args=argv, standalone_mode=False)
+        code = 0
+    except InputError as exc:
+        err_console.print(f"error: {exc}", markup=False, highlight=False)
+        code = 2
+    except click.exceptions.Exit as exc:
+        code = exc.exit_code
+    except click.exceptions.Abort:
+        err_console.print("aborted")
+        code = 1
+    except click.ClickException as exc:
+        err_console.print(f"error: {exc.format_message()}", markup=False, highlight=False)
+        code = 2
+    except typer.Exit as exc:
+        code = exc.exit_code
+    except Exception as exc:  # noqa: BLE001 - the documented 'internal error' exit
+        err_console.print(f"internal error: {type(exc).__name__}: {exc}", markup=False, highlight=False)
+        code = 1
+    if argv is None:
+        sys.exit(code)
+    return code

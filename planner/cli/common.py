@@ -1,0 +1,92 @@
+"""Shared pieces of the command line: JSON output, progress display, error exit codes."""
+from __future__ import annotations
+
+import contextlib
+import json
+import math
+import sys
+from dataclasses import asdict, is_dataclass
+from typing import Any, Iterator
+
+import numpy as np
+from rich.console import Console
+from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
+# Progress and messages go to stderr so that `--json` keeps stdout one clean JSON object.
+err_console = Console(stderr=True)
+out_console = Console()
+
+_QUIET = {"on": False}
+
+
+def set_quiet(quiet: bool) -> None:
+    _QUIET["on"] = bool(quiet)
+
+
+def is_quiet() -> bool:
+    return _QUIET["on"]
+
+
+def _plain(obj: Any) -> Any:
+    if is_dataclass(obj) and not isinstance(obj, type):
+        return _plain(asdict(obj))
+    if isinstance(obj, dict):
+        return {str(k): _plain(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_plain(v) for v in obj]
+    if isinstance(obj, np.generic):
+        return _plain(obj.item())
+    if isinstance(obj, np.ndarray):
+        return [_plain(v) for v in obj.tolist()]
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    if hasattr(obj, "isoformat"):
+        return obj.isoformat()
+    if hasattr(obj, "__fspath__"):
+        return str(obj)
+    return obj
+
+
+def print_json(obj: Any) -> None:
+    """Print one JSON object on stdout (NaN/inf become null, numpy types become plain)."""
+    sys.stdout.write(json.dumps(_plain(obj), indent=2) + "\n")
+    sys.stdout.flush()
+
+
+def info(message: str) -> None:
+    """A progress or status line on stderr (silenced by --quiet)."""
+    if not is_quiet():
+        err_console.print(message)
+
+
+@contextlib.contextmanager
+def progress(description: str, total: float | None = None) -> Iterator[Any]:
+    """A progress bar on stderr. Yields `advance(n=1, description=None)`."""
+    if is_quiet() or not sys.stderr.isatty():
+        info(f"{description} ...")
+
+        def advance(n: float = 1, description: str | None = None) -> None:
+            return None
+
+        yield advance
+        return
+    with Progress(
+        TextColumn("{task.description}"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"),
+        TimeElapsedColumn(), console=err_console, transient=True,
+    ) as bar:
+        task = bar.add_task(description, total=total)
+
+        def advance(n: float = 1, description: str | None = None) -> None:
+            bar.update(task, advance=n, **({"description": description} if description else {}))
+
+        yield advance
+
+
+def money(value: float, currency: str = "USD") -> str:
+    """Format money with grouping: 'USD 1,234,567'."""
+    return f"{currency} {value:,.0f}"
+
+
+def count(value: float) -> str:
+    """Format a large count with grouping: '12,345,678'."""
+    return f"{value:,.0f}"
