@@ -7,7 +7,6 @@ from __future__ import annotations
 
 import sys
 
-import click
 import typer
 
 from planner.errors import InputError
@@ -46,21 +45,16 @@ _register()
 def main(argv: list[str] | None = None) -> int:
     """Console entry point. Returns (and exits with) the documented status code."""
     try:
-        app(args=argv, standalone_mode=False)
+        app(args=argv, prog_name="pledge")  # standalone: usage errors exit 2 on their own
         code = 0
+    except SystemExit as exc:
+        code = exc.code if isinstance(exc.code, int) else (0 if exc.code is None else 1)
     except InputError as exc:
         err_console.print(f"error: {exc}", markup=False, highlight=False)
         code = 2
-    except click.exceptions.Exit as exc:
-        code = exc.exit_code
-    except click.exceptions.Abort:
-        err_console.print("aborted")
+    except KeyboardInterrupt:
+        err_console.print("interrupted")
         code = 1
-    except click.ClickException as exc:
-        err_console.print(f"error: {exc.format_message()}", markup=False, highlight=False)
-        code = 2
-    except typer.Exit as exc:
-        code = exc.exit_code
     except Exception as exc:  # noqa: BLE001 - the documented 'internal error' exit
         err_console.print(f"internal error: {type(exc).__name__}: {exc}", markup=False, highlight=False)
         code = 1

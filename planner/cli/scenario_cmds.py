@@ -1,0 +1,1 @@
+"""`pledge validate`: check a scenario folder against the data contract."""
