@@ -1,0 +1,642 @@
+"""The book of sold deals: an SQLite database of committed deals and the spots they hold.
+
+A committed deal holds whole spots of sellable units (zone x network x daypart x week); every
+later check or plan sees the inventory's avails less the spots held. The book lives in
+`<scenario>/book.sqlite` unless another path is given.
+
+Safety properties (what the design rests on):
+
+- Check-and-hold is one write transaction (`BEGIN IMMEDIATE` takes SQLite's write lock before
+  the holds are re-read), so two desks committing at once can never hold more spots of a unit
+  than its avails: the second desk waits for the lock, then sees the first desk's holds.
+- The database runs in WAL mode with `synchronous=FULL`; a process killed in the middle of a
+  commit leaves the book exactly as before the commit (the transaction never reached COMMIT) or
+  exactly after it.
+- The schema is versioned (`schema_version` table); upgrades are applied, in one transaction,
+  when a book is opened.
+
+Books are read without being created: reading a book that does not exist yet gives an empty book.
+"""
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import sqlite3
+import time
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Callable, Iterable, Iterator
+
+import numpy as np
+import pandas as pd
+
+from planner.errors import InputError
+
+BOOK_FILENAME = "book.sqlite"
+UNIT_KEY = ["zone", "network", "daypart", "week"]
+HELD_COLUMNS = UNIT_KEY + ["spots"]
+HOLD_COLUMNS = UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "sd"]
+
+# Test hook: seconds to sleep inside the commit transaction, after the holds are written and
+# before COMMIT (lets a test kill a process in the middle of a commit).
+_SLEEP_ENV = "PLEDGE_BOOK_SLEEP_IN_COMMIT"
+_BUSY_TIMEOUT_MS = 60_000
+
+# Schema upgrades: (version, statements). Version n is reached by applying every entry <= n in
+# order. Never edit an entry once released; add a new one.
+_MIGRATIONS: list[tuple[int, list[str]]] = [
+    (1, [
+        """CREATE TABLE deals (
+            name TEXT PRIMARY KEY,
+            advertiser TEXT,
+            demo TEXT NOT NULL,
+            guarantee REAL NOT NULL,
+            price_cpm REAL NOT NULL,
+            confidence REAL,
+            pad REAL,
+            first_week INTEGER NOT NULL,
+            last_week INTEGER NOT NULL,
+            committed_at TEXT NOT NULL,
+            expected_impressions REAL,
+            sd REAL,
+            probability REAL,
+            cost REAL,
+            spots INTEGER,
+            summary_json TEXT
+        )""",
+        """CREATE TABLE holds (
+            deal TEXT NOT NULL REFERENCES deals(name) ON DELETE CASCADE,
+            zone TEXT NOT NULL,
+            network TEXT NOT NULL,
+            daypart TEXT NOT NULL,
+            week INTEGER NOT NULL,
+            spots INTEGER NOT NULL CHECK (spots > 0),
+            rate REAL,
+            cost REAL,
+            expected_impressions REAL,
+            sd REAL,
+            PRIMARY KEY (deal, zone, network, daypart, week)
+        )""",
+        "CREATE INDEX holds_unit ON holds (zone, network, daypart, week)",
+    ]),
+    (2, [
+        # An append-only log of what was done to the book (commit, release, rebalance).
+        """CREATE TABLE events (
+            id INTEGER PRIMARY KEY AUTOINCREMENT,
+            at TEXT NOT NULL,
+            deal TEXT NOT NULL,
+            action TEXT NOT NULL,
+            detail_json TEXT
+        )""",
+        "ALTER TABLE deals ADD COLUMN scenario_name TEXT",
+    ]),
+]
+SCHEMA_VERSION = _MIGRATIONS[-1][0]
+
+
+# --------------------------------------------------------------------------- paths, connections
+
+def book_path(scenario_or_path: Any, book: str | os.PathLike | None = None) -> Path:
+    """Path of the book file: `book` if given, else `<scenario folder>/book.sqlite`.
+
+    `scenario_or_path` is a `Scenario` (its `.path`), a scenario folder, or a `.sqlite` file.
+    """
+    if book is not None:
+        return Path(book)
+    folder = getattr(scenario_or_path, "path", scenario_or_path)
+    folder = Path(folder)
+    if folder.suffix in (".sqlite", ".db", ".sqlite3"):
+        return folder
+    return folder / BOOK_FILENAME
+
+
+def _now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+def _connect(path: Path) -> sqlite3.Connection:
+    conn = sqlite3.connect(str(path), timeout=_BUSY_TIMEOUT_MS / 1000, isolation_level=None)
+    conn.row_factory = sqlite3.Row
+    conn.execute(f"PRAGMA busy_timeout = {_BUSY_TIMEOUT_MS}")
+    mode = conn.execute("PRAGMA journal_mode = WAL").fetchone()[0]
+    if str(mode).lower() != "wal":  # pragma: no cover - file systems without shared memory
+        conn.execute("PRAGMA journal_mode = DELETE")
+    conn.execute("PRAGMA synchronous = FULL")
+    conn.execute("PRAGMA foreign_keys = ON")
+    return conn
+
+
+def _schema_version(conn: sqlite3.Connection) -> int:
+    row = conn.execute(
+        "SELECT name FROM sqlite_master WHERE type='table' AND name='schema_version'").fetchone()
+    if row is None:
+        return 0
+    row = conn.execute("SELECT MAX(version) FROM schema_version").fetchone()
+    return int(row[0] or 0)
+
+
+def _upgrade(conn: sqlite3.Connection, path: Path) -> None:
+    """Apply missing schema upgrades in one write transaction (safe against concurrent openers)."""
+    if _schema_version(conn) == SCHEMA_VERSION:
+        return
+    conn.execute("BEGIN IMMEDIATE")
+    try:
+        version = _schema_version(conn)  # re-read under the write lock
+        if version > SCHEMA_VERSION:
+            raise InputError(
+                f"{path}: book schema version {version} is newer than this pledge understands "
+                f"({SCHEMA_VERSION}); upgrade pledge")
+        if version == 0:
+            conn.execute("CREATE TABLE schema_version (version INTEGER NOT NULL, applied_at TEXT NOT NULL)")
+        for target, statements in _MIGRATIONS:
+            if target <= version:
+                continue
+            for sql in statements:
+                conn.execute(sql)
+            conn.execute("INSERT INTO schema_version (version, applied_at) VALUES (?, ?)", (target, _now()))
+        conn.execute("COMMIT")
+    except BaseException:
+        conn.execute("ROLLBACK")
+        raise
+
+
+def open_book(path: str | os.PathLike, *, create: bool = True) -> sqlite3.Connection:
+    """Open (and create or upgrade) the book at `path`; returns an autocommit connection."""
+    path = Path(path)
+    if not path.exists():
+        if not create:
+            raise InputError(f"{path}: no book here (commit a deal first)")
+        path.parent.mkdir(parents=True, exist_ok=True)
+    try:
+        conn = _connect(path)
+        _upgrade(conn, path)
+    except sqlite3.DatabaseError as exc:
+        raise InputError(f"{path}: not a readable book ({exc})") from exc
+    return conn
+
+
+@contextlib.contextmanager
+def _reader(path: Path) -> Iterator[sqlite3.Connection | None]:
+    """A connection for reading, or None when the book file does not exist (an empty book)."""
+    if not path.exists():
+        yield None
+        return
+    conn = open_book(path)
+    try:
+        yield conn
+    finally:
+        conn.close()
+
+
+@contextlib.contextmanager
+def write_transaction(conn: sqlite3.Connection) -> Iterator[sqlite3.Connection]:
+    """`BEGIN IMMEDIATE` ... `COMMIT` (rolled back on any exception): holds the write lock."""
+    conn.execute("BEGIN IMMEDIATE")
+    try:
+        yield conn
+    except BaseException:
+        conn.execute("ROLLBACK")
+        raise
+    conn.execute("COMMIT")
+
+
+# --------------------------------------------------------------------------- reading
+
+def _held_from(conn: sqlite3.Connection | None, exclude: Iterable[str] = ()) -> pd.DataFrame:
+    exclude = [exclude] if isinstance(exclude, str) else list(exclude)
+    if conn is None:
+        return _empty_held()
+    sql = "SELECT zone, network, daypart, week, SUM(spots) AS spots FROM holds"
+    if exclude:
+        sql += f" WHERE deal NOT IN ({','.join('?' * len(exclude))})"
+    sql += " GROUP BY zone, network, daypart, week ORDER BY zone, network, daypart, week"
+    rows = conn.execute(sql, exclude).fetchall()
+    if not rows:
+        return _empty_held()
+    df = pd.DataFrame([tuple(r) for r in rows], columns=HELD_COLUMNS)
+    return df.astype({"week": "int64", "spots": "int64"})
+
+
+def _empty_held() -> pd.DataFrame:
+    return pd.DataFrame({"zone": pd.Series([], dtype=str), "network": pd.Series([], dtype=str),
+                         "daypart": pd.Series([], dtype=str), "week": pd.Series([], dtype="int64"),
+                         "spots": pd.Series([], dtype="int64")})
+
+
+def held_spots(scenario_or_path: Any, book: str | os.PathLike | None = None, *,
+               exclude: str | Iterable[str] = ()) -> pd.DataFrame:
+    """Spots held by committed deals, summed per unit.
+
+    Returns a DataFrame `zone, network, daypart, week, spots` (spots: whole 30-second spots),
+    one row per unit with at least one held spot; empty when there is no book. `exclude` names
+    deals whose holds are left out (a rebalance re-plans a deal against everyone else's holds).
+    """
+    with _reader(book_path(scenario_or_path, book)) as conn:
+        return _held_from(conn, exclude)
+
+
+@dataclass
+class BookDeal:
+    """One committed deal as stored in the book. Money in the scenario currency; impressions."""
+
+    name: str
+    advertiser: str | None
+    demo: str
+    guarantee: float
+    price_cpm: float
+    confidence: float | None
+    pad: float | None
+    first_week: int
+    last_week: int
+    committed_at: str
+    expected_impressions: float | None
+    sd: float | None
+    probability: float | None
+    cost: float | None
+    spots: int | None
+    summary: dict = field(default_factory=dict)
+    holds: pd.DataFrame | None = None
+
+    @property
+    def revenue(self) -> float:
+        """What the advertiser pays for the guarantee: impressions x CPM / 1000 (currency)."""
+        return self.guarantee * self.price_cpm / 1000.0
+
+    def as_dict(self, with_holds: bool = False) -> dict:
+        out = {k: getattr(self, k) for k in (
+            "name", "advertiser", "demo", "guarantee", "price_cpm", "confidence", "pad",
+            "first_week", "last_week", "committed_at", "expected_impressions", "sd",
+            "probability", "cost", "spots")}
+        out["revenue"] = self.revenue
+        out["summary"] = self.summary
+        if with_holds and self.holds is not None:
+            out["holds"] = self.holds.to_dict(orient="records")
+        return out
+
+
+def _deal_from_row(row: sqlite3.Row, holds: pd.DataFrame | None = None) -> BookDeal:
+    d = dict(row)
+    return BookDeal(
+        name=d["name"], advertiser=d["advertiser"], demo=d["demo"], guarantee=d["guarantee"],
+        price_cpm=d["price_cpm"], confidence=d["confidence"], pad=d["pad"],
+        first_week=d["first_week"], last_week=d["last_week"], committed_at=d["committed_at"],
+        expected_impressions=d["expected_impressions"], sd=d["sd"], probability=d["probability"],
+        cost=d["cost"], spots=d["spots"], summary=json.loads(d["summary_json"] or "{}"), holds=holds)
+
+
+def _holds_of(conn: sqlite3.Connection, deal: str | None = None) -> pd.DataFrame:
+    cols = ["deal"] + HOLD_COLUMNS
+    sql = f"SELECT {', '.join(cols)} FROM holds"
+    args: tuple = ()
+    if deal is not None:
+        sql += " WHERE deal = ?"
+        args = (deal,)
+    sql += " ORDER BY deal, week, zone, network, daypart"
+    rows = conn.execute(sql, args).fetchall()
+    df = pd.DataFrame([tuple(r) for r in rows], columns=cols)
+    if df.empty:
+        df = df.astype({"deal": str, "zone": str, "network": str, "daypart": str, "week": "int64",
+                        "spots": "int64"})
+    else:
+        df = df.astype({"week": "int64", "spots": "int64"})
+    return df
+
+
+def list_deals(scenario_or_path: Any, book: str | os.PathLike | None = None) -> list[BookDeal]:
+    """Committed deals in commit order (without their holds)."""
+    with _reader(book_path(scenario_or_path, book)) as conn:
+        if conn is None:
+            return []
+        rows = conn.execute("SELECT * FROM deals ORDER BY committed_at, name").fetchall()
+        return [_deal_from_row(r) for r in rows]
+
+
+def get_deal(scenario_or_path: Any, name: str, book: str | os.PathLike | None = None) -> BookDeal:
+    """One committed deal with its holds (DataFrame `HOLD_COLUMNS`); InputError if not in the book."""
+    path = book_path(scenario_or_path, book)
+    with _reader(path) as conn:
+        row = None if conn is None else conn.execute("SELECT * FROM deals WHERE name = ?", (name,)).fetchone()
+        if row is None:
+            raise InputError(f"{path}: deal {name!r} is not in the book")
+        return _deal_from_row(row, _holds_of(conn, name).drop(columns="deal"))
+
+
+def read_book(scenario_or_path: Any, book: str | os.PathLike | None = None) -> tuple[list[BookDeal], pd.DataFrame]:
+    """Every committed deal and every hold (DataFrame `deal` + `HOLD_COLUMNS`) from one snapshot."""
+    with _reader(book_path(scenario_or_path, book)) as conn:
+        if conn is None:
+            return [], _holds_of_empty()
+        conn.execute("BEGIN")  # one consistent read snapshot
+        try:
+            rows = conn.execute("SELECT * FROM deals ORDER BY committed_at, name").fetchall()
+            holds = _holds_of(conn)
+        finally:
+            conn.execute("COMMIT")
+        deals = [_deal_from_row(r, holds[holds["deal"] == r["name"]].drop(columns="deal").reset_index(drop=True))
+                 for r in rows]
+        return deals, holds
+
+
+def _holds_of_empty() -> pd.DataFrame:
+    df = pd.DataFrame({c: [] for c in ["deal"] + HOLD_COLUMNS})
+    return df.astype({"deal": str, "zone": str, "network": str, "daypart": str, "week": "int64", "spots": "int64"})
+
+
+def events(scenario_or_path: Any, book: str | os.PathLike | None = None) -> pd.DataFrame:
+    """The book's log: `at, deal, action, detail` (one row per commit, release, rebalance)."""
+    with _reader(book_path(scenario_or_path, book)) as conn:
+        if conn is None:
+            return pd.DataFrame(columns=["at", "deal", "action", "detail"])
+        rows = conn.execute("SELECT at, deal, action, detail_json FROM events ORDER BY id").fetchall()
+        return pd.DataFrame([(r[0], r[1], r[2], json.loads(r[3] or "{}")) for r in rows],
+                            columns=["at", "deal", "action", "detail"])
+
+
+# --------------------------------------------------------------------------- checks
+
+def over_avails(held: pd.DataFrame, inventory: pd.DataFrame, extra: pd.DataFrame | None = None) -> pd.DataFrame:
+    """Units where held (+ extra) spots exceed avails: DataFrame `zone,network,daypart,week,spots,avails`.
+
+    A held unit missing from the inventory counts as 0 avails.
+    """
+    parts = [held[HELD_COLUMNS]]
+    if extra is not None and len(extra):
+        parts.append(extra[HELD_COLUMNS])
+    total = pd.concat(parts, ignore_index=True)
+    if total.empty:
+        return total.assign(avails=pd.Series([], dtype="int64"))
+    total = total.astype({"week": "int64"}).groupby(UNIT_KEY, as_index=False)["spots"].sum()
+    inv = inventory[UNIT_KEY + ["avails"]].astype({"week": "int64"})
+    merged = total.merge(inv, on=UNIT_KEY, how="left")
+    merged["avails"] = merged["avails"].fillna(0).astype("int64")
+    return merged[merged["spots"] > merged["avails"]].reset_index(drop=True)
+
+
+def _plan_spots(plan: Any) -> pd.DataFrame:
+    spots = plan.spots.copy()
+    spots = spots[spots["spots"] > 0].reset_index(drop=True)
+    for c in ("rate", "cost", "expected_impressions", "sd"):
+        if c not in spots.columns:
+            spots[c] = np.nan
+    spots["spots"] = spots["spots"].round().astype("int64")
+    spots["week"] = spots["week"].astype("int64")
+    return spots[HOLD_COLUMNS]
+
+
+def _plan_is_deliverable(plan: Any) -> bool:
+    for attr in ("deliverable", "feasible", "ok"):
+        if hasattr(plan, attr):
+            return bool(getattr(plan, attr))
+    status = str(getattr(plan, "status", "optimal")).lower()
+    return status in ("optimal", "ok", "feasible")
+
+
+def _plan_reason(plan: Any) -> str:
+    for attr in ("reason", "message", "verdict", "status"):
+        val = getattr(plan, attr, None)
+        if val:
+            return str(val)
+    return "the plan does not meet the guarantee at the deal's risk margin"
+
+
+def _plan_summary(plan: Any, spots: pd.DataFrame) -> dict:
+    def num(attr: str, default=None):
+        val = getattr(plan, attr, default)
+        try:
+            return None if val is None else float(val)
+        except (TypeError, ValueError):
+            return None
+
+    cost = num("cost")
+    if cost is None:
+        cost = float(np.nansum(spots["cost"])) if spots["cost"].notna().any() else None
+    exp = num("expected_impressions")
+    if exp is None and spots["expected_impressions"].notna().any():
+        exp = float(spots["expected_impressions"].sum())
+    return {
+        "expected_impressions": exp,
+        "sd": num("sd"),
+        "probability": num("probability"),
+        "cost": cost,
+        "spots": int(spots["spots"].sum()),
+        "margin": num("margin"),
+        "solver": getattr(plan, "solver", None),
+    }
+
+
+# --------------------------------------------------------------------------- writing
+
+@dataclass
+class CommitResult:
+    """The answer to a commit: committed or not, why, and the plan that was held."""
+
+    deal: str
+    committed: bool
+    book: str
+    reason: str = ""
+    replanned: bool = False
+    summary: dict = field(default_factory=dict)
+    plan: Any = None
+
+    def as_dict(self) -> dict:
+        return {"deal": self.deal, "committed": self.committed, "book": self.book,
+                "reason": self.reason, "replanned_under_lock": self.replanned, **self.summary}
+
+
+def _default_planner(scenario, deal_name, *, held, **kwargs):
+    from planner.deals import plan_deal
+
+    return plan_deal(scenario, deal_name, held=held, **kwargs)
+
+
+def _insert_deal(conn: sqlite3.Connection, scenario: Any, deal: Any, spots: pd.DataFrame,
+                 summary: dict, action: str = "commit", committed_at: str | None = None) -> None:
+    conn.execute(
+        """INSERT INTO deals (name, advertiser, demo, guarantee, price_cpm, confidence, pad,
+               first_week, last_week, committed_at, expected_impressions, sd, probability, cost,
+               spots, summary_json, scenario_name)
+           VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)""",
+        (deal.name, getattr(deal, "advertiser", None), deal.demo, float(deal.impressions),
+         float(deal.price_cpm), _opt(getattr(deal, "confidence", None)), _opt(getattr(deal, "pad", None)),
+         int(deal.first_week), int(deal.last_week), committed_at or _now(),
+         summary.get("expected_impressions"), summary.get("sd"), summary.get("probability"),
+         summary.get("cost"), summary.get("spots"), json.dumps(summary, default=str),
+         getattr(scenario, "name", None)))
+    rows = [(deal.name, r.zone, r.network, r.daypart, int(r.week), int(r.spots), _opt(r.rate),
+             _opt(r.cost), _opt(r.expected_impressions), _opt(r.sd))
+            for r in spots.itertuples(index=False)]
+    conn.executemany(
+        """INSERT INTO holds (deal, zone, network, daypart, week, spots, rate, cost,
+               expected_impressions, sd) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)""", rows)
+    _log(conn, deal.name, action, summary)
+
+
+def _opt(value) -> float | None:
+    if value is None:
+        return None
+    value = float(value)
+    return None if not np.isfinite(value) else value
+
+
+def _log(conn: sqlite3.Connection, deal: str, action: str, detail: dict) -> None:
+    conn.execute("INSERT INTO events (at, deal, action, detail_json) VALUES (?, ?, ?, ?)",
+                 (_now(), deal, action, json.dumps(detail, default=str)))
+
+
+def _sleep_hook() -> None:
+    delay = os.environ.get(_SLEEP_ENV)
+    if delay:
+        time.sleep(float(delay))
+
+
+def commit_deal(scenario: Any, deal_name: str, book: str | os.PathLike | None = None, *,
+                planner: Callable[..., Any] | None = None, **plan_kwargs) -> CommitResult:
+    """Plan `deal_name` against the avails not already held and commit it with its spots.
+
+    The plan is made first against a snapshot of the holds (no lock held while solving); then,
+    inside one `BEGIN IMMEDIATE` transaction, the holds are read again and the plan is checked
+    unit by unit against the avails left. If another desk committed first and the plan no longer
+    fits, the deal is re-planned inside the transaction (the write lock held) against the fresh
+    holds. Only a plan that fits is written, together with its deal row, before COMMIT.
+
+    `planner(scenario, deal_name, held=DataFrame, **plan_kwargs)` returns a plan with `.spots`
+    (default `planner.deals.plan_deal`). An undeliverable deal is not committed: the result says
+    so (`committed=False`, `reason`); a deal already in the book raises InputError.
+    """
+    if deal_name not in scenario.deals:
+        raise InputError(f"{getattr(scenario, 'path', '')}: no deal named {deal_name!r} in deals/ "
+                         f"(known: {', '.join(sorted(scenario.deals)) or 'none'})")
+    deal = scenario.deals[deal_name]
+    planner = planner or _default_planner
+    path = book_path(scenario, book)
+    conn = open_book(path)
+    try:
+        if conn.execute("SELECT 1 FROM deals WHERE name = ?", (deal_name,)).fetchone():
+            raise InputError(f"{path}: deal {deal_name!r} is already in the book (release it first)")
+        plan = planner(scenario, deal_name, held=_held_from(conn), **plan_kwargs)
+        if not _plan_is_deliverable(plan):
+            return CommitResult(deal_name, False, str(path), reason=_plan_reason(plan), plan=plan)
+        replanned = False
+        try:
+            result = _check_and_hold(conn, path, scenario, deal, plan, planner, plan_kwargs)
+        except _NotDeliverable as exc:
+            return CommitResult(deal_name, False, str(path), replanned=True, plan=exc.plan,
+                                reason="another desk committed first and the avails left no "
+                                       "longer deliver this deal: " + _plan_reason(exc.plan))
+        return result
+    finally:
+        conn.close()
+
+
+class _NotDeliverable(Exception):
+    def __init__(self, plan: Any):
+        super().__init__("not deliverable")
+        self.plan = plan
+
+
+def _check_and_hold(conn, path, scenario, deal, plan, planner, plan_kwargs) -> CommitResult:
+    """Inside BEGIN IMMEDIATE: re-read the holds, re-plan if the plan no longer fits, write."""
+    deal_name = deal.name
+    replanned = False
+    with write_transaction(conn):
+        if conn.execute("SELECT 1 FROM deals WHERE name = ?", (deal_name,)).fetchone():
+            raise InputError(f"{path}: deal {deal_name!r} was committed by another desk meanwhile")
+        held = _held_from(conn)
+        spots = _plan_spots(plan)
+        if len(over_avails(held, scenario.inventory, spots)):
+            replanned = True
+            plan = planner(scenario, deal_name, held=held, **plan_kwargs)
+            if not _plan_is_deliverable(plan):
+                raise _NotDeliverable(plan)  # rolls the transaction back
+            spots = _plan_spots(plan)
+            bad = over_avails(held, scenario.inventory, spots)
+            if len(bad):  # the planner ignored the holds: never write an over-held unit
+                raise RuntimeError(f"planner returned a plan over the avails left in {len(bad)} units")
+        summary = _plan_summary(plan, spots)
+        _insert_deal(conn, scenario, deal, spots, summary)
+        _sleep_hook()
+    return CommitResult(deal_name, True, str(path), replanned=replanned, summary=summary, plan=plan)
+
+
+def release_deal(scenario_or_path: Any, name: str, book: str | os.PathLike | None = None) -> BookDeal:
+    """Remove a committed deal and free its holds (one transaction); returns what was removed."""
+    path = book_path(scenario_or_path, book)
+    if not path.exists():
+        raise InputError(f"{path}: deal {name!r} is not in the book (no book here)")
+    conn = open_book(path)
+    try:
+        with write_transaction(conn):
+            row = conn.execute("SELECT * FROM deals WHERE name = ?", (name,)).fetchone()
+            if row is None:
+                raise InputError(f"{path}: deal {name!r} is not in the book")
+            removed = _deal_from_row(row, _holds_of(conn, name).drop(columns="deal"))
+            conn.execute("DELETE FROM holds WHERE deal = ?", (name,))
+            conn.execute("DELETE FROM deals WHERE name = ?", (name,))
+            _log(conn, name, "release", {"spots": removed.spots})
+        return removed
+    finally:
+        conn.close()
+
+
+def replace_holds(scenario: Any, name: str, spots: pd.DataFrame, summary: dict,
+                  book: str | os.PathLike | None = None, *, action: str = "rebalance") -> None:
+    """Replace a committed deal's holds by `spots` (HOLD_COLUMNS) in one checked transaction.
+
+    Raises InputError if the deal is not in the book, or if the new holds with everyone else's
+    would exceed a unit's avails (another desk took them meanwhile: re-run).
+    """
+    path = book_path(scenario, book)
+    conn = open_book(path)
+    try:
+        with write_transaction(conn):
+            row = conn.execute("SELECT * FROM deals WHERE name = ?", (name,)).fetchone()
+            if row is None:
+                raise InputError(f"{path}: deal {name!r} is not in the book")
+            spots = spots[spots["spots"] > 0].copy()
+            for c in HOLD_COLUMNS:
+                if c not in spots.columns:
+                    spots[c] = np.nan
+            spots = spots.astype({"week": "int64", "spots": "int64"})[HOLD_COLUMNS]
+            bad = over_avails(_held_from(conn, exclude=[name]), scenario.inventory, spots)
+            if len(bad):
+                raise InputError(f"{path}: new holds for {name!r} exceed the avails left in {len(bad)} "
+                                 f"unit(s) (first: {bad.iloc[0][UNIT_KEY].to_dict()}); re-run")
+            conn.execute("DELETE FROM holds WHERE deal = ?", (name,))
+            conn.executemany(
+                """INSERT INTO holds (deal, zone, network, daypart, week, spots, rate, cost,
+                       expected_impressions, sd) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)""",
+                [(name, r.zone, r.network, r.daypart, int(r.week), int(r.spots), _opt(r.rate),
+                  _opt(r.cost), _opt(r.expected_impressions), _opt(r.sd))
+                 for r in spots.itertuples(index=False)])
+            old = json.loads(row["summary_json"] or "{}")
+            new = {**old, **summary, "spots": int(spots["spots"].sum())}
+            conn.execute(
+                """UPDATE deals SET expected_impressions = ?, sd = ?, probability = ?, cost = ?,
+                       spots = ?, summary_json = ? WHERE name = ?""",
+                (new.get("expected_impressions"), new.get("sd"), new.get("probability"),
+                 new.get("cost"), new["spots"], json.dumps(new, default=str), name))
+            _log(conn, name, action, summary)
+            _sleep_hook()
+    finally:
+        conn.close()
+
+
+def check_book(scenario: Any, book: str | os.PathLike | None = None) -> dict:
+    """Integrity check: units over avails, holds without a deal, deals whose stored spot count
+    differs from their holds. Returns counts (all zero for a consistent book)."""
+    path = book_path(scenario, book)
+    with _reader(path) as conn:
+        if conn is None:
+            return {"over_avails": 0, "orphan_holds": 0, "spot_count_mismatch": 0, "deals": 0}
+        integrity = conn.execute("PRAGMA integrity_check").fetchone()[0]
+        orphan = conn.execute(
+            "SELECT COUNT(*) FROM holds WHERE deal NOT IN (SELECT name FROM deals)").fetchone()[0]
+        mismatch = conn.execute(
+            """SELECT COUNT(*) FROM deals d WHERE COALESCE(d.spots, 0) !=
+                   COALESCE((SELECT SUM(spots) FROM holds h WHERE h.deal = d.name), 0)""").fetchone()[0]
+        n = conn.execute("SELECT COUNT(*) FROM deals").fetchone()[0]
+        over = over_avails(_held_from(conn), scenario.inventory)
+        return {"over_avails": int(len(over)), "orphan_holds": int(orphan),
+                "spot_count_mismatch": int(mismatch), "deals": int(n), "integrity": integrity}
