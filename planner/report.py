@@ -1,0 +1,451 @@
+"""The HTML report: one self-contained file (inline CSS, plots as inline SVG images).
+
+Two layers:
+
+- `ReportData` and its parts are plain dataclasses of DataFrames, arrays and check payloads;
+  `render_report(data) -> str` turns them into HTML and knows nothing of scenarios or solvers.
+- `build_report(scenario, ...)` gathers those parts from the planner (forecast, check, plan,
+  book, stress) and `write_report(data, path)` writes the file atomically.
+
+Verdict figures are placed in elements carrying ``data-deal``, ``data-field`` and ``data-value``
+(the exact number, as in ``pledge check --json``) so that tests and scripts can read them back.
+"""
+from __future__ import annotations
+
+import base64
+import html
+import json
+import math
+import platform
+from dataclasses import dataclass, field
+from importlib import metadata
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+import pandas as pd
+
+from planner import plots
+from planner.atomic import write_text_atomic
+
+CAUTIONS = (
+    "Forecasts are estimates made from past audiences; actual delivery will differ, and the bands "
+    "shown are themselves estimates.",
+    "The contract terms decide what is owed on under-delivery (make-goods or refunds); the liability "
+    "figures here are a model of those terms, not a statement of them.",
+    "Check every plan against posted actuals as the flight airs, and have the people accountable for "
+    "the money review it before anything is committed.",
+)
+
+_PACKAGES = ("pledge", "numpy", "pandas", "scipy", "pulp", "highspy", "scikit-learn", "matplotlib", "duckdb")
+
+
+# --------------------------------------------------------------------------------------------
+# Data handed to the renderer
+# --------------------------------------------------------------------------------------------
+@dataclass
+class DealSection:
+    """Everything the report shows about one deal.
+
+    `verdict` is the deal's check payload (the object `pledge check --json` prints): keys
+    ``deal, deliverable, guarantee, expected_impressions, probability_of_delivery, confidence,
+    cost, revenue, margin, max_guarantee, binding`` and any others. `frontier` has
+    ``guarantee, cost, probability``; `pacing` ``week, expected_impressions, p10, p90,
+    even_pacing``; `spots` ``zone, network, daypart, week, spots, rate, cost,
+    expected_impressions``; `delivery_draws` delivered impressions per stress draw.
+    """
+
+    name: str
+    verdict: dict[str, Any]
+    advertiser: str | None = None
+    demo: str | None = None
+    weeks: tuple[int, int] | None = None
+    price_cpm: float | None = None
+    in_book: bool = False
+    frontier: pd.DataFrame | None = None
+    pacing: pd.DataFrame | None = None
+    spots: pd.DataFrame | None = None
+    delivery_draws: np.ndarray | None = None
+    probability_of_shortfall: float | None = None
+    expected_shortfall: float | None = None
+    expected_liability: float | None = None
+
+
+@dataclass
+class BookSection:
+    """The stress test of the whole book: liability per draw (currency) and its tail."""
+
+    liability_draws: np.ndarray
+    var95: float
+    cvar95: float
+    expected_liability: float
+    draws: int
+    seed: int | None = None
+    shocks: Sequence[str] = ()
+    liability_basis: str = "refund"
+    deals: Sequence[str] = ()
+    extra: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass
+class ForecastBand:
+    """History against the forecast band for one unit (impressions of one spot)."""
+
+    label: str
+    history: pd.DataFrame  # week_start, impressions
+    forecast: pd.DataFrame  # week_start, mean_impressions, q10_impressions, q90_impressions
+
+
+@dataclass
+class ReportData:
+    """All the inputs of one report."""
+
+    scenario_name: str
+    scenario_path: str
+    currency: str
+    deals: list[DealSection]
+    book: BookSection | None = None
+    forecasts: list[ForecastBand] = field(default_factory=list)
+    dayparts: list[str] | None = None
+    seed: int | None = None
+    notes: list[str] = field(default_factory=list)
+    versions: dict[str, str] = field(default_factory=dict)
+
+
+# --------------------------------------------------------------------------------------------
+# Formatting
+# --------------------------------------------------------------------------------------------
+def _num(v: Any) -> float | None:
+    if v is None:
+        return None
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return None
+    return f if math.isfinite(f) else None
+
+
+def fmt_money(v: Any, currency: str) -> str:
+    """'USD 1,234,567' (no decimals), or an em dash when missing."""
+    f = _num(v)
+    return "\u2014" if f is None else f"{currency} {f:,.0f}"
+
+
+def fmt_count(v: Any) -> str:
+    """'12,345,678', or an em dash when missing."""
+    f = _num(v)
+    return "\u2014" if f is None else f"{f:,.0f}"
+
+
+def fmt_pct(v: Any, digits: int = 1) -> str:
+    """A fraction as a percentage: 0.953 -> '95.3%'."""
+    f = _num(v)
+    return "\u2014" if f is None else f"{100 * f:.{digits}f}%"
+
+
+def package_versions() -> dict[str, str]:
+    """Versions of Python and the packages that produce the numbers."""
+    out = {"python": platform.python_version()}
+    for name in _PACKAGES:
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            continue
+    return out
+
+
+def _esc(v: Any) -> str:
+    return html.escape(str(v), quote=True)
+
+
+def _attr_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    f = _num(v)
+    if f is None:
+        return ""
+    return repr(f)
+
+
+def _field(deal: str, key: str, value: Any, text: str) -> str:
+    return (f'<span data-deal="{_esc(deal)}" data-field="{_esc(key)}" '
+            f'data-value="{_esc(_attr_value(value))}">{_esc(text)}</span>')
+
+
+def _img(svg: str, kind: str, deal: str | None, alt: str) -> str:
+    data = base64.b64encode(svg.encode("utf-8")).decode("ascii")
+    deal_attr = f' data-deal="{_esc(deal)}"' if deal else ""
+    return (f'<figure class="plot"><img data-plot="{_esc(kind)}"{deal_attr} alt="{_esc(alt)}" '
+            f'src="data:image/svg+xml;base64,{data}"></figure>')
+
+
+def _binding_items(binding: Any) -> list[str]:
+    if not binding:
+        return []
+    if isinstance(binding, (str, bytes)):
+        return [str(binding)]
+    items = []
+    for b in binding:
+        if isinstance(b, dict):
+            items.append(str(b.get("text") or b.get("message") or b.get("description") or
+                             "; ".join(f"{k}: {v}" for k, v in b.items())))
+        else:
+            items.append(str(b))
+    return items
+
+
+# --------------------------------------------------------------------------------------------
+# Rendering
+# --------------------------------------------------------------------------------------------
+_CSS = """
+:root { --ink:#1d2733; --muted:#6b7785; --line:#dfe4ea; --teal:#1f6f78; --teal-soft:#e6f2f3;
+        --amber:#d9922e; --brick:#b5452b; --brick-soft:#f8e9e5; --paper:#fbfaf7; }
+* { box-sizing: border-box; }
+body { margin:0; background:var(--paper); color:var(--ink);
+       font: 14px/1.45 "Helvetica Neue", Arial, "Liberation Sans", sans-serif; }
+header.top { background:var(--ink); color:#fff; padding:18px 32px 14px; }
+header.top h1 { margin:0; font-size:22px; letter-spacing:.2px; }
+header.top .sub { color:#c7d0da; font-size:13px; margin-top:4px; }
+main { max-width:1180px; margin:0 auto; padding:18px 32px 40px; }
+h2 { font-size:18px; margin:30px 0 10px; padding-bottom:4px; border-bottom:2px solid var(--line); }
+h3 { font-size:15px; margin:18px 0 8px; }
+.caution { background:#fff7e8; border-left:4px solid var(--amber); padding:10px 16px; margin:14px 0;
+           font-size:13px; }
+.caution ul { margin:4px 0 0 18px; padding:0; }
+.summary { width:100%; border-collapse:collapse; background:#fff; font-size:13px; }
+.summary th, .summary td { padding:6px 10px; border-bottom:1px solid var(--line); text-align:right;
+                            white-space:nowrap; }
+.summary th:first-child, .summary td:first-child { text-align:left; }
+.summary thead th { background:#eef1f4; font-weight:600; }
+.deal { background:#fff; border:1px solid var(--line); border-radius:6px; margin:22px 0; padding:0 0 12px; }
+.deal > header { display:flex; align-items:baseline; gap:14px; padding:12px 18px; border-bottom:1px solid var(--line); }
+.deal > header h2 { margin:0; border:0; padding:0; font-size:18px; }
+.deal > header .meta { color:var(--muted); font-size:13px; }
+.badge { display:inline-block; padding:2px 10px; border-radius:12px; font-size:12px; font-weight:700;
+         letter-spacing:.3px; text-transform:uppercase; }
+.badge.yes { background:var(--teal-soft); color:var(--teal); }
+.badge.no { background:var(--brick-soft); color:var(--brick); }
+.badge.held { background:#eef1f4; color:var(--muted); }
+.tiles { display:grid; grid-template-columns:repeat(auto-fill, minmax(170px, 1fr)); gap:10px; padding:14px 18px 4px; }
+.tile { border:1px solid var(--line); border-radius:5px; padding:8px 12px; }
+.tile .k { color:var(--muted); font-size:11.5px; text-transform:uppercase; letter-spacing:.4px; }
+.tile .v { font-size:18px; font-weight:600; margin-top:2px; white-space:nowrap; }
+.tile.risk .v { color:var(--brick); }
+.binding { margin:6px 18px 0; font-size:13px; }
+.binding ul { margin:4px 0 0 18px; padding:0; }
+.plots { display:grid; grid-template-columns:1fr 1fr; gap:8px 18px; padding:6px 18px; }
+.plots .wide { grid-column: 1 / -1; }
+figure.plot { margin:0; }
+figure.plot img { width:100%; height:auto; display:block; }
+.bands { display:grid; grid-template-columns:repeat(3, 1fr); gap:10px; }
+.empty { color:var(--muted); font-style:italic; padding:6px 0; }
+.book { background:#fff; border:1px solid var(--line); border-radius:6px; padding:10px 18px 14px; }
+footer { color:var(--muted); font-size:12px; margin-top:30px; border-top:1px solid var(--line); padding-top:10px; }
+footer table td { padding:1px 12px 1px 0; }
+@media (max-width: 820px) { .plots, .bands { grid-template-columns:1fr; } }
+@media print { body { background:#fff; } .deal, .book { break-inside: avoid; } }
+"""
+
+
+def _tile(deal: str, key: str, label: str, value: Any, text: str, cls: str = "") -> str:
+    return (f'<div class="tile {cls}"><div class="k">{_esc(label)}</div>'
+            f'<div class="v">{_field(deal, key, value, text)}</div></div>')
+
+
+def _verdict_panel(d: DealSection, currency: str) -> str:
+    v = d.verdict
+    name = d.name
+    deliverable = bool(v.get("deliverable"))
+    badge = (f'<span class="badge {"yes" if deliverable else "no"}" data-deal="{_esc(name)}" '
+             f'data-field="deliverable" data-value="{"true" if deliverable else "false"}">'
+             f'{"deliverable" if deliverable else "not deliverable"}</span>')
+    held = '<span class="badge held">in the book</span>' if d.in_book else ""
+    meta = []
+    if d.advertiser:
+        meta.append(_esc(d.advertiser))
+    if d.demo:
+        meta.append(f"demo {_esc(d.demo)}")
+    if d.weeks:
+        meta.append(f"weeks {d.weeks[0]}\u2013{d.weeks[1]}")
+    if d.price_cpm is not None:
+        meta.append(f"price {currency} {d.price_cpm:,.2f} CPM")
+    margin = _num(v.get("margin"))
+    revenue = _num(v.get("revenue"))
+    margin_pct = _num(v.get("margin_pct"))
+    if margin_pct is None and margin is not None and revenue:
+        margin_pct = margin / revenue
+    elif margin_pct is not None and abs(margin_pct) > 1.5:  # given in percent points
+        margin_pct = margin_pct / 100.0
+    conf = _num(v.get("confidence"))
+    prob = _num(v.get("probability_of_delivery"))
+    tiles = [
+        _tile(name, "guarantee", "guarantee", v.get("guarantee"), fmt_count(v.get("guarantee")) + " imp."),
+        _tile(name, "expected_impressions", "expected delivery", v.get("expected_impressions"),
+              fmt_count(v.get("expected_impressions")) + " imp."),
+        _tile(name, "probability_of_delivery", "chance of delivery", prob, fmt_pct(prob),
+              "risk" if (prob is not None and conf is not None and prob < conf - 1e-9) else ""),
+        _tile(name, "confidence", "required chance", conf, fmt_pct(conf) if conf is not None
+              else ("pad " + fmt_pct(v.get("pad"), 0) if v.get("pad") is not None else "\u2014")),
+        _tile(name, "cost", "minimum cost", v.get("cost"), fmt_money(v.get("cost"), currency)),
+        _tile(name, "revenue", "revenue", revenue, fmt_money(revenue, currency)),
+        _tile(name, "margin", "margin", margin,
+              fmt_money(margin, currency) + (f" ({margin_pct:.1%})" if margin_pct is not None else ""),
+              "risk" if (margin is not None and margin < 0) else ""),
+        _tile(name, "max_guarantee", "largest deliverable guarantee", v.get("max_guarantee"),
+              fmt_count(v.get("max_guarantee")) + " imp."),
+    ]
+    if _num(v.get("required_cpm")) is not None:
+        tiles.append(_tile(name, "required_cpm", "CPM for target margin", v.get("required_cpm"),
+                           f"{currency} {float(v['required_cpm']):,.2f}"))
+    items = _binding_items(v.get("binding"))
+    binding = ('<div class="binding"><b>What binds:</b><ul>' +
+               "".join(f'<li data-deal="{_esc(name)}" data-field="binding">{_esc(t)}</li>' for t in items) +
+               "</ul></div>") if items else \
+        '<div class="binding"><b>What binds:</b> nothing at this guarantee.</div>'
+    notes = []
+    if v.get("risk_default_used"):
+        notes.append("No risk margin in the deal file: the default required chance was used.")
+    if d.probability_of_shortfall is not None:
+        notes.append(f"Stress test of the book: shortfall chance {fmt_pct(d.probability_of_shortfall)}, "
+                     f"expected shortfall {fmt_count(d.expected_shortfall)} imp., "
+                     f"expected liability {fmt_money(d.expected_liability, currency)}.")
+    notes_html = "".join(f'<div class="binding">{_esc(n)}</div>' for n in notes)
+    sep = " \u00b7 "
+    return (f'<header><h2>{_esc(name)}</h2>{badge}{held}<span class="meta">{sep.join(meta)}</span></header>'
+            f'<div class="tiles">{"".join(tiles)}</div>{binding}{notes_html}')
+
+
+def _deal_plots(d: DealSection, data: ReportData) -> str:
+    v = d.verdict
+    parts = []
+    guarantee = _num(v.get("guarantee")) or 0.0
+    if d.frontier is not None and len(d.frontier):
+        parts.append(_img(plots.frontier_svg(d.frontier, guarantee, _num(v.get("confidence")), data.currency),
+                          "frontier", d.name, "cost and chance of delivery by guarantee size"))
+    if d.pacing is not None and len(d.pacing):
+        parts.append(_img(plots.pacing_svg(d.pacing), "pacing", d.name, "weekly pacing"))
+    if d.delivery_draws is not None and len(d.delivery_draws):
+        parts.append(_img(plots.delivery_svg(d.delivery_draws, guarantee, d.probability_of_shortfall),
+                          "delivery", d.name, "delivery distribution in the stress test"))
+    if d.spots is not None and len(d.spots) and float(d.spots["spots"].sum()) > 0:
+        parts.append(_img(plots.money_map_svg(d.spots[d.spots["spots"] > 0], data.currency, data.dayparts),
+                          "money", d.name, "expected impressions and cost by network and daypart")
+                     .replace('class="plot"', 'class="plot wide"'))
+        parts.append(_zone_table(d.spots, data.currency))
+        totals = d.spots
+        parts.append(f'<div class="wide binding">Buy plan: {fmt_count(totals["spots"].sum())} spots in '
+                     f'{int((totals["spots"] > 0).sum()):,} unit-weeks, {fmt_money(totals["cost"].sum(), data.currency)}, '
+                     f'{fmt_count(totals["expected_impressions"].sum())} expected impressions.</div>')
+    if not parts:
+        return '<div class="plots"><div class="empty wide">No plan: the deal is not deliverable as written.</div></div>'
+    return f'<div class="plots">{"".join(parts)}</div>'
+
+
+def _zone_table(spots: pd.DataFrame, currency: str) -> str:
+    """The plan by zone: spots, cost, expected impressions and the plan's CPM."""
+    z = spots.groupby("zone", observed=True)[["spots", "cost", "expected_impressions"]].sum()
+    z = z[z["spots"] > 0].sort_values("cost", ascending=False)
+    rows = "".join(
+        f"<tr><td>{_esc(zone)}</td><td>{fmt_count(r.spots)}</td><td>{fmt_money(r.cost, currency)}</td>"
+        f"<td>{fmt_count(r.expected_impressions)}</td>"
+        f"<td>{(1000 * r.cost / r.expected_impressions) if r.expected_impressions else float('nan'):,.2f}</td></tr>"
+        for zone, r in z.iterrows())
+    return ('<div><h3>Where the money goes, by zone</h3><table class="summary"><thead><tr><th>zone</th>'
+            f'<th>spots</th><th>cost</th><th>expected imp.</th><th>CPM ({_esc(currency)})</th></tr></thead>'
+            f'<tbody>{rows}</tbody></table></div>')
+
+
+def _summary_table(data: ReportData) -> str:
+    rows = []
+    c = data.currency
+    for d in data.deals:
+        v = d.verdict
+        ok = bool(v.get("deliverable"))
+        rows.append(
+            "<tr>"
+            f"<td>{_esc(d.name)}</td>"
+            f"<td>{'yes' if ok else 'no'}{' (booked)' if d.in_book else ''}</td>"
+            f"<td>{fmt_count(v.get('guarantee'))}</td>"
+            f"<td>{fmt_money(v.get('cost'), c)}</td>"
+            f"<td>{fmt_money(v.get('margin'), c)}</td>"
+            f"<td>{fmt_pct(v.get('probability_of_delivery'))}</td>"
+            f"<td>{fmt_count(v.get('max_guarantee'))}</td>"
+            "</tr>")
+    return ('<table class="summary"><thead><tr><th>deal</th><th>deliverable</th><th>guarantee (imp.)</th>'
+            f'<th>minimum cost</th><th>margin</th><th>chance of delivery</th><th>largest guarantee (imp.)</th>'
+            f'</tr></thead><tbody>{"".join(rows)}</tbody></table>')
+
+
+def _book_section(data: ReportData) -> str:
+    b = data.book
+    if b is None:
+        return '<h2>The book</h2><div class="empty">No deals committed to the book: no stress test.</div>'
+    c = data.currency
+    shocks = ", ".join(b.shocks) if b.shocks else "none"
+    tiles = (
+        _tile("_book", "expected_liability", "expected liability", b.expected_liability,
+              fmt_money(b.expected_liability, c))
+        + _tile("_book", "var95", "VaR95 of liability", b.var95, fmt_money(b.var95, c), "risk")
+        + _tile("_book", "cvar95", "CVaR95 of liability", b.cvar95, fmt_money(b.cvar95, c), "risk")
+        + _tile("_book", "draws", "Monte Carlo draws", b.draws, fmt_count(b.draws))
+    )
+    img = _img(plots.liability_svg(b.liability_draws, b.var95, b.cvar95, c), "liability", None,
+               "book liability distribution")
+    deals = ", ".join(b.deals) if b.deals else "\u2014"
+    return (f'<h2>The book</h2><div class="book"><div class="binding">Deals in the book: {_esc(deals)}. '
+            f'Liability basis: {_esc(b.liability_basis)}. Shocks: {_esc(shocks)}. Seed: {_esc(b.seed)}.</div>'
+            f'<div class="tiles">{tiles}</div><div class="plots"><div class="wide">{img}</div></div></div>')
+
+
+def _forecast_section(data: ReportData) -> str:
+    if not data.forecasts:
+        return ""
+    imgs = "".join(_img(plots.forecast_band_svg(f.history, f.forecast, f.label), "forecast", None,
+                        f"forecast band {f.label}") for f in data.forecasts)
+    return ('<h2>Forecast bands</h2><div class="binding">Mean impressions of one spot per week: '
+            'history, then the forecast with its 10\u201390% band, for the units carrying most of the plans.</div>'
+            f'<div class="bands">{imgs}</div>')
+
+
+def _cautions() -> str:
+    return ('<div class="caution" data-section="cautions"><b>Before you rely on these figures</b><ul>'
+            + "".join(f"<li>{_esc(c)}</li>" for c in CAUTIONS) + "</ul></div>")
+
+
+def render_report(data: ReportData) -> str:
+    """Render the report as one self-contained HTML document (str)."""
+    versions = data.versions or package_versions()
+    deals = "".join(f'<section class="deal" data-deal-section="{_esc(d.name)}">{_verdict_panel(d, data.currency)}'
+                    f"{_deal_plots(d, data)}</section>" for d in data.deals)
+    notes = "".join(f'<div class="binding">{_esc(n)}</div>' for n in data.notes)
+    ver = "".join(f"<tr><td>{_esc(k)}</td><td>{_esc(v)}</td></tr>" for k, v in versions.items())
+    payload = {"scenario": data.scenario_name, "seed": data.seed, "currency": data.currency,
+               "deals": [d.name for d in data.deals], "versions": versions}
+    meta_json = json.dumps(payload).replace("</", "<\\/")
+    return f"""<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8">
+<meta name="viewport" content="width=device-width, initial-scale=1">
+<title>pledge report: {_esc(data.scenario_name)}</title>
+<style>{_CSS}</style></head>
+<body>
+<header class="top"><h1>Deal and book report: {_esc(data.scenario_name)}</h1>
+<div class="sub">{len(data.deals)} deal(s) \u00b7 currency {_esc(data.currency)} \u00b7 impressions are in each deal's demo \u00b7 made by pledge {_esc(versions.get("pledge", ""))}</div></header>
+<main>
+{_cautions()}
+{notes}
+<h2>Deals at a glance</h2>
+{_summary_table(data)}
+{deals}
+{_book_section(data)}
+{_forecast_section(data)}
+{_cautions()}
+<footer><div>Scenario <b>{_esc(data.scenario_name)}</b> at {_esc(data.scenario_path)} \u00b7 seed {_esc(data.seed)}</div>
+<table>{ver}</table></footer>
+<script type="application/json" id="report-meta">{meta_json}</script>
+</main></body></html>
+"""
+
+
+def write_report(data: ReportData, path: str | Path) -> Path:
+    """Render `data` and write it to `path` atomically (whole or not at all). Returns the path."""
+    return write_text_atomic(path, render_report(data))
