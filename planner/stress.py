@@ -1,0 +1,574 @@
+"""Monte Carlo stress test of the whole book of sold deals (finance).
+
+Every committed deal is drawn at once from the allocator's own uncertainty model
+(`planner.delivery.DeliveryModel`, the forecast table's error model): the network level factor
+is shared by every deal buying that network, the flight and unit-week level factors by every
+deal holding the same units, and airing noise and preemption are per spot. Deals sharing
+networks therefore fall short together.
+
+Fast sampler (the default). Conditional on the level factors, a deal's delivery is a sum of
+many independent per-spot terms (preemption Bernoulli, airing noise), drawn as one normal with
+the model's linear variance (law of total variance; central limit theorem). The network factors
+(few) are drawn explicitly, so the tail can be attributed to networks; the flight and unit-week
+factors touch deals only through the units they hold, so their joint contribution to the D
+deals, together with the per-spot part, is a D-variate normal with covariance
+`B_f B_f' + B_w B_w' + diag(linear)` drawn through a square-root factor. The cost per draw is
+O(networks + deals), independent of the number of spots.
+
+Exact sampler (`method="exact"`, validation and benchmark): every factor drawn explicitly, then
+per hold row the aired spots K ~ Binomial(x, 1 - p) and the airing noise sqrt(K) sd N(0, 1), or
+with `method="per_spot"` one Bernoulli and one noise draw per bought spot (the naive sampler).
+
+Liability per deal: `refund` = shortfall x price CPM / 1000; `makegood` = shortfall x the plan's
+cost per expected impression. Book risk: expected liability, VaR and CVaR at 95%.
+
+References
+----------
+Rockafellar, R. T. & Uryasev, S. (2000). Optimization of conditional value-at-risk. Journal of
+Risk 2(3), 21-41 (CVaR_a = VaR_a + E[(L - VaR_a)+] / (1 - a); tail contributions
+E[L_d | L >= VaR]). Glasserman, P. (2004). Monte Carlo Methods in Financial Engineering
+(conditional sampling, batch-means standard errors).
+"""
+from __future__ import annotations
+
+import os
+import re
+from dataclasses import dataclass, field
+from typing import Any, Callable, Sequence
+
+import numpy as np
+import pandas as pd
+from scipy import sparse
+from scipy.special import ndtr
+
+from planner.delivery import FLIGHT_KEY, UNIT_KEY, DeliveryModel
+from planner.errors import InputError
+
+ALPHA = 0.95
+LIABILITY_BASES = ("refund", "makegood")
+_CHUNK = 100_000
+_FORECAST_COLS = ["mean_impressions", "airing_sd", "level_sd_network", "level_sd_flight", "level_sd_week"]
+
+
+# --------------------------------------------------------------------------- shocks
+
+@dataclass(frozen=True)
+class Shock:
+    """A scenario shock: ratings of the matching units change by `change` (-0.15 = 15% lower).
+
+    `kind` is "network", "daypart", "zone" or "all"; `name` the matched value (None for all).
+    The whole per-spot distribution of matching units is scaled by 1 + change (mean and every sd).
+    """
+
+    kind: str
+    name: str | None
+    change: float
+
+    def label(self) -> str:
+        target = "all units" if self.kind == "all" else f"{self.kind} {self.name}"
+        return f"{target} {self.change:+.1%}"
+
+
+_SHOCK_RE = re.compile(r"^\s*(?:(network|daypart|zone)\s*=\s*([^:]+?)|(all))\s*:\s*([-+]?[0-9]*\.?[0-9]+(?:[eE][-+]?\d+)?)\s*$")
+
+
+def parse_shock(text: str, *, networks: Sequence[str] | None = None, dayparts: Sequence[str] | None = None,
+                zones: Sequence[str] | None = None) -> Shock:
+    """Parse `network=NAME:-0.15`, `daypart=prime:-0.10`, `zone=Z:+0.05` or `all:-0.05`.
+
+    Unknown names (when the known lists are given) and changes <= -1 raise InputError.
+    """
+    m = _SHOCK_RE.match(text or "")
+    if not m:
+        raise InputError(f"--shock {text!r}: expected network=NAME:CHANGE, daypart=NAME:CHANGE, "
+                         f"zone=NAME:CHANGE or all:CHANGE with CHANGE a fraction such as -0.15")
+    kind = m.group(1) or "all"
+    name = m.group(2).strip() if m.group(2) else None
+    change = float(m.group(4))
+    if not change > -1.0:
+        raise InputError(f"--shock {text!r}: change {change} would make ratings negative (must be > -1)")
+    known = {"network": networks, "daypart": dayparts, "zone": zones}.get(kind)
+    if name is not None and known is not None and name not in set(known):
+        raise InputError(f"--shock {text!r}: unknown {kind} {name!r} (known: {', '.join(sorted(map(str, known)))})")
+    return Shock(kind, name, change)
+
+
+def apply_shocks(units: pd.DataFrame, shocks: Sequence[Shock] = (), preempt_multiplier: float = 1.0) -> pd.DataFrame:
+    """Scale matching units' impressions and sds by (1 + change) (shocks compound) and the
+    preemption rate by `preempt_multiplier` (capped at 1). Returns a new DataFrame."""
+    out = units.copy()
+    factor = np.ones(len(out))
+    for s in shocks:
+        mask = np.ones(len(out), bool) if s.kind == "all" else (out[s.kind].astype(str) == s.name).to_numpy()
+        factor = np.where(mask, factor * (1.0 + s.change), factor)
+    for c in _FORECAST_COLS:
+        out[c] = out[c].to_numpy(float) * factor
+    if preempt_multiplier != 1.0:
+        if preempt_multiplier < 0:
+            raise InputError(f"--preempt-multiplier {preempt_multiplier}: must be >= 0")
+        out["preempt_rate"] = np.minimum(out["preempt_rate"].to_numpy(float) * preempt_multiplier, 1.0)
+    return out
+
+
+# --------------------------------------------------------------------------- the book model
+
+@dataclass
+class BookModel:
+    """The joint delivery model of D committed deals (impressions; money in the scenario currency).
+
+    delivery = mean + net_loadings @ Z_net + other_factor @ Z_other, Z's iid standard normal;
+    `net_loadings` (D, N) impressions per network factor; `other_cov` (D, D) the covariance of the
+    flight and unit-week factors plus the per-spot (linear) variance. `rows` holds one row per
+    (deal, held unit) with the per-spot parameters for the exact samplers.
+    """
+
+    deals: list[str]
+    guarantee: np.ndarray
+    price_cpm: np.ndarray
+    cost: np.ndarray
+    mean: np.ndarray
+    net_loadings: np.ndarray
+    networks: list[str]
+    other_cov: np.ndarray
+    cost_per_impression: np.ndarray
+    rows: pd.DataFrame | None = None
+
+    @property
+    def revenue(self) -> np.ndarray:
+        """Guarantee x CPM / 1000 per deal (currency)."""
+        return self.guarantee * self.price_cpm / 1000.0
+
+    @property
+    def variance(self) -> np.ndarray:
+        """Marginal variance of each deal's delivery, impressions^2."""
+        return (self.net_loadings ** 2).sum(axis=1) + np.diag(self.other_cov)
+
+    @property
+    def covariance(self) -> np.ndarray:
+        """Joint covariance of the deals' deliveries (D, D), impressions^2."""
+        return self.net_loadings @ self.net_loadings.T + self.other_cov
+
+    def probability_of_shortfall_normal(self) -> np.ndarray:
+        """Normal approximation P(D_d < G_d) per deal (the allocator's own figure)."""
+        sd = np.sqrt(self.variance)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.where(sd > 0, ndtr((self.guarantee - self.mean) / np.where(sd > 0, sd, 1)),
+                            (self.mean < self.guarantee).astype(float))
+
+
+def book_units(deals: Sequence[Any], holds: pd.DataFrame, forecast: pd.DataFrame,
+               inventory: pd.DataFrame) -> pd.DataFrame:
+    """One row per (deal, held unit): holds joined with the forecast row of the deal's demo and
+    the inventory's preemption rate. Columns `deal, demo, zone, network, daypart, week, spots,
+    mean_impressions, airing_sd, level_sd_network, level_sd_flight, level_sd_week, preempt_rate`."""
+    demo_of = {d.name: d.demo for d in deals}
+    h = holds[holds["deal"].isin(list(demo_of))].copy()
+    h["demo"] = h["deal"].map(demo_of)
+    h["week"] = h["week"].astype("int64")
+    fc = forecast[UNIT_KEY + ["demo"] + _FORECAST_COLS].copy()
+    fc["week"] = fc["week"].astype("int64")
+    units = h[["deal", "demo"] + UNIT_KEY + ["spots"]].merge(fc, on=UNIT_KEY + ["demo"], how="left")
+    missing = units["mean_impressions"].isna()
+    if missing.any():
+        r = units[missing].iloc[0]
+        raise InputError(f"forecast has no row for unit {r.zone}/{r.network}/{r.daypart}/week {r.week} "
+                         f"demo {r.demo} held by deal {r.deal!r} ({int(missing.sum())} such holds); "
+                         f"re-fit the forecast (pledge forecast fit)")
+    inv = inventory[UNIT_KEY + ["preempt_rate"]].copy()
+    inv["week"] = inv["week"].astype("int64")
+    units = units.merge(inv, on=UNIT_KEY, how="left")
+    units["preempt_rate"] = units["preempt_rate"].fillna(0.0).astype(float)
+    return units.reset_index(drop=True)
+
+
+def build_book_model(deals: Sequence[Any], units: pd.DataFrame) -> BookModel:
+    """Assemble the joint model from per-deal `DeliveryModel`s of the held spots.
+
+    `deals` are objects with `name, guarantee, price_cpm, cost` (e.g. `planner.book.BookDeal`);
+    `units` as returned by `book_units` (shocks already applied).
+    """
+    names = [d.name for d in deals]
+    D = len(names)
+    networks = sorted(units["network"].astype(str).unique().tolist())
+    net_pos = {n: i for i, n in enumerate(networks)}
+    mean = np.zeros(D)
+    lin = np.zeros(D)
+    net_load = np.zeros((D, len(networks)))
+    flt_parts, wk_parts = [], []
+    for j, name in enumerate(names):
+        u = units[units["deal"] == name]
+        if u.empty:
+            continue
+        model = DeliveryModel.from_units(u.reset_index(drop=True))
+        fl = model.factor_loadings(u["spots"].to_numpy(float))
+        mean[j] = fl.mean
+        lin[j] = fl.linear_variance
+        for n, v in fl.network.items():
+            net_load[j, net_pos[str(n)]] = v
+        flt_parts.append(pd.DataFrame({"deal": j, "key": list(fl.flight.index), "loading": fl.flight.to_numpy()}))
+        wk_parts.append(pd.DataFrame({"deal": j, "key": list(fl.week.index), "loading": fl.week.to_numpy()}))
+    other = np.diag(lin)
+    for parts in (flt_parts, wk_parts):
+        if not parts:
+            continue
+        long = pd.concat(parts, ignore_index=True)
+        if long.empty:
+            continue
+        codes, uniques = pd.factorize(long["key"])
+        B = sparse.csr_matrix((long["loading"].to_numpy(float), (long["deal"].to_numpy(), codes)),
+                              shape=(D, len(uniques)))
+        other = other + (B @ B.T).toarray()
+    guarantee = np.array([float(d.guarantee) for d in deals])
+    price = np.array([float(d.price_cpm) for d in deals])
+    cost = np.array([float(getattr(d, "cost", None) or 0.0) for d in deals])
+    plan_exp = np.array([float(getattr(d, "expected_impressions", None) or 0.0) for d in deals])
+    base = np.where(plan_exp > 0, plan_exp, mean)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cpi = np.where(base > 0, cost / np.where(base > 0, base, 1.0), 0.0)
+    return BookModel(names, guarantee, price, cost, mean, net_load, networks, other, cpi, rows=units)
+
+
+def _sqrt_factor(cov: np.ndarray) -> np.ndarray:
+    """F with F F' = cov for a symmetric positive semi-definite cov (eigen-decomposition)."""
+    if cov.size == 0:
+        return cov
+    w, v = np.linalg.eigh((cov + cov.T) / 2.0)
+    return v * np.sqrt(np.clip(w, 0.0, None))
+
+
+# --------------------------------------------------------------------------- sampling
+
+def sample_fast(model: BookModel, draws: int, rng: np.random.Generator, *,
+                chunk: int = _CHUNK, advance: Callable[[float], Any] | None = None):
+    """Draws of every deal's delivery (draws, D) and the network factors (draws, N), float64/32.
+
+    Conditional-normal sampler (module docstring): cost O(draws x (N + D)).
+    """
+    D, N = len(model.deals), len(model.networks)
+    F = _sqrt_factor(model.other_cov)
+    delivery = np.empty((draws, D))
+    z_net_all = np.empty((draws, N), dtype=np.float32)
+    for start in range(0, draws, chunk):
+        k = min(chunk, draws - start)
+        z_net = rng.standard_normal((k, N))
+        z_other = rng.standard_normal((k, D))
+        delivery[start:start + k] = model.mean + z_net @ model.net_loadings.T + z_other @ F.T
+        z_net_all[start:start + k] = z_net
+        if advance:
+            advance(k)
+    return delivery, z_net_all
+
+
+def sample_exact(model: BookModel, draws: int, rng: np.random.Generator, *, per_spot: bool = False,
+                 chunk_cells: int = 4_000_000, advance: Callable[[float], Any] | None = None):
+    """Exact draws of the book's deliveries (draws, D) and network factors (draws, N).
+
+    Every level factor is drawn explicitly. `per_spot=False`: per hold row K ~ Binomial(x, 1-p)
+    aired spots and airing noise sqrt(K) sd N(0,1) (the same distribution as a spot-by-spot
+    sum). `per_spot=True`: one Bernoulli and one airing-noise draw per bought spot (naive).
+    """
+    rows = model.rows
+    D, N = len(model.deals), len(model.networks)
+    delivery = np.zeros((draws, D))
+    z_net_all = np.empty((draws, N), dtype=np.float32)
+    if rows is None or rows.empty:
+        z_net_all[:] = rng.standard_normal((draws, N))
+        return delivery + model.mean, z_net_all
+    net_c = pd.Index(model.networks).get_indexer(rows["network"].astype(str))
+    flt_c, flt_u = pd.factorize(pd.MultiIndex.from_frame(rows[FLIGHT_KEY].astype(str)))
+    wk_c, wk_u = pd.factorize(pd.MultiIndex.from_frame(rows[UNIT_KEY].astype({"week": "int64"})))
+    deal_c = pd.Index(model.deals).get_indexer(rows["deal"])
+    mu = rows["mean_impressions"].to_numpy(float)
+    wn, wf, ww = (rows[c].to_numpy(float) for c in ("level_sd_network", "level_sd_flight", "level_sd_week"))
+    sd = rows["airing_sd"].to_numpy(float)
+    p = rows["preempt_rate"].to_numpy(float)
+    x = np.rint(rows["spots"].to_numpy(float)).astype(np.int64)
+    R = len(rows)
+    if per_spot:
+        spot_row = np.repeat(np.arange(R), x)
+        order = np.argsort(deal_c[spot_row], kind="stable")
+        spot_row = spot_row[order]
+        spot_deal = deal_c[spot_row]
+        present = np.unique(spot_deal)
+        starts = np.searchsorted(spot_deal, present)
+        width = max(spot_row.size, 1)
+    else:
+        agg = sparse.csr_matrix((np.ones(R), (np.arange(R), deal_c)), shape=(R, D))
+        width = R
+    step = max(1, int(chunk_cells // (width + len(flt_u) + len(wk_u))))
+    for start in range(0, draws, step):
+        k = min(step, draws - start)
+        z_net = rng.standard_normal((k, N))
+        z_flt = rng.standard_normal((k, len(flt_u)))
+        z_wk = rng.standard_normal((k, len(wk_u)))
+        level = mu + wn * z_net[:, net_c] + wf * z_flt[:, flt_c] + ww * z_wk[:, wk_c]  # (k, R)
+        if per_spot:
+            lv = level[:, spot_row]
+            aired = rng.random((k, spot_row.size)) >= p[spot_row]
+            vals = aired * (lv + sd[spot_row] * rng.standard_normal((k, spot_row.size)))
+            block = np.zeros((k, D))
+            block[:, present] = np.add.reduceat(vals, starts, axis=1)
+        else:
+            aired = rng.binomial(x, 1.0 - p, size=(k, R))
+            vals = aired * level + np.sqrt(aired) * sd * rng.standard_normal((k, R))
+            block = np.asarray(vals @ agg)
+        delivery[start:start + k] = block
+        z_net_all[start:start + k] = z_net
+        if advance:
+            advance(k)
+    return delivery, z_net_all
+
+
+# --------------------------------------------------------------------------- risk measures
+
+def var_cvar(losses: np.ndarray, alpha: float = ALPHA) -> tuple[float, float]:
+    """VaR_alpha (the alpha-quantile) and CVaR_alpha = VaR + E[(L - VaR)+] / (1 - alpha).
+
+    Units of `losses`. The Rockafellar-Uryasev form is exact for losses with atoms (many draws
+    with no liability at all).
+
+    References
+    ----------
+    Rockafellar & Uryasev (2000), J. Risk 2(3).
+    """
+    losses = np.asarray(losses, dtype=float)
+    var = float(np.quantile(losses, alpha, method="inverted_cdf"))
+    cvar = var + float(np.mean(np.maximum(losses - var, 0.0))) / (1.0 - alpha)
+    return var, cvar
+
+
+def _se_var(losses: np.ndarray, alpha: float, batches: int = 20) -> float:
+    """Batch-means standard error of the VaR estimate (NaN for too few draws)."""
+    n = losses.size // batches
+    if n < 200:
+        return float("nan")
+    qs = [np.quantile(losses[i * n:(i + 1) * n], alpha, method="inverted_cdf") for i in range(batches)]
+    return float(np.std(qs, ddof=1) / np.sqrt(batches))
+
+
+def _se_cvar(losses: np.ndarray, var: float, alpha: float) -> float:
+    """Standard error of the CVaR estimate from its influence function (L - VaR)+ / (1 - alpha)."""
+    return float(np.std(np.maximum(losses - var, 0.0), ddof=1) / (1 - alpha) / np.sqrt(losses.size))
+
+
+# --------------------------------------------------------------------------- the result
+
+@dataclass
+class DealStress:
+    """Per-deal stress figures (impressions; money in the scenario currency)."""
+
+    deal: str
+    guarantee: float
+    expected_delivery: float
+    sd_delivery: float
+    probability_of_shortfall: float
+    probability_of_shortfall_se: float
+    expected_shortfall: float
+    expected_shortfall_se: float
+    expected_liability: float
+    expected_liability_se: float
+    liability_p95: float
+    revenue: float
+    cost: float
+    expected_margin: float
+    tail_contribution: float
+    probability_of_shortfall_normal: float
+
+
+@dataclass
+class StressResult:
+    """Monte Carlo stress of the book. Arrays: `delivery` and `liability` (draws, deals),
+    `book_liability` (draws,); `deal_names` orders the columns."""
+
+    draws: int
+    seed: int
+    method: str
+    liability_basis: str
+    alpha: float
+    shocks: list[str]
+    preempt_multiplier: float
+    currency: str
+    deals: list[DealStress]
+    book: dict
+    networks: list[dict]
+    joint: dict
+    deal_names: list[str] = field(default_factory=list)
+    delivery: np.ndarray | None = field(default=None, repr=False)
+    liability: np.ndarray | None = field(default=None, repr=False)
+    book_liability: np.ndarray | None = field(default=None, repr=False)
+
+    def as_dict(self) -> dict:
+        """JSON-ready summary (no per-draw arrays)."""
+        from dataclasses import asdict
+
+        return {
+            "draws": self.draws, "seed": self.seed, "method": self.method,
+            "liability_basis": self.liability_basis, "alpha": self.alpha, "shocks": self.shocks,
+            "preempt_multiplier": self.preempt_multiplier, "currency": self.currency,
+            "deals": [asdict(d) for d in self.deals], "book": self.book, "networks": self.networks,
+            "joint": self.joint,
+            "caution": CAUTION,
+        }
+
+
+CAUTION = ("Figures are Monte Carlo estimates from forecasts of past audiences, not promises; "
+           "what is owed on under-delivery is set by each contract's terms. Review with the people "
+           "accountable for the money before acting on them.")
+
+
+def summarize(model: BookModel, delivery: np.ndarray, z_net: np.ndarray, *, seed: int, method: str,
+              liability_basis: str = "refund", alpha: float = ALPHA, shocks: Sequence[Shock] = (),
+              preempt_multiplier: float = 1.0, currency: str = "USD", keep_draws: bool = True) -> StressResult:
+    """Turn draws of the deals' deliveries into the stress figures (see `stress_book`)."""
+    n = delivery.shape[0]
+    per_impr = (model.price_cpm / 1000.0) if liability_basis == "refund" else model.cost_per_impression
+    shortfall = np.maximum(model.guarantee - delivery, 0.0)
+    liability = shortfall * per_impr
+    book_liab = liability.sum(axis=1)
+    var, cvar = var_cvar(book_liab, alpha)
+    tail = book_liab >= var if var > 0 else book_liab > 0
+    # Rockafellar-Uryasev tail weights: draws above VaR count fully, the atom at VaR fractionally,
+    # so the deals' contributions add up to CVaR exactly.
+    above = book_liab > var
+    w = above.astype(float)
+    at = np.isclose(book_liab, var) & ~above
+    n_tail = (1 - alpha) * n
+    if at.any():
+        w[at] = max(n_tail - above.sum(), 0.0) / at.sum()
+    contrib = (w @ liability) / n_tail
+    # Network factor attribution: liability-weighted negative level move of each network.
+    short = (shortfall > 0) * per_impr  # (n, D): money per impression of each deal short
+    if len(model.networks) and tail.any():
+        net_move = (short[tail] @ -model.net_loadings) * z_net[tail]  # money per draw and network
+        net_tail = net_move.mean(axis=0)
+    else:
+        net_tail = np.zeros(len(model.networks))
+    exposure = np.abs(model.net_loadings).sum(axis=0)
+    sd = np.sqrt(model.variance)
+    p_norm = model.probability_of_shortfall_normal()
+    deals = []
+    for j, name in enumerate(model.deals):
+        is_short = delivery[:, j] < model.guarantee[j]
+        p = float(is_short.mean())
+        el = float(liability[:, j].mean())
+        deals.append(DealStress(
+            deal=name, guarantee=float(model.guarantee[j]), expected_delivery=float(delivery[:, j].mean()),
+            sd_delivery=float(delivery[:, j].std(ddof=1)) if n > 1 else 0.0,
+            probability_of_shortfall=p, probability_of_shortfall_se=float(np.sqrt(p * (1 - p) / n)),
+            expected_shortfall=float(shortfall[:, j].mean()),
+            expected_shortfall_se=float(shortfall[:, j].std(ddof=1) / np.sqrt(n)) if n > 1 else 0.0,
+            expected_liability=el,
+            expected_liability_se=float(liability[:, j].std(ddof=1) / np.sqrt(n)) if n > 1 else 0.0,
+            liability_p95=float(np.quantile(liability[:, j], 0.95)),
+            revenue=float(model.revenue[j]), cost=float(model.cost[j]),
+            expected_margin=float(model.revenue[j] - model.cost[j] - el),
+            tail_contribution=float(contrib[j]), probability_of_shortfall_normal=float(p_norm[j]),
+        ))
+    any_short = (delivery < model.guarantee).any(axis=1)
+    book = {
+        "expected_liability": float(book_liab.mean()),
+        "expected_liability_se": float(book_liab.std(ddof=1) / np.sqrt(n)) if n > 1 else 0.0,
+        "var95": var, "var95_se": _se_var(book_liab, alpha), "cvar95": cvar,
+        "cvar95_se": _se_cvar(book_liab, var, alpha) if n > 1 else 0.0,
+        "probability_any_shortfall": float(any_short.mean()),
+        "expected_deals_short": float((delivery < model.guarantee).sum(axis=1).mean()),
+        "revenue": float(model.revenue.sum()), "cost": float(model.cost.sum()),
+        "expected_margin": float(model.revenue.sum() - model.cost.sum() - book_liab.mean()),
+        "liability_p99": float(np.quantile(book_liab, 0.99)),
+    }
+    networks = sorted(
+        ({"network": net, "tail_liability": float(net_tail[i]), "exposure_sd": float(exposure[i])}
+         for i, net in enumerate(model.networks)), key=lambda r: -r["tail_liability"])
+    # How much the shared factors matter: joint shortfall of the two most-correlated deals.
+    joint = _joint_summary(model, delivery)
+    return StressResult(
+        draws=n, seed=seed, method=method, liability_basis=liability_basis, alpha=alpha,
+        shocks=[s.label() for s in shocks], preempt_multiplier=preempt_multiplier, currency=currency,
+        deals=deals, book=book, networks=networks, joint=joint, deal_names=list(model.deals),
+        delivery=delivery if keep_draws else None, liability=liability if keep_draws else None,
+        book_liability=book_liab)
+
+
+def _joint_summary(model: BookModel, delivery: np.ndarray) -> dict:
+    D = len(model.deals)
+    if D < 2:
+        return {}
+    cov = model.covariance
+    sd = np.sqrt(np.diag(cov))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        corr = cov / np.outer(sd, sd)
+    np.fill_diagonal(corr, -np.inf)
+    corr = np.nan_to_num(corr, nan=-np.inf)
+    i, j = np.unravel_index(np.argmax(corr), corr.shape)
+    si = delivery[:, i] < model.guarantee[i]
+    sj = delivery[:, j] < model.guarantee[j]
+    return {"deals": [model.deals[i], model.deals[j]], "correlation": float(corr[i, j]),
+            "probability_both_short": float((si & sj).mean()),
+            "product_if_independent": float(si.mean() * sj.mean())}
+
+
+# --------------------------------------------------------------------------- entry point
+
+def stress_model(model: BookModel, *, draws: int = 100_000, seed: int = 0, method: str = "fast",
+                 liability: str = "refund", shocks: Sequence[Shock] = (), preempt_multiplier: float = 1.0,
+                 currency: str = "USD", keep_draws: bool = True,
+                 advance: Callable[[float], Any] | None = None) -> StressResult:
+    """Monte Carlo stress of a `BookModel` (`method` fast | exact | per_spot); see module docstring."""
+    if draws < 2:
+        raise InputError(f"--draws {draws}: need at least 2 draws")
+    if liability not in LIABILITY_BASES:
+        raise InputError(f"--liability {liability!r}: expected one of {', '.join(LIABILITY_BASES)}")
+    rng = np.random.default_rng(seed)
+    if method == "fast":
+        delivery, z_net = sample_fast(model, draws, rng, advance=advance)
+    elif method in ("exact", "per_spot"):
+        delivery, z_net = sample_exact(model, draws, rng, per_spot=method == "per_spot", advance=advance)
+    else:
+        raise InputError(f"method {method!r}: expected fast, exact or per_spot")
+    return summarize(model, delivery, z_net, seed=seed, method=method, liability_basis=liability,
+                     shocks=shocks, preempt_multiplier=preempt_multiplier, currency=currency,
+                     keep_draws=keep_draws)
+
+
+def load_book_model(scenario: Any, book: str | os.PathLike | None = None, *, forecast: pd.DataFrame | None = None,
+                    shocks: Sequence[str | Shock] = (), preempt_multiplier: float = 1.0):
+    """Read the book and the forecast and build the (shocked) `BookModel`. Returns (model, shocks)."""
+    from planner.book import read_book
+
+    deals, holds = read_book(scenario, book)
+    if not deals:
+        raise InputError(f"{getattr(scenario, 'path', scenario)}: the book has no committed deals "
+                         f"(pledge book commit SCENARIO DEAL first)")
+    if forecast is None:
+        from planner.forecast_job import ensure_forecast
+
+        forecast = ensure_forecast(scenario).table
+    inv = scenario.inventory
+    parsed = [s if isinstance(s, Shock) else parse_shock(
+        s, networks=inv["network"].astype(str).unique().tolist(),
+        dayparts=[d.name for d in scenario.dayparts], zones=inv["zone"].astype(str).unique().tolist())
+        for s in shocks]
+    units = apply_shocks(book_units(deals, holds, forecast, inv), parsed, preempt_multiplier)
+    return build_book_model(deals, units), parsed
+
+
+def stress_book(scenario: Any, book: str | os.PathLike | None = None, *, draws: int = 100_000, seed: int = 0,
+                shocks: Sequence[str | Shock] = (), preempt_multiplier: float = 1.0, liability: str = "refund",
+                method: str = "fast", forecast: pd.DataFrame | None = None, keep_draws: bool = True,
+                advance: Callable[[float], Any] | None = None) -> StressResult:
+    """Monte Carlo stress of every deal committed in the scenario's book.
+
+    Per deal: probability of under-delivery, expected shortfall (impressions), expected liability
+    and margin (currency), each with its Monte Carlo standard error; for the book: expected
+    liability, VaR95, CVaR95, the deals' contributions to CVaR and the networks whose level
+    factor drives the tail. `shocks` are strings like "network=NAME:-0.15" or `Shock`s.
+
+    References
+    ----------
+    Rockafellar & Uryasev (2000), J. Risk 2(3).
+    """
+    model, parsed = load_book_model(scenario, book, forecast=forecast, shocks=shocks,
+                                    preempt_multiplier=preempt_multiplier)
+    return stress_model(model, draws=draws, seed=seed, method=method, liability=liability, shocks=parsed,
+                        preempt_multiplier=preempt_multiplier, currency=getattr(scenario, "currency", "USD"),
+                        keep_draws=keep_draws, advance=advance)
