@@ -449,3 +449,104 @@ def render_report(data: ReportData) -> str:
 def write_report(data: ReportData, path: str | Path) -> Path:
     """Render `data` and write it to `path` atomically (whole or not at all). Returns the path."""
     return write_text_atomic(path, render_report(data))
+
+
+# --------------------------------------------------------------------------------------------
+# Gathering the parts from the planner
+# --------------------------------------------------------------------------------------------
+def unit_history(scenario: Any, zone: str, network: str, daypart: str, demo: str) -> pd.DataFrame:
+    """Weekly history of one unit: mean impressions of one spot rotated across the daypart.
+
+    Returns a DataFrame ``week_start`` (the Monday, datetime64), ``impressions`` (mean rating over
+    the daypart's quarter-hours and days of that week times the zone's universe, impressions).
+    A quarter-hour after midnight of a daypart that wraps belongs to the day the daypart starts.
+    """
+    from planner.scenario import load_history
+
+    dp = scenario.daypart(daypart)
+    h = load_history(scenario, ["date", "quarter_hour", "rating"],
+                     filters=[("zone", "=", zone), ("network", "=", network), ("demo", "=", demo)])
+    if h.empty:
+        return pd.DataFrame({"week_start": pd.Series([], dtype="datetime64[ns]"), "impressions": []})
+    qh = h["quarter_hour"].to_numpy().astype(int)
+    dates = pd.to_datetime(h["date"])
+    start_qh = int(dp.quarter_hours[0])
+    # A quarter-hour before the start clock of a wrapping daypart belongs to the previous day's airing.
+    shift = (qh < start_qh) if dp.wraps else np.zeros(len(qh), dtype=bool)
+    start_day = dates - pd.to_timedelta(shift.astype(int), unit="D")
+    rel = qh + 96 * shift
+    member = np.isin(rel, np.asarray(dp.quarter_hours)) & np.isin(start_day.dt.dayofweek, np.asarray(dp.days))
+    if not member.any():
+        return pd.DataFrame({"week_start": pd.Series([], dtype="datetime64[ns]"), "impressions": []})
+    sd = start_day[member]
+    week = (sd - pd.to_timedelta(sd.dt.dayofweek, unit="D")).dt.normalize()
+    g = pd.Series(h["rating"].to_numpy()[member], index=week.to_numpy()).groupby(level=0).mean()
+    universe = scenario.universe(zone, demo)
+    return pd.DataFrame({"week_start": g.index, "impressions": g.to_numpy(dtype=float) * universe})
+
+
+def unit_forecast(scenario: Any, forecast: pd.DataFrame, zone: str, network: str, daypart: str,
+                  demo: str) -> pd.DataFrame:
+    """Forecast rows of one unit and demo with ``week_start`` added (impressions of one spot)."""
+    f = forecast[(forecast["zone"] == zone) & (forecast["network"] == network) &
+                 (forecast["daypart"] == daypart) & (forecast["demo"] == demo)].sort_values("week")
+    f = f[["week", "mean_impressions", "q10_impressions", "q90_impressions"]].copy()
+    f["week_start"] = pd.to_datetime([scenario.week_start(int(w)) for w in f["week"]])
+    return f
+
+
+def top_units(plans: dict[str, tuple[str, pd.DataFrame]], n: int = 3) -> list[tuple[str, str, str, str]]:
+    """The `n` units (zone, network, daypart, demo) carrying most expected impressions in the plans.
+
+    `plans` maps deal name to (demo, spots DataFrame). Distinct networks are preferred.
+    """
+    rows = []
+    for demo, spots in plans.values():
+        if spots is None or spots.empty:
+            continue
+        g = spots.groupby(["zone", "network", "daypart"], observed=True)["expected_impressions"].sum()
+        rows.append(g.rename("imp").reset_index().assign(demo=demo))
+    if not rows:
+        return []
+    allu = pd.concat(rows).groupby(["zone", "network", "daypart", "demo"], observed=True)["imp"].sum()
+    allu = allu.sort_values(ascending=False, kind="stable").reset_index()
+    first = allu.drop_duplicates("network")
+    picked = pd.concat([first, allu]).drop_duplicates(["zone", "network", "daypart", "demo"]).head(n)
+    return [tuple(r) for r in picked[["zone", "network", "daypart", "demo"]].itertuples(index=False)]
+
+
+def forecast_bands(scenario: Any, forecast: pd.DataFrame, units: Sequence[tuple[str, str, str, str]]) -> list[ForecastBand]:
+    """History against the forecast band for each unit (zone, network, daypart, demo)."""
+    out = []
+    for zone, network, daypart, demo in units:
+        fc = unit_forecast(scenario, forecast, zone, network, daypart, demo)
+        if fc.empty:
+            continue
+        out.append(ForecastBand(f"{zone} \u00b7 {network} \u00b7 {daypart} ({demo})",
+                                unit_history(scenario, zone, network, daypart, demo), fc))
+    return out
+
+
+def book_section(stress: Any) -> BookSection:
+    """The book part of the report from a `planner.stress.StressResult`."""
+    b = stress.book
+    return BookSection(
+        liability_draws=np.asarray(stress.book_liability, dtype=float), var95=float(b["var95"]),
+        cvar95=float(b["cvar95"]), expected_liability=float(b["expected_liability"]), draws=int(stress.draws),
+        seed=stress.seed, shocks=list(stress.shocks or ()), liability_basis=stress.liability_basis,
+        deals=list(stress.deal_names), extra={k: v for k, v in b.items()})
+
+
+def attach_stress(section: DealSection, stress: Any) -> None:
+    """Copy a deal's stress figures and delivery draws into its section (no-op if not in the stress)."""
+    names = list(getattr(stress, "deal_names", []) or [])
+    if section.name not in names:
+        return
+    j = names.index(section.name)
+    if stress.delivery is not None:
+        section.delivery_draws = np.asarray(stress.delivery[:, j], dtype=float)
+    ds = next((d for d in stress.deals if d.deal == section.name), None)
+    if ds is not None:
+        section.probability_of_shortfall = ds.probability_of_shortfall
+        section.expected_shortfall = ds.expected_shortfall
+        section.expected_liability = ds.expected_liability
