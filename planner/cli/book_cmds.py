@@ -1,0 +1,190 @@
+"""`pledge book commit|list|show|release` and `pledge rebalance`: the book of sold deals.
+
+Exit status: 0 for an answer (a deal that cannot be delivered and is therefore not committed is
+an answer: the verdict says "not committed"), 2 for bad input, 1 for an internal error.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Optional
+
+import typer
+from rich.table import Table
+
+from planner.cli import app
+from planner.cli.common import count, info, money, out_console, print_json, progress
+from planner.errors import InputError
+
+book_app = typer.Typer(help="The book of sold deals: commit, list, show, release.", no_args_is_help=True)
+app.add_typer(book_app, name="book")
+
+CAUTION = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
+           "under-delivery. Review a plan with the people accountable for the money before committing.")
+
+_BOOK_OPT = typer.Option(None, "--book", help="Book file (default: SCENARIO/book.sqlite).")
+_JSON_OPT = typer.Option(False, "--json", help="Print one JSON object on stdout.")
+
+
+def _folder(scenario: Path) -> Path:
+    if not scenario.is_dir():
+        raise InputError(f"{scenario}: not a scenario folder")
+    return scenario
+
+
+def _load(scenario: Path):
+    from planner.scenario import load_scenario
+
+    return load_scenario(_folder(scenario))
+
+
+def _f(value, fmt="{:,.0f}", none="-"):
+    return none if value is None else fmt.format(value)
+
+
+@book_app.command("commit")
+def commit_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    deal: str = typer.Argument(..., help="Deal name (deals/NAME.toml)."),
+    book: Optional[Path] = _BOOK_OPT,
+    solver: str = typer.Option("cbc", "--solver", help="cbc or highs."),
+    as_json: bool = _JSON_OPT,
+) -> None:
+    """Plan DEAL against the avails not already held and commit it with its spots (one transaction)."""
+    from planner.book import commit_deal
+
+    scn = _load(scenario)
+    with progress(f"planning and committing {deal}"):
+        result = commit_deal(scn, deal, book, solver=solver)
+    if as_json:
+        print_json({**result.as_dict(), "caution": CAUTION})
+        return
+    s = result.summary
+    if result.committed:
+        out_console.print(f"[bold green]committed[/] {deal} to {result.book}")
+        out_console.print(f"  spots held {count(s.get('spots') or 0)}, cost {_f(s.get('cost'))} {scn.currency}, "
+                          f"expected impressions {_f(s.get('expected_impressions'))}, "
+                          f"chance of delivery {_f(s.get('probability'), '{:.1%}')}")
+        if result.replanned:
+            out_console.print("  (another desk committed meanwhile: re-planned under the book's write lock)")
+    else:
+        out_console.print(f"[bold red]not committed[/] {deal}: {result.reason}")
+    out_console.print(CAUTION, style="dim")
+
+
+@book_app.command("list")
+def list_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    book: Optional[Path] = _BOOK_OPT,
+    as_json: bool = _JSON_OPT,
+) -> None:
+    """List the committed deals."""
+    from planner.book import book_path, list_deals
+
+    _folder(scenario)
+    deals = list_deals(scenario, book)
+    if as_json:
+        print_json({"book": str(book_path(scenario, book)), "deals": [d.as_dict() for d in deals]})
+        return
+    if not deals:
+        out_console.print(f"no deals committed in {book_path(scenario, book)}")
+        return
+    t = Table(title=f"book {book_path(scenario, book)}")
+    for c in ("deal", "demo", "weeks", "guarantee", "CPM", "revenue", "cost", "spots", "P(deliver)", "committed"):
+        t.add_column(c, justify="left" if c in ("deal", "demo", "committed") else "right")
+    for d in deals:
+        t.add_row(d.name, d.demo, f"{d.first_week}-{d.last_week}", count(d.guarantee), f"{d.price_cpm:.2f}",
+                  count(d.revenue), _f(d.cost), _f(d.spots), _f(d.probability, "{:.1%}"), d.committed_at)
+    out_console.print(t)
+
+
+@book_app.command("show")
+def show_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    name: str = typer.Argument(..., help="Committed deal name."),
+    book: Optional[Path] = _BOOK_OPT,
+    as_json: bool = _JSON_OPT,
+) -> None:
+    """Show one committed deal and the spots it holds."""
+    from planner.book import get_deal
+
+    _folder(scenario)
+    d = get_deal(scenario, name, book)
+    if as_json:
+        print_json(d.as_dict(with_holds=True))
+        return
+    out_console.print(f"[bold]{d.name}[/] ({d.advertiser or '-'}), demo {d.demo}, weeks {d.first_week}-{d.last_week}, "
+                      f"guarantee {count(d.guarantee)} at CPM {d.price_cpm:.2f}, committed {d.committed_at}")
+    out_console.print(f"  cost {_f(d.cost)}, expected impressions {_f(d.expected_impressions)}, "
+                      f"chance of delivery {_f(d.probability, '{:.1%}')}, spots {_f(d.spots)}")
+    holds = d.holds
+    if holds is not None and len(holds):
+        by_week = holds.groupby("week", as_index=False).agg(spots=("spots", "sum"), cost=("cost", "sum"),
+                                                            expected_impressions=("expected_impressions", "sum"))
+        t = Table(title="holds by week")
+        for c in ("week", "spots", "cost", "expected impressions"):
+            t.add_column(c, justify="right")
+        for r in by_week.itertuples(index=False):
+            t.add_row(str(r.week), count(r.spots), count(r.cost), count(r.expected_impressions))
+        out_console.print(t)
+
+
+@book_app.command("release")
+def release_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    name: str = typer.Argument(..., help="Committed deal name."),
+    book: Optional[Path] = _BOOK_OPT,
+    as_json: bool = _JSON_OPT,
+) -> None:
+    """Release a committed deal: remove it and free the spots it holds."""
+    from planner.book import release_deal
+
+    _folder(scenario)
+    d = release_deal(scenario, name, book)
+    if as_json:
+        print_json({"released": d.name, "spots_freed": d.spots})
+        return
+    out_console.print(f"released {d.name}: {count(d.spots or 0)} spots freed")
+
+
+@app.command("rebalance")
+def rebalance_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    deal: str = typer.Argument(..., help="Committed deal name."),
+    actuals: Path = typer.Option(..., "--actuals", help="Posted actuals CSV: zone,network,daypart,week,spots_aired,impressions."),
+    book: Optional[Path] = _BOOK_OPT,
+    commit: bool = typer.Option(False, "--commit", help="Replace the deal's holds in the book by the re-plan."),
+    solver: str = typer.Option("cbc", "--solver", help="cbc or highs."),
+    as_json: bool = _JSON_OPT,
+) -> None:
+    """Mid-flight: update the forecast from posted actuals and re-plan the remaining weeks."""
+    from planner.rebalance import rebalance_deal
+
+    scn = _load(scenario)
+    with progress(f"rebalancing {deal}"):
+        r = rebalance_deal(scn, deal, actuals, book, commit=commit, solver=solver)
+    if as_json:
+        print_json({**r.as_dict(), "caution": CAUTION})
+        return
+    cur = scn.currency
+    out_console.print(f"[bold]{deal}[/]: weeks aired {r.aired_weeks[0] if r.aired_weeks else '-'}-"
+                      f"{r.aired_weeks[-1] if r.aired_weeks else '-'}, delivered {count(r.delivered)} of "
+                      f"{count(r.guarantee)} ({r.delivered / r.guarantee:.1%}); posted vs forecast "
+                      f"{r.posted_vs_forecast:+.1%}")
+    out_console.print(f"  remaining guarantee {count(r.remaining_guarantee)} over weeks "
+                      f"{r.remaining_weeks[0] if r.remaining_weeks else '-'}-{r.remaining_weeks[-1] if r.remaining_weeks else '-'}")
+    out_console.print(f"  chance of delivery with the current holds, updated forecast: {r.probability_before:.1%}")
+    if r.deliverable:
+        out_console.print(f"  [green]re-plan meets the guarantee[/] at {r.confidence_label}: chance of delivery "
+                          f"{r.probability_after:.1%}; catch-up spots {r.added_spots:+,d}, added cost "
+                          f"{money(r.added_cost, cur)}")
+    else:
+        out_console.print(f"  [red]cannot be met[/] at {r.confidence_label}: the most the remaining avails can "
+                          f"deliver at that confidence is {count(r.max_deliverable)}, short by {count(r.unmet)} "
+                          f"impressions; best-effort plan chance of delivery {r.probability_after:.1%}")
+    if r.committed:
+        out_console.print("  book updated with the re-plan's holds")
+    elif commit:
+        out_console.print("  book not updated (no deliverable re-plan)")
+    for w in r.warnings:
+        info(f"warning: {w}")
+    out_console.print(CAUTION, style="dim")

@@ -1,0 +1,75 @@
+"""`pledge stress SCENARIO`: Monte Carlo stress of the whole book (finance)."""
+from __future__ import annotations
+
+from pathlib import Path
+from typing import List, Optional
+
+import typer
+from rich.table import Table
+
+from planner.cli import app
+from planner.cli.common import count, money, out_console, print_json, progress
+from planner.errors import InputError
+
+
+@app.command("stress")
+def stress_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    draws: int = typer.Option(100_000, "--draws", help="Monte Carlo draws."),
+    seed: int = typer.Option(0, "--seed", help="Random seed (same seed, same numbers)."),
+    shock: Optional[List[str]] = typer.Option(
+        None, "--shock", help="network=NAME:-0.15, daypart=NAME:-0.10, zone=NAME:-0.1 or all:-0.05 (repeatable)."),
+    preempt_multiplier: float = typer.Option(1.0, "--preempt-multiplier", help="Scale every preemption rate."),
+    liability: str = typer.Option("refund", "--liability",
+                                  help="refund: shortfall x price CPM / 1000; makegood: shortfall x plan cost per impression."),
+    method: str = typer.Option("fast", "--method", help="fast (conditional normal), exact or per_spot (naive)."),
+    book: Optional[Path] = typer.Option(None, "--book", help="Book file (default: SCENARIO/book.sqlite)."),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object on stdout."),
+) -> None:
+    """Stress every committed deal at once: shortfall chances, liability, VaR95, CVaR95."""
+    from planner.scenario import load_scenario
+    from planner.stress import CAUTION, stress_book
+
+    if not scenario.is_dir():
+        raise InputError(f"{scenario}: not a scenario folder")
+    if draws < 2:
+        raise InputError(f"--draws {draws}: need at least 2 draws")
+    scn = load_scenario(scenario)
+    with progress(f"stress: {draws:,} draws", total=draws) as advance:
+        r = stress_book(scn, book, draws=draws, seed=seed, shocks=shock or (), preempt_multiplier=preempt_multiplier,
+                        liability=liability, method=method, keep_draws=False, advance=advance)
+    if as_json:
+        print_json(r.as_dict())
+        return
+    cur = r.currency
+    out_console.print(f"[bold]Book stress[/]: {r.draws:,} draws, seed {r.seed}, {r.method} sampler, "
+                      f"liability basis {r.liability_basis}")
+    out_console.print("  shocks: " + (", ".join(r.shocks) if r.shocks else "none")
+                      + (f"; preemption x{r.preempt_multiplier:g}" if r.preempt_multiplier != 1 else ""))
+    t = Table(title="deals (+- Monte Carlo standard error)")
+    for c in ("deal", "guarantee", "expected delivery", "P(short)", "expected shortfall", "expected liability",
+              "expected margin", "share of CVaR"):
+        t.add_column(c, justify="left" if c == "deal" else "right")
+    cvar = r.book["cvar95"]
+    for d in r.deals:
+        t.add_row(d.deal, count(d.guarantee), count(d.expected_delivery),
+                  f"{d.probability_of_shortfall:.2%} +- {d.probability_of_shortfall_se:.2%}",
+                  f"{count(d.expected_shortfall)} +- {count(d.expected_shortfall_se)}",
+                  f"{count(d.expected_liability)} +- {count(d.expected_liability_se)}",
+                  count(d.expected_margin), f"{d.tail_contribution / cvar:.0%}" if cvar > 0 else "-")
+    out_console.print(t)
+    b = r.book
+    out_console.print(f"[bold]book[/]: expected liability {money(b['expected_liability'], cur)} +- {count(b['expected_liability_se'])}; "
+                      f"VaR95 {money(b['var95'], cur)} +- {count(b['var95_se']) if b['var95_se'] == b['var95_se'] else '-'}; "
+                      f"CVaR95 {money(b['cvar95'], cur)} +- {count(b['cvar95_se'])}")
+    out_console.print(f"  chance any deal falls short {b['probability_any_shortfall']:.1%}; "
+                      f"expected margin {money(b['expected_margin'], cur)} on revenue {money(b['revenue'], cur)}")
+    top = [n for n in r.networks if n["tail_liability"] > 0][:5]
+    if top:
+        out_console.print("  networks driving the tail (liability from their level error in the draws beyond VaR): "
+                          + ", ".join(f"{n['network']} {money(n['tail_liability'], cur)}" for n in top))
+    if r.joint:
+        j = r.joint
+        out_console.print(f"  most correlated pair {j['deals'][0]} / {j['deals'][1]} (corr {j['correlation']:.2f}): "
+                          f"both short {j['probability_both_short']:.2%} vs {j['product_if_independent']:.2%} if independent")
+    out_console.print(CAUTION, style="dim")
