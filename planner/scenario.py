@@ -1,0 +1,866 @@
+"""Load and validate a scenario folder (see the data contract); the only reader of scenario files.
+
+`load_scenario(path)` reads and checks everything except the quarter-hour history rows, which can
+be hundreds of millions: `validate_history(scenario)` checks those with DuckDB (vectorised, out of
+core) and `load_history(scenario)` reads them. Every problem is reported as a
+`planner.errors.ScenarioError` whose message names the file, the row (1-based data row, the header
+not counted) or key, and what is wrong; several problems are collected where that is cheap.
+
+Addition to the data contract: `scenario.toml` may carry a `[history_generator]` table
+(`seed`, `start`, `end`, optional `short_history`, ...). When `history.parquet` and `history.csv`
+are both missing and that table is present, the loader generates `history.parquet` with
+`scenarios.generate` on first use and caches it in the folder.
+"""
+from __future__ import annotations
+
+import hashlib
+import math
+import re
+import tomllib
+from dataclasses import dataclass, field
+from datetime import date, timedelta
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+import pandas as pd
+
+from planner.errors import ScenarioError
+
+DEFAULT_CONFIDENCE = 0.95
+DAY_NAMES = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
+QUARTER_HOURS = 96
+_IDENT = re.compile(r"^[a-z][a-z0-9_\-]*$")
+_CLOCK = re.compile(r"^(\d{1,2}):(\d{2})$")
+MIX_KEYS = ("max_network_share", "daypart_min_share", "daypart_max_share", "exclude_networks",
+            "exclude_zones", "weekly_tolerance", "max_spots_per_unit")
+HISTORY_COLUMNS = ("zone", "network", "demo", "date", "quarter_hour", "rating")
+_MAX_LISTED = 3
+
+
+@dataclass(frozen=True)
+class Daypart:
+    """A sellable block of clock time.
+
+    `start`/`end` are "HH:MM" local clock (start inclusive, end exclusive); `days` weekday numbers
+    0=Mon..6=Sun on which the daypart starts; `quarter_hours` indices relative to the start day
+    (0..95; >= 96 means the next calendar day, for a daypart that wraps past midnight).
+    """
+
+    name: str
+    start: str
+    end: str
+    days: tuple[int, ...]
+    quarter_hours: tuple[int, ...]
+
+    @property
+    def wraps(self) -> bool:
+        """True when the daypart runs past midnight into the next calendar day."""
+        return self.quarter_hours[-1] >= QUARTER_HOURS
+
+    @property
+    def hours(self) -> float:
+        """Length of the daypart on one day, hours."""
+        return len(self.quarter_hours) / 4.0
+
+    def slots(self) -> np.ndarray:
+        """Week slots covered, ints in 0..671 (day * 96 + quarter-hour, wrapping Sunday -> Monday)."""
+        d = np.asarray(self.days)[:, None] * QUARTER_HOURS + np.asarray(self.quarter_hours)[None, :]
+        return (d % (7 * QUARTER_HOURS)).ravel()
+
+
+@dataclass
+class Mix:
+    """Mix rules of a deal (every field optional). Shares are of expected impressions."""
+
+    max_network_share: float | None = None
+    daypart_min_share: dict[str, float] = field(default_factory=dict)
+    daypart_max_share: dict[str, float] = field(default_factory=dict)
+    exclude_networks: tuple[str, ...] = ()
+    exclude_zones: tuple[str, ...] = ()
+    weekly_tolerance: float | None = None
+    max_spots_per_unit: int | None = None
+
+
+@dataclass
+class Deal:
+    """A proposed deal. `impressions` is the guarantee in `demo`; weeks are plan weeks, inclusive.
+
+    Exactly one of `confidence` (chance of meeting the guarantee) and `pad` (plan to deliver
+    (1 + pad) x guarantee in expectation) is set; neither in the file gives DEFAULT_CONFIDENCE and
+    `risk_default_used = True`.
+    """
+
+    name: str
+    advertiser: str
+    demo: str
+    impressions: float
+    first_week: int
+    last_week: int
+    price_cpm: float
+    confidence: float | None
+    pad: float | None
+    mix: Mix
+    path: Path
+    risk_default_used: bool = False
+
+    @property
+    def weeks(self) -> list[int]:
+        """Plan weeks of the flight."""
+        return list(range(self.first_week, self.last_week + 1))
+
+    @property
+    def revenue(self) -> float:
+        """What the advertiser pays for the guarantee: impressions / 1000 x price_cpm, currency."""
+        return self.impressions / 1000.0 * self.price_cpm
+
+
+@dataclass
+class Scenario:
+    """A loaded scenario folder.
+
+    `zones`: DataFrame zone, market (, time_zone); `networks`: DataFrame network, genre;
+    `universes`: DataFrame zone, demo, universe (people or homes, float); `inventory`: DataFrame
+    zone, network, daypart, week, avails (int), rate (float, currency per spot), preempt_rate.
+    """
+
+    path: Path
+    name: str
+    first_week: date
+    weeks: int
+    currency: str
+    preempt_rate: float
+    dayparts: list[Daypart]
+    zones: pd.DataFrame
+    universes: pd.DataFrame
+    networks: pd.DataFrame
+    inventory: pd.DataFrame
+    deals: dict[str, Deal]
+    demos: list[str]
+    history_path: Path
+    history_generator: dict | None = None
+
+    def week_start(self, w: int) -> date:
+        """The Monday that starts plan week `w` (1-based)."""
+        return self.first_week + timedelta(days=7 * (int(w) - 1))
+
+    def week_end(self, w: int) -> date:
+        """The Sunday that ends plan week `w`."""
+        return self.week_start(w) + timedelta(days=6)
+
+    @property
+    def zone_names(self) -> list[str]:
+        return list(self.zones["zone"])
+
+    @property
+    def network_names(self) -> list[str]:
+        return list(self.networks["network"])
+
+    @property
+    def daypart_names(self) -> list[str]:
+        return [d.name for d in self.dayparts]
+
+    def daypart(self, name: str) -> Daypart:
+        for d in self.dayparts:
+            if d.name == name:
+                return d
+        raise KeyError(name)
+
+    def universe(self, zone: str, demo: str) -> float:
+        """Universe of `demo` in `zone`, people (or homes)."""
+        u = self.universes
+        return float(u.loc[(u["zone"] == zone) & (u["demo"] == demo), "universe"].iloc[0])
+
+    def genre(self, network: str) -> str:
+        n = self.networks
+        return str(n.loc[n["network"] == network, "genre"].iloc[0])
+
+
+# ----------------------------------------------------------------------------- problem collection
+
+class _Problems:
+    def __init__(self) -> None:
+        self.items: list[str] = []
+
+    def add(self, message: str) -> None:
+        self.items.append(message)
+
+    def rows(self, file: str, mask: np.ndarray | pd.Series, what: str, values: pd.Series | None = None) -> None:
+        """Add one problem for the rows where `mask` is True (1-based data rows)."""
+        mask = np.asarray(mask, dtype=bool)
+        if not mask.any():
+            return
+        idx = np.flatnonzero(mask)
+        first = idx[:_MAX_LISTED]
+        shown = ", ".join(str(i + 1) for i in first)
+        more = f" (and {len(idx) - len(first)} more)" if len(idx) > len(first) else ""
+        got = ""
+        if values is not None:
+            got = f", got {np.asarray(values)[first[0]]!r}"
+        label = "row" if len(idx) == 1 else "rows"
+        self.add(f"{file} {label} {shown}{more}: {what}{got}")
+
+    def raise_if_any(self) -> None:
+        if self.items:
+            if len(self.items) == 1:
+                raise ScenarioError(self.items[0])
+            err = ScenarioError(f"{len(self.items)} problems:\n  " + "\n  ".join(self.items))
+            err.problems = list(self.items)
+            raise err
+
+
+# ----------------------------------------------------------------------------- helpers
+
+def _read_toml(path: Path, label: str) -> dict:
+    if not path.is_file():
+        raise ScenarioError(f"{label}: file is missing")
+    try:
+        with open(path, "rb") as fh:
+            return tomllib.load(fh)
+    except tomllib.TOMLDecodeError as exc:
+        raise ScenarioError(f"{label}: not valid TOML ({exc})") from None
+    except UnicodeDecodeError:
+        raise ScenarioError(f"{label}: not UTF-8 text") from None
+
+
+def _read_csv(folder: Path, name: str, required: Sequence[str]) -> pd.DataFrame:
+    path = folder / name
+    if not path.is_file():
+        raise ScenarioError(f"{name}: file is missing")
+    try:
+        df = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True, encoding="utf-8")
+    except UnicodeDecodeError:
+        raise ScenarioError(f"{name}: not UTF-8 text") from None
+    except pd.errors.EmptyDataError:
+        raise ScenarioError(f"{name}: file is empty (a header row is required)") from None
+    except pd.errors.ParserError as exc:
+        raise ScenarioError(f"{name}: cannot be parsed as CSV ({exc})") from None
+    df.columns = [str(c).strip().lower() for c in df.columns]
+    missing = [c for c in required if c not in df.columns]
+    if missing:
+        raise ScenarioError(f"{name}: missing column(s) {', '.join(missing)} (has {', '.join(df.columns)})")
+    for c in df.columns:
+        df[c] = df[c].astype(str).str.strip()
+    return df
+
+
+def _blank(df: pd.DataFrame, name: str, cols: Sequence[str], problems: _Problems) -> np.ndarray:
+    bad = np.zeros(len(df), dtype=bool)
+    for c in cols:
+        m = (df[c] == "").to_numpy()
+        problems.rows(name, m, f"{c} is empty")
+        bad |= m
+    return bad
+
+
+def _numeric(df: pd.DataFrame, col: str) -> pd.Series:
+    return pd.to_numeric(df[col], errors="coerce").astype(float)
+
+
+def _duplicates(df: pd.DataFrame, name: str, key: Sequence[str], problems: _Problems) -> None:
+    dup = df.duplicated(list(key), keep="first").to_numpy()
+    if dup.any():
+        i = int(np.flatnonzero(dup)[0])
+        first = int(np.flatnonzero((df[list(key)] == df.iloc[i][list(key)]).all(axis=1).to_numpy())[0])
+        keytxt = ", ".join(f"{k}={df.iloc[i][k]}" for k in key)
+        n = int(dup.sum())
+        more = f" ({n - 1} more duplicate rows)" if n > 1 else ""
+        problems.add(f"{name} row {i + 1}: duplicate key ({keytxt}), first seen at row {first + 1}{more}")
+
+
+def _unknown(df: pd.DataFrame, name: str, col: str, known: Sequence[str], what: str, problems: _Problems,
+             skip: np.ndarray | None = None) -> None:
+    m = ~df[col].isin(list(known)).to_numpy()
+    if skip is not None:
+        m &= ~skip
+    problems.rows(name, m, f"unknown {what} (not in {_source_of(what)})", df[col])
+
+
+def _source_of(what: str) -> str:
+    return {"zone": "zones.csv", "network": "networks.csv", "daypart": "the dayparts of scenario.toml",
+            "demo": "universes.csv"}.get(what, what)
+
+
+def parse_clock(text: Any, *, allow_24: bool = False) -> int:
+    """Quarter-hour index of an "HH:MM" clock time on a quarter-hour (0..95, or 96 for "24:00").
+
+    Raises ValueError with a readable reason.
+    """
+    m = _CLOCK.match(str(text).strip()) if isinstance(text, str) else None
+    if not m:
+        raise ValueError(f"clock time must be \"HH:MM\", got {text!r}")
+    h, mi = int(m.group(1)), int(m.group(2))
+    if h == 24 and mi == 0 and allow_24:
+        return QUARTER_HOURS
+    if not (0 <= h <= 23 and 0 <= mi <= 59):
+        raise ValueError(f"clock time out of range, got {text!r}")
+    if mi % 15:
+        raise ValueError(f"clock time must be on a quarter-hour (:00, :15, :30, :45), got {text!r}")
+    return h * 4 + mi // 15
+
+
+def daypart_quarter_hours(start_qh: int, end_qh: int) -> tuple[int, ...]:
+    """Quarter-hours of a daypart relative to its start day; wraps past midnight if end <= start."""
+    if end_qh > start_qh:
+        return tuple(range(start_qh, end_qh))
+    return tuple(range(start_qh, end_qh + QUARTER_HOURS))
+
+
+def _as_date(value: Any) -> date:
+    if isinstance(value, date) and not hasattr(value, "hour"):
+        return value
+    if hasattr(value, "date") and callable(value.date):  # a TOML datetime
+        raise ValueError(f"must be a date without a time, got {value!r}")
+    if isinstance(value, str):
+        try:
+            return date.fromisoformat(value.strip())
+        except ValueError:
+            raise ValueError(f"date does not parse (use YYYY-MM-DD), got {value!r}") from None
+    raise ValueError(f"must be a date (YYYY-MM-DD), got {value!r}")
+
+
+def _is_int(v: Any) -> bool:
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def _is_num(v: Any) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(float(v))
+
+
+# ----------------------------------------------------------------------------- scenario.toml
+
+def _parse_dayparts(raw: Any, problems: _Problems) -> list[Daypart]:
+    f = "scenario.toml"
+    if not isinstance(raw, list) or not raw:
+        problems.add(f"{f}: at least one [[daypart]] table is required")
+        return []
+    out: list[Daypart] = []
+    seen: set[str] = set()
+    for i, d in enumerate(raw, start=1):
+        if not isinstance(d, dict):
+            problems.add(f"{f}: daypart {i} must be a table")
+            continue
+        name = d.get("name")
+        where = f"{f} daypart {i}" + (f" ({name!r})" if isinstance(name, str) else "")
+        if not isinstance(name, str) or not _IDENT.match(name):
+            problems.add(f"{where}: name must be a lower-case identifier (letters, digits, _ or -), got {name!r}")
+            continue
+        if name in seen:
+            problems.add(f"{where}: duplicate daypart name {name!r}")
+            continue
+        seen.add(name)
+        try:
+            s = parse_clock(d.get("start"))
+        except ValueError as exc:
+            problems.add(f"{where}: start: {exc}")
+            continue
+        try:
+            e = parse_clock(d.get("end"), allow_24=True)
+        except ValueError as exc:
+            problems.add(f"{where}: end: {exc}")
+            continue
+        if s == e % QUARTER_HOURS:
+            problems.add(f"{where}: start and end are the same clock time ({d.get('start')})")
+            continue
+        days_raw = d.get("days", list(DAY_NAMES))
+        if not isinstance(days_raw, list) or not days_raw:
+            problems.add(f"{where}: days must be a non-empty list of {', '.join(DAY_NAMES)}")
+            continue
+        bad = [x for x in days_raw if not isinstance(x, str) or x.strip().lower()[:3] not in DAY_NAMES]
+        if bad:
+            problems.add(f"{where}: unknown day {bad[0]!r} (use {', '.join(DAY_NAMES)})")
+            continue
+        days = tuple(sorted({DAY_NAMES.index(x.strip().lower()[:3]) for x in days_raw}))
+        out.append(Daypart(name=name, start=str(d["start"]).strip(), end=str(d["end"]).strip(), days=days,
+                           quarter_hours=daypart_quarter_hours(s, e)))
+    # Overlap: the same weekday and clock time claimed twice (wrapping parts land on the next day).
+    owner = np.full(7 * QUARTER_HOURS, -1)
+    for k, dp in enumerate(out):
+        slots = dp.slots()
+        taken = owner[slots]
+        clash = taken[taken >= 0]
+        if clash.size:
+            other = out[int(clash[0])]
+            slot = int(slots[np.flatnonzero(taken >= 0)[0]])
+            day, qh = divmod(slot, QUARTER_HOURS)
+            problems.add(f"{f}: dayparts {other.name!r} and {dp.name!r} overlap "
+                         f"({DAY_NAMES[day]} {qh // 4:02d}:{qh % 4 * 15:02d})")
+        else:
+            owner[slots] = k
+    return out
+
+
+def _parse_generator(raw: Any, problems: _Problems) -> dict | None:
+    f = "scenario.toml [history_generator]"
+    if raw is None:
+        return None
+    if not isinstance(raw, dict):
+        problems.add(f"{f}: must be a table")
+        return None
+    g = dict(raw)
+    if not _is_int(g.get("seed")):
+        problems.add(f"{f}: seed must be an integer, got {g.get('seed')!r}")
+    for k in ("start", "end"):
+        try:
+            g[k] = _as_date(g.get(k))
+        except ValueError as exc:
+            problems.add(f"{f}: {k}: {exc}")
+            return None
+    if g["start"] > g["end"]:
+        problems.add(f"{f}: start {g['start']} is after end {g['end']}")
+    sh = g.get("short_history", [])
+    if not isinstance(sh, list) or any(not (isinstance(x, list) and len(x) == 2) for x in sh):
+        problems.add(f"{f}: short_history must be a list of [zone, network] pairs")
+        g["short_history"] = []
+    return g
+
+
+# ----------------------------------------------------------------------------- deals
+
+def _parse_deal(path: Path, raw: dict, *, weeks: int, demos: Sequence[str], zones: Sequence[str],
+                networks: Sequence[str], dayparts: Sequence[str], problems: _Problems) -> Deal | None:
+    f = f"deals/{path.name}"
+    start = len(problems.items)
+    for k in ("name", "advertiser", "demo", "impressions", "first_week", "last_week", "price_cpm"):
+        if k not in raw:
+            problems.add(f"{f}: missing key {k!r}")
+    if len(problems.items) > start:
+        return None
+    name, adv, demo = raw["name"], raw["advertiser"], raw["demo"]
+    if not isinstance(name, str) or not name.strip():
+        problems.add(f"{f}: name must be a non-empty string, got {name!r}")
+    if not isinstance(adv, str):
+        problems.add(f"{f}: advertiser must be a string, got {adv!r}")
+    if not isinstance(demo, str) or demo not in demos:
+        problems.add(f"{f}: demo {demo!r} is unknown (universes.csv has {', '.join(demos)})")
+    imp = raw["impressions"]
+    if not _is_num(imp) or imp <= 0:
+        problems.add(f"{f}: impressions (the guarantee) must be a positive number, got {imp!r}")
+    fw, lw = raw["first_week"], raw["last_week"]
+    for k, v in (("first_week", fw), ("last_week", lw)):
+        if not _is_int(v) or not 1 <= v <= weeks:
+            problems.add(f"{f}: {k} must be a plan week 1..{weeks} of the inventory, got {v!r}")
+    if _is_int(fw) and _is_int(lw) and fw > lw:
+        problems.add(f"{f}: first_week {fw} is after last_week {lw}")
+    cpm = raw["price_cpm"]
+    if not _is_num(cpm) or cpm < 0:
+        problems.add(f"{f}: price_cpm must be a number >= 0, got {cpm!r}")
+    conf, pad = raw.get("confidence"), raw.get("pad")
+    if conf is not None and pad is not None:
+        problems.add(f"{f}: give either confidence or pad, not both")
+    if conf is not None and (not _is_num(conf) or not 0.5 < conf < 0.999):
+        problems.add(f"{f}: confidence must be a number in (0.5, 0.999), got {conf!r}")
+    if pad is not None and (not _is_num(pad) or pad < 0):
+        problems.add(f"{f}: pad must be a number >= 0, got {pad!r}")
+    mix = _parse_mix(f, raw.get("mix", {}), zones=zones, networks=networks, dayparts=dayparts, problems=problems)
+    if len(problems.items) > start:
+        return None
+    default = conf is None and pad is None
+    return Deal(name=name.strip(), advertiser=adv, demo=demo, impressions=float(imp), first_week=int(fw),
+                last_week=int(lw), price_cpm=float(cpm),
+                confidence=DEFAULT_CONFIDENCE if default else (float(conf) if conf is not None else None),
+                pad=float(pad) if pad is not None else None, mix=mix, path=path, risk_default_used=default)
+
+
+def _parse_mix(f: str, raw: Any, *, zones, networks, dayparts, problems: _Problems) -> Mix:
+    if not isinstance(raw, dict):
+        problems.add(f"{f}: [mix] must be a table")
+        return Mix()
+    unknown = [k for k in raw if k not in MIX_KEYS]
+    for k in unknown:
+        problems.add(f"{f}: [mix] unknown key {k!r} (known: {', '.join(MIX_KEYS)})")
+    mix = Mix()
+    v = raw.get("max_network_share")
+    if v is not None:
+        if not _is_num(v) or not 0 < v <= 1:
+            problems.add(f"{f}: [mix] max_network_share must be a share in (0, 1], got {v!r}")
+        else:
+            mix.max_network_share = float(v)
+    for key in ("daypart_min_share", "daypart_max_share"):
+        v = raw.get(key)
+        if v is None:
+            continue
+        if not isinstance(v, dict):
+            problems.add(f"{f}: [mix] {key} must be a table of daypart = share")
+            continue
+        shares: dict[str, float] = {}
+        for dp, s in v.items():
+            if dp not in dayparts:
+                problems.add(f"{f}: [mix] {key}: unknown daypart {dp!r} (dayparts: {', '.join(dayparts)})")
+            elif not _is_num(s) or not 0 <= s <= 1:
+                problems.add(f"{f}: [mix] {key}.{dp} must be a share in [0, 1], got {s!r}")
+            else:
+                shares[dp] = float(s)
+        setattr(mix, key, shares)
+    total = sum(mix.daypart_min_share.values())
+    if total > 1 + 1e-9:
+        problems.add(f"{f}: [mix] daypart_min_share shares sum to {total:.3g}, more than 1")
+    for dp, lo in mix.daypart_min_share.items():
+        hi = mix.daypart_max_share.get(dp)
+        if hi is not None and lo > hi:
+            problems.add(f"{f}: [mix] daypart {dp!r}: min share {lo} is above max share {hi}")
+    for key, known, what in (("exclude_networks", networks, "network"), ("exclude_zones", zones, "zone")):
+        v = raw.get(key)
+        if v is None:
+            continue
+        if not isinstance(v, list) or any(not isinstance(x, str) for x in v):
+            problems.add(f"{f}: [mix] {key} must be a list of {what} names")
+            continue
+        for x in v:
+            if x not in known:
+                problems.add(f"{f}: [mix] {key}: unknown {what} {x!r} (not in {_source_of(what)})")
+        setattr(mix, key, tuple(v))
+    v = raw.get("weekly_tolerance")
+    if v is not None:
+        if not _is_num(v) or v < 0:
+            problems.add(f"{f}: [mix] weekly_tolerance must be a number >= 0, got {v!r}")
+        else:
+            mix.weekly_tolerance = float(v)
+    v = raw.get("max_spots_per_unit")
+    if v is not None:
+        if not _is_int(v) or v < 1:
+            problems.add(f"{f}: [mix] max_spots_per_unit must be a whole number >= 1, got {v!r}")
+        else:
+            mix.max_spots_per_unit = int(v)
+    return mix
+
+
+# ----------------------------------------------------------------------------- the loader
+
+def load_scenario(path: str | Path, *, generate: bool = True) -> Scenario:
+    """Load and validate the scenario folder at `path` (all files except the history rows).
+
+    With `generate` (default) a missing history is generated from `[history_generator]`.
+    Raises `ScenarioError` naming the file, row or key and what is wrong.
+    """
+    folder = Path(path)
+    if not folder.is_dir():
+        raise ScenarioError(f"{folder}: not a scenario folder (no such directory)")
+    problems = _Problems()
+    f = "scenario.toml"
+    cfg = _read_toml(folder / f, f)
+
+    name = cfg.get("name", folder.name)
+    if not isinstance(name, str):
+        problems.add(f"{f}: name must be a string, got {name!r}")
+        name = folder.name
+    first_week = None
+    if "first_week" not in cfg:
+        problems.add(f"{f}: missing key 'first_week'")
+    else:
+        try:
+            first_week = _as_date(cfg["first_week"])
+            if first_week.weekday() != 0:
+                problems.add(f"{f}: first_week {first_week} is a {DAY_NAMES[first_week.weekday()]}, not a Monday")
+        except ValueError as exc:
+            problems.add(f"{f}: first_week: {exc}")
+    weeks = cfg.get("weeks")
+    if not _is_int(weeks) or weeks < 1:
+        problems.add(f"{f}: weeks must be a whole number >= 1, got {weeks!r}")
+        weeks = 0
+    currency = cfg.get("currency", "USD")
+    if not isinstance(currency, str) or not currency.strip():
+        problems.add(f"{f}: currency must be a non-empty string, got {currency!r}")
+    preempt = cfg.get("preempt_rate", 0.0)
+    if not _is_num(preempt) or not 0 <= preempt < 1:
+        problems.add(f"{f}: preempt_rate must be a number with 0 <= p < 1, got {preempt!r}")
+        preempt = 0.0
+    dayparts = _parse_dayparts(cfg.get("daypart"), problems)
+    generator = _parse_generator(cfg.get("history_generator"), problems)
+    demos_cfg = cfg.get("demos")
+    if demos_cfg is not None and (not isinstance(demos_cfg, list) or not all(isinstance(x, str) for x in demos_cfg)):
+        problems.add(f"{f}: demos must be a list of demo names")
+        demos_cfg = None
+    problems.raise_if_any()
+
+    # zones.csv / networks.csv
+    zones = _read_csv(folder, "zones.csv", ["zone", "market"])
+    _blank(zones, "zones.csv", ["zone", "market"], problems)
+    _duplicates(zones, "zones.csv", ["zone"], problems)
+    networks = _read_csv(folder, "networks.csv", ["network", "genre"])
+    _blank(networks, "networks.csv", ["network"], problems)
+    _duplicates(networks, "networks.csv", ["network"], problems)
+    if not len(zones):
+        problems.add("zones.csv: no zones")
+    if not len(networks):
+        problems.add("networks.csv: no networks")
+    problems.raise_if_any()
+    zone_names = list(zones["zone"])
+    network_names = list(networks["network"])
+    dp_names = [d.name for d in dayparts]
+
+    # universes.csv
+    uni = _read_csv(folder, "universes.csv", ["zone", "demo", "universe"])
+    blank = _blank(uni, "universes.csv", ["zone", "demo", "universe"], problems)
+    _unknown(uni, "universes.csv", "zone", zone_names, "zone", problems, skip=blank)
+    if demos_cfg is not None:
+        m = ~uni["demo"].isin(demos_cfg).to_numpy() & ~blank
+        problems.rows("universes.csv", m, f"demo not in scenario.toml demos ({', '.join(demos_cfg)})", uni["demo"])
+    u = _numeric(uni, "universe")
+    problems.rows("universes.csv", (~(u > 0) & ~blank).to_numpy(), "universe must be a positive number", uni["universe"])
+    _duplicates(uni, "universes.csv", ["zone", "demo"], problems)
+    demos = list(demos_cfg) if demos_cfg is not None else list(dict.fromkeys(uni.loc[~blank, "demo"]))
+    problems.raise_if_any()
+
+    # deals/*.toml (deal demos must be in universes; collect before the coverage check)
+    deals: dict[str, Deal] = {}
+    deal_dir = folder / "deals"
+    if deal_dir.exists() and not deal_dir.is_dir():
+        problems.add("deals: must be a folder of .toml files")
+    files = sorted(deal_dir.glob("*.toml")) if deal_dir.is_dir() else []
+    for p in files:
+        try:
+            raw = _read_toml(p, f"deals/{p.name}")
+        except ScenarioError as exc:
+            problems.add(str(exc))
+            continue
+        deal = _parse_deal(p, raw, weeks=weeks, demos=demos, zones=zone_names, networks=network_names,
+                           dayparts=dp_names, problems=problems)
+        if deal is None:
+            continue
+        if deal.name in deals:
+            problems.add(f"deals/{p.name}: duplicate deal name {deal.name!r} (also in deals/{deals[deal.name].path.name})")
+            continue
+        deals[deal.name] = deal
+
+    # every zone has a universe for every demo used anywhere
+    have = set(zip(uni["zone"], uni["demo"]))
+    for z in zone_names:
+        lacking = [d for d in demos if (z, d) not in have]
+        if lacking:
+            problems.add(f"universes.csv: zone {z!r} has no row for demo(s) {', '.join(lacking)}")
+
+    # inventory.csv
+    inv_file = "inventory.csv"
+    inv = _read_csv(folder, inv_file, ["zone", "network", "daypart", "week", "avails", "rate"])
+    blank = _blank(inv, inv_file, ["zone", "network", "daypart", "week", "avails", "rate"], problems)
+    _unknown(inv, inv_file, "zone", zone_names, "zone", problems, skip=blank)
+    _unknown(inv, inv_file, "network", network_names, "network", problems, skip=blank)
+    _unknown(inv, inv_file, "daypart", dp_names, "daypart", problems, skip=blank)
+    wk = _numeric(inv, "week")
+    bad = (~((wk >= 1) & (wk <= weeks) & (wk == np.round(wk))) & ~blank).to_numpy()
+    problems.rows(inv_file, bad, f"week must be a whole plan week 1..{weeks}", inv["week"])
+    av = _numeric(inv, "avails")
+    problems.rows(inv_file, ((av.isna()) & ~blank).to_numpy(), "avails must be a number", inv["avails"])
+    problems.rows(inv_file, ((av < 0) & ~blank).to_numpy(), "avails must be >= 0", inv["avails"])
+    problems.rows(inv_file, ((av >= 0) & (av != np.round(av)) & ~blank).to_numpy(),
+                  "avails must be a whole number of spots", inv["avails"])
+    rate = _numeric(inv, "rate")
+    problems.rows(inv_file, ((rate.isna()) & ~blank).to_numpy(), "rate must be a number", inv["rate"])
+    problems.rows(inv_file, ((rate < 0) & ~blank).to_numpy(), "rate must be >= 0", inv["rate"])
+    if "preempt_rate" in inv.columns:
+        given = (inv["preempt_rate"] != "").to_numpy()
+        pr = _numeric(inv, "preempt_rate")
+        problems.rows(inv_file, given & ~((pr >= 0) & (pr < 1)).to_numpy(),
+                      "preempt_rate must be a number with 0 <= p < 1", inv["preempt_rate"])
+        pr = pr.where(given, float(preempt))
+    else:
+        pr = pd.Series(float(preempt), index=inv.index)
+    _duplicates(inv, inv_file, ["zone", "network", "daypart", "week"], problems)
+    problems.raise_if_any()
+    inventory = pd.DataFrame({
+        "zone": inv["zone"].astype(str), "network": inv["network"].astype(str),
+        "daypart": inv["daypart"].astype(str), "week": wk.astype("int64"),
+        "avails": av.astype("int64"), "rate": rate.astype(float), "preempt_rate": pr.astype(float),
+    })
+    zones_df = zones.copy()
+    networks_df = networks.copy()
+    networks_df["genre"] = networks_df["genre"].str.lower()
+    universes = pd.DataFrame({"zone": uni["zone"].astype(str), "demo": uni["demo"].astype(str),
+                              "universe": u.astype(float)})
+
+    # history
+    if generator is not None:
+        for z, n in generator.get("short_history", []):
+            if z not in zone_names or n not in network_names:
+                problems.add(f"scenario.toml [history_generator]: short_history [{z!r}, {n!r}] names an unknown "
+                             "zone or network")
+        problems.raise_if_any()
+    hp, hc = folder / "history.parquet", folder / "history.csv"
+    history_path = hp if hp.is_file() else (hc if hc.is_file() else hp)
+    scenario = Scenario(path=folder, name=name, first_week=first_week, weeks=int(weeks), currency=currency.strip(),
+                        preempt_rate=float(preempt), dayparts=dayparts, zones=zones_df, universes=universes,
+                        networks=networks_df, inventory=inventory, deals=deals, demos=demos,
+                        history_path=history_path, history_generator=generator)
+    if not history_path.is_file():
+        if generator is None:
+            raise ScenarioError("history.parquet: file is missing (no history.csv, and scenario.toml has no "
+                                "[history_generator] table to make one)")
+        if generate:
+            from scenarios.generate import spec_from_scenario, write_spec
+
+            write_spec(spec_from_scenario(scenario), hp)
+    if history_path.is_file():
+        _check_history_columns(history_path)
+    return scenario
+
+
+def _check_history_columns(path: Path) -> None:
+    name = path.name
+    if path.suffix == ".parquet":
+        import pyarrow.parquet as pq
+
+        try:
+            cols = [c.lower() for c in pq.read_schema(path).names]
+        except Exception as exc:  # noqa: BLE001 - any unreadable file is bad input
+            raise ScenarioError(f"{name}: not a readable Parquet file ({exc})") from None
+    else:
+        try:
+            cols = [c.strip().lower() for c in pd.read_csv(path, nrows=0).columns]
+        except Exception as exc:  # noqa: BLE001
+            raise ScenarioError(f"{name}: cannot be parsed as CSV ({exc})") from None
+    missing = [c for c in HISTORY_COLUMNS if c not in cols]
+    if missing:
+        raise ScenarioError(f"{name}: missing column(s) {', '.join(missing)} (has {', '.join(cols)})")
+
+
+# ----------------------------------------------------------------------------- history
+
+def history_fingerprint(scenario: Scenario) -> str:
+    """A cheap token that changes when the history file changes (path, size, mtime)."""
+    p = Path(scenario.history_path)
+    st = p.stat()
+    text = f"{p.resolve()}|{st.st_size}|{st.st_mtime_ns}"
+    return hashlib.sha1(text.encode()).hexdigest()[:16]
+
+
+def _relation(con, path: Path) -> str:
+    """Register `path` as DuckDB view `h` with typed (TRY_CAST) columns; returns the view name."""
+    p = str(path).replace("'", "''")
+    if path.suffix == ".parquet":
+        src = f"read_parquet('{p}')"
+    else:
+        src = f"read_csv('{p}', header=true, all_varchar=true)"
+    con.execute(f"""
+        CREATE OR REPLACE TEMP VIEW raw AS SELECT * FROM {src};
+        CREATE OR REPLACE TEMP VIEW h AS SELECT
+            trim(CAST(zone AS VARCHAR)) AS zone, trim(CAST(network AS VARCHAR)) AS network,
+            trim(CAST(demo AS VARCHAR)) AS demo,
+            CAST(date AS VARCHAR) AS date_text, TRY_CAST(date AS DATE) AS date,
+            CAST(quarter_hour AS VARCHAR) AS qh_text, TRY_CAST(quarter_hour AS DOUBLE) AS quarter_hour,
+            CAST(rating AS VARCHAR) AS rating_text, TRY_CAST(rating AS DOUBLE) AS rating
+        FROM raw;
+    """)
+    return "h"
+
+
+@dataclass
+class HistorySummary:
+    """What `validate_history` found. Dates inclusive; completeness = rows / expected rows."""
+
+    path: str
+    rows: int
+    series: int
+    start: date | None
+    end: date | None
+    days: int
+    completeness: float
+    zero_share: float
+    rating_max: float
+    short_series: list[dict]
+
+
+def validate_history(scenario: Scenario) -> HistorySummary:
+    """Check every history row (DuckDB, out of core) and summarise; raises ScenarioError.
+
+    Checks: dates parse, quarter_hour whole 0..95, rating a number in [0, 1], zone/network/demo
+    known, key (zone, network, demo, date, quarter_hour) unique. `completeness` is rows over
+    series x days of the whole span x 96; `short_series` lists series starting > 28 days late.
+    """
+    import duckdb
+
+    path = Path(scenario.history_path)
+    name = path.name
+    if not path.is_file():
+        raise ScenarioError(f"{name}: file is missing")
+    _check_history_columns(path)
+    con = duckdb.connect()
+    try:
+        con.execute("SET preserve_insertion_order = true")
+        con.execute("SET enable_progress_bar = false")
+        _relation(con, path)
+        con.register("kz", pd.DataFrame({"zone": scenario.zone_names}))
+        con.register("kn", pd.DataFrame({"network": scenario.network_names}))
+        con.register("kd", pd.DataFrame({"demo": list(scenario.demos)}))
+        checks = [
+            ("date IS NULL", "date does not parse (use YYYY-MM-DD)", "date_text"),
+            ("quarter_hour IS NULL OR quarter_hour <> round(quarter_hour) OR quarter_hour < 0 OR quarter_hour > 95",
+             "quarter_hour must be a whole number 0..95", "qh_text"),
+            ("rating IS NULL OR isnan(rating) OR rating < 0 OR rating > 1", "rating must be a fraction in [0, 1]",
+             "rating_text"),
+            ("zone NOT IN (SELECT zone FROM kz) OR zone IS NULL", "unknown zone (not in zones.csv)", "zone"),
+            ("network NOT IN (SELECT network FROM kn) OR network IS NULL", "unknown network (not in networks.csv)",
+             "network"),
+            ("demo NOT IN (SELECT demo FROM kd) OR demo IS NULL", "unknown demo (not in universes.csv)", "demo"),
+        ]
+        select = ", ".join(f"count(*) FILTER (WHERE {cond})" for cond, _, _ in checks)
+        counts = con.execute(f"SELECT {select} FROM h").fetchone()
+        problems = _Problems()
+        for (cond, what, col), n in zip(checks, counts):
+            if n:
+                row, val = con.execute(
+                    f"SELECT rn, v FROM (SELECT row_number() OVER () AS rn, {col} AS v, * FROM h) "
+                    f"WHERE {cond} LIMIT 1").fetchone()
+                more = f" (and {n - 1} more)" if n > 1 else ""
+                problems.add(f"{name} row {row}{more}: {what}, got {val!r}")
+        problems.raise_if_any()
+        dup = con.execute("""
+            SELECT zone, network, demo, date, quarter_hour, count(*) AS n FROM h
+            GROUP BY ALL HAVING count(*) > 1 LIMIT 1""").fetchone()
+        if dup:
+            ndup = con.execute("""SELECT count(*) - count(DISTINCT (zone, network, demo, date, quarter_hour))
+                                  FROM h""").fetchone()[0]
+            raise ScenarioError(f"{name}: duplicate key (zone={dup[0]}, network={dup[1]}, demo={dup[2]}, "
+                                f"date={dup[3]}, quarter_hour={int(dup[4])}) appears {dup[5]} times "
+                                f"({ndup} duplicate rows in all)")
+        per = con.execute("""
+            SELECT zone, network, demo, min(date) AS first, max(date) AS last, count(*) AS n,
+                   count(*) FILTER (WHERE rating = 0) AS zeros, max(rating) AS rmax
+            FROM h GROUP BY ALL ORDER BY ALL""").df()
+    finally:
+        con.close()
+    rows = int(per["n"].sum())
+    if rows == 0:
+        return HistorySummary(str(path), 0, 0, None, None, 0, 0.0, 0.0, 0.0, [])
+    start = pd.Timestamp(per["first"].min()).date()
+    end = pd.Timestamp(per["last"].max()).date()
+    days = (end - start).days + 1
+    first = pd.to_datetime(per["first"])
+    late = per[(first - pd.Timestamp(start)).dt.days > 28]
+    short = [{"zone": r.zone, "network": r.network, "demo": r.demo, "first": pd.Timestamp(r.first).date()}
+             for r in late.itertuples()]
+    return HistorySummary(path=str(path), rows=rows, series=len(per), start=start, end=end, days=days,
+                          completeness=rows / (len(per) * days * QUARTER_HOURS),
+                          zero_share=float(per["zeros"].sum()) / rows, rating_max=float(per["rmax"].max()),
+                          short_series=short)
+
+
+def load_history(scenario: Scenario, columns: Sequence[str] | None = None, *, filters=None) -> pd.DataFrame:
+    """Read the history rows into a DataFrame (no row checks: see `validate_history`).
+
+    `columns` a subset of zone, network, demo, date, quarter_hour, rating; `filters` a pyarrow
+    filter expression or list of tuples, e.g. [("demo", "=", "hh")]. `date` is datetime64,
+    `quarter_hour` int16, `rating` float32 (fraction of the universe).
+    """
+    import pyarrow.parquet as pq
+
+    path = Path(scenario.history_path)
+    cols = list(columns) if columns is not None else list(HISTORY_COLUMNS)
+    if path.suffix == ".parquet":
+        table = pq.read_table(path, columns=cols, filters=filters)
+        df = table.to_pandas(date_as_object=False)
+    else:
+        df = pd.read_csv(path, usecols=cols)
+        if filters is not None:
+            import pyarrow as pa
+            import pyarrow.dataset as ds
+
+            table = pa.Table.from_pandas(df, preserve_index=False)
+            df = ds.dataset(table).to_table(filter=pq.filters_to_expression(filters)).to_pandas()
+        if "date" in df:
+            df["date"] = pd.to_datetime(df["date"], format="ISO8601")
+    if "quarter_hour" in df:
+        df["quarter_hour"] = df["quarter_hour"].astype("int16")
+    if "rating" in df:
+        df["rating"] = df["rating"].astype("float32")
+    return df
