@@ -1,0 +1,769 @@
+"""The allocator: whole spots per unit at least cost, within avails and mix rules, with a risk margin.
+
+Decision: x_i whole 30-second spots in candidate unit i (zone x network x daypart x week of the
+deal's flight, in the deal's demo), 0 <= x_i <= ub_i (avails less holds, capped by
+`max_spots_per_unit`). With m_i = (1 - p_i) mu_i the expected impressions of one bought spot and
+T = sum_i m_i x_i the plan's total expected impressions:
+
+- minimise   sum_i rate_i x_i
+- network n: sum_{i in n} m_i x_i <= max_network_share * T
+- daypart d: daypart_min_share[d] * T <= sum_{i in d} m_i x_i <= daypart_max_share[d] * T
+- week w:    (1 - tol) T / W <= sum_{i in w} m_i x_i <= (1 + tol) T / W   ("even pacing" is the
+  plan's own total expected impressions over the W flight weeks, so the rule only shapes the
+  plan and never asks for extra delivery)
+- risk, one of
+  - pad:        T >= (1 + pad) G
+  - confidence: P(D >= G) >= c with D normal:  T - z_c sqrt(q(x) + l(x)) >= G, q the quadratic
+    variance of the shared level errors and l the linear variance (airing noise, preemption).
+
+The chance constraint is met by Kelley cutting planes on the LP relaxation: the linear part is
+frozen at l0 = l(x) of the current plan, tangent cuts of the convex sqrt(q(x) + l0) are added
+until the condition holds at the LP solution, l0 is updated, and the loop repeats until both
+settle; the integer plan is then checked against the exact condition (with l at the integer plan)
+and a cut added and the MIP re-solved when it is not met.
+
+The LP relaxation and its cut loop (and the duals used to explain binding rules) run in HiGHS
+through its array API; the integer plan is solved by CBC (the binary shipped with pulp, fed an MPS
+file written from the same arrays, the default) or by HiGHS (`solver="highs"`). Impressions are
+scaled to thousands inside the model for conditioning.
+
+References
+----------
+Charnes & Cooper (1959), Chance-constrained programming, Management Science 6(1).
+Kelley (1960), The cutting-plane method for solving convex programs, J. SIAM 8(4).
+Lobo, Vandenberghe, Boyd & Lebret (1998), Applications of second-order cone programming,
+Linear Algebra Appl. 284.
+"""
+from __future__ import annotations
+
+import math
+import os
+import re
+import subprocess
+import tempfile
+import time
+from dataclasses import dataclass, field, replace
+
+import highspy
+import numpy as np
+import pandas as pd
+import scipy.sparse as sp
+from scipy.special import ndtri
+
+from planner.delivery import DeliveryModel
+
+SCALE = 1e-3  # impressions -> thousands inside the model
+INF = highspy.kHighsInf
+DEFAULT_GAP = 0.005
+DEFAULT_TIME_LIMIT = 60.0
+SOLVERS = ("cbc", "highs")
+
+
+def _new_highs() -> highspy.Highs:
+    """A silent HiGHS instance (its one-time banner goes to stderr, keeping stdout for --json)."""
+    if _BANNER_DONE:
+        h = highspy.Highs()
+    else:
+        import ctypes
+        import sys
+
+        sys.stdout.flush()
+        saved = os.dup(1)
+        try:
+            os.dup2(2, 1)
+            h = highspy.Highs()
+            h.setOptionValue("output_flag", False)
+            try:
+                ctypes.CDLL(None).fflush(None)
+            except OSError:
+                pass
+        finally:
+            os.dup2(saved, 1)
+            os.close(saved)
+        _BANNER_DONE.append(True)
+    h.setOptionValue("output_flag", False)
+    return h
+
+
+_BANNER_DONE: list = []
+
+
+def z_value(confidence: float) -> float:
+    """Standard normal quantile z_c = Phi^-1(c) (dimensionless).
+
+    References
+    ----------
+    Standard normal table, NIST/SEMATECH e-Handbook of Statistical Methods, 1.3.6.7.1.
+    """
+    return float(ndtri(confidence))
+
+
+@dataclass
+class Rules:
+    """Mix rules and the risk margin of one deal (shares are fractions of expected impressions)."""
+
+    max_network_share: float | None = None
+    daypart_min_share: dict = field(default_factory=dict)
+    daypart_max_share: dict = field(default_factory=dict)
+    weekly_tolerance: float | None = None
+    confidence: float | None = None
+    pad: float | None = None
+
+    @property
+    def risk_rule(self) -> str:
+        return "pad" if self.pad is not None else "confidence"
+
+
+@dataclass
+class AllocationProblem:
+    """One allocation instance, as arrays (one entry per candidate unit).
+
+    units: DataFrame of candidate units (zone, network, daypart, week, rate, ub, capped, forecast
+    columns), index 0..n-1; model: their DeliveryModel; guarantee in impressions; weeks: the flight
+    weeks; scope: every in-scope unit (also those with nothing left to buy) with `ub`.
+    """
+
+    units: pd.DataFrame
+    model: DeliveryModel
+    guarantee: float
+    rules: Rules
+    weeks: tuple
+    scope: pd.DataFrame | None = None
+
+    @property
+    def n(self) -> int:
+        return len(self.units)
+
+    @property
+    def ub(self) -> np.ndarray:
+        return self.units["ub"].to_numpy(float)
+
+    @property
+    def rate(self) -> np.ndarray:
+        return self.units["rate"].to_numpy(float)
+
+
+def candidate_units(units: pd.DataFrame, *, weeks, exclude_networks=(), exclude_zones=(),
+                    max_spots_per_unit=None, held: pd.DataFrame | None = None) -> pd.DataFrame:
+    """In-scope units of one deal with `ub` (spots that may be bought) and `capped`.
+
+    `units`: forecast rows of the deal's demo joined with inventory (`avails`, `rate`,
+    `preempt_rate`). `held`: spots held by committed deals, `zone,network,daypart,week,spots`.
+    Returns all in-scope rows (ub may be 0), index reset.
+    """
+    u = units[units["week"].isin(list(weeks))
+              & ~units["network"].isin(list(exclude_networks))
+              & ~units["zone"].isin(list(exclude_zones))].copy()
+    avail = u["avails"].to_numpy(float)
+    if held is not None and len(held):
+        h = held.groupby(["zone", "network", "daypart", "week"], as_index=False)["spots"].sum()
+        u = u.merge(h, on=["zone", "network", "daypart", "week"], how="left")
+        avail = avail - u["spots"].fillna(0).to_numpy(float)
+        u = u.drop(columns="spots")
+    avail = np.maximum(np.floor(avail + 1e-9), 0.0)
+    ub = avail
+    capped = np.zeros(len(u), dtype=bool)
+    if max_spots_per_unit is not None:
+        capped = avail > max_spots_per_unit
+        ub = np.minimum(avail, float(max_spots_per_unit))
+    u["ub"] = ub
+    u["capped"] = capped
+    return u.reset_index(drop=True)
+
+
+def make_problem(scope: pd.DataFrame, guarantee: float, rules: Rules, weeks) -> AllocationProblem:
+    """Problem over the units of `scope` (from `candidate_units`) that can still be bought."""
+    live = scope[(scope["ub"] > 0) & (scope["mean_impressions"] > 0)].reset_index(drop=True)
+    return AllocationProblem(live, DeliveryModel.from_units(live), float(guarantee), rules,
+                             tuple(int(w) for w in weeks), scope)
+
+
+# ---------------------------------------------------------------------------------------------
+# The LP in HiGHS, built from arrays
+# ---------------------------------------------------------------------------------------------
+class _Model:
+    """The LP relaxation of one problem in HiGHS; `mode` 'cost' (min cost) or 'max' (max G)."""
+
+    def __init__(self, prob: AllocationProblem, mode: str = "cost", time_limit: float = DEFAULT_TIME_LIMIT):
+        t0 = time.perf_counter()
+        self.prob, self.mode = prob, mode
+        r = prob.rules
+        n = prob.n
+        u = prob.units
+        m = prob.model.m * SCALE
+        self.m = m
+        self.iT = n
+        self.iG = n + 1 if mode == "max" else None
+        ncol = n + 1 + (mode == "max")
+        rows, cols, vals, lo, hi, labels = [], [], [], [], [], []
+        nrow = 0
+
+        def block(row_of_x, k, coef_T, lower, upper, names):
+            # rows nrow..nrow+k-1: sum m_i x_i over the group of i  + coef_T[j] * T
+            nonlocal nrow
+            sel = row_of_x >= 0
+            rows.append(nrow + row_of_x[sel]); cols.append(np.flatnonzero(sel)); vals.append(m[sel])
+            rows.append(nrow + np.arange(k)); cols.append(np.full(k, n)); vals.append(np.asarray(coef_T, float))
+            lo.append(np.asarray(lower, float)); hi.append(np.asarray(upper, float))
+            labels.extend(names)
+            nrow += k
+
+        # T definition: sum m x - T = 0
+        block(np.zeros(n, dtype=np.int64), 1, [-1.0], [0.0], [0.0], [("total", None)])
+        if r.max_network_share is not None:
+            code, nets = pd.factorize(u["network"], sort=True)
+            k = len(nets)
+            block(code, k, np.full(k, -r.max_network_share), np.full(k, -INF), np.zeros(k),
+                  [("network", str(v)) for v in nets])
+        dps = sorted(set(r.daypart_min_share) | set(r.daypart_max_share))
+        for kind, shares, sign in (("daypart_min", r.daypart_min_share, 1), ("daypart_max", r.daypart_max_share, -1)):
+            names = [d for d in dps if d in shares and shares[d] is not None]
+            if not names:
+                continue
+            pos = {d: j for j, d in enumerate(names)}
+            code = u["daypart"].map(pos).fillna(-1).to_numpy(np.int64)
+            s = np.array([shares[d] for d in names], float)
+            if sign > 0:  # y_d - s T >= 0
+                block(code, len(names), -s, np.zeros(len(names)), np.full(len(names), INF),
+                      [(kind, d) for d in names])
+            else:
+                block(code, len(names), -s, np.full(len(names), -INF), np.zeros(len(names)),
+                      [(kind, d) for d in names])
+        if r.weekly_tolerance is not None:
+            W = len(prob.weeks)
+            pos = {w: j for j, w in enumerate(prob.weeks)}
+            code = u["week"].map(pos).fillna(-1).to_numpy(np.int64)
+            tol = r.weekly_tolerance
+            block(code, W, np.full(W, -(1 + tol) / W), np.full(W, -INF), np.zeros(W),
+                  [("pacing_max", w) for w in prob.weeks])
+            block(code, W, np.full(W, -(1 - tol) / W), np.zeros(W), np.full(W, INF),
+                  [("pacing_min", w) for w in prob.weeks])
+        # Risk base row on T (and G in max mode).
+        G = prob.guarantee * SCALE
+        factor = 1.0 + r.pad if r.pad is not None else 1.0
+        if mode == "cost":
+            rows.append(np.array([nrow])); cols.append(np.array([n])); vals.append(np.array([1.0]))
+            lo.append(np.array([factor * G])); hi.append(np.array([INF]))
+        else:
+            rows.append(np.array([nrow, nrow])); cols.append(np.array([n, n + 1])); vals.append(np.array([1.0, -factor]))
+            lo.append(np.array([0.0])); hi.append(np.array([INF]))
+        labels.append(("pad" if r.pad is not None else "risk_base", None))
+        nrow += 1
+        A = sp.csc_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(nrow, ncol))
+        A.sum_duplicates()
+        cost = np.zeros(ncol)
+        upper = np.full(ncol, INF)
+        upper[:n] = prob.ub
+        if mode == "cost":
+            cost[:n] = prob.rate
+        else:
+            cost[n + 1] = -1.0
+        lp = highspy.HighsLp()
+        lp.num_col_, lp.num_row_ = ncol, nrow
+        lp.col_cost_, lp.col_lower_, lp.col_upper_ = cost, np.zeros(ncol), upper
+        lp.row_lower_, lp.row_upper_ = np.concatenate(lo), np.concatenate(hi)
+        lp.a_matrix_.format_ = highspy.MatrixFormat.kColwise
+        lp.a_matrix_.start_, lp.a_matrix_.index_, lp.a_matrix_.value_ = A.indptr, A.indices, A.data
+        lp.a_matrix_.num_col_, lp.a_matrix_.num_row_ = ncol, nrow
+        self.h = _new_highs()
+        self.h.setOptionValue("output_flag", False)
+        self.h.setOptionValue("time_limit", float(time_limit))
+        self.h.passModel(lp)
+        self.labels = labels
+        self.n_struct = nrow
+        self.cut_points: list[tuple[np.ndarray, np.ndarray]] = []
+        self.n_cuts_total = 0
+        self.ncol = ncol
+        self.build_seconds = time.perf_counter() - t0
+
+    # -- LP solves ---------------------------------------------------------------------------
+    def solve(self):
+        """Solve the current LP; return (ok, x, objective)."""
+        self.h.run()
+        st = self.h.getModelStatus()
+        if st != highspy.HighsModelStatus.kOptimal:
+            return False, None, None
+        col = np.asarray(self.h.getSolution().col_value)
+        return True, col, self.h.getInfo().objective_function_value
+
+    def add_cut(self, x: np.ndarray, l0: float, store: bool = True) -> None:
+        """Tangent cut of T - z sqrt(q + l0) >= G (or >= G_var) at spots x."""
+        dm, z = self.prob.model, z_value(self.prob.rules.confidence)
+        x = np.asarray(x, float)[: self.prob.n]
+        s = math.sqrt(max(dm.quadratic_variance(x) + l0, 1e-300))
+        g = dm.quadratic_gradient(x) / s
+        coef = (dm.m - z * g) * SCALE
+        rhs = z * l0 / s * SCALE
+        idx = np.flatnonzero(coef != 0).astype(np.int32)
+        val = coef[idx]
+        if self.mode == "cost":
+            lower = self.prob.guarantee * SCALE + rhs
+        else:
+            idx = np.append(idx, np.int32(self.iG))
+            val = np.append(val, -1.0)
+            lower = rhs
+        self.h.addRow(float(lower), INF, len(idx), idx, val)
+        self.n_cuts_total += 1
+        if store:
+            nz = np.flatnonzero(x > 1e-12)
+            self.cut_points.append((nz, x[nz].copy()))
+
+    def reset_cuts(self, l0: float) -> None:
+        """Re-derive every stored cut with a new frozen linear variance l0."""
+        k = self.h.getNumRow() - self.n_struct
+        if k > 0:
+            self.h.deleteRows(k, np.arange(self.n_struct, self.n_struct + k, dtype=np.int32))
+        for nz, v in self.cut_points:
+            x = np.zeros(self.prob.n)
+            x[nz] = v
+            self.add_cut(x, l0, store=False)
+
+    def row_duals(self) -> np.ndarray:
+        return np.asarray(self.h.getSolution().row_dual)
+
+    def row_values(self) -> np.ndarray:
+        return np.asarray(self.h.getSolution().row_value)
+
+
+def _slack(prob: AllocationProblem, x: np.ndarray, l0: float | None, target: float) -> float:
+    """T - z sqrt(q + l) - target in impressions (l frozen at l0, or exact when None)."""
+    dm = prob.model
+    l = dm.linear_variance(x) if l0 is None else l0
+    return dm.mean(x) - z_value(prob.rules.confidence) * math.sqrt(dm.quadratic_variance(x) + l) - target
+
+
+@dataclass
+class LPResult:
+    """LP relaxation (with its cuts) of one problem."""
+
+    ok: bool
+    x: np.ndarray | None
+    objective: float | None  # cost (cost mode) or guarantee in impressions (max mode)
+    linear_variance: float
+    cuts: int
+    iterations: int
+    build_seconds: float
+    solve_seconds: float
+
+
+def solve_relaxation(model: _Model, tol: float = 1e-6, max_iter: int = 200, max_resets: int = 6) -> LPResult:
+    """Kelley loop on the LP relaxation until the chance constraint holds at the LP solution.
+
+    tol: relative tolerance of the condition (fraction of the guarantee, or of the max guarantee).
+    """
+    t0 = time.perf_counter()
+    prob = model.prob
+    n = prob.n
+    ok, col, obj = model.solve()
+    it = 1
+    if not ok:
+        return LPResult(False, None, None, 0.0, 0, it, model.build_seconds, time.perf_counter() - t0)
+    x = col[:n]
+    l0 = prob.model.linear_variance(x)
+    if prob.rules.confidence is not None:
+        resets = 0
+        while it < max_iter:
+            target = prob.guarantee if model.mode == "cost" else col[model.iG] / SCALE
+            scale = max(target, prob.guarantee * 1e-3, 1.0)
+            if _slack(prob, x, l0, target) >= -tol * scale:
+                l_true = prob.model.linear_variance(x)
+                if abs(l_true - l0) <= 1e-4 * max(l0, 1.0):
+                    break
+                if l_true > l0 or resets >= max_resets:
+                    l0 = max(l_true, l0)
+                else:
+                    l0 = l_true
+                    resets += 1
+                    model.reset_cuts(l0)
+                if _slack(prob, x, l0, target) >= -tol * scale:
+                    continue
+            model.add_cut(col, l0)
+            ok, col, obj = model.solve()
+            it += 1
+            if not ok:
+                return LPResult(False, None, None, l0, model.n_cuts_total, it, model.build_seconds,
+                                time.perf_counter() - t0)
+            x = col[:n]
+    value = obj if model.mode == "cost" else col[model.iG] / SCALE
+    return LPResult(True, col, value, l0, model.n_cuts_total, it, model.build_seconds, time.perf_counter() - t0)
+
+
+# ---------------------------------------------------------------------------------------------
+# Integer solves
+# ---------------------------------------------------------------------------------------------
+@dataclass
+class MIPResult:
+    ok: bool
+    x: np.ndarray | None
+    objective: float | None
+    bound: float | None
+    status: str
+    seconds: float
+
+
+def _set_integer(model: _Model, on: bool = True) -> None:
+    n = model.prob.n
+    kind = highspy.HighsVarType.kInteger if on else highspy.HighsVarType.kContinuous
+    model.h.changeColsIntegrality(n, np.arange(n, dtype=np.int32), np.full(n, kind))
+
+
+def _solve_mip_highs(model: _Model, gap: float, time_limit: float) -> MIPResult:
+    t0 = time.perf_counter()
+    h = model.h
+    h.setOptionValue("mip_rel_gap", float(gap))
+    h.setOptionValue("time_limit", float(time_limit))
+    h.run()
+    st = h.getModelStatus()
+    info = h.getInfo()
+    name = h.modelStatusToString(st)
+    if info.primal_solution_status != 2 and st != highspy.HighsModelStatus.kOptimal:
+        return MIPResult(False, None, None, None, name, time.perf_counter() - t0)
+    col = np.asarray(h.getSolution().col_value)
+    return MIPResult(True, col, info.objective_function_value, info.mip_dual_bound, name,
+                     time.perf_counter() - t0)
+
+
+_CBC_NUM = r"([-+]?[0-9.]+(?:[eE][-+]?[0-9]+)?)"
+
+
+def cbc_path() -> str:
+    """Path of the CBC binary shipped with pulp."""
+    import pulp
+
+    return pulp.PULP_CBC_CMD(msg=0).path
+
+
+def _solve_mip_cbc(model: _Model, gap: float, time_limit: float) -> MIPResult:
+    t0 = time.perf_counter()
+    with tempfile.TemporaryDirectory(prefix="pledge-cbc-") as tmp:
+        mps, sol = os.path.join(tmp, "model.mps"), os.path.join(tmp, "model.sol")
+        model.h.writeModel(mps)
+        cmd = [cbc_path(), mps, "-ratioGap", str(gap), "-seconds", str(float(time_limit)),
+               "-threads", "1", "-solve", "-solution", sol]
+        run = subprocess.run(cmd, capture_output=True, text=True)
+        out = run.stdout
+        status = "unknown"
+        mres = re.search(r"Result - (.*)", out)
+        if mres:
+            status = mres.group(1).strip()
+        if not os.path.exists(sol):
+            return MIPResult(False, None, None, None, status, time.perf_counter() - t0)
+        with open(sol) as fh:
+            first = fh.readline()
+            lines = fh.read().splitlines()
+        if "infeasible" in first.lower() or "no feasible" in status.lower() or "infeasible" in status.lower():
+            return MIPResult(False, None, None, None, status, time.perf_counter() - t0)
+        col = np.zeros(model.ncol)
+        if lines:
+            parts = [ln.replace("**", " ").split() for ln in lines if ln.strip()]
+            idx = np.array([int(p[0]) for p in parts])
+            val = np.array([float(p[2]) for p in parts])
+            col[idx] = val
+        mobj = re.search(r"objective value\s+" + _CBC_NUM, first)
+        obj = float(mobj.group(1)) if mobj else float(np.dot(model.prob.rate, col[: model.prob.n]))
+        mlb = re.search(r"Lower bound:\s+" + _CBC_NUM, out)
+        bound = float(mlb.group(1)) if mlb else obj
+    return MIPResult(True, col, obj, bound, status, time.perf_counter() - t0)
+
+
+def solve_mip(model: _Model, solver: str, gap: float, time_limit: float) -> MIPResult:
+    """Solve the model (already marked integer) with `solver` ('cbc' or 'highs')."""
+    if solver == "highs":
+        return _solve_mip_highs(model, gap, time_limit)
+    if solver == "cbc":
+        return _solve_mip_cbc(model, gap, time_limit)
+    raise ValueError(f"unknown solver {solver!r}")
+
+
+# ---------------------------------------------------------------------------------------------
+# Public API
+# ---------------------------------------------------------------------------------------------
+@dataclass
+class Allocation:
+    """Result of one min-cost allocation.
+
+    x: whole spots per candidate unit (shape (n,)); cost in currency; lp_bound: the LP
+    relaxation's cost (a lower bound); mip_bound: the integer solver's dual bound; gap:
+    (cost - best bound) / cost; cuts: Kelley cuts added; iterations: LP solves.
+    """
+
+    feasible: bool
+    x: np.ndarray | None
+    cost: float | None
+    lp_bound: float | None
+    mip_bound: float | None
+    gap: float | None
+    cuts: int
+    iterations: int
+    mip_rounds: int
+    status: str
+    solver: str
+    build_seconds: float
+    solve_seconds: float
+    lp_x: np.ndarray | None = None
+    row_labels: list = field(default_factory=list)
+    row_duals: np.ndarray | None = None
+    row_values: np.ndarray | None = None
+    requested_gap: float = DEFAULT_GAP
+    integer: bool = True
+
+
+def allocate(prob: AllocationProblem, *, solver: str = "cbc", gap: float = DEFAULT_GAP,
+             time_limit: float = DEFAULT_TIME_LIMIT, integer: bool = True, tol: float = 1e-6) -> Allocation:
+    """Minimum-cost whole-spot plan meeting the guarantee under the deal's rules and risk margin.
+
+    gap: relative MIP optimality gap (0.005 = 0.5%); time_limit in seconds per MIP solve.
+    """
+    if solver not in SOLVERS:
+        raise ValueError(f"unknown solver {solver!r} (choose from {', '.join(SOLVERS)})")
+    t0 = time.perf_counter()
+    if prob.n == 0:
+        return Allocation(False, None, None, None, None, None, 0, 0, 0, "no units to buy", solver, 0.0, 0.0,
+                          requested_gap=gap)
+    model = _Model(prob, "cost", time_limit)
+    lp = solve_relaxation(model, tol=tol)
+    base = dict(cuts=lp.cuts, iterations=lp.iterations, solver=solver, build_seconds=model.build_seconds,
+                row_labels=model.labels, requested_gap=gap, integer=integer)
+    if not lp.ok:
+        return Allocation(False, None, None, None, None, None, mip_rounds=0, status="infeasible",
+                          solve_seconds=time.perf_counter() - t0, **base)
+    duals = model.row_duals()
+    values = model.row_values()
+    lp_x = lp.x[: prob.n].copy()
+    if not integer:
+        return Allocation(True, lp_x, lp.objective, lp.objective, lp.objective, 0.0, mip_rounds=0,
+                          status="lp optimal", solve_seconds=time.perf_counter() - t0, lp_x=lp_x,
+                          row_duals=duals, row_values=values, **{k: v for k, v in base.items()})
+    _set_integer(model)
+    rounds, mip = 0, None
+    l0 = lp.linear_variance
+    x = None
+    while rounds < 8:
+        rounds += 1
+        mip = solve_mip(model, solver, gap, time_limit)
+        if not mip.ok:
+            break
+        x = np.rint(mip.x[: prob.n])
+        if prob.rules.confidence is None or _slack(prob, x, None, prob.guarantee) >= -1e-9 * prob.guarantee:
+            break
+        l0 = max(l0, prob.model.linear_variance(x))
+        model.add_cut(np.concatenate([x, mip.x[prob.n:]]), l0)
+        x = None
+    base["cuts"] = model.n_cuts_total
+    if x is None:
+        return Allocation(False, None, None, lp.objective, None, None, mip_rounds=rounds,
+                          status=f"integer plan not found ({mip.status if mip else 'no run'})",
+                          solve_seconds=time.perf_counter() - t0, lp_x=lp_x, row_duals=duals,
+                          row_values=values, **base)
+    cost = float(np.dot(prob.rate, x))
+    bound = max(lp.objective, mip.bound if mip.bound is not None else -np.inf)
+    bound = min(bound, cost)
+    g = (cost - bound) / cost if cost > 0 else 0.0
+    return Allocation(True, x, cost, lp.objective, mip.bound, g, mip_rounds=rounds, status=mip.status,
+                      solve_seconds=time.perf_counter() - t0, lp_x=lp_x, row_duals=duals,
+                      row_values=values, **base)
+
+
+@dataclass
+class MaxGuarantee:
+    """Largest guarantee (impressions) deliverable under the rules and risk margin.
+
+    value: the LP relaxation's optimum (an upper bound; continuous spots); at_plan: the exact
+    `mean - z sd` (or `mean / (1 + pad)`) of plan x, whole spots when `integer` was asked and the
+    MIP found one; x: that plan (shape (n,)).
+    """
+
+    value: float
+    at_plan: float
+    x: np.ndarray | None
+    cuts: int
+    iterations: int
+    integer: bool = False
+
+
+def _deliverable_value(prob: AllocationProblem, x: np.ndarray) -> float:
+    dm = prob.model
+    if prob.rules.pad is not None:
+        return dm.mean(x) / (1 + prob.rules.pad)
+    return dm.mean(x) - z_value(prob.rules.confidence) * dm.sd(x)
+
+
+def max_guarantee(prob: AllocationProblem, *, integer: bool = False, solver: str = "highs",
+                  gap: float = DEFAULT_GAP, tol: float = 1e-6,
+                  time_limit: float = DEFAULT_TIME_LIMIT) -> MaxGuarantee:
+    """Maximise the deliverable guarantee: mean - z sd (confidence) or mean / (1 + pad), impressions.
+
+    Kelley cuts on the LP relaxation; with `integer`, whole spots by the MIP solver afterwards
+    (the exact value at the integer plan is reported in `at_plan`).
+    """
+    if prob.n == 0:
+        return MaxGuarantee(0.0, 0.0, None, 0, 0)
+    model = _Model(prob, "max", time_limit)
+    lp = solve_relaxation(model, tol=tol)
+    if not lp.ok:
+        return MaxGuarantee(0.0, 0.0, None, lp.cuts, lp.iterations)
+    x = lp.x[: prob.n]
+    best = MaxGuarantee(max(float(lp.objective), 0.0), max(_deliverable_value(prob, x), 0.0), x,
+                        lp.cuts, lp.iterations)
+    if integer:
+        _set_integer(model)
+        mip = solve_mip(model, solver, gap, time_limit)
+        if mip.ok:
+            xi = np.rint(mip.x[: prob.n])
+            best = replace(best, at_plan=max(_deliverable_value(prob, xi), 0.0), x=xi, integer=True)
+    return best
+
+
+def with_rules(prob: AllocationProblem, **changes) -> AllocationProblem:
+    """Copy of `prob` with some rules changed (the units and model are shared)."""
+    return replace(prob, rules=replace(prob.rules, **changes))
+
+
+def with_guarantee(prob: AllocationProblem, guarantee: float) -> AllocationProblem:
+    return replace(prob, guarantee=float(guarantee))
+
+
+def cpm_needed(cost: float, guarantee: float, target_margin: float) -> float:
+    """Price CPM (currency per thousand impressions) giving `target_margin` (fraction of revenue).
+
+    margin = (revenue - cost) / revenue with revenue = guarantee x CPM / 1000, so
+    CPM = 1000 cost / (guarantee (1 - margin)). CPM definition: common practice.
+    """
+    return 1000.0 * cost / (guarantee * (1.0 - target_margin))
+
+
+# ---------------------------------------------------------------------------------------------
+# Explaining a plan: what binds, and what limits an undeliverable deal
+# ---------------------------------------------------------------------------------------------
+def _pct(v: float) -> str:
+    return f"{100 * v:.0f}%" if abs(100 * v - round(100 * v)) < 0.05 else f"{100 * v:.1f}%"
+
+
+def exhausted_avails(prob: AllocationProblem, x: np.ndarray | None) -> list[str]:
+    """Weeks in which every spot left to buy of a network is used by plan x, in words.
+
+    A network-week counts when it had spots to buy for this deal and the plan uses them all.
+    """
+    scope = prob.scope if prob.scope is not None else prob.units
+    left = scope[["network", "week", "ub"]].copy()
+    bought = pd.DataFrame({"network": prob.units["network"], "week": prob.units["week"],
+                           "x": np.zeros(prob.n) if x is None else np.asarray(x, float)})
+    nw = left.groupby(["week", "network"], observed=True)["ub"].sum().rename("ub").to_frame()
+    nw["x"] = bought.groupby(["week", "network"], observed=True)["x"].sum()
+    nw["x"] = nw["x"].fillna(0.0)
+    nw = nw[nw["ub"] > 0]
+    if nw.empty:
+        return []
+    nw["done"] = nw["x"] >= nw["ub"] - 1e-6
+    per_week = nw.groupby(level="week")["done"].agg(["sum", "size"])
+    per_week = per_week[per_week["sum"] > 0]
+    return [f"avails in week {int(w)} exhausted on {int(r['sum'])} of {int(r['size'])} networks"
+            for w, r in per_week.iterrows()]
+
+
+def binding_constraints(prob: AllocationProblem, alloc: Allocation, *, dual_tol: float = 1e-7) -> list[str]:
+    """The rules that bind at the optimum, in seller words (from the LP duals and the plan)."""
+    out: list[str] = []
+    r = prob.rules
+    if alloc.row_duals is None:
+        return out
+    duals, labels = alloc.row_duals, alloc.row_labels
+    scale_d = max(float(np.max(np.abs(duals))) if duals.size else 0.0, 1e-12)
+    x = alloc.x if alloc.x is not None else alloc.lp_x
+    dm = prob.model
+    T = dm.mean(x)
+    risk_binds = False
+    for k, (kind, key) in enumerate(labels):
+        if k >= duals.size or abs(duals[k]) <= dual_tol * scale_d:
+            continue
+        if kind == "network":
+            share = dm.mean(x * (prob.units["network"] == key).to_numpy()) / T if T > 0 else 0.0
+            out.append(f"network {key} share: at the {_pct(r.max_network_share)} cap (plan {_pct(share)})")
+        elif kind in ("daypart_min", "daypart_max"):
+            share = dm.mean(x * (prob.units["daypart"] == key).to_numpy()) / T if T > 0 else 0.0
+            lim = (r.daypart_min_share if kind == "daypart_min" else r.daypart_max_share)[key]
+            word = "minimum" if kind == "daypart_min" else "maximum"
+            out.append(f"{key} share: held at the {_pct(lim)} {word} (plan {_pct(share)})")
+        elif kind in ("pacing_max", "pacing_min"):
+            sign = "+" if kind == "pacing_max" else "-"
+            out.append(f"week {key} pacing: at the {sign}{_pct(r.weekly_tolerance)} limit of even pacing")
+        elif kind in ("pad", "risk_base", "cut"):
+            risk_binds = True
+    if len(duals) > len(labels) and np.any(np.abs(duals[len(labels):]) > dual_tol * scale_d):
+        risk_binds = True
+    if risk_binds:
+        if r.pad is not None:
+            out.append(f"pad: expected delivery held at {_pct(1 + r.pad)} of the guarantee "
+                       f"({T:,.0f} for {prob.guarantee:,.0f})")
+        else:
+            out.append(f"confidence: a {_pct(r.confidence)} chance of delivery needs {T:,.0f} expected "
+                       f"impressions for {prob.guarantee:,.0f} guaranteed (sd {dm.sd(x):,.0f})")
+    capped = prob.units["capped"].to_numpy(bool) if "capped" in prob.units else np.zeros(prob.n, bool)
+    at_cap = int(np.sum(capped & (np.asarray(x) >= prob.ub - 1e-6)))
+    if at_cap:
+        out.append(f"max spots per unit: {at_cap} units bought up to the cap")
+    out.extend(exhausted_avails(prob, x))
+    return out
+
+
+def _feasible_at(prob: AllocationProblem) -> bool:
+    return max_guarantee(prob).value >= prob.guarantee * (1 - 1e-6)
+
+
+def _bisect(lo: float, hi: float, ok_at, steps: int = 7) -> float:
+    """The feasible end of [lo, hi] closest to the infeasible end (lo feasible, hi not)."""
+    for _ in range(steps):
+        mid = 0.5 * (lo + hi)
+        if ok_at(mid):
+            lo = mid
+        else:
+            hi = mid
+    return lo
+
+
+def diagnose(prob: AllocationProblem, steps: int = 7) -> list[str]:
+    """Why a guarantee cannot be met: each rule family relaxed in turn, in seller words.
+
+    For each rule that alone blocks the guarantee, the loosest setting of it that would make the
+    guarantee deliverable with every other rule kept (found by bisection on max-guarantee LPs).
+    """
+    r = prob.rules
+    out: list[str] = []
+    G = prob.guarantee
+
+    def ok(**changes) -> bool:
+        return _feasible_at(with_rules(prob, **changes))
+
+    if r.max_network_share is not None and ok(max_network_share=None):
+        v = 1.0 - _bisect(0.0, 1.0 - r.max_network_share, lambda t: ok(max_network_share=1.0 - t), steps)
+        out.append(f"network share: capped at {_pct(r.max_network_share)}, needs {_pct(v)}")
+    for d, s in r.daypart_min_share.items():
+        if s and ok(daypart_min_share={**r.daypart_min_share, d: 0.0}):
+            v = _bisect(0.0, s, lambda t: ok(daypart_min_share={**r.daypart_min_share, d: t}), steps)
+            out.append(f"{d} share: needs {_pct(s)}, can reach {_pct(v)}")
+    for d, s in r.daypart_max_share.items():
+        if s < 1 and ok(daypart_max_share={k: v for k, v in r.daypart_max_share.items() if k != d}):
+            v = 1.0 - _bisect(0.0, 1.0 - s, lambda t: ok(daypart_max_share={**r.daypart_max_share, d: 1.0 - t}), steps)
+            out.append(f"{d} share: capped at {_pct(s)}, needs {_pct(v)}")
+    if r.weekly_tolerance is not None and ok(weekly_tolerance=None):
+        hi = max(1.0, r.weekly_tolerance)
+        while not ok(weekly_tolerance=hi) and hi < 64:
+            hi *= 2
+        v = hi - _bisect(0.0, hi - r.weekly_tolerance, lambda t: ok(weekly_tolerance=hi - t), steps)
+        out.append(f"weekly pacing: within +-{_pct(r.weekly_tolerance)} of even pacing, needs +-{_pct(v)}")
+    if r.confidence is not None and ok(confidence=0.5 + 1e-9):
+        v = _bisect(0.5 + 1e-9, r.confidence, lambda t: ok(confidence=t), steps)
+        out.append(f"confidence: needs {_pct(r.confidence)}, can reach {_pct(v)} at this guarantee")
+    if r.pad is not None and r.pad > 0 and ok(pad=0.0):
+        v = _bisect(0.0, r.pad, lambda t: ok(pad=t), steps)
+        out.append(f"pad: needs {_pct(r.pad)}, can reach {_pct(v)} at this guarantee")
+    if not out:
+        loose = Rules(confidence=0.5 + 1e-9) if r.confidence is not None else Rules(pad=0.0)
+        mg = max_guarantee(replace(prob, rules=loose))
+        if mg.value < G * (1 - 1e-6):
+            out.append(f"avails: even with no mix rules and no risk margin the spots left deliver at most "
+                       f"{mg.value:,.0f} expected impressions, short of {G:,.0f}")
+            out.extend(exhausted_avails(prob, mg.x))
+        else:
+            out.append("no single rule blocks it: several rules together limit the plan")
+    return out

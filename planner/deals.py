@@ -1,0 +1,443 @@
+"""Sales-desk check and buyer plan of one deal: orchestration over the allocator.
+
+`check_deal` answers "is it deliverable, at what cost, margin and chance, how big could it be,
+what CPM to ask"; `plan_deal` gives the whole-spot buy plan with its weekly pacing. Both fit the
+forecast first when it is missing or stale (`planner.forecast_job.ensure_forecast`) and say so.
+"""
+from __future__ import annotations
+
+import inspect
+import math
+from dataclasses import dataclass, field
+from typing import Any, Callable
+
+import numpy as np
+import pandas as pd
+
+from planner import allocate as al
+from planner.delivery import UNIT_KEY
+from planner.errors import InputError
+
+CAUTIONS = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
+            "under-delivery; check the plan against posted actuals as the flight airs and have the "
+            "people accountable for the money review it before committing.")
+FRONTIER_SIZES = (0.5, 0.75, 0.9, 1.0, 1.1, 1.25, 1.5)
+Z10 = 1.2815515655446004  # standard normal 90% quantile (p10/p90 band)
+
+
+@dataclass
+class DealRun:
+    """Internals shared by check and plan: the problem, its allocation, the forecast status."""
+
+    scenario: Any
+    deal: Any
+    problem: al.AllocationProblem
+    allocation: al.Allocation
+    fitted_now: bool
+    held_spots: int
+
+
+@dataclass
+class PlanResult:
+    """Whole-spot buy plan of one deal.
+
+    spots: DataFrame zone, network, daypart, week, spots, rate, cost (currency),
+    expected_impressions, preempt_rate, sd_impressions (and `sd`, the same) per bought unit;
+    pacing: DataFrame week, expected_impressions, sd, p10, p90, even_pacing (impressions);
+    totals: dict of plan totals. `deliverable` False means no plan meets the deal's rules.
+    """
+
+    deal: str
+    deliverable: bool
+    verdict: str
+    reason: str
+    currency: str
+    guarantee: float
+    risk_rule: str
+    confidence: float | None
+    pad: float | None
+    default_confidence_used: bool
+    spots: pd.DataFrame
+    pacing: pd.DataFrame
+    totals: dict
+    cost: float | None
+    revenue: float
+    margin: float | None
+    margin_pct: float | None
+    expected_impressions: float | None
+    sd: float | None
+    probability: float | None
+    probability_if_independent: float | None
+    solver: str
+    gap: float | None
+    lp_bound: float | None
+    mip_bound: float | None
+    cuts: int
+    iterations: int
+    build_seconds: float
+    solve_seconds: float
+    fitted_forecast_first: bool
+    held_spots_excluded: int
+    binding: list = field(default_factory=list)
+    cautions: list = field(default_factory=list)
+
+
+@dataclass
+class CheckResult:
+    """Sales-desk answer for one deal (money in the scenario's currency, impressions in the demo)."""
+
+    deal: str
+    advertiser: str
+    demo: str
+    deliverable: bool
+    verdict: str
+    currency: str
+    guarantee: float
+    first_week: int
+    last_week: int
+    price_cpm: float
+    risk_rule: str
+    confidence: float | None
+    pad: float | None
+    default_confidence_used: bool
+    expected_impressions: float | None
+    sd_impressions: float | None
+    probability_of_delivery: float | None
+    probability_if_independent: float | None
+    cost: float | None
+    revenue: float
+    margin: float | None
+    margin_pct: float | None
+    cost_cpm: float | None
+    target_margin: float | None
+    cpm_needed: float | None
+    max_guarantee: float
+    max_guarantee_lp: float
+    binding: list
+    spots: int
+    units_bought: int
+    solver: str
+    gap: float | None
+    lp_bound: float | None
+    mip_bound: float | None
+    cuts: int
+    iterations: int
+    build_seconds: float
+    solve_seconds: float
+    fitted_forecast_first: bool
+    held_spots_excluded: int
+    frontier: list | None = None
+    cautions: list = field(default_factory=list)
+
+    def to_json(self) -> dict:
+        """Plain dict for `--json` (the documented keys first)."""
+        from dataclasses import asdict
+
+        return asdict(self)
+
+
+# ---------------------------------------------------------------------------------------------
+def validate_deal(deal, scenario) -> None:
+    """Boundary checks of a deal's numbers (the loader checks files; this guards API callers)."""
+    where = f"deal {deal.name!r}"
+    if not (deal.impressions > 0):
+        raise InputError(f"{where}: impressions (the guarantee) must be positive, got {deal.impressions!r}")
+    if deal.confidence is not None and deal.pad is not None:
+        raise InputError(f"{where}: give either confidence or pad, not both")
+    if deal.confidence is None and deal.pad is None:
+        raise InputError(f"{where}: neither confidence nor pad is set")
+    if deal.confidence is not None and not 0.5 < deal.confidence < 0.999:
+        raise InputError(f"{where}: confidence must be in (0.5, 0.999), got {deal.confidence!r}")
+    if deal.pad is not None and deal.pad < 0:
+        raise InputError(f"{where}: pad must be >= 0, got {deal.pad!r}")
+    if not 1 <= deal.first_week <= deal.last_week <= scenario.weeks:
+        raise InputError(f"{where}: weeks {deal.first_week}..{deal.last_week} are outside the inventory's "
+                         f"plan weeks 1..{scenario.weeks}")
+    mix = deal.mix
+    shares = [("max_network_share", mix.max_network_share)]
+    shares += [(f"daypart_min_share.{k}", v) for k, v in mix.daypart_min_share.items()]
+    shares += [(f"daypart_max_share.{k}", v) for k, v in mix.daypart_max_share.items()]
+    for k, v in shares:
+        if v is not None and not 0 <= v <= 1:
+            raise InputError(f"{where}: [mix] {k} must be a share in [0, 1], got {v!r}")
+    if sum(mix.daypart_min_share.values()) > 1 + 1e-9:
+        raise InputError(f"{where}: [mix] daypart_min_share shares sum past 1")
+    if mix.weekly_tolerance is not None and mix.weekly_tolerance < 0:
+        raise InputError(f"{where}: [mix] weekly_tolerance must be >= 0")
+
+
+def _get_deal(scenario, deal_name: str):
+    if deal_name not in scenario.deals:
+        known = ", ".join(sorted(scenario.deals)) or "none"
+        raise InputError(f"{scenario.path}: unknown deal {deal_name!r} (deals/*.toml has: {known})")
+    deal = scenario.deals[deal_name]
+    validate_deal(deal, scenario)
+    return deal
+
+
+def _forecast_table(scenario, forecast, progress):
+    if forecast is not None:
+        return forecast, False
+    from planner.forecast_job import ensure_forecast
+
+    kwargs = {}
+    try:
+        if progress is not None and "progress" in inspect.signature(ensure_forecast).parameters:
+            kwargs["progress"] = progress
+    except (TypeError, ValueError):
+        pass
+    res = ensure_forecast(scenario, **kwargs)
+    return res.table, bool(getattr(res, "fitted_now", False))
+
+
+def _held(scenario, held, book):
+    if held is not None:
+        return held
+    try:
+        from planner.book import held_spots
+    except ImportError:  # the book module is optional for check/plan
+        return None
+    return held_spots(scenario, book)
+
+
+def deal_units(scenario, forecast: pd.DataFrame, deal) -> pd.DataFrame:
+    """Forecast rows of the deal's demo joined with the inventory (avails, rate, preempt_rate)."""
+    fc = forecast[forecast["demo"] == deal.demo]
+    if fc.empty:
+        demos = ", ".join(sorted(map(str, forecast["demo"].unique())))
+        raise InputError(f"deal {deal.name!r}: demo {deal.demo!r} has no forecast rows (forecast demos: {demos})")
+    inv = scenario.inventory
+    fc = fc.drop(columns=[c for c in ("avails", "rate", "preempt_rate") if c in fc.columns])
+    fc = fc.astype({"week": "int64"})
+    inv = inv.astype({"week": "int64"})
+    units = inv.merge(fc, on=UNIT_KEY, how="inner")
+    have = set(units["week"].unique())
+    missing = [w for w in deal.weeks if w not in have]
+    if len(missing) == len(deal.weeks):
+        raise InputError(f"deal {deal.name!r}: weeks {deal.first_week}..{deal.last_week} have no inventory "
+                         f"with a forecast")
+    return units
+
+
+def rules_of(deal) -> al.Rules:
+    mix = deal.mix
+    return al.Rules(max_network_share=mix.max_network_share, daypart_min_share=dict(mix.daypart_min_share),
+                    daypart_max_share=dict(mix.daypart_max_share), weekly_tolerance=mix.weekly_tolerance,
+                    confidence=deal.confidence if deal.pad is None else None, pad=deal.pad)
+
+
+def _check_solver(solver: str) -> None:
+    if solver not in al.SOLVERS:
+        raise InputError(f"--solver {solver!r}: choose one of {', '.join(al.SOLVERS)}")
+
+
+def run_deal(scenario, deal_name: str, *, solver: str = "cbc", held=None, book=None, forecast=None,
+             gap: float = al.DEFAULT_GAP, time_limit: float = al.DEFAULT_TIME_LIMIT,
+             progress: Callable | None = None, guarantee: float | None = None) -> DealRun:
+    """Build the deal's allocation problem and solve it (whole spots)."""
+    _check_solver(solver)
+    deal = _get_deal(scenario, deal_name)
+    table, fitted = _forecast_table(scenario, forecast, progress)
+    units = deal_units(scenario, table, deal)
+    held_df = _held(scenario, held, book)
+    mix = deal.mix
+    scope = al.candidate_units(units, weeks=deal.weeks, exclude_networks=mix.exclude_networks,
+                               exclude_zones=mix.exclude_zones, max_spots_per_unit=mix.max_spots_per_unit,
+                               held=held_df)
+    prob = al.make_problem(scope, deal.impressions if guarantee is None else guarantee, rules_of(deal), deal.weeks)
+    alloc = al.allocate(prob, solver=solver, gap=gap, time_limit=time_limit)
+    n_held = int(held_df["spots"].sum()) if held_df is not None and len(held_df) else 0
+    return DealRun(scenario, deal, prob, alloc, fitted, n_held)
+
+
+def _risk_text(deal) -> str:
+    if deal.pad is not None:
+        return f"pad {100 * deal.pad:.0f}%"
+    s = f"confidence {100 * deal.confidence:.1f}%"
+    return s + (" (default: the deal sets neither confidence nor pad)" if deal.risk_default_used else "")
+
+
+def _cautions(run: DealRun) -> list[str]:
+    out = [CAUTIONS]
+    if run.deal.risk_default_used:
+        out.append(f"The deal sets neither confidence nor pad: the default confidence "
+                   f"{100 * run.deal.confidence:.0f}% was used.")
+    if run.fitted_now:
+        out.append("The forecast was missing or stale and was fitted first.")
+    return out
+
+
+def _spots_frame(run: DealRun) -> pd.DataFrame:
+    prob, x = run.problem, run.allocation.x
+    cols = UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "preempt_rate", "sd_impressions", "sd"]
+    if x is None:
+        return pd.DataFrame({c: pd.Series([], dtype=float) for c in cols})
+    dm = prob.model
+    u = prob.units
+    sel = x > 0
+    xs = x[sel]
+    sd_line = np.sqrt(xs ** 2 * (dm.a_net[sel] ** 2 + dm.a_flight[sel] ** 2 + dm.a_week[sel] ** 2) + xs * dm.v_lin[sel])
+    out = u.loc[sel, UNIT_KEY].reset_index(drop=True)
+    out["spots"] = xs.astype("int64")
+    out["rate"] = u.loc[sel, "rate"].to_numpy(float)
+    out["cost"] = out["spots"] * out["rate"]
+    out["expected_impressions"] = xs * dm.m[sel]
+    out["preempt_rate"] = dm.p[sel]
+    out["sd_impressions"] = sd_line
+    out["sd"] = sd_line
+    return out.sort_values(UNIT_KEY).reset_index(drop=True)
+
+
+def pacing_table(run: DealRun) -> pd.DataFrame:
+    """Per flight week: expected impressions, sd, p10/p90 (normal band) and even pacing."""
+    prob, x = run.problem, run.allocation.x
+    weeks = list(prob.weeks)
+    if x is None:
+        return pd.DataFrame({"week": weeks, "expected_impressions": np.nan, "sd": np.nan, "p10": np.nan,
+                             "p90": np.nan, "even_pacing": np.nan})
+    dm = prob.model
+    wk = prob.units["week"].to_numpy()
+    exp, sds = [], []
+    for w in weeks:  # one pass per flight week (a dozen or so), each vectorised
+        xw = np.where(wk == w, x, 0.0)
+        exp.append(dm.mean(xw))
+        sds.append(dm.sd(xw))
+    exp, sds = np.array(exp), np.array(sds)
+    even = dm.mean(x) / len(weeks)
+    return pd.DataFrame({"week": weeks, "expected_impressions": exp, "sd": sds, "p10": exp - Z10 * sds,
+                         "p90": exp + Z10 * sds, "even_pacing": even})
+
+
+def _summary(run: DealRun) -> dict:
+    prob, a, deal = run.problem, run.allocation, run.deal
+    revenue = deal.impressions / 1000.0 * deal.price_cpm
+    if not a.feasible:
+        return dict(cost=None, revenue=revenue, margin=None, margin_pct=None, expected_impressions=None,
+                    sd=None, probability=None, probability_if_independent=None, spots=0, units=0)
+    dm, x, G = prob.model, a.x, prob.guarantee
+    mean, sd = dm.mean(x), dm.sd(x)
+    ind_sd = math.sqrt(dm.independent_variance(x))
+    from scipy.special import ndtr
+
+    p_ind = float(ndtr((mean - G) / ind_sd)) if ind_sd > 0 else float(mean >= G)
+    margin = revenue - a.cost
+    return dict(cost=a.cost, revenue=revenue, margin=margin, margin_pct=margin / revenue if revenue > 0 else None,
+                expected_impressions=mean, sd=sd, probability=dm.probability(x, G),
+                probability_if_independent=p_ind, spots=int(x.sum()), units=int((x > 0).sum()))
+
+
+def _verdict(run: DealRun, binding_reason: str = "") -> str:
+    a = run.allocation
+    if a.feasible:
+        return "deliverable"
+    return "not deliverable" + (f": {binding_reason}" if binding_reason else "")
+
+
+def plan_deal(scenario, deal_name: str, *, solver: str = "cbc", held=None, book=None, forecast=None,
+              gap: float = al.DEFAULT_GAP, time_limit: float = al.DEFAULT_TIME_LIMIT,
+              progress: Callable | None = None, explain: bool = True) -> PlanResult:
+    """Whole-spot buy plan of one deal at least cost (see `planner.allocate`).
+
+    held: spots held by committed deals (DataFrame zone,network,daypart,week,spots); when None the
+    scenario's book is read (`planner.book.held_spots`). Money in the scenario's currency.
+    """
+    run = run_deal(scenario, deal_name, solver=solver, held=held, book=book, forecast=forecast, gap=gap,
+                   time_limit=time_limit, progress=progress)
+    return plan_result(run, explain=explain)
+
+
+def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
+    deal, a, prob = run.deal, run.allocation, run.problem
+    s = _summary(run)
+    if a.feasible:
+        binding = al.binding_constraints(prob, a) if explain else []
+        reason = ""
+    else:
+        binding = al.diagnose(prob) if explain else []
+        reason = "no plan meets the guarantee under the deal's rules and risk margin"
+        if binding:
+            reason += " (" + "; ".join(binding[:3]) + ")"
+    spots = _spots_frame(run)
+    totals = {"spots": s["spots"], "units": s["units"], "cost": s["cost"], "expected_impressions": s["expected_impressions"],
+              "sd_impressions": s["sd"], "guarantee": deal.impressions, "probability_of_delivery": s["probability"],
+              "revenue": s["revenue"], "margin": s["margin"], "margin_pct": s["margin_pct"]}
+    return PlanResult(
+        deal=deal.name, deliverable=a.feasible, verdict=_verdict(run), reason=reason, currency=run.scenario.currency,
+        guarantee=deal.impressions, risk_rule=prob.rules.risk_rule, confidence=prob.rules.confidence,
+        pad=prob.rules.pad, default_confidence_used=bool(deal.risk_default_used), spots=spots,
+        pacing=pacing_table(run), totals=totals, cost=s["cost"], revenue=s["revenue"], margin=s["margin"],
+        margin_pct=s["margin_pct"], expected_impressions=s["expected_impressions"], sd=s["sd"],
+        probability=s["probability"], probability_if_independent=s["probability_if_independent"],
+        solver=a.solver, gap=a.gap, lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts,
+        iterations=a.iterations, build_seconds=a.build_seconds, solve_seconds=a.solve_seconds,
+        fitted_forecast_first=run.fitted_now, held_spots_excluded=run.held_spots, binding=binding,
+        cautions=_cautions(run))
+
+
+def frontier(prob: al.AllocationProblem, sizes, *, solver: str = "cbc", gap: float = al.DEFAULT_GAP,
+             time_limit: float = al.DEFAULT_TIME_LIMIT, max_g: float | None = None) -> list[dict]:
+    """Cost and probability of delivery of the min-cost plan at each guarantee size (impressions)."""
+    rows = []
+    for g in sorted(set(float(v) for v in sizes if v > 0)):
+        if max_g is not None and g > max_g * (1 + 1e-9):
+            rows.append(dict(guarantee=g, deliverable=False, cost=None, cost_cpm=None, expected_impressions=None,
+                             probability_of_delivery=None))
+            continue
+        a = al.allocate(al.with_guarantee(prob, g), solver=solver, gap=gap, time_limit=time_limit)
+        if not a.feasible:
+            rows.append(dict(guarantee=g, deliverable=False, cost=None, cost_cpm=None, expected_impressions=None,
+                             probability_of_delivery=None))
+            continue
+        dm = prob.model
+        rows.append(dict(guarantee=g, deliverable=True, cost=a.cost, cost_cpm=1000 * a.cost / g,
+                         expected_impressions=dm.mean(a.x), probability_of_delivery=dm.probability(a.x, g)))
+    return rows
+
+
+def check_deal(scenario, deal_name: str, *, solver: str = "cbc", target_margin: float | None = None,
+               frontier: bool = False, held=None, book=None, forecast=None, gap: float = al.DEFAULT_GAP,
+               time_limit: float = al.DEFAULT_TIME_LIMIT, progress: Callable | None = None) -> CheckResult:
+    """Sales-desk check of one deal: verdict, cost, revenue, margin, chance of delivery, max guarantee,
+    CPM needed for `target_margin` (a fraction of revenue, 0 <= m < 1), binding rules, optional frontier.
+
+    Money in the scenario's currency, impressions in the deal's demo.
+    """
+    if target_margin is not None and not (0 <= target_margin < 1):
+        raise InputError(f"--target-margin {target_margin!r}: a margin is a fraction of revenue in [0, 1)")
+    run = run_deal(scenario, deal_name, solver=solver, held=held, book=book, forecast=forecast, gap=gap,
+                   time_limit=time_limit, progress=progress)
+    return check_result(run, target_margin=target_margin, with_frontier=frontier, gap=gap, time_limit=time_limit)
+
+
+def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=al.DEFAULT_GAP,
+                 time_limit=al.DEFAULT_TIME_LIMIT) -> CheckResult:
+    deal, a, prob = run.deal, run.allocation, run.problem
+    s = _summary(run)
+    mg = al.max_guarantee(prob, integer=True, solver=a.solver, gap=gap, time_limit=time_limit)
+    max_g = mg.at_plan if mg.integer else mg.value
+    if a.feasible:
+        binding = al.binding_constraints(prob, a)
+        max_g = max(max_g, deal.impressions)  # the plan found is itself a witness
+    else:
+        binding = [f"largest deliverable guarantee at these rules: {max_g:,.0f} impressions "
+                   f"({100 * max_g / deal.impressions:.0f}% of the {deal.impressions:,.0f} asked)"]
+        binding += al.diagnose(prob)
+    cpm = al.cpm_needed(a.cost, deal.impressions, target_margin) if (a.feasible and target_margin is not None) else None
+    fr = None
+    if with_frontier:
+        sizes = [deal.impressions * f for f in FRONTIER_SIZES] + ([max_g] if max_g > 0 else [])
+        fr = frontier(prob, sizes, solver=a.solver, gap=gap, time_limit=time_limit, max_g=mg.value)
+    return CheckResult(
+        deal=deal.name, advertiser=deal.advertiser, demo=deal.demo, deliverable=a.feasible, verdict=_verdict(run),
+        currency=run.scenario.currency, guarantee=deal.impressions, first_week=deal.first_week,
+        last_week=deal.last_week, price_cpm=deal.price_cpm, risk_rule=prob.rules.risk_rule,
+        confidence=prob.rules.confidence, pad=prob.rules.pad, default_confidence_used=bool(deal.risk_default_used),
+        expected_impressions=s["expected_impressions"], sd_impressions=s["sd"],
+        probability_of_delivery=s["probability"], probability_if_independent=s["probability_if_independent"],
+        cost=s["cost"], revenue=s["revenue"], margin=s["margin"], margin_pct=s["margin_pct"],
+        cost_cpm=1000 * s["cost"] / deal.impressions if s["cost"] is not None else None,
+        target_margin=target_margin, cpm_needed=cpm, max_guarantee=max_g, max_guarantee_lp=mg.value,
+        binding=binding, spots=s["spots"], units_bought=s["units"], solver=a.solver, gap=a.gap,
+        lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts, iterations=a.iterations,
+        build_seconds=a.build_seconds, solve_seconds=a.solve_seconds, fitted_forecast_first=run.fitted_now,
+        held_spots_excluded=run.held_spots, frontier=fr, cautions=_cautions(run))
