@@ -294,16 +294,18 @@ def _verdict_panel(d: DealSection, currency: str) -> str:
         _tile(name, "max_guarantee", "largest deliverable guarantee", v.get("max_guarantee"),
               fmt_count(v.get("max_guarantee")) + " imp."),
     ]
-    if _num(v.get("required_cpm")) is not None:
-        tiles.append(_tile(name, "required_cpm", "CPM for target margin", v.get("required_cpm"),
-                           f"{currency} {float(v['required_cpm']):,.2f}"))
+    if _num(v.get("cost_cpm")) is not None:
+        tiles.append(_tile(name, "cost_cpm", "cost CPM", v.get("cost_cpm"), f"{currency} {float(v['cost_cpm']):,.2f}"))
+    if _num(v.get("cpm_needed")) is not None:
+        tiles.append(_tile(name, "cpm_needed", f"CPM for {fmt_pct(v.get('target_margin'), 0)} margin",
+                           v.get("cpm_needed"), f"{currency} {float(v['cpm_needed']):,.2f}"))
     items = _binding_items(v.get("binding"))
     binding = ('<div class="binding"><b>What binds:</b><ul>' +
                "".join(f'<li data-deal="{_esc(name)}" data-field="binding">{_esc(t)}</li>' for t in items) +
                "</ul></div>") if items else \
         '<div class="binding"><b>What binds:</b> nothing at this guarantee.</div>'
     notes = []
-    if v.get("risk_default_used"):
+    if v.get("risk_default_used") or v.get("default_confidence_used"):
         notes.append("No risk margin in the deal file: the default required chance was used.")
     if d.probability_of_shortfall is not None:
         notes.append(f"Stress test of the book: shortfall chance {fmt_pct(d.probability_of_shortfall)}, "
@@ -550,3 +552,111 @@ def attach_stress(section: DealSection, stress: Any) -> None:
         section.probability_of_shortfall = ds.probability_of_shortfall
         section.expected_shortfall = ds.expected_shortfall
         section.expected_liability = ds.expected_liability
+
+
+def check_payload(result: Any) -> dict:
+    """The JSON object of a check result, exactly as `pledge check --json` prints its numbers."""
+    if isinstance(result, dict):
+        return dict(result)
+    for attr in ("to_json", "as_dict", "to_dict"):
+        if hasattr(result, attr):
+            return dict(getattr(result, attr)())
+    from dataclasses import asdict
+
+    return asdict(result)
+
+
+def frontier_frame(rows: Any) -> pd.DataFrame | None:
+    """Frontier rows (dicts with guarantee, cost, probability_of_delivery) as a DataFrame
+    ``guarantee, cost, probability`` (impressions, currency, 0..1; NaN where not deliverable)."""
+    if rows is None:
+        return None
+    f = pd.DataFrame(rows) if not isinstance(rows, pd.DataFrame) else rows.copy()
+    if f.empty or "guarantee" not in f:
+        return None
+    if "probability" not in f and "probability_of_delivery" in f:
+        f["probability"] = f["probability_of_delivery"]
+    out = pd.DataFrame({c: pd.to_numeric(f.get(c), errors="coerce").astype(float)
+                        for c in ("guarantee", "cost", "probability")})
+    return out
+
+
+def _section(scenario: Any, name: str, check: Any, plan: Any, in_book: bool) -> DealSection:
+    deal = scenario.deals[name]
+    verdict = check_payload(check)
+    spots = pacing = None
+    if plan is not None and getattr(plan, "deliverable", True):
+        spots = plan.spots
+        pacing = plan.pacing
+    return DealSection(
+        name=name, verdict=verdict, advertiser=getattr(deal, "advertiser", None), demo=deal.demo,
+        weeks=(int(deal.first_week), int(deal.last_week)), price_cpm=float(deal.price_cpm), in_book=in_book,
+        frontier=frontier_frame(verdict.get("frontier")), pacing=pacing, spots=spots)
+
+
+def evaluate_deal(scenario: Any, name: str, *, forecast: pd.DataFrame, held: pd.DataFrame | None,
+                  solver: str = "cbc") -> tuple[Any, Any]:
+    """Check (with frontier) and buy plan of one deal from a single solve: (CheckResult, PlanResult).
+
+    The same computation as `check_deal(..., frontier=True)` and `plan_deal(...)` with the same
+    `held` spots; the plan is None when the deal is not deliverable.
+    """
+    from planner.deals import check_result, plan_result, run_deal
+
+    run = run_deal(scenario, name, solver=solver, held=held, forecast=forecast)
+    check = check_result(run, with_frontier=True)
+    plan = plan_result(run) if run.allocation.feasible else None
+    return check, plan
+
+
+def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str | Path | None = None,
+                 forecast: pd.DataFrame | None = None, stress: Any = None,
+                 runs: dict[str, tuple[Any, Any]] | None = None, draws: int = 20_000, seed: int = 0,
+                 solver: str = "cbc", n_units: int = 3, stage: Any = None) -> ReportData:
+    """Gather everything the report shows for `deals` (default: every deal of the scenario).
+
+    Each deal is checked (with its frontier) and planned against the avails not held by the
+    book; a deal already in the book is checked against the other deals' holds (its own set
+    aside). `runs` supplies (CheckResult, PlanResult) pairs already computed (the demo passes the
+    ones it committed). The book, when it holds deals, is stress-tested with `draws` and `seed`
+    unless `stress` (a `planner.stress.StressResult` with draws kept) is given.
+    """
+    from planner.book import held_spots, list_deals
+
+    say = stage or (lambda text: None)
+    if forecast is None:
+        from planner.forecast_job import ensure_forecast
+
+        say("forecast")
+        forecast = ensure_forecast(scenario).table
+    names = list(deals) if deals else list(scenario.deals)
+    booked = [d.name for d in list_deals(scenario, book)]
+    runs = dict(runs or {})
+    sections = []
+    for name in names:
+        if name not in runs:
+            say(f"checking {name}")
+            held = held_spots(scenario, book, exclude=[name] if name in booked else [])
+            runs[name] = evaluate_deal(scenario, name, forecast=forecast, held=held, solver=solver)
+        check, plan = runs[name]
+        sections.append(_section(scenario, name, check, plan, name in booked))
+    book_part = None
+    if booked:
+        if stress is None or getattr(stress, "delivery", None) is None:
+            from planner.stress import stress_book
+
+            say(f"stress test of the book ({draws:,} draws)")
+            stress = stress_book(scenario, book, draws=draws, seed=seed, forecast=forecast)
+        book_part = book_section(stress)
+        for s in sections:
+            attach_stress(s, stress)
+    say("forecast bands")
+    plans = {s.name: (s.demo, s.spots) for s in sections if s.spots is not None}
+    bands = forecast_bands(scenario, forecast, top_units(plans, n_units))
+    notes = [f"Every deal is checked against the avails not held by the book; a deal in the book is "
+             f"checked against the other deals' holds (its own set aside). Impressions are per deal demo; "
+             f"money in {scenario.currency}."]
+    return ReportData(
+        scenario_name=scenario.name, scenario_path=str(scenario.path), currency=scenario.currency,
+        deals=sections, book=book_part, forecasts=bands, dayparts=[d.name for d in scenario.dayparts],
+        seed=stress.seed if stress is not None else seed, notes=notes, versions=package_versions())

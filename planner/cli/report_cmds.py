@@ -1,0 +1,130 @@
+"""`pledge report` (one self-contained HTML file) and `pledge demo` (the whole job on the demo)."""
+from __future__ import annotations
+
+from pathlib import Path
+from typing import List, Optional
+
+import typer
+from rich.table import Table
+
+from planner.cli import app
+from planner.cli.common import count, info, money, out_console, print_json, progress
+from planner.errors import InputError
+
+CAUTION = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
+           "under-delivery; review a plan with the people accountable for the money before committing.")
+
+
+def _pct(v) -> str:
+    return "-" if v is None else f"{100 * float(v):.1f}%"
+
+
+def _verdict_table(checks: dict[str, dict], currency: str, committed: set[str] | None = None) -> Table:
+    t = Table(title=f"deals (money in {currency}, impressions in each deal's demo)")
+    cols = ["deal", "verdict", "guarantee (imp.)", f"cost ({currency})", f"margin ({currency})",
+            "chance of delivery", "largest guarantee (imp.)"]
+    if committed is not None:
+        cols.append("book")
+    for c in cols:
+        t.add_column(c, justify="left" if c in ("deal", "verdict", "book") else "right")
+    for name, v in checks.items():
+        row = [name, "deliverable" if v.get("deliverable") else "not deliverable",
+               count(v["guarantee"]) if v.get("guarantee") is not None else "-",
+               count(v["cost"]) if v.get("cost") is not None else "-",
+               count(v["margin"]) if v.get("margin") is not None else "-",
+               _pct(v.get("probability_of_delivery")),
+               count(v["max_guarantee"]) if v.get("max_guarantee") is not None else "-"]
+        if committed is not None:
+            row.append("committed" if name in committed else "not committed")
+        t.add_row(*row)
+    return t
+
+
+@app.command("report")
+def report_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    out: Path = typer.Option(..., "--out", help="HTML file to write (self-contained, opens from disk)."),
+    deal: Optional[List[str]] = typer.Option(None, "--deal", help="Deal to include (repeatable; default: every deal)."),
+    draws: int = typer.Option(20_000, "--draws", help="Monte Carlo draws for the book's stress test."),
+    seed: int = typer.Option(0, "--seed", help="Random seed of the stress test."),
+    solver: str = typer.Option("cbc", "--solver", help="cbc or highs."),
+    book: Optional[Path] = typer.Option(None, "--book", help="Book file (default: SCENARIO/book.sqlite)."),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object on stdout."),
+) -> None:
+    """Write one HTML report: verdicts, frontier, pacing, where the money goes, stress, forecast bands."""
+    from planner.report import build_report, write_report
+    from planner.scenario import load_scenario
+
+    if not scenario.is_dir():
+        raise InputError(f"{scenario}: not a scenario folder")
+    if out.suffix.lower() not in (".html", ".htm"):
+        raise InputError(f"--out {out}: the report is an HTML file; give a name ending in .html")
+    if out.is_dir():
+        raise InputError(f"--out {out}: is a folder; give a file name ending in .html")
+    if draws < 2:
+        raise InputError(f"--draws {draws}: need at least 2 draws")
+    scn = load_scenario(scenario)
+    for name in deal or ():
+        if name not in scn.deals:
+            raise InputError(f"{scenario}: no deal named {name!r} in deals/ (known: {', '.join(sorted(scn.deals))})")
+    with progress("building the report") as advance:
+        data = build_report(scn, deals=deal or None, draws=draws, seed=seed, solver=solver, book=book,
+                            stage=lambda text: info(f"  {text}"))
+        path = write_report(data, out)
+    checks = {d.name: d.verdict for d in data.deals}
+    if as_json:
+        print_json({"report": str(path), "scenario": scn.name, "currency": scn.currency, "seed": seed,
+                    "deals": list(checks.values()),
+                    "book": None if data.book is None else {
+                        "deals": list(data.book.deals), "expected_liability": data.book.expected_liability,
+                        "var95": data.book.var95, "cvar95": data.book.cvar95, "draws": data.book.draws},
+                    "caution": CAUTION})
+        return
+    out_console.print(_verdict_table(checks, scn.currency, {d.name for d in data.deals if d.in_book}))
+    if data.book is not None:
+        b = data.book
+        out_console.print(f"book: {len(b.deals)} deal(s), expected liability {money(b.expected_liability, scn.currency)}, "
+                          f"VaR95 {money(b.var95, scn.currency)}, CVaR95 {money(b.cvar95, scn.currency)} "
+                          f"({count(b.draws)} draws, seed {b.seed})")
+    out_console.print(f"report written to [bold]{path}[/]")
+    out_console.print(CAUTION, style="dim")
+
+
+@app.command("demo")
+def demo_cmd(
+    out: Path = typer.Option(Path("pledge-demo"), "--out", help="Working folder for the demo (created, or reused if it is one)."),
+    draws: int = typer.Option(20_000, "--draws", help="Monte Carlo draws for the book's stress test."),
+    seed: int = typer.Option(0, "--seed", help="Random seed of the stress test."),
+    solver: str = typer.Option("cbc", "--solver", help="cbc or highs."),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object on stdout."),
+) -> None:
+    """The whole job on the invented demo: copy, fit, check, commit, stress, report."""
+    import time
+
+    from planner.demo import run_demo
+
+    if draws < 2:
+        raise InputError(f"--draws {draws}: need at least 2 draws")
+    t0 = time.perf_counter()
+
+    def stage(description: str, total: float | None = None):
+        info(description)
+        return progress(f"  {description.split(' ', 1)[1]}", total=total)
+
+    result = run_demo(out, draws=draws, seed=seed, solver=solver, stage=stage, say=lambda text: info(f"  {text}"))
+    elapsed = time.perf_counter() - t0
+    if as_json:
+        print_json({**result.as_dict(), "elapsed_seconds": round(elapsed, 1), "caution": CAUTION})
+        return
+    cur = result.currency
+    out_console.print(f"[bold]pledge demo[/]: scenario {result.scenario} (invented data) in {result.folder}")
+    out_console.print(_verdict_table(result.checks, cur, set(result.committed)))
+    for name, why in result.not_committed.items():
+        out_console.print(f"  {name}: not committed ({why})")
+    if result.stress:
+        b = result.stress["book"]
+        out_console.print(f"book of {len(result.committed)} deal(s): expected make-good liability "
+                          f"{money(b['expected_liability'], cur)}, VaR95 {money(b['var95'], cur)}, "
+                          f"CVaR95 {money(b['cvar95'], cur)} ({count(result.draws)} draws, seed {result.seed})")
+    out_console.print(f"report: [bold]{result.report}[/]   (done in {elapsed:,.0f} s)")
+    out_console.print(CAUTION, style="dim")

@@ -1,0 +1,218 @@
+"""The whole job on the invented demo scenario, in one call.
+
+`run_demo(out)` copies the demo scenario into a working folder, fits the forecasts (or reuses a
+fit already there), checks every demo deal, commits the deliverable ones to the folder's book,
+stress-tests the book and writes the HTML report. Re-running on the same folder reuses the
+scenario and the fitted forecast, and rebuilds the demo's book from scratch (the demo deals a
+previous run committed are released first), so a re-run gives the same numbers. A folder that
+exists but is not a demo folder is refused.
+"""
+from __future__ import annotations
+
+import contextlib
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, ContextManager
+
+from planner.errors import InputError
+
+DEFAULT_FOLDER = "pledge-demo"
+REPORT_NAME = "report.html"
+SUMMARY_NAME = "demo-summary.json"
+DEFAULT_DRAWS = 20_000
+DEFAULT_SEED = 0
+
+
+@dataclass
+class DemoResult:
+    """What a demo run did. Money in the scenario currency, impressions in each deal's demo."""
+
+    folder: Path
+    report: Path
+    scenario: str
+    currency: str
+    reused_folder: bool
+    reused_forecast: bool
+    checks: dict[str, dict]
+    committed: list[str]
+    not_committed: dict[str, str]
+    released: list[str]
+    stress: dict | None
+    seconds: dict[str, float] = field(default_factory=dict)
+    draws: int = DEFAULT_DRAWS
+    seed: int = DEFAULT_SEED
+
+    def as_dict(self) -> dict:
+        return {
+            "folder": str(self.folder), "report": str(self.report), "scenario": self.scenario,
+            "currency": self.currency, "reused_folder": self.reused_folder,
+            "reused_forecast": self.reused_forecast, "checks": self.checks, "committed": self.committed,
+            "not_committed": self.not_committed, "released_before_rerun": self.released,
+            "stress": self.stress, "draws": self.draws, "seed": self.seed, "seconds": self.seconds,
+        }
+
+
+def _null_stage(description: str, total: float | None = None) -> ContextManager:
+    @contextlib.contextmanager
+    def cm():
+        yield lambda n=1, description=None: None
+
+    return cm()
+
+
+def _demo_name() -> str:
+    import tomllib
+
+    from scenarios.generate import demo_path
+
+    with open(demo_path() / "scenario.toml", "rb") as fh:
+        return str(tomllib.load(fh).get("name", ""))
+
+
+def prepare_folder(out: str | Path) -> tuple[Path, bool]:
+    """Copy the demo into `out` or reuse a demo folder already there. Returns (folder, reused).
+
+    Raises InputError when `out` is a file, or a non-empty folder that is not a demo folder.
+    """
+    import tomllib
+
+    from scenarios.generate import copy_demo
+
+    out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"{out}: exists and is not a folder; choose another --out")
+    if out.is_dir() and any(out.iterdir()):
+        toml = out / "scenario.toml"
+        name = None
+        if toml.is_file():
+            try:
+                with open(toml, "rb") as fh:
+                    name = tomllib.load(fh).get("name")
+            except (OSError, tomllib.TOMLDecodeError):
+                name = None
+        if name != _demo_name():
+            raise InputError(f"{out}: folder exists and is not a pledge demo folder (no demo scenario.toml); "
+                             f"choose another --out or remove it")
+        if not (out / "history.parquet").exists():  # a copy interrupted before its history was made
+            copy_demo(out)
+        return out, True
+    copy_demo(out)
+    return out, False
+
+
+def _reuse_plan(plan: Any, forecast: Any) -> Callable[..., Any]:
+    """A planner for `commit_deal` that hands over the plan already made for these holds the first
+    time and plans afresh if the book asks again (another desk committed in between)."""
+    calls = {"n": 0}
+
+    def planner(scenario, deal_name, *, held, **kwargs):
+        calls["n"] += 1
+        if calls["n"] == 1:
+            return plan
+        from planner.deals import plan_deal
+
+        return plan_deal(scenario, deal_name, held=held, forecast=forecast, **kwargs)
+
+    return planner
+
+
+def _payload(result: Any) -> dict:
+    from planner.report import check_payload
+
+    return check_payload(result)
+
+
+def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, seed: int = DEFAULT_SEED,
+             solver: str = "cbc", stage: Callable[..., ContextManager] | None = None,
+             say: Callable[[str], None] | None = None) -> DemoResult:
+    """Run the whole job on the demo scenario in folder `out`; see the module docstring.
+
+    `stage(description)` is a context manager factory shown around each stage (the CLI passes
+    its progress display); `say(text)` receives one-line notes. Returns a `DemoResult`.
+    """
+    from planner.book import list_deals, release_deal
+    from planner.forecast_job import ensure_forecast
+    from planner.report import build_report, write_report
+    from planner.scenario import load_scenario
+
+    stage = stage or _null_stage
+    say = say or (lambda text: None)
+    seconds: dict[str, float] = {}
+
+    def timed(key: str, description: str, total: float | None = None):
+        @contextlib.contextmanager
+        def cm():
+            t0 = time.perf_counter()
+            with stage(description, total=total) as advance:
+                yield advance
+            seconds[key] = round(time.perf_counter() - t0, 2)
+
+        return cm()
+
+    with timed("copy", "1/5 copying the invented demo scenario"):
+        folder, reused_folder = prepare_folder(out)
+        scn = load_scenario(folder)
+    say(f"{'reusing' if reused_folder else 'created'} demo folder {folder}")
+
+    with timed("forecast", "2/5 fitting the forecasts (reused when already fitted)"):
+        fc = ensure_forecast(scn)
+    reused_forecast = bool(getattr(fc, "reused", getattr(fc, "cached", False)))
+    say(f"forecast {'reused from' if reused_forecast else 'fitted and saved in'} {folder / 'forecast'}")
+
+    released = []
+    for d in list_deals(scn):
+        if d.name in scn.deals:
+            release_deal(scn, d.name)
+            released.append(d.name)
+    if released:
+        say(f"re-run: released {', '.join(released)} from the demo book to start it afresh")
+
+    from planner.book import commit_deal, held_spots
+    from planner.report import evaluate_deal
+
+    checks: dict[str, dict] = {}
+    committed: list[str] = []
+    not_committed: dict[str, str] = {}
+    names = list(scn.deals)
+    runs = {}
+    # The desk's order of work: check a deal against the book as it stands, commit it if it is
+    # deliverable, then the next deal (it sees the spots the earlier ones hold).
+    with timed("check_commit", f"3/5 checking {len(names)} demo deals, committing the deliverable ones",
+               total=len(names)) as advance:
+        for name in names:
+            check, plan = evaluate_deal(scn, name, forecast=fc.table, held=held_spots(scn), solver=solver)
+            runs[name] = (check, plan)
+            checks[name] = _payload(check)
+            if plan is not None and plan.deliverable:
+                r = commit_deal(scn, name, planner=_reuse_plan(plan, fc.table), solver=solver)
+                if r.committed:
+                    committed.append(name)
+                    runs[name] = (check, r.plan)
+                else:
+                    not_committed[name] = r.reason
+            else:
+                not_committed[name] = "not deliverable"
+            advance(1)
+    stress = None
+    if committed:
+        from planner.stress import stress_book
+
+        with timed("stress", f"4/5 stress test of the book ({draws:,} draws)"):
+            stress = stress_book(scn, draws=draws, seed=seed, forecast=fc.table)
+    report = folder / REPORT_NAME
+    with timed("report", "5/5 writing the report"):
+        data = build_report(scn, forecast=fc.table, stress=stress, runs=runs, seed=seed, solver=solver)
+        write_report(data, report)
+    result = DemoResult(folder=folder, report=report, scenario=scn.name, currency=scn.currency,
+                        reused_folder=reused_folder, reused_forecast=reused_forecast, checks=checks,
+                        committed=committed, not_committed=not_committed, released=released,
+                        stress=stress.as_dict() if stress is not None else None, seconds=seconds,
+                        draws=draws, seed=seed)
+    from planner.atomic import write_text_atomic
+    import json
+
+    from planner.cli.common import _plain
+
+    write_text_atomic(folder / SUMMARY_NAME, json.dumps(_plain(result.as_dict()), indent=2) + "\n")
+    return result
