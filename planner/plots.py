@@ -53,13 +53,25 @@ def _short(value: float, _pos=None) -> str:
     if a >= 1e9:
         return f"{value / 1e9:.1f}B"
     if a >= 1e6:
-        return f"{value / 1e6:.1f}M"
+        return f"{value / 1e6:.2f}M" if a < 1e7 else f"{value / 1e6:.1f}M"
     if a >= 1e3:
         return f"{value / 1e3:.0f}k"
     return f"{value:.0f}"
 
 
 SHORT = FuncFormatter(_short)
+
+
+def _share(value: float, _pos=None) -> str:
+    """A share of draws as a percentage with as many decimals as small values need."""
+    if value <= 0:
+        return "0%"
+    pct = 100 * value
+    digits = 0 if pct >= 1 else min(4, int(np.ceil(-np.log10(pct))))
+    return f"{pct:.{digits}f}%"
+
+
+_LABEL_BOX = dict(boxstyle="round,pad=0.2", fc="white", ec="none", alpha=0.85)
 
 
 def _figure(width: float, height: float) -> Figure:
@@ -79,7 +91,8 @@ def _style(ax) -> None:
     ax.set_axisbelow(True)
 
 
-def frontier_svg(frontier: pd.DataFrame, guarantee: float, confidence: float | None, currency: str) -> str:
+def frontier_svg(frontier: pd.DataFrame, guarantee: float, confidence: float | None, currency: str,
+                 max_guarantee: float | None = None) -> str:
     """Cost and probability of delivery against guarantee size.
 
     Parameters
@@ -88,6 +101,7 @@ def frontier_svg(frontier: pd.DataFrame, guarantee: float, confidence: float | N
         deliverable) and ``probability`` (0..1) columns, one row per guarantee size.
     guarantee : the deal's guarantee, impressions (marked with a vertical line).
     confidence : the deal's required chance of delivery (marked on the probability axis).
+    max_guarantee : the largest deliverable guarantee, impressions (marked when given).
     """
     with matplotlib.rc_context(_RC):
         fig = _figure(6.4, 3.2)
@@ -109,12 +123,12 @@ def frontier_svg(frontier: pd.DataFrame, guarantee: float, confidence: float | N
         ax2.set_ylabel("chance of delivery", color=AMBER)
         if confidence is not None:
             ax2.axhline(confidence, color=AMBER, lw=0.8, ls=":")
-        ax.axvline(guarantee, color=INK, lw=1.2, ls="--")
-        ax.annotate("this deal", (guarantee, 1.0), xycoords=("data", "axes fraction"), xytext=(4, -12),
-                    textcoords="offset points", color=INK, fontsize=8.5)
+        ax.axvline(guarantee, color=INK, lw=1.2, ls="--", label="this deal's guarantee")
+        if max_guarantee is not None and max_guarantee > 0:
+            ax.axvline(max_guarantee, color=BRICK, lw=1.2, ls=":", label="largest deliverable")
         h1, l1 = ax.get_legend_handles_labels()
         h2, l2 = ax2.get_legend_handles_labels()
-        ax.legend(h1 + h2, l1 + l2, loc="upper left")
+        fig.legend(h1 + h2, l1 + l2, loc="outside lower center", ncols=4)
         ax.set_title("Cost and chance of delivery by guarantee size", loc="left")
         return _svg(fig)
 
@@ -222,7 +236,7 @@ def delivery_svg(draws: np.ndarray, guarantee: float, probability_of_shortfall: 
         ax.axvline(guarantee, color=INK, lw=1.5, ls="--")
         ax.annotate(f"guarantee\nshortfall chance {probability_of_shortfall:.1%}", (guarantee, 0.97),
                     xycoords=("data", "axes fraction"), xytext=(-6, 0), textcoords="offset points",
-                    ha="right", va="top", fontsize=8.5, color=BRICK)
+                    ha="right", va="top", fontsize=8.5, color=BRICK, bbox=_LABEL_BOX)
         ax.set_xlabel("delivered impressions")
         ax.set_ylabel("share of draws")
         ax.xaxis.set_major_formatter(SHORT)
@@ -257,13 +271,15 @@ def liability_svg(draws: np.ndarray, var95: float, cvar95: float, currency: str)
         ax.axvline(var95, color=INK, lw=1.4, ls="--")
         ax.axvline(cvar95, color=BRICK, lw=1.4, ls="-")
         ax.annotate(f"VaR95 {_short(var95)}", (var95, 0.97), xycoords=("data", "axes fraction"),
-                    xytext=(-4, 0), textcoords="offset points", ha="right", va="top", fontsize=8.5, color=INK)
-        ax.annotate(f"CVaR95 {_short(cvar95)}", (cvar95, 0.82), xycoords=("data", "axes fraction"),
-                    xytext=(4, 0), textcoords="offset points", ha="left", va="top", fontsize=8.5, color=BRICK)
+                    xytext=(4, 0), textcoords="offset points", ha="left", va="top", fontsize=8.5, color=INK,
+                    bbox=_LABEL_BOX)
+        ax.annotate(f"CVaR95 {_short(cvar95)}", (cvar95, 0.80), xycoords=("data", "axes fraction"),
+                    xytext=(4, 0), textcoords="offset points", ha="left", va="top", fontsize=8.5, color=BRICK,
+                    bbox=_LABEL_BOX)
         ax.set_xlabel(f"book liability ({currency})")
         ax.set_ylabel("share of draws")
         ax.xaxis.set_major_formatter(SHORT)
-        ax.yaxis.set_major_formatter(PercentFormatter(1.0))
+        ax.yaxis.set_major_formatter(FuncFormatter(_share))
         _style(ax)
         ax.set_title(f"Make-good liability of the book (no liability in {zero_share:.0%} of draws)", loc="left")
         return _svg(fig)
@@ -299,6 +315,6 @@ def forecast_band_svg(history: pd.DataFrame, forecast: pd.DataFrame, title: str)
 
         ax.xaxis.set_major_locator(mdates.MonthLocator(bymonth=(1, 4, 7, 10)))
         ax.xaxis.set_major_formatter(mdates.DateFormatter("%b %y"))
-        ax.legend(loc="lower left", fontsize=7.5)
+        fig.legend(loc="outside lower center", ncols=3, fontsize=7.5)
         ax.set_title(title, loc="left", fontsize=9.5)
         return _svg(fig)

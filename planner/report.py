@@ -137,6 +137,10 @@ def fmt_count(v: Any) -> str:
     return "\u2014" if f is None else f"{f:,.0f}"
 
 
+def _imp(v: Any) -> str:
+    return fmt_count(v) + (" imp." if _num(v) is not None else "")
+
+
 def fmt_pct(v: Any, digits: int = 1) -> str:
     """A fraction as a percentage: 0.953 -> '95.3%'."""
     f = _num(v)
@@ -226,7 +230,7 @@ h3 { font-size:15px; margin:18px 0 8px; }
 .badge.yes { background:var(--teal-soft); color:var(--teal); }
 .badge.no { background:var(--brick-soft); color:var(--brick); }
 .badge.held { background:#eef1f4; color:var(--muted); }
-.tiles { display:grid; grid-template-columns:repeat(auto-fill, minmax(170px, 1fr)); gap:10px; padding:14px 18px 4px; }
+.tiles { display:grid; grid-template-columns:repeat(auto-fill, minmax(190px, 1fr)); gap:10px; padding:14px 18px 4px; }
 .tile { border:1px solid var(--line); border-radius:5px; padding:8px 12px; }
 .tile .k { color:var(--muted); font-size:11.5px; text-transform:uppercase; letter-spacing:.4px; }
 .tile .v { font-size:18px; font-weight:600; margin-top:2px; white-space:nowrap; }
@@ -279,20 +283,19 @@ def _verdict_panel(d: DealSection, currency: str) -> str:
     conf = _num(v.get("confidence"))
     prob = _num(v.get("probability_of_delivery"))
     tiles = [
-        _tile(name, "guarantee", "guarantee", v.get("guarantee"), fmt_count(v.get("guarantee")) + " imp."),
+        _tile(name, "guarantee", "guarantee", v.get("guarantee"), _imp(v.get("guarantee"))),
         _tile(name, "expected_impressions", "expected delivery", v.get("expected_impressions"),
-              fmt_count(v.get("expected_impressions")) + " imp."),
+              _imp(v.get("expected_impressions"))),
         _tile(name, "probability_of_delivery", "chance of delivery", prob, fmt_pct(prob),
               "risk" if (prob is not None and conf is not None and prob < conf - 1e-9) else ""),
         _tile(name, "confidence", "required chance", conf, fmt_pct(conf) if conf is not None
               else ("pad " + fmt_pct(v.get("pad"), 0) if v.get("pad") is not None else "\u2014")),
         _tile(name, "cost", "minimum cost", v.get("cost"), fmt_money(v.get("cost"), currency)),
         _tile(name, "revenue", "revenue", revenue, fmt_money(revenue, currency)),
-        _tile(name, "margin", "margin", margin,
-              fmt_money(margin, currency) + (f" ({margin_pct:.1%})" if margin_pct is not None else ""),
-              "risk" if (margin is not None and margin < 0) else ""),
+        _tile(name, "margin", "margin" + (f" ({margin_pct:.1%} of revenue)" if margin_pct is not None else ""),
+              margin, fmt_money(margin, currency), "risk" if (margin is not None and margin < 0) else ""),
         _tile(name, "max_guarantee", "largest deliverable guarantee", v.get("max_guarantee"),
-              fmt_count(v.get("max_guarantee")) + " imp."),
+              _imp(v.get("max_guarantee"))),
     ]
     if _num(v.get("cost_cpm")) is not None:
         tiles.append(_tile(name, "cost_cpm", "cost CPM", v.get("cost_cpm"), f"{currency} {float(v['cost_cpm']):,.2f}"))
@@ -322,7 +325,8 @@ def _deal_plots(d: DealSection, data: ReportData) -> str:
     parts = []
     guarantee = _num(v.get("guarantee")) or 0.0
     if d.frontier is not None and len(d.frontier):
-        parts.append(_img(plots.frontier_svg(d.frontier, guarantee, _num(v.get("confidence")), data.currency),
+        parts.append(_img(plots.frontier_svg(d.frontier, guarantee, _num(v.get("confidence")), data.currency,
+                                             _num(v.get("max_guarantee"))),
                           "frontier", d.name, "cost and chance of delivery by guarantee size"))
     if d.pacing is not None and len(d.pacing):
         parts.append(_img(plots.pacing_svg(d.pacing), "pacing", d.name, "weekly pacing"))
@@ -330,10 +334,10 @@ def _deal_plots(d: DealSection, data: ReportData) -> str:
         parts.append(_img(plots.delivery_svg(d.delivery_draws, guarantee, d.probability_of_shortfall),
                           "delivery", d.name, "delivery distribution in the stress test"))
     if d.spots is not None and len(d.spots) and float(d.spots["spots"].sum()) > 0:
+        parts.append(_zone_table(d.spots, data.currency))
         parts.append(_img(plots.money_map_svg(d.spots[d.spots["spots"] > 0], data.currency, data.dayparts),
                           "money", d.name, "expected impressions and cost by network and daypart")
                      .replace('class="plot"', 'class="plot wide"'))
-        parts.append(_zone_table(d.spots, data.currency))
         totals = d.spots
         parts.append(f'<div class="wide binding">Buy plan: {fmt_count(totals["spots"].sum())} spots in '
                      f'{int((totals["spots"] > 0).sum()):,} unit-weeks, {fmt_money(totals["cost"].sum(), data.currency)}, '
