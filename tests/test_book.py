@@ -1,0 +1,362 @@
+"""The SQLite book: schema versions, commit/list/show/release, check-and-hold under concurrency,
+a commit killed mid-way. Small synthetic scenarios built in memory (invented data)."""
+from __future__ import annotations
+
+import json
+import os
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+from types import SimpleNamespace
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from planner import book as bk
+from planner.errors import InputError
+
+PY = sys.executable
+TESTS = Path(__file__).resolve().parent
+ROOT = TESTS.parent
+UNIT = ["zone", "network", "daypart", "week"]
+
+
+# --------------------------------------------------------------------------- synthetic scenario
+
+def make_synthetic(folder, *, seed=0, zones=3, networks=3, dayparts=("prime", "day"), weeks=8,
+                   avails=(3, 9), preempt=0.03, deals=None):
+    """An invented in-memory scenario (inventory, deals) and a forecast table with the
+    contract's columns (DEVELOPERS.md); returns (scenario, forecast)."""
+    from planner.scenario import Deal, Mix
+
+    rng = np.random.default_rng(seed)
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    zs = [f"z{i + 1}" for i in range(zones)]
+    ns = [f"net{i + 1}" for i in range(networks)]
+    idx = pd.MultiIndex.from_product([zs, ns, list(dayparts), range(1, weeks + 1)], names=UNIT)
+    inv = idx.to_frame(index=False)
+    inv["week"] = inv["week"].astype("int64")
+    inv["avails"] = rng.integers(avails[0], avails[1] + 1, len(inv)).astype("int64")
+    inv["rate"] = np.round(rng.uniform(40, 300, len(inv)), 2)
+    inv["preempt_rate"] = preempt
+    flight_mu = {k: rng.uniform(2_000, 20_000) for k in
+                 pd.MultiIndex.from_product([zs, ns, list(dayparts)])}
+    mu = np.array([flight_mu[(z, n, d)] for z, n, d in zip(inv.zone, inv.network, inv.daypart)])
+    mu = mu * rng.uniform(0.9, 1.1, len(inv))
+    fc = inv[UNIT].copy()
+    fc["demo"] = "a25-54"
+    fc["universe"] = 500_000.0
+    fc["mean_impressions"] = mu
+    fc["mean_rating"] = mu / 500_000.0
+    fc["airing_sd"] = 0.35 * mu
+    fc["level_sd_network"] = 0.08 * mu
+    fc["level_sd_flight"] = 0.06 * mu
+    fc["level_sd_week"] = 0.04 * mu
+    fc["level_sd"] = np.sqrt(0.08 ** 2 + 0.06 ** 2 + 0.04 ** 2) * mu
+    fc["q10_impressions"] = np.maximum(mu - 1.2816 * 0.37 * mu, 0)
+    fc["q90_impressions"] = mu + 1.2816 * 0.37 * mu
+    fc["history_weeks"] = 60
+    capacity = float((inv["avails"] * (1 - preempt) * mu).sum())
+    scn = SimpleNamespace(path=folder, name="synthetic (invented)", currency="USD", weeks=weeks,
+                          inventory=inv, deals={}, dayparts=[SimpleNamespace(name=d) for d in dayparts],
+                          capacity=capacity)
+    for name, share, conf, price in (deals or [("alpha", 0.15, 0.95, 22.0), ("beta", 0.15, 0.90, 18.0)]):
+        scn.deals[name] = Deal(name=name, advertiser="Invented Advertiser", demo="a25-54",
+                               impressions=round(share * capacity), first_week=1, last_week=weeks,
+                               price_cpm=price, confidence=conf, pad=None, mix=Mix(), path=folder / f"{name}.toml")
+    return scn, fc
+
+
+def greedy_planner(need_spots, units=None, sleep=0.0):
+    """A planner for commit_deal: `need_spots` whole spots from the units with avails left
+    (first in key order, optionally only `units`); respects `held`."""
+
+    def _plan(scenario, deal_name, *, held, **_kw):
+        inv = scenario.inventory
+        if units is not None:
+            inv = inv.merge(units, on=UNIT)
+        left = inv[UNIT + ["avails", "rate"]].merge(held, on=UNIT, how="left")
+        left["left"] = left["avails"] - left["spots"].fillna(0).astype("int64")
+        left = left[left["left"] > 0].sort_values(UNIT)
+        take = np.minimum(left["left"].to_numpy(), np.maximum(need_spots - np.concatenate(
+            [[0], np.cumsum(left["left"].to_numpy())[:-1]]), 0))
+        left["spots"] = take
+        spots = left[left["spots"] > 0][UNIT + ["spots", "rate"]].copy()
+        spots["cost"] = spots["spots"] * spots["rate"]
+        spots["expected_impressions"] = spots["spots"] * 1000.0
+        if sleep:
+            time.sleep(sleep)
+        ok = int(spots["spots"].sum()) >= need_spots
+        return SimpleNamespace(deliverable=ok, spots=spots, cost=float(spots["cost"].sum()),
+                               expected_impressions=float(spots["expected_impressions"].sum()),
+                               probability=0.95 if ok else 0.0, reason=None if ok else "not enough avails left")
+
+    return _plan
+
+
+def _scarce_units():
+    return pd.DataFrame({"zone": ["z1", "z1", "z2"], "network": ["net1"] * 3, "daypart": ["prime"] * 3,
+                         "week": [1, 2, 1]})
+
+
+# --------------------------------------------------------------------------- schema
+
+def test_new_book_has_current_schema_and_wal(tmp_path):
+    path = tmp_path / "book.sqlite"
+    conn = bk.open_book(path)
+    assert conn.execute("PRAGMA journal_mode").fetchone()[0].lower() == "wal"
+    versions = [r[0] for r in conn.execute("SELECT version FROM schema_version ORDER BY version")]
+    assert versions == [v for v, _ in bk._MIGRATIONS] and versions[-1] == bk.SCHEMA_VERSION
+    tables = {r[0] for r in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+    assert {"deals", "holds", "events", "schema_version"} <= tables
+    conn.close()
+
+
+def test_version_1_book_is_upgraded_on_open_and_keeps_its_deals(tmp_path):
+    path = tmp_path / "old.sqlite"
+    conn = sqlite3.connect(path)
+    conn.execute("CREATE TABLE schema_version (version INTEGER NOT NULL, applied_at TEXT NOT NULL)")
+    for sql in bk._MIGRATIONS[0][1]:
+        conn.execute(sql)
+    conn.execute("INSERT INTO schema_version VALUES (1, 'then')")
+    conn.execute("INSERT INTO deals (name, demo, guarantee, price_cpm, first_week, last_week, committed_at, spots) "
+                 "VALUES ('old', 'a25-54', 1e6, 20, 1, 4, 'then', 3)")
+    conn.execute("INSERT INTO holds (deal, zone, network, daypart, week, spots) VALUES ('old','z1','net1','prime',1,3)")
+    conn.commit()
+    conn.close()
+    deals = bk.list_deals(tmp_path, path)
+    assert [d.name for d in deals] == ["old"]
+    assert bk.held_spots(tmp_path, path)["spots"].tolist() == [3]
+    conn = bk.open_book(path)
+    assert bk._schema_version(conn) == bk.SCHEMA_VERSION
+    assert "scenario_name" in [r[1] for r in conn.execute("PRAGMA table_info(deals)")]
+    conn.close()
+
+
+def test_newer_schema_is_refused(tmp_path):
+    path = tmp_path / "new.sqlite"
+    bk.open_book(path).close()
+    conn = sqlite3.connect(path)
+    conn.execute("INSERT INTO schema_version VALUES (99, 'future')")
+    conn.commit()
+    conn.close()
+    with pytest.raises(InputError, match="newer"):
+        bk.open_book(path)
+
+
+def test_reading_a_missing_book_is_empty_and_creates_nothing(tmp_path):
+    assert bk.held_spots(tmp_path).empty
+    assert bk.list_deals(tmp_path) == []
+    assert not (tmp_path / "book.sqlite").exists()
+    with pytest.raises(InputError, match="not in the book"):
+        bk.get_deal(tmp_path, "nope")
+
+
+def test_not_a_database_is_input_error(tmp_path):
+    bad = tmp_path / "book.sqlite"
+    bad.write_text("this is not sqlite " * 100)
+    with pytest.raises(InputError, match="not a readable book"):
+        bk.held_spots(tmp_path)
+
+
+# --------------------------------------------------------------------------- commit, list, show, release
+
+def test_commit_list_show_release_roundtrip(tmp_path):
+    scn, _ = make_synthetic(tmp_path / "s")
+    plan = greedy_planner(10)
+    r = bk.commit_deal(scn, "alpha", planner=plan)
+    assert r.committed and r.summary["spots"] == 10
+    r2 = bk.commit_deal(scn, "beta", planner=plan)
+    assert r2.committed
+    deals = bk.list_deals(scn)
+    assert [d.name for d in deals] == ["alpha", "beta"]
+    a = bk.get_deal(scn, "alpha")
+    assert int(a.holds["spots"].sum()) == 10 and a.guarantee == scn.deals["alpha"].impressions
+    held = bk.held_spots(scn)
+    assert int(held["spots"].sum()) == 20
+    assert list(held.columns) == ["zone", "network", "daypart", "week", "spots"]
+    assert int(bk.held_spots(scn, exclude="alpha")["spots"].sum()) == 10
+    # the second deal was planned against the first one's holds: never over avails
+    assert bk.check_book(scn)["over_avails"] == 0
+    with pytest.raises(InputError, match="already in the book"):
+        bk.commit_deal(scn, "alpha", planner=plan)
+    removed = bk.release_deal(scn, "alpha")
+    assert removed.spots == 10
+    assert [d.name for d in bk.list_deals(scn)] == ["beta"]
+    assert int(bk.held_spots(scn)["spots"].sum()) == 10
+    with pytest.raises(InputError, match="not in the book"):
+        bk.release_deal(scn, "alpha")
+    log = bk.events(scn)
+    assert log["action"].tolist() == ["commit", "commit", "release"]
+
+
+def test_unknown_deal_is_input_error(tmp_path):
+    scn, _ = make_synthetic(tmp_path / "s")
+    with pytest.raises(InputError, match="no deal named"):
+        bk.commit_deal(scn, "gamma", planner=greedy_planner(1))
+
+
+def test_undeliverable_deal_is_not_committed(tmp_path):
+    scn, _ = make_synthetic(tmp_path / "s")
+    total = int(scn.inventory["avails"].sum())
+    r = bk.commit_deal(scn, "alpha", planner=greedy_planner(total + 1))
+    assert not r.committed and "not enough" in r.reason
+    assert bk.list_deals(scn) == [] and bk.held_spots(scn).empty
+
+
+def test_book_option_points_elsewhere(tmp_path):
+    scn, _ = make_synthetic(tmp_path / "s")
+    other = tmp_path / "elsewhere" / "desk.sqlite"
+    bk.commit_deal(scn, "alpha", other, planner=greedy_planner(4))
+    assert other.exists() and not (scn.path / "book.sqlite").exists()
+    assert [d.name for d in bk.list_deals(scn, other)] == ["alpha"]
+
+
+def test_stale_plan_is_replanned_under_the_lock(tmp_path):
+    """Another desk commits between our plan and our write: the check inside the transaction sees
+    it and re-plans against the fresh holds, so no unit is over-held."""
+    scn, _ = make_synthetic(tmp_path / "s", avails=(2, 2))
+    scarce = _scarce_units()  # 3 units x 2 avails = 6 spots
+    inner = greedy_planner(4, scarce)
+    calls = {"n": 0}
+
+    def racing_planner(scenario, deal_name, *, held, **kw):
+        plan = inner(scenario, deal_name, held=held)
+        calls["n"] += 1
+        if calls["n"] == 1:  # the other desk commits right after our (now stale) plan
+            assert bk.commit_deal(scenario, "beta", planner=greedy_planner(4, scarce)).committed
+        return plan
+
+    r = bk.commit_deal(scn, "alpha", planner=racing_planner)
+    assert calls["n"] == 2  # planned again inside the transaction
+    assert not r.committed and "another desk" in r.reason  # only 2 spots left of the 6
+    assert bk.check_book(scn)["over_avails"] == 0
+    assert [d.name for d in bk.list_deals(scn)] == ["beta"]
+    # a smaller deal still fits after re-planning under the lock
+    calls["n"] = 0
+    bk.release_deal(scn, "beta")
+    inner = greedy_planner(2, scarce)
+    r = bk.commit_deal(scn, "alpha", planner=racing_planner)
+    assert r.committed and r.replanned
+    assert bk.check_book(scn)["over_avails"] == 0
+
+
+def test_commit_with_the_real_allocator_respects_holds(tmp_path):
+    from planner.rebalance import plan_for_commit
+
+    scn, fc = make_synthetic(tmp_path / "s", avails=(1, 3),
+                             deals=[("alpha", 0.30, 0.95, 22.0), ("beta", 0.30, 0.95, 20.0), ("gamma", 0.30, 0.9, 20.0)])
+    planner = plan_for_commit(fc, solver="highs")
+    results = [bk.commit_deal(scn, n, planner=planner) for n in ("alpha", "beta", "gamma")]
+    assert results[0].committed and results[1].committed
+    assert not results[2].committed  # 90% of capacity at 95%+ confidence cannot all fit
+    assert bk.check_book(scn)["over_avails"] == 0
+    for r in results[:2]:
+        assert r.summary["probability"] >= 0.95 - 1e-6
+
+
+# --------------------------------------------------------------------------- concurrency
+
+def _race_worker(folder: str, worker: int, n_deals: int, need: int, sleep: float) -> None:
+    """Run in a subprocess: commit `n_deals` deals that compete for the same scarce units."""
+    from planner.scenario import Deal, Mix
+
+    scn, _ = make_synthetic(folder, avails=(2, 2))
+    names = [f"w{worker}-{i}" for i in range(n_deals)]
+    for n in names:
+        scn.deals[n] = Deal(name=n, advertiser="Invented", demo="a25-54", impressions=1000.0 * need,
+                            first_week=1, last_week=2, price_cpm=20.0, confidence=0.95, pad=None,
+                            mix=Mix(), path=Path(folder) / f"{n}.toml")
+    plan = greedy_planner(need, _scarce_units(), sleep=sleep)
+    for n in names:
+        r = bk.commit_deal(scn, n, planner=plan)
+        print(json.dumps({"deal": n, "committed": r.committed, "replanned": r.replanned,
+                          "spots": r.summary.get("spots")}), flush=True)
+
+
+def _run_worker_cmd(folder, worker, n_deals, need, sleep):
+    code = (f"import sys; sys.path.insert(0, {str(TESTS)!r}); import test_book as t; "
+            f"t._race_worker({str(folder)!r}, {worker}, {n_deals}, {need}, {sleep})")
+    return [PY, "-c", code]
+
+
+def test_racing_processes_never_overhold(tmp_path):
+    """3 processes x 10 rounds commit deals of 2 spots competing for 6 scarce spots (3 units x 2
+    avails): exactly 3 deals fit; every deal reported committed is in the book, holds <= avails."""
+    folder = tmp_path / "race"
+    folder.mkdir()
+    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    procs = [subprocess.Popen(_run_worker_cmd(folder, w, 10, 2, 0.02), stdout=subprocess.PIPE,
+                              stderr=subprocess.PIPE, text=True, env=env, cwd=ROOT) for w in range(3)]
+    reported = []
+    for p in procs:
+        out, err = p.communicate(timeout=240)
+        assert p.returncode == 0, err
+        reported += [json.loads(line) for line in out.splitlines() if line.startswith("{")]
+    assert len(reported) == 30
+    committed = {r["deal"] for r in reported if r["committed"]}
+    scn, _ = make_synthetic(folder, avails=(2, 2))
+    in_book = {d.name for d in bk.list_deals(scn)}
+    assert committed == in_book
+    assert len(in_book) == 3  # 6 scarce spots / 2 per deal: no more, and none lost
+    held = bk.held_spots(scn)
+    assert int(held["spots"].sum()) == 6
+    assert bk.check_book(scn)["over_avails"] == 0
+    assert bk.check_book(scn)["spot_count_mismatch"] == 0
+
+
+def _locked(path: Path) -> bool:
+    conn = sqlite3.connect(path, timeout=0, isolation_level=None)
+    try:
+        conn.execute("BEGIN IMMEDIATE")
+        conn.execute("ROLLBACK")
+        return False
+    except sqlite3.OperationalError:
+        return True
+    finally:
+        conn.close()
+
+
+def test_commit_killed_midway_leaves_the_book_as_before(tmp_path):
+    folder = tmp_path / "kill"
+    scn, _ = make_synthetic(folder, avails=(2, 2))
+    bk.commit_deal(scn, "alpha", planner=greedy_planner(2, _scarce_units()))
+    before = bk.held_spots(scn)
+    code = (f"import sys; sys.path.insert(0, {str(TESTS)!r}); import test_book as t; "
+            f"from planner import book as bk; scn, _ = t.make_synthetic({str(folder)!r}, avails=(2, 2)); "
+            f"bk.commit_deal(scn, 'beta', planner=t.greedy_planner(3, t._scarce_units()))")
+    env = {**os.environ, "PYTHONPATH": str(ROOT), bk._SLEEP_ENV: "60"}
+    p = subprocess.Popen([PY, "-c", code], env=env, cwd=ROOT, stderr=subprocess.PIPE)
+    path = folder / "book.sqlite"
+    deadline = time.time() + 60
+    while not _locked(path):  # wait until the child holds the write lock, its rows written
+        assert p.poll() is None and time.time() < deadline
+        time.sleep(0.05)
+    p.send_signal(signal.SIGKILL)
+    p.wait(timeout=10)
+    assert p.returncode == -signal.SIGKILL
+    pd.testing.assert_frame_equal(bk.held_spots(scn), before)
+    assert [d.name for d in bk.list_deals(scn)] == ["alpha"]
+    chk = bk.check_book(scn)
+    assert chk["integrity"] == "ok" and chk["orphan_holds"] == 0 and chk["spot_count_mismatch"] == 0
+    # the book still works: the same commit now goes through
+    assert bk.commit_deal(scn, "beta", planner=greedy_planner(3, _scarce_units())).committed
+    assert int(bk.held_spots(scn)["spots"].sum()) == 5
+
+
+def test_killed_after_commit_keeps_the_deal(tmp_path):
+    folder = tmp_path / "kill2"
+    make_synthetic(folder)
+    code = (f"import sys, os, signal; sys.path.insert(0, {str(TESTS)!r}); import test_book as t; "
+            f"from planner import book as bk; scn, _ = t.make_synthetic({str(folder)!r}); "
+            f"bk.commit_deal(scn, 'alpha', planner=t.greedy_planner(5)); os.kill(os.getpid(), signal.SIGKILL)")
+    p = subprocess.run([PY, "-c", code], env={**os.environ, "PYTHONPATH": str(ROOT)}, cwd=ROOT)
+    assert p.returncode == -signal.SIGKILL
+    scn, _ = make_synthetic(folder)
+    assert [d.name for d in bk.list_deals(scn)] == ["alpha"]
+    assert int(bk.held_spots(scn)["spots"].sum()) == 5

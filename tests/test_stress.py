@@ -1,0 +1,226 @@
+"""Stress of the book: Monte Carlo against closed forms (scipy.stats.norm, Rockafellar & Uryasev
+2000), fast sampler against the exact and per-spot samplers, shared-network correlation, shocks."""
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+from types import SimpleNamespace
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from planner import book as bk
+from planner import stress as st
+from planner.delivery import DeliveryModel
+from planner.errors import InputError
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from test_book import greedy_planner, make_synthetic  # noqa: E402
+
+UNIT = ["zone", "network", "daypart", "week"]
+
+
+def _rows(deal, networks, *, zones=("z1", "z2"), dayparts=("prime", "day"), weeks=range(1, 5), spots=3,
+          mu=1000.0, air=300.0, net=150.0, flt=100.0, wk=80.0, p=0.0, demo="a"):
+    rows = [dict(deal=deal, demo=demo, zone=z, network=n, daypart=d, week=w, spots=spots, mean_impressions=mu,
+                 airing_sd=air, level_sd_network=net, level_sd_flight=flt, level_sd_week=wk, preempt_rate=p)
+            for z in zones for n in networks for d in dayparts for w in weeks]
+    return rows
+
+
+def _deal(name, guarantee, price=20.0, cost=1000.0):
+    return SimpleNamespace(name=name, guarantee=float(guarantee), price_cpm=price, cost=cost, expected_impressions=None)
+
+
+def _model(specs, **kw):
+    """specs: [(deal, networks, guarantee_offset_in_sd)] -> BookModel (guarantee = mean + k sd)."""
+    rows = []
+    for name, nets, _ in specs:
+        rows += _rows(name, nets, **kw)
+    units = pd.DataFrame(rows)
+    tmp = st.build_book_model([_deal(n, 0) for n, _, _ in specs], units)
+    sd = np.sqrt(tmp.variance)
+    deals = [_deal(n, tmp.mean[j] + k * sd[j]) for j, (n, _, k) in enumerate(specs)]
+    return st.build_book_model(deals, units)
+
+
+def test_model_moments_match_the_allocators_delivery_model():
+    m = _model([("a", ["n1", "n2"], 0.0), ("b", ["n1", "n3"], 0.0)], p=0.05)
+    for j, name in enumerate(m.deals):
+        u = m.rows[m.rows["deal"] == name].reset_index(drop=True)
+        dm = DeliveryModel.from_units(u)
+        x = u["spots"].to_numpy(float)
+        assert m.mean[j] == pytest.approx(dm.mean(x))
+        assert m.variance[j] == pytest.approx(dm.variance(x))
+    # deals a and b hold the same units of n1 (zones z1, z2): they covary through n1's network
+    # factor and through the flight and unit-week factors of the shared units (worked by hand)
+    keep = 3 * (1 - 0.05)  # spots x chance of airing
+    net_a = net_b = keep * 150.0 * 2 * 2 * 4  # zones x dayparts x weeks on n1
+    flights = 2 * 2 * (keep * 100.0 * 4) ** 2  # (zone, daypart) flights of n1, 4 weeks each
+    weeks = 2 * 2 * 4 * (keep * 80.0) ** 2
+    assert m.covariance[0, 1] == pytest.approx(net_a * net_b + flights + weeks)
+    # no shared unit: only the network factor links them
+    units = pd.DataFrame(_rows("a", ["n1", "n2"], zones=("z1",)) + _rows("b", ["n1"], zones=("z2",)))
+    m2 = st.build_book_model([_deal("a", 0), _deal("b", 0)], units)
+    assert m2.covariance[0, 1] == pytest.approx((3 * 150.0 * 2 * 4) ** 2)
+
+
+def test_gaussian_book_shortfall_probability_matches_scipy_norm():
+    """Airing noise and level errors only (no preemption): each deal's delivery is exactly
+    normal, so P(D < G) = scipy.stats.norm.cdf((G - mean) / sd); MC within 3 standard errors."""
+    m = _model([("a", ["n1", "n2"], -0.5), ("b", ["n1", "n3"], 0.3), ("c", ["n2"], -1.2)], p=0.0)
+    r = st.stress_model(m, draws=200_000, seed=7)
+    for j, d in enumerate(r.deals):
+        exact = stats.norm.cdf(m.guarantee[j], loc=m.mean[j], scale=np.sqrt(m.variance[j]))
+        assert abs(d.probability_of_shortfall - exact) < 3 * d.probability_of_shortfall_se, (d.deal, exact)
+        # expected shortfall of a normal: E[(G-D)+] = sd * (phi(k) + k Phi(k)), k = (G-mean)/sd
+        s = np.sqrt(m.variance[j])
+        k = (m.guarantee[j] - m.mean[j]) / s
+        es = s * (stats.norm.pdf(k) + k * stats.norm.cdf(k))
+        assert abs(d.expected_shortfall - es) < 3 * d.expected_shortfall_se
+
+
+def test_cvar_matches_the_normal_closed_form():
+    """Guarantees far above the mean: liability = price/1000 x (G - D) > 0 in every draw, a normal
+    loss, so VaR95 = mu + sigma z_0.95 and CVaR95 = mu + sigma phi(z_0.95) / 0.05
+    (Rockafellar & Uryasev 2000, J. Risk 2(3), closed form for a normal loss)."""
+    m = _model([("a", ["n1", "n2"], 9.0), ("b", ["n1", "n3"], 9.0)], p=0.0)
+    r = st.stress_model(m, draws=200_000, seed=3)
+    w = m.price_cpm / 1000.0
+    mu = float(w @ (m.guarantee - m.mean))
+    sigma = float(np.sqrt(w @ m.covariance @ w))
+    z = stats.norm.ppf(0.95)
+    assert z == pytest.approx(1.6449, abs=1e-4)  # NIST/SEMATECH e-Handbook normal table
+    assert abs(r.book["var95"] - (mu + sigma * z)) < 3 * r.book["var95_se"]
+    cvar = mu + sigma * stats.norm.pdf(z) / 0.05
+    assert abs(r.book["cvar95"] - cvar) < 3 * r.book["cvar95_se"]
+    assert r.book["cvar95_se"] < 0.01 * cvar
+    # contributions of the deals to CVaR add up to it (Euler allocation)
+    assert sum(d.tail_contribution for d in r.deals) == pytest.approx(r.book["cvar95"], rel=1e-9)
+
+
+def test_var_cvar_on_a_discrete_loss():
+    """Losses 1..100 equally likely: VaR95 = 95, CVaR95 = mean of the worst 5% = 98
+    (Rockafellar & Uryasev 2000: CVaR = VaR + E[(L - VaR)+] / (1 - a)), worked by hand."""
+    var, cvar = st.var_cvar(np.arange(1, 101, dtype=float), 0.95)
+    assert var == 95 and cvar == pytest.approx(98.0)
+    # with an atom at zero (most draws owe nothing) CVaR still averages the worst 5%
+    losses = np.zeros(1000)
+    losses[-20:] = 10.0
+    var, cvar = st.var_cvar(losses, 0.95)
+    assert var == 0 and cvar == pytest.approx(4.0)  # (20 x 10 + 30 x 0) / 50
+
+
+@pytest.mark.parametrize("method", ["exact", "per_spot"])
+def test_fast_sampler_agrees_with_the_exact_samplers(method):
+    """With preemptions (non-Gaussian per spot) the conditional-normal sampler must agree with
+    drawing every factor, every Bernoulli and every airing (per_spot: the naive sampler)."""
+    m = _model([("a", ["n1", "n2"], -0.8), ("b", ["n1", "n3"], -0.2)], p=0.08, spots=2)
+    fast = st.stress_model(m, draws=60_000, seed=11)
+    slow = st.stress_model(m, draws=60_000, seed=12, method=method)
+    for f, s in zip(fast.deals, slow.deals):
+        se = np.hypot(f.probability_of_shortfall_se, s.probability_of_shortfall_se)
+        assert abs(f.probability_of_shortfall - s.probability_of_shortfall) < 4 * se
+        assert f.sd_delivery == pytest.approx(s.sd_delivery, rel=0.03)
+        assert f.expected_delivery == pytest.approx(s.expected_delivery, rel=0.005)
+    cf = np.corrcoef(fast.delivery.T)[0, 1]
+    cs = np.corrcoef(slow.delivery.T)[0, 1]
+    assert abs(cf - cs) < 0.03
+    assert abs(fast.book["cvar95"] - slow.book["cvar95"]) < 4 * np.hypot(fast.book["cvar95_se"], slow.book["cvar95_se"])
+
+
+def test_deals_sharing_a_network_fail_together():
+    """Two deals on the same network: P(both short) well above P(a short) x P(b short); with the
+    network factor removed (and no shared units) the joint is the product (control)."""
+    shared = _model([("a", ["n1"], -0.3), ("b", ["n1"], -0.3)], zones=("z1",), net=300.0, p=0.0)
+    r = st.stress_model(shared, draws=100_000, seed=5)
+    sa = r.delivery[:, 0] < shared.guarantee[0]
+    sb = r.delivery[:, 1] < shared.guarantee[1]
+    joint, product = (sa & sb).mean(), sa.mean() * sb.mean()
+    assert joint > product + 0.05
+    assert r.joint["probability_both_short"] == pytest.approx(joint)
+    # the analytic bivariate normal (scipy) agrees with the MC joint
+    rho = shared.covariance[0, 1] / np.sqrt(shared.variance[0] * shared.variance[1])
+    ka = (shared.guarantee - shared.mean) / np.sqrt(shared.variance)
+    exact = stats.multivariate_normal(mean=[0, 0], cov=[[1, rho], [rho, 1]]).cdf(ka)
+    assert abs(joint - exact) < 3 * np.sqrt(exact * (1 - exact) / 100_000) + 1e-3
+    indep = _model([("a", ["n1"], -0.3), ("b", ["n2"], -0.3)], zones=("z1",), net=300.0, p=0.0)
+    r2 = st.stress_model(indep, draws=100_000, seed=5)
+    sa = r2.delivery[:, 0] < indep.guarantee[0]
+    sb = r2.delivery[:, 1] < indep.guarantee[1]
+    assert abs((sa & sb).mean() - sa.mean() * sb.mean()) < 4 * np.sqrt(0.25 * 0.25 / 100_000) + 2e-3
+    # the network that drives the shared book's tail is n1
+    assert r.networks[0]["network"] == "n1" and r.networks[0]["tail_liability"] > 0
+
+
+def test_same_seed_same_numbers():
+    m = _model([("a", ["n1", "n2"], -0.5), ("b", ["n1"], 0.0)], p=0.03)
+    a = st.stress_model(m, draws=5_000, seed=42).as_dict()
+    b = st.stress_model(m, draws=5_000, seed=42).as_dict()
+    c = st.stress_model(m, draws=5_000, seed=43).as_dict()
+    assert a == b and a["book"] != c["book"]
+
+
+def test_shocks_move_liability_the_right_way():
+    base_units = pd.DataFrame(_rows("a", ["n1", "n2"], p=0.03) + _rows("b", ["n3"], p=0.03))
+    m0 = st.build_book_model([_deal("a", 0), _deal("b", 0)], base_units)
+    deals = [_deal("a", m0.mean[0] * 0.98), _deal("b", m0.mean[1] * 0.98)]
+
+    def run(shocks=(), pm=1.0):
+        u = st.apply_shocks(base_units, shocks, pm)
+        return st.stress_model(st.build_book_model(deals, u), draws=40_000, seed=1, shocks=shocks,
+                               preempt_multiplier=pm)
+
+    base = run()
+    net = run([st.parse_shock("network=n1:-0.15", networks=["n1", "n2", "n3"])])
+    assert net.deals[0].expected_liability > base.deals[0].expected_liability * 1.5
+    assert net.deals[1].expected_liability == pytest.approx(base.deals[1].expected_liability, rel=1e-9)
+    up = run([st.parse_shock("all:+0.10")])
+    assert up.book["expected_liability"] < base.book["expected_liability"]
+    pre = run(pm=3.0)
+    assert pre.book["expected_liability"] > base.book["expected_liability"]
+    dp = run([st.parse_shock("daypart=prime:-0.10", dayparts=["prime", "day"])])
+    assert dp.book["cvar95"] > base.book["cvar95"]
+    both = run([st.parse_shock("network=n1:-0.15"), st.parse_shock("all:-0.05")], 2.0)
+    assert both.book["expected_liability"] > net.book["expected_liability"]
+    assert net.shocks == ["network n1 -15.0%"]
+
+
+@pytest.mark.parametrize("text,msg", [
+    ("network=n9:-0.1", "unknown network"),
+    ("network n1 -0.1", "expected network=NAME"),
+    ("all:-1.5", "must be > -1"),
+    ("daypart=prime:abc", "expected network=NAME"),
+    ("channel=x:-0.1", "expected network=NAME"),
+])
+def test_bad_shocks_are_input_errors(text, msg):
+    with pytest.raises(InputError, match=msg):
+        st.parse_shock(text, networks=["n1", "n2"], dayparts=["prime"])
+
+
+def test_stress_book_end_to_end_from_the_sqlite_book(tmp_path):
+    scn, fc = make_synthetic(tmp_path / "s")
+    bk.commit_deal(scn, "alpha", planner=greedy_planner(30))
+    bk.commit_deal(scn, "beta", planner=greedy_planner(30))
+    r = st.stress_book(scn, draws=20_000, seed=9, forecast=fc, shocks=["network=net1:-0.15"])
+    d = r.as_dict()
+    assert d["draws"] == 20_000 and d["seed"] == 9 and "caution" in d
+    assert {"deal", "probability_of_shortfall", "expected_shortfall", "expected_liability"} <= set(d["deals"][0])
+    assert {"expected_liability", "var95", "cvar95"} <= set(d["book"])
+    assert r.delivery.shape == (20_000, 2) and r.liability.shape == (20_000, 2)
+    assert r.book_liability.shape == (20_000,)
+    assert r.deal_names == ["alpha", "beta"]
+    mk = st.stress_book(scn, draws=20_000, seed=9, forecast=fc, liability="makegood")
+    assert mk.liability_basis == "makegood"
+    with pytest.raises(InputError, match="unknown network"):
+        st.stress_book(scn, draws=100, forecast=fc, shocks=["network=nope:-0.1"])
+    with pytest.raises(InputError, match="--liability"):
+        st.stress_book(scn, draws=100, forecast=fc, liability="other")
+
+
+def test_empty_book_is_input_error(tmp_path):
+    scn, fc = make_synthetic(tmp_path / "s")
+    with pytest.raises(InputError, match="no committed deals"):
+        st.stress_book(scn, draws=100, forecast=fc)
