@@ -131,9 +131,6 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
     `stage(description)` is a context manager factory shown around each stage (the CLI passes
     its progress display); `say(text)` receives one-line notes. Returns a `DemoResult`.
     """
-    from planner.book import list_deals, release_deal
-    from planner.forecast_job import ensure_forecast
-    from planner.report import build_report, write_report
     from planner.scenario import load_scenario
 
     stage = stage or _null_stage
@@ -154,6 +151,9 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
         folder, reused_folder = prepare_folder(out)
         scn = load_scenario(folder)
     say(f"{'reusing' if reused_folder else 'created'} demo folder {folder}")
+    from planner.book import list_deals, release_deal
+    from planner.forecast_job import ensure_forecast
+    from planner.report import build_report, write_report
 
     with timed("forecast", "2/5 fitting the forecasts (reused when already fitted)"):
         fc = ensure_forecast(scn)

@@ -1,0 +1,100 @@
+"""`pledge demo` end to end: its outputs exist and agree with each other.
+
+The slow test reuses the session's fitted demo (`demo_fitted`): a demo run on a folder that
+already holds a fitted forecast must reuse it rather than fit again.
+"""
+from __future__ import annotations
+
+import json
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from test_report import assert_verdict_equal, report_fields
+
+
+def pledge(*args, cwd=None) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "planner.cli", *map(str, args)], capture_output=True, text=True,
+                          cwd=cwd, timeout=900)
+
+
+@pytest.fixture(scope="module")
+def demo_run(demo_fitted, tmp_path_factory):
+    folder = tmp_path_factory.mktemp("demo-run") / "pledge-demo"
+    shutil.copytree(demo_fitted, folder)
+    r = pledge("demo", "--out", folder, "--draws", "5000", "--json")
+    assert r.returncode == 0, r.stderr
+    return folder, json.loads(r.stdout), r.stderr
+
+
+@pytest.mark.slow
+def test_demo_outputs_exist_and_agree(demo_run):
+    folder, out, stderr = demo_run
+    report = Path(out["report"])
+    assert report.is_file() and report.stat().st_size > 100_000
+    assert out["reused_forecast"] is True  # the fitted forecast already in the folder was reused
+    for stage in ("1/5", "2/5", "3/5", "4/5", "5/5"):
+        assert stage in stderr  # progress for each stage
+    checks = out["checks"]
+    assert len(checks) >= 3
+    verdicts = [c["deliverable"] for c in checks.values()]
+    assert any(verdicts) and not all(verdicts), "the demo has deliverable and undeliverable deals"
+    # Committed = deliverable, and nothing else.
+    assert set(out["committed"]) == {n for n, c in checks.items() if c["deliverable"]}
+    # Report numbers = the checks the demo made.
+    fields = report_fields(report).fields
+    for name, check in checks.items():
+        assert_verdict_equal(fields, name, check)
+    # Book contents = the checks: what was committed is the plan that was checked.
+    book = json.loads(pledge("book", "list", folder, "--json").stdout)
+    in_book = {d["name"]: d for d in book["deals"]}
+    assert set(in_book) == set(out["committed"])
+    for name, d in in_book.items():
+        c = checks[name]
+        assert d["cost"] == pytest.approx(c["cost"], rel=1e-9)
+        assert d["expected_impressions"] == pytest.approx(c["expected_impressions"], rel=1e-9)
+        assert d["probability"] == pytest.approx(c["probability_of_delivery"], rel=1e-9)
+        assert d["spots"] == c["spots"]
+    # The book's stress figures in the report = the demo's = `pledge stress` at the same draws and seed.
+    st = json.loads(pledge("stress", folder, "--draws", "5000", "--seed", str(out["seed"]), "--json").stdout)
+    for key in ("expected_liability", "var95", "cvar95"):
+        assert float(fields[("_book", key)]) == pytest.approx(out["stress"]["book"][key], rel=1e-12)
+        assert st["book"][key] == pytest.approx(out["stress"]["book"][key], rel=1e-9, abs=1e-6)
+    summary = json.loads((folder / "demo-summary.json").read_text())
+    assert summary["committed"] == out["committed"]
+
+
+@pytest.mark.slow
+def test_demo_rerun_gives_the_same_numbers(demo_run):
+    """Re-running on the same folder reuses it and rebuilds the demo book: identical answers."""
+    folder, first, _ = demo_run
+    r = pledge("demo", "--out", folder, "--draws", "5000", "--json")
+    assert r.returncode == 0, r.stderr
+    again = json.loads(r.stdout)
+    assert again["reused_folder"] and again["reused_forecast"]
+    assert sorted(again["released_before_rerun"]) == sorted(first["committed"])
+    assert again["committed"] == first["committed"]
+    for name, c in first["checks"].items():
+        for key in ("deliverable", "cost", "probability_of_delivery", "max_guarantee"):
+            assert again["checks"][name][key] == c[key], (name, key)
+    assert again["stress"]["book"] == first["stress"]["book"]
+
+
+def test_demo_refuses_a_folder_that_is_not_a_demo(tmp_path):
+    folder = tmp_path / "mine"
+    folder.mkdir()
+    (folder / "notes.txt").write_text("not a demo")
+    r = pledge("demo", "--out", folder)
+    assert r.returncode == 2
+    assert "not a pledge demo folder" in r.stderr and "Traceback" not in r.stderr
+    assert (folder / "notes.txt").read_text() == "not a demo"  # left as it was
+
+
+def test_demo_refuses_a_file(tmp_path):
+    f = tmp_path / "afile"
+    f.write_text("x")
+    r = pledge("demo", "--out", f)
+    assert r.returncode == 2 and "not a folder" in r.stderr

@@ -1,0 +1,244 @@
+"""The HTML report: rendered in headless Chromium, its numbers checked against `pledge check --json`.
+
+The browser part needs Chromium (`/usr/bin/chromium`, Debian package `chromium`); without it the
+browser test is skipped, unless PLEDGE_REQUIRE_BROWSER=1 (set by CI), when it fails.
+"""
+from __future__ import annotations
+
+import json
+import os
+import re
+import shutil
+import subprocess
+import sys
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+VERDICT_KEYS = ("guarantee", "expected_impressions", "probability_of_delivery", "confidence", "cost",
+                "revenue", "margin", "max_guarantee")
+
+
+def pledge(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess:
+    """Run the real command line in a fresh interpreter."""
+    return subprocess.run([sys.executable, "-m", "planner.cli", *map(str, args)], capture_output=True, text=True,
+                          cwd=cwd, timeout=600)
+
+
+def pledge_json(*args: str) -> dict:
+    r = pledge(*args, "--json")
+    assert r.returncode == 0, r.stderr
+    return json.loads(r.stdout)
+
+
+class _Fields(HTMLParser):
+    """Collect data-deal/data-field/data-value triples and the plots of a report."""
+
+    def __init__(self):
+        super().__init__()
+        self.fields: dict[tuple[str, str], str] = {}
+        self.plots: list[dict] = []
+        self.external: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        if "data-field" in a and "data-value" in a and "data-deal" in a:
+            self.fields.setdefault((a["data-deal"], a["data-field"]), a["data-value"])
+        if tag == "img" and "data-plot" in a:
+            self.plots.append(a)
+        for key in ("src", "href"):
+            v = a.get(key)
+            if v and not v.startswith(("data:", "#")):
+                self.external.append(v)
+        if tag in ("script", "link") and (a.get("src") or a.get("href")):
+            self.external.append(a.get("src") or a.get("href"))
+
+
+def report_fields(path: Path) -> _Fields:
+    p = _Fields()
+    p.feed(path.read_text(encoding="utf-8"))
+    return p
+
+
+def assert_verdict_equal(fields: dict, deal: str, check: dict) -> None:
+    """The report's verdict numbers for `deal` equal the check JSON's (the same float, exactly)."""
+    assert fields[(deal, "deliverable")] == ("true" if check["deliverable"] else "false")
+    for key in VERDICT_KEYS:
+        shown = fields[(deal, key)]
+        if check.get(key) is None:
+            assert shown == "", (deal, key, shown)
+        else:
+            assert float(shown) == pytest.approx(float(check[key]), rel=1e-12, abs=1e-9), (deal, key)
+
+
+# ----------------------------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def booked_report(small_scenario, tmp_path_factory):
+    """A copy of the small scenario with its first deal committed, the checks made the way a desk
+    would make them, and the report written by the command line."""
+    from planner.scenario import load_scenario
+
+    folder = tmp_path_factory.mktemp("report") / "small"
+    shutil.copytree(small_scenario, folder)
+    names = sorted(load_scenario(folder).deals)
+    first, rest = names[0], names[1:]
+    checks = {first: pledge_json("check", folder, first, "--frontier")}
+    assert checks[first]["deliverable"], "the small scenario's first deal should be deliverable"
+    r = pledge("book", "commit", folder, first)
+    assert r.returncode == 0, r.stderr
+    # The other deals are checked against the book holding the first deal, as the report does.
+    for name in rest:
+        checks[name] = pledge_json("check", folder, name)
+    out = folder / "out" / "report.html"
+    r = pledge("report", folder, "--out", out, "--draws", "4000", "--seed", "3")
+    assert r.returncode == 0, r.stderr
+    return folder, out, checks, first
+
+
+def test_report_numbers_equal_check_json(booked_report):
+    folder, out, checks, first = booked_report
+    parsed = report_fields(out)
+    for deal, check in checks.items():
+        assert_verdict_equal(parsed.fields, deal, check)
+    assert not parsed.external, f"the report refers to outside resources: {parsed.external[:3]}"
+
+
+def test_report_is_self_contained_and_cautious(booked_report):
+    _, out, checks, _ = booked_report
+    text = out.read_text(encoding="utf-8")
+    assert not re.search(r"""(src|href)\s*=\s*["']?(https?:)?//""", text)
+    assert "@import" not in text and "url(http" not in text
+    low = text.lower()
+    # The three cautions every readable output carries.
+    assert "forecasts are estimates" in low
+    assert "contract terms decide what is owed" in low
+    assert "review it before anything is committed" in low
+    meta = json.loads(re.search(r'<script type="application/json" id="report-meta">(.*?)</script>', text, re.S).group(1))
+    assert meta["seed"] == 3 and set(meta["deals"]) == set(checks)
+    assert {"python", "numpy", "pandas", "matplotlib"} <= set(meta["versions"])
+
+
+def test_report_stress_matches_stress_command(booked_report):
+    """The book figures in the report are the stress test's at the same draws and seed."""
+    folder, out, _, first = booked_report
+    fields = report_fields(out).fields
+    st = pledge_json("stress", folder, "--draws", "4000", "--seed", "3")
+    for key in ("expected_liability", "var95", "cvar95"):
+        assert float(fields[("_book", key)]) == pytest.approx(st["book"][key], rel=1e-9, abs=1e-6)
+
+
+def test_rendering_is_deterministic(booked_report):
+    """Same inputs, same file: the plots carry no dates and stable element ids."""
+    from planner import plots
+
+    rng = np.random.default_rng(0)
+    draws = rng.normal(1e6, 5e4, 2000)
+    assert plots.delivery_svg(draws, 9.5e5) == plots.delivery_svg(draws.copy(), 9.5e5)
+    assert "<dc:date>" not in plots.delivery_svg(draws, 9.5e5)
+
+
+def test_unit_history_matches_sql(small_scenario):
+    """The weekly daypart history equals an independent SQL aggregation (DuckDB, a general-purpose
+    reference engine), including a daypart that wraps past midnight."""
+    import duckdb
+
+    from planner.report import unit_history
+    from planner.scenario import load_scenario
+
+    scn = load_scenario(small_scenario)
+    zone, network, demo = scn.zone_names[0], scn.network_names[0], scn.demos[0]
+    wrapping = [d for d in scn.dayparts if d.wraps]
+    cases = [scn.dayparts[0]] + wrapping[:1]
+    for dp in cases:
+        got = unit_history(scn, zone, network, dp.name, demo)
+        start = dp.quarter_hours[0]
+        # Membership in SQL: a row at (date, qh) belongs to the airing that started on `start_day`,
+        # the previous day for the after-midnight part of a wrapping daypart.
+        qhs = ",".join(str(q) for q in dp.quarter_hours)
+        days = ",".join(str(d) for d in dp.days)
+        wrap = "TRUE" if dp.wraps else "FALSE"
+        sql = f"""
+            WITH h AS (
+              SELECT CAST(date AS DATE) AS d, quarter_hour AS qh, rating FROM read_parquet('{scn.history_path}')
+              WHERE zone = '{zone}' AND network = '{network}' AND demo = '{demo}'),
+            s AS (
+              SELECT CASE WHEN {wrap} AND qh < {start} THEN d - INTERVAL 1 DAY ELSE d END AS start_day,
+                     CASE WHEN {wrap} AND qh < {start} THEN qh + 96 ELSE qh END AS rel, rating FROM h)
+            SELECT date_trunc('week', start_day) AS week_start, avg(rating) AS r FROM s
+            WHERE rel IN ({qhs}) AND (isodow(start_day) - 1) IN ({days})
+            GROUP BY 1 ORDER BY 1"""
+        ref = duckdb.sql(sql).df()
+        universe = scn.universe(zone, demo)
+        assert len(got) == len(ref) > 20
+        np.testing.assert_array_equal(pd.to_datetime(got["week_start"]).to_numpy(),
+                                      pd.to_datetime(ref["week_start"]).to_numpy())
+        np.testing.assert_allclose(got["impressions"].to_numpy(), ref["r"].to_numpy() * universe, rtol=1e-5)
+
+
+# ----------------------------------------------------------------------------------------------
+def _chromium() -> str | None:
+    for name in ("/usr/bin/chromium", shutil.which("chromium"), shutil.which("chromium-browser")):
+        if name and Path(name).exists():
+            return name
+    return None
+
+
+@pytest.mark.browser
+def test_report_in_headless_chromium(booked_report, tmp_path):
+    exe = _chromium()
+    if exe is None:
+        if os.environ.get("PLEDGE_REQUIRE_BROWSER") == "1":
+            pytest.fail("Chromium is required (PLEDGE_REQUIRE_BROWSER=1) but /usr/bin/chromium is missing")
+        pytest.skip("headless Chromium not installed")
+    from cdp import Browser
+
+    folder, out, checks, first = booked_report
+    browser = Browser(exe, tmp_path / "profile")
+    try:
+        session = browser.open(out.resolve().as_uri())
+        info = browser.evaluate("""(() => {
+            const imgs = Array.from(document.querySelectorAll('img[data-plot]'));
+            return {
+              plots: imgs.map(i => { const r = i.getBoundingClientRect();
+                return {kind: i.dataset.plot, deal: i.dataset.deal || null, natural: i.naturalWidth,
+                        complete: i.complete, w: r.width, h: r.height}; }),
+              fields: Array.from(document.querySelectorAll('[data-field][data-deal]')).map(e =>
+                [e.dataset.deal, e.dataset.field, e.dataset.value, e.textContent]),
+              title: document.title,
+              cautions: document.querySelectorAll('[data-section=cautions]').length,
+            };
+        })()""", session)
+        shot = browser.screenshot(session, tmp_path / "report.png")
+        keep = os.environ.get("PLEDGE_SCREENSHOT")
+        if keep:
+            shutil.copy(shot, keep)
+        browser.call("Runtime.evaluate", {"expression": "1"}, session=session)  # flush pending events
+        errors = browser.console_errors(session)
+        requests = [u for u in browser.requests(session) if not u.startswith(("data:", "file:"))]
+    finally:
+        browser.close()
+
+    assert errors == [], errors
+    assert requests == [], f"the page fetched from a network: {requests}"
+    assert shot.stat().st_size > 50_000  # a real full-page image, not a blank page
+    assert info["cautions"] >= 1
+    # Every plot is decoded and drawn at a readable size.
+    for p in info["plots"]:
+        assert p["complete"] and p["natural"] > 0, p
+        assert p["w"] >= 300 and p["h"] >= 150, p
+    kinds = {(p["kind"], p["deal"]) for p in info["plots"]}
+    for deal, check in checks.items():
+        assert ("frontier", deal) in kinds
+        if check["deliverable"]:
+            assert ("pacing", deal) in kinds and ("money", deal) in kinds
+    assert ("delivery", first) in kinds
+    assert ("liability", None) in kinds and ("forecast", None) in kinds
+    # The verdict numbers as the browser sees them equal `pledge check --json`.
+    seen = {}
+    for deal, field, value, _text in info["fields"]:
+        seen.setdefault((deal, field), value)
+    for deal, check in checks.items():
+        assert_verdict_equal(seen, deal, check)
