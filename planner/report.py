@@ -656,7 +656,15 @@ def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str
             attach_stress(s, stress)
     say("forecast bands")
     plans = {s.name: (s.demo, s.spots) for s in sections if s.spots is not None}
-    bands = forecast_bands(scenario, forecast, top_units(plans, n_units))
+    units = top_units(plans, n_units)
+    if not units and sections:  # nothing planned: show the units with the largest audiences
+        demo = sections[0].demo
+        f = forecast[forecast["demo"] == demo]
+        g = f.groupby(["zone", "network", "daypart"], observed=True)["mean_impressions"].mean()
+        g = g.sort_values(ascending=False, kind="stable").rename("imp").reset_index().assign(demo=demo)
+        g = pd.concat([g.drop_duplicates("network"), g]).drop_duplicates(["zone", "network", "daypart"])
+        units = [tuple(r) for r in g.head(n_units)[["zone", "network", "daypart", "demo"]].itertuples(index=False)]
+    bands = forecast_bands(scenario, forecast, units)
     notes = [f"Every deal is checked against the avails not held by the book; a deal in the book is "
              f"checked against the other deals' holds (its own set aside). Impressions are per deal demo; "
              f"money in {scenario.currency}."]
