@@ -11,8 +11,8 @@ shrinkage, update: the evidence is weighed against the forecast's prior uncertai
 
 The remaining weeks' forecast rows then get mean mu_i + a_i m_net + b_i m_flight, network
 loading a_i sqrt(V_nn) and flight loading sqrt(b_i^2 V_ff + 2 a_i b_i V_nf) (keeping each unit's
-posterior level variance exact; cross-unit posterior correlations beyond the shared factors are
-dropped). Units that posted move, and so, through the network factor, do units of the same
+posterior level variance exact; when the flight part is negative the unit's network loading
+absorbs it; cross-unit posterior correlations beyond the shared factors are approximated). Units that posted move, and so, through the network factor, do units of the same
 network in other zones and dayparts that did not post. The unit-week factors of future weeks are
 independent of the past and keep their prior.
 
@@ -183,8 +183,13 @@ def update_forecast(forecast: pd.DataFrame, post: LevelPosterior) -> pd.DataFram
     vnn = np.where(hn, V[nidx, nidx] if Nn else 1.0, 1.0)
     vff = np.where(hf, V[gi, gi] if len(m) else 1.0, 1.0)
     vnf = np.where(hn & hf, V[nidx, gi] if len(m) else 0.0, 0.0)
-    new_a = a * np.sqrt(vnn)
-    new_b2 = np.maximum(b * b * vff + 2 * a * b * vnf, 0.0)
+    # Keep each unit's posterior level variance a^2 Vnn + b^2 Vff + 2ab Vnf exact: the flight part
+    # takes b^2 Vff + 2ab Vnf; when that is negative (evidence pins the sum, not its parts) the
+    # network loading of the unit absorbs it.
+    flt_part = b * b * vff + 2 * a * b * vnf
+    total = np.maximum(a * a * vnn + flt_part, 0.0)
+    new_b2 = np.maximum(flt_part, 0.0)
+    new_a = np.sqrt(np.where(flt_part < 0, total, a * a * vnn))
     out["mean_impressions"] = np.maximum(out["mean_impressions"].to_numpy(float) + shift, 0.0)
     out["level_sd_network"] = new_a
     out["level_sd_flight"] = np.sqrt(new_b2)
@@ -204,94 +209,36 @@ def update_forecast(forecast: pd.DataFrame, post: LevelPosterior) -> pd.DataFram
 
 # --------------------------------------------------------------------------- planning helpers
 
-def deal_units(scenario: Any, forecast: pd.DataFrame, demo: str) -> pd.DataFrame:
-    """Forecast rows of `demo` joined with the inventory (`avails, rate, preempt_rate`)."""
-    fc = forecast[forecast["demo"] == demo].copy()
-    fc["week"] = fc["week"].astype("int64")
-    inv = scenario.inventory[UNIT_KEY + ["avails", "rate", "preempt_rate"]].copy()
-    inv["week"] = inv["week"].astype("int64")
-    return fc.drop(columns=[c for c in ("avails", "rate", "preempt_rate") if c in fc.columns]).merge(
-        inv, on=UNIT_KEY, how="inner")
+def replan(scenario: Any, deal: Any, *, guarantee: float, first_week: int, forecast: pd.DataFrame,
+           held: pd.DataFrame | None, solver: str = "cbc"):
+    """Re-plan `deal` over weeks first_week..last_week for `guarantee` impressions with the
+    allocator (`planner.deals.run_deal`), on `forecast`, against avails less `held`.
 
-
-def rules_of(deal: Any):
-    """The allocator's `Rules` for a deal (mix shares, pacing tolerance, risk margin)."""
-    from planner.allocate import Rules
-
-    mix = deal.mix
-    return Rules(max_network_share=mix.max_network_share, daypart_min_share=dict(mix.daypart_min_share),
-                 daypart_max_share=dict(mix.daypart_max_share), weekly_tolerance=mix.weekly_tolerance,
-                 confidence=deal.confidence, pad=deal.pad)
-
-
-@dataclass
-class UnitPlan:
-    """A plan made by `plan_units`: whole spots per unit and its figures (impressions, currency)."""
-
-    deliverable: bool
-    spots: pd.DataFrame
-    cost: float
-    expected_impressions: float
-    sd: float
-    probability: float
-    status: str
-    max_deliverable: float
-    model: Any = None
-    x: Any = None
-
-
-def plan_units(units: pd.DataFrame, deal: Any, *, guarantee: float, weeks, held: pd.DataFrame | None,
-               solver: str = "cbc") -> UnitPlan:
-    """Minimum-cost whole-spot plan of `deal` over `weeks` for `guarantee` impressions.
-
-    Uses the allocator (`planner.allocate`) with the deal's mix and risk margin, against avails less
-    `held`. When no plan meets the guarantee, `max_deliverable` is the largest guarantee the avails
-    left can meet at that risk margin (LP bound) and `spots` is empty.
+    Returns (PlanResult, max_deliverable): when no plan meets the guarantee, `max_deliverable` is
+    the largest guarantee the avails left can meet at the deal's risk margin (LP bound, impressions).
     """
-    from planner.allocate import allocate, candidate_units, make_problem, max_guarantee
+    import copy
+    from dataclasses import replace
 
-    mix = deal.mix
-    scope = candidate_units(units, weeks=list(weeks), exclude_networks=mix.exclude_networks,
-                            exclude_zones=mix.exclude_zones, max_spots_per_unit=mix.max_spots_per_unit, held=held)
-    prob = make_problem(scope, guarantee, rules_of(deal), list(weeks))
-    if guarantee <= 0:
-        return UnitPlan(True, _spot_frame(prob, np.zeros(prob.n)), 0.0, 0.0, 0.0, 1.0,
-                        "nothing left to deliver", float("nan"), prob.model, np.zeros(prob.n))
-    alloc = allocate(prob, solver=solver) if prob.n else None
-    if alloc is None or not alloc.feasible:
-        mg = max_guarantee(prob) if prob.n else None
-        most = float(mg.value) if mg is not None else 0.0
-        return UnitPlan(False, _spot_frame(prob, np.zeros(prob.n)).iloc[:0], 0.0, 0.0, 0.0, 0.0,
-                        alloc.status if alloc is not None else "no units left to buy", most, prob.model,
-                        mg.x if mg is not None else None)
-    x = alloc.x
-    dm = prob.model
-    return UnitPlan(True, _spot_frame(prob, x), float(alloc.cost), dm.mean(x), dm.sd(x),
-                    dm.probability(x, guarantee), alloc.status, float("nan"), dm, x)
+    from planner import allocate as al
+    from planner import deals as dl
 
-
-def _spot_frame(prob, x: np.ndarray) -> pd.DataFrame:
-    u = prob.units
-    keep = np.asarray(x) > 0
-    dm = prob.model
-    out = u.loc[keep, UNIT_KEY + ["rate"]].copy()
-    xs = np.asarray(x)[keep]
-    out["spots"] = np.rint(xs).astype("int64")
-    out["cost"] = out["rate"].to_numpy(float) * xs
-    out["expected_impressions"] = dm.m[keep] * xs if len(dm.m) else 0.0
-    out["sd"] = np.sqrt(dm.v_lin[keep] * xs + ((dm.a_net ** 2 + dm.a_flight ** 2 + dm.a_week ** 2)[keep]) * xs ** 2) \
-        if len(dm.m) else 0.0
-    return out[UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "sd"]].reset_index(drop=True)
+    sub = replace(deal, impressions=float(guarantee), first_week=int(first_week))
+    scn = copy.copy(scenario)
+    scn.deals = {**scenario.deals, deal.name: sub}
+    run = dl.run_deal(scn, deal.name, solver=solver, held=held, forecast=forecast)
+    res = dl.plan_result(run)
+    most = float("nan") if res.deliverable else float(al.max_guarantee(run.problem).value)
+    return res, most
 
 
 def plan_for_commit(forecast: pd.DataFrame, *, solver: str = "cbc"):
-    """A `planner` for `planner.book.commit_deal` that plans the whole flight on `forecast`
-    (a forecast table) with the allocator directly (tests, and books built on a given forecast)."""
+    """A `planner` for `planner.book.commit_deal` planning on a given forecast table (no fitting)."""
 
-    def _planner(scenario, deal_name, *, held, **_kw):
-        deal = scenario.deals[deal_name]
-        return plan_units(deal_units(scenario, forecast, deal.demo), deal, guarantee=deal.impressions,
-                          weeks=deal.weeks, held=held, solver=solver)
+    def _planner(scenario, deal_name, *, held, **kw):
+        from planner.deals import plan_deal
+
+        return plan_deal(scenario, deal_name, held=held, forecast=forecast, solver=kw.get("solver", solver))
 
     return _planner
 
@@ -350,12 +297,11 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
     With `commit=True` and a deliverable re-plan, the deal's holds in the remaining weeks are
     replaced by the re-plan in one checked transaction (aired weeks' holds are kept).
     """
-    from planner.book import book_path, get_deal, held_spots, replace_holds
+    from planner.book import get_deal, held_spots, replace_holds
 
     if deal_name not in scenario.deals:
         raise InputError(f"{scenario.path}: no deal named {deal_name!r} in deals/")
     deal = scenario.deals[deal_name]
-    path = book_path(scenario, book)
     booked = get_deal(scenario, deal_name, book)  # InputError when not committed
     acts = actuals if isinstance(actuals, pd.DataFrame) else read_actuals(actuals, scenario, deal)
     if forecast is None:
@@ -389,54 +335,66 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
     ratio = delivered / expected_aired - 1.0 if expected_aired > 0 else float("nan")
     G_left = max(float(deal.impressions) - delivered, 0.0)
 
-    units = deal_units(scenario, updated, deal.demo)
     held_rem = holds[holds["week"] > last_aired]
     # The current holds' chance of meeting what is left, on the updated forecast.
-    p_before = _probability_of(units, held_rem, G_left)
+    p_before = _probability_of(scenario, deal, updated, held_rem, G_left)
     others = held_spots(scenario, book, exclude=[deal_name])
-    if remaining:
-        plan = plan_units(units, deal, guarantee=G_left, weeks=remaining, held=others, solver=solver)
+    max_del = float("nan")
+    if remaining and G_left > 0:
+        plan, max_del = replan(scenario, deal, guarantee=G_left, first_week=remaining[0], forecast=updated,
+                               held=others, solver=solver)
+        deliverable, status = bool(plan.deliverable), (plan.verdict if plan.deliverable else plan.reason)
+        new_plan = plan.spots if deliverable else plan.spots.iloc[:0]
+        p_after = float(plan.probability) if deliverable else 0.0
+        exp_rem, sd_rem = float(plan.expected_impressions or 0.0), float(plan.sd or 0.0)
+        new_cost_val = float(plan.cost or 0.0)
     else:
-        plan = UnitPlan(G_left <= 0, held_rem.iloc[:0][UNIT_KEY + ["spots"]], 0.0, 0.0, 0.0,
-                        float(G_left <= 0), "flight over", 0.0)
+        deliverable = G_left <= 0
+        status = "guarantee already delivered" if deliverable else "flight over: nothing left to re-plan"
+        new_plan = held_rem.iloc[:0]
+        p_after, exp_rem, sd_rem, new_cost_val = float(deliverable), 0.0, 0.0, 0.0
+        if not deliverable:
+            max_del = 0.0
     held_spots_n = int(held_rem["spots"].sum())
-    held_cost = float(held_rem["cost"].fillna(0).sum()) if "cost" in held_rem else 0.0
-    new_spots = int(plan.spots["spots"].sum()) if plan.deliverable else 0
-    new_cost = float(plan.cost) if plan.deliverable else 0.0
-    label = (f"confidence {deal.confidence:.0%}" if deal.confidence is not None else f"pad {deal.pad:.0%}")
-    max_del = float(plan.max_deliverable) if not plan.deliverable else float("nan")
-    unmet = max(G_left - max_del, 0.0) if not plan.deliverable else 0.0
-    catch = _catch_up(held_rem, plan.spots) if plan.deliverable else None
+    held_cost = float(held_rem["cost"].fillna(0).sum())
+    new_spots = int(new_plan["spots"].sum()) if deliverable else 0
+    new_cost = new_cost_val if deliverable else 0.0
+    label = (f"confidence {deal.confidence:.0%}" if deal.pad is None else f"pad {deal.pad:.0%}")
+    unmet = 0.0 if deliverable else max(G_left - max_del, 0.0)
+    catch = _catch_up(held_rem, new_plan) if deliverable else None
     net_shift = {str(n): float(post.mean[i]) for i, n in enumerate(post.networks)}
     committed = False
-    if commit and plan.deliverable and remaining:
-        keep = held_aired[UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "sd"]]
-        new_holds = pd.concat([keep, plan.spots], ignore_index=True)
+    if commit and deliverable and remaining and G_left > 0:
+        cols = UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "sd"]
+        keep = held_aired[cols]
+        new_holds = pd.concat([keep, new_plan[cols]], ignore_index=True)
         replace_holds(scenario, deal_name, new_holds, {
-            "expected_impressions": delivered + plan.expected_impressions, "sd": plan.sd,
-            "probability": plan.probability, "cost": float(keep["cost"].fillna(0).sum()) + plan.cost,
+            "expected_impressions": delivered + exp_rem, "sd": sd_rem, "probability": p_after,
+            "cost": float(keep["cost"].fillna(0).sum()) + new_cost,
             "rebalanced_after_week": last_aired, "delivered": delivered}, book)
         committed = True
     return RebalanceResult(
         deal=deal_name, guarantee=float(deal.impressions), confidence_label=label, aired_weeks=aired,
         remaining_weeks=remaining, delivered=delivered, expected_aired=expected_aired, posted_vs_forecast=ratio,
-        remaining_guarantee=G_left, probability_before=p_before, deliverable=bool(plan.deliverable),
-        probability_after=float(plan.probability), expected_remaining=float(plan.expected_impressions),
-        sd_remaining=float(plan.sd), held_remaining_spots=held_spots_n, new_spots=new_spots,
-        added_spots=new_spots - held_spots_n if plan.deliverable else 0, held_remaining_cost=held_cost,
-        new_cost=new_cost, added_cost=new_cost - held_cost if plan.deliverable else 0.0,
-        max_deliverable=max_del, unmet=unmet, committed=committed, status=plan.status,
-        network_shift=net_shift, warnings=warnings, plan=plan.spots, catch_up=catch, forecast=updated,
+        remaining_guarantee=G_left, probability_before=p_before, deliverable=deliverable,
+        probability_after=p_after, expected_remaining=exp_rem, sd_remaining=sd_rem,
+        held_remaining_spots=held_spots_n, new_spots=new_spots,
+        added_spots=new_spots - held_spots_n if deliverable else 0, held_remaining_cost=held_cost,
+        new_cost=new_cost, added_cost=new_cost - held_cost if deliverable else 0.0,
+        max_deliverable=max_del, unmet=unmet, committed=committed, status=status,
+        network_shift=net_shift, warnings=warnings, plan=new_plan, catch_up=catch, forecast=updated,
         posterior=post)
 
 
-def _probability_of(units: pd.DataFrame, held: pd.DataFrame, guarantee: float) -> float:
-    """Normal-approximation chance that the held spots deliver `guarantee` on `units`' forecast."""
+def _probability_of(scenario: Any, deal: Any, forecast: pd.DataFrame, held: pd.DataFrame, guarantee: float) -> float:
+    """Normal-approximation chance that the held spots deliver `guarantee` on `forecast`."""
+    from planner.deals import deal_units
+
     if guarantee <= 0:
         return 1.0
     if held.empty:
         return 0.0
-    u = held[UNIT_KEY + ["spots"]].merge(units, on=UNIT_KEY, how="inner")
+    u = held[UNIT_KEY + ["spots"]].merge(deal_units(scenario, forecast, deal), on=UNIT_KEY, how="inner")
     if u.empty:
         return 0.0
     dm = DeliveryModel.from_units(u)

@@ -1,0 +1,208 @@
+"""Mid-flight rebalance: actuals validation, the Gaussian level-factor update against the textbook
+conditional-normal formula, and the re-plan after actuals 20% under forecast."""
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from planner import book as bk
+from planner import rebalance as rb
+from planner.errors import InputError
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from test_book import greedy_planner, make_synthetic  # noqa: E402
+
+UNIT = ["zone", "network", "daypart", "week"]
+
+
+def _actuals_from_holds(holds, fc, weeks, factor):
+    """Posted actuals for the held units of `weeks`: every spot aired, delivering `factor` x forecast."""
+    h = holds[holds["week"].isin(list(weeks))][UNIT + ["spots"]]
+    m = h.merge(fc[fc["demo"] == "a25-54"][UNIT + ["mean_impressions"]], on=UNIT)
+    return pd.DataFrame({**{c: m[c] for c in UNIT}, "spots_aired": m["spots"].astype("int64"),
+                         "impressions": factor * m["spots"] * m["mean_impressions"]})
+
+
+def _committed(tmp_path, **kw):
+    scn, fc = make_synthetic(tmp_path / "s", **kw)
+    planner = rb.plan_for_commit(fc, solver="highs")
+    for name in scn.deals:
+        assert bk.commit_deal(scn, name, planner=planner).committed, name
+    return scn, fc
+
+
+# --------------------------------------------------------------------------- actuals file
+
+def _write(tmp_path, text):
+    p = tmp_path / "actuals.csv"
+    p.write_text(text)
+    return p
+
+
+@pytest.mark.parametrize("body,msg", [
+    ("zone,network,daypart,week,spots_aired\nz1,net1,prime,1,2\n", "missing column"),
+    ("zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,1,-2,100\n", "row 2: spots_aired"),
+    ("zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,1,2,100\nz1,net1,prime,x,2,100\n",
+     "row 3: week"),
+    ("zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,1,2,100\nz1,net1,prime,1,1,50\n",
+     "row 3: duplicate unit"),
+    ("zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,1,1.5,100\n", "row 2: spots_aired"),
+    ("zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,1,0,100\n", "0 spots aired"),
+    ("zone,network,daypart,week,spots_aired,impressions\nz9,net1,prime,1,2,100\n", "not in the scenario's inventory"),
+    ("zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,99,2,100\n", "not in the scenario's inventory"),
+    ("zone,network,daypart,week,spots_aired,impressions\n,net1,prime,1,2,100\n", "row 2: zone is blank"),
+])
+def test_bad_actuals_name_file_and_row(tmp_path, body, msg):
+    scn, _ = make_synthetic(tmp_path / "s")
+    p = _write(tmp_path, body)
+    with pytest.raises(InputError, match=msg) as e:
+        rb.read_actuals(p, scn, scn.deals["alpha"])
+    assert str(p) in str(e.value)
+
+
+def test_actuals_week_outside_the_flight(tmp_path):
+    from dataclasses import replace
+
+    scn, _ = make_synthetic(tmp_path / "s")
+    deal = replace(scn.deals["alpha"], first_week=3)
+    p = _write(tmp_path, "zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,1,2,100\n")
+    with pytest.raises(InputError, match="outside deal"):
+        rb.read_actuals(p, scn, deal)
+
+
+def test_missing_actuals_file(tmp_path):
+    with pytest.raises(InputError, match="not found"):
+        rb.read_actuals(tmp_path / "nope.csv")
+
+
+# --------------------------------------------------------------------------- the Gaussian update
+
+def test_level_posterior_matches_the_conditional_normal_formula():
+    """Precision form vs the textbook conditional of a joint normal (Rasmussen & Williams 2006,
+    eq. A.6): E[z|y] = S_zy S_yy^-1 (y - m), Cov[z|y] = I - S_zy S_yy^-1 S_yz, built explicitly."""
+    rng = np.random.default_rng(4)
+    rows = []
+    for z in ("z1", "z2"):
+        for n in ("n1", "n2"):
+            for d in ("prime", "day"):
+                for w in (1, 2, 3):
+                    mu = rng.uniform(1000, 5000)
+                    rows.append(dict(zone=z, network=n, daypart=d, week=w, spots_aired=int(rng.integers(1, 6)),
+                                     mean_impressions=mu, airing_sd=0.3 * mu, level_sd_network=0.1 * mu,
+                                     level_sd_flight=0.07 * mu, level_sd_week=0.05 * mu))
+    obs = pd.DataFrame(rows)
+    obs["impressions"] = obs["spots_aired"] * obs["mean_impressions"] * rng.uniform(0.7, 1.1, len(obs))
+    post = rb.level_posterior(obs)
+    # explicit joint covariance of factors z = [networks, flights] and per-spot averages y
+    nets = list(post.networks)
+    flts = list(post.flights)
+    H = np.zeros((len(obs), len(nets) + len(flts)))
+    for j, r in obs.iterrows():
+        H[j, nets.index(r.network)] = r.level_sd_network
+        H[j, len(nets) + flts.index((r.zone, r.network, r.daypart))] = r.level_sd_flight
+    R = np.diag(obs.level_sd_week ** 2 + obs.airing_sd ** 2 / obs.spots_aired)
+    S_yy = H @ H.T + R
+    y = obs.impressions / obs.spots_aired - obs.mean_impressions
+    mean = H.T @ np.linalg.solve(S_yy, y)
+    cov = np.eye(H.shape[1]) - H.T @ np.linalg.solve(S_yy, H)
+    np.testing.assert_allclose(post.mean, mean, rtol=1e-8, atol=1e-10)
+    np.testing.assert_allclose(post.cov, cov, rtol=1e-8, atol=1e-10)
+    assert (post.mean < 0).sum() >= len(post.mean) - 2  # evidence mostly under forecast
+
+
+def test_update_moves_unposted_units_of_the_same_network():
+    scn_rows = []
+    for z in ("z1", "z2"):
+        for n in ("n1", "n2"):
+            for w in range(1, 9):
+                scn_rows.append(dict(zone=z, network=n, daypart="prime", week=w, demo="a", mean_impressions=1000.0,
+                                     airing_sd=300.0, level_sd_network=100.0, level_sd_flight=60.0,
+                                     level_sd_week=40.0, level_sd=np.sqrt(100 ** 2 + 60 ** 2 + 40 ** 2)))
+    fc = pd.DataFrame(scn_rows)
+    # only z1/n1 posts, weeks 1-4, 20% under forecast
+    posted = fc[(fc.zone == "z1") & (fc.network == "n1") & (fc.week <= 4)].copy()
+    posted["spots_aired"] = 10
+    posted["impressions"] = 0.8 * 10 * posted["mean_impressions"]
+    up = rb.update_forecast(fc, rb.level_posterior(posted))
+    later = up[up.week == 6].set_index(["zone", "network"])
+    assert later.loc[("z1", "n1"), "mean_impressions"] < later.loc[("z2", "n1"), "mean_impressions"] < 1000.0
+    assert later.loc[("z2", "n2"), "mean_impressions"] == pytest.approx(1000.0)  # other network untouched
+    assert later.loc[("z1", "n1"), "level_sd"] < fc["level_sd"].iloc[0]  # evidence narrows the band
+    assert later.loc[("z2", "n2"), "level_sd"] == pytest.approx(fc["level_sd"].iloc[0])
+    # the posted units' posterior level variance is kept exactly (a^2 Vnn + b^2 Vff + 2ab Vnf)
+    post = rb.level_posterior(posted)
+    v = post.cov
+    exact = 100 ** 2 * v[0, 0] + 60 ** 2 * v[1, 1] + 2 * 100 * 60 * v[0, 1] + 40 ** 2
+    assert later.loc[("z1", "n1"), "level_sd"] ** 2 == pytest.approx(exact)
+
+
+# --------------------------------------------------------------------------- the re-plan
+
+def test_actuals_20_percent_under_are_caught_up_to_the_deals_confidence(tmp_path):
+    scn, fc = _committed(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0)])
+    holds = bk.get_deal(scn, "alpha").holds
+    acts = _actuals_from_holds(holds, fc, range(1, 5), 0.8)
+    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
+    assert r.aired_weeks == [1, 2, 3, 4] and r.remaining_weeks == [5, 6, 7, 8]
+    assert r.posted_vs_forecast == pytest.approx(-0.2)
+    assert r.remaining_guarantee == pytest.approx(scn.deals["alpha"].impressions - acts["impressions"].sum())
+    assert r.probability_before < 0.95  # the old holds no longer make it
+    assert r.deliverable
+    assert r.probability_after >= 0.95 - 1e-6  # back to the deal's confidence
+    assert r.added_spots > 0 and r.added_cost > 0
+    assert all(s < 0 for s in r.network_shift.values())
+    # the evidence lowered the forecast of the remaining weeks: the re-plan used the lowered one
+    before = fc[(fc.week > 4)].mean_impressions.sum()
+    after = r.forecast[(r.forecast.week > 4)].mean_impressions.sum()
+    assert after < before
+    assert bk.get_deal(scn, "alpha").spots == int(holds["spots"].sum())  # not committed without --commit
+
+
+def test_rebalance_commit_replaces_the_remaining_holds(tmp_path):
+    scn, fc = _committed(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0), ("beta", 0.2, 0.9, 18.0)])
+    holds = bk.get_deal(scn, "alpha").holds
+    acts = _actuals_from_holds(holds, fc, range(1, 5), 0.8)
+    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
+    assert r.committed
+    new = bk.get_deal(scn, "alpha")
+    aired_old = holds[holds.week <= 4].reset_index(drop=True)
+    aired_new = new.holds[new.holds.week <= 4].reset_index(drop=True)
+    pd.testing.assert_frame_equal(aired_old[UNIT + ["spots"]], aired_new[UNIT + ["spots"]])
+    assert int(new.holds[new.holds.week > 4]["spots"].sum()) == r.new_spots
+    assert bk.check_book(scn)["over_avails"] == 0
+    assert bk.events(scn)["action"].tolist()[-1] == "rebalance"
+    beta = bk.get_deal(scn, "beta")  # the other deal's holds are untouched
+    assert beta.spots == int(beta.holds["spots"].sum())
+
+
+def test_shortfall_that_cannot_be_closed_is_reported(tmp_path):
+    """Another deal then takes every avail left in weeks 5-8: after a 20% shortfall the deal's own
+    remaining spots cannot bring it back; the result says by how much."""
+    scn, fc = _committed(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0)])
+    from planner.scenario import Deal, Mix
+
+    scn.deals["beta"] = Deal(name="beta", advertiser="Invented", demo="a25-54", impressions=1e6, first_week=5,
+                             last_week=8, price_cpm=18.0, confidence=0.9, pad=None, mix=Mix(), path=scn.path)
+    late = scn.inventory[scn.inventory.week >= 5][UNIT]
+    left = int(scn.inventory[scn.inventory.week >= 5]["avails"].sum()) - int(
+        bk.held_spots(scn).query("week >= 5")["spots"].sum())
+    assert bk.commit_deal(scn, "beta", planner=greedy_planner(left, late)).committed
+    holds = bk.get_deal(scn, "alpha").holds
+    acts = _actuals_from_holds(holds, fc, range(1, 5), 0.8)
+    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
+    assert not r.deliverable and not r.committed
+    assert r.unmet > 0 and r.max_deliverable < r.remaining_guarantee
+    assert r.unmet == pytest.approx(r.remaining_guarantee - r.max_deliverable)
+    d = r.as_dict()
+    assert d["deliverable"] is False and d["unmet"] > 0
+
+
+def test_rebalance_needs_a_committed_deal(tmp_path):
+    scn, fc = make_synthetic(tmp_path / "s")
+    acts = pd.DataFrame(columns=UNIT + ["spots_aired", "impressions"])
+    with pytest.raises(InputError, match="not in the book"):
+        rb.rebalance_deal(scn, "alpha", acts, forecast=fc)
