@@ -46,7 +46,7 @@ def _set_cell(name, row, col, value):
 def _edit_history(fn):
     def mutate(folder):
         p = folder / "history.parquet"
-        t = pq.read_table(p).to_pandas()
+        t = pq.read_table(p).slice(0, 30_000).to_pandas()  # a small file keeps the test fast
         t = fn(t)
         pq.write_table(pa.Table.from_pandas(t, preserve_index=False), p)
     return mutate
