@@ -37,6 +37,10 @@ _AVAILS_PER_HOUR = {"early_morning": 1.1, "daytime": 0.8, "early_fringe": 1.2, "
 _HH_CPM = {"early_morning": 8.0, "daytime": 6.0, "early_fringe": 9.0, "prime_access": 12.0,
            "prime": 17.0, "late_fringe": 10.0, "overnight": 3.0}
 
+# Smallest rate the card carries per daypart (tiny zones and networks), dollars per spot.
+_MIN_RATE = {"early_morning": 1.5, "daytime": 1.0, "early_fringe": 1.5, "prime_access": 2.0,
+             "prime": 3.0, "late_fringe": 1.5, "overnight": 1.0}
+
 DEMO_MARKETS = {  # market -> [(zone, households)]  (invented places)
     "marrowdale": [("marrowdale-north", 1_450_000), ("marrowdale-central", 1_820_000), ("marrowdale-south", 960_000)],
     "quenby-bay": [("quenby-bay-east", 640_000), ("quenby-bay-west", 520_000), ("quenby-bay-harbor", 380_000)],
@@ -152,7 +156,8 @@ def make_inventory(truth: pd.DataFrame, scenario, seed: int) -> pd.DataFrame:
     size = hh["zone"].map(uni / uni.median()) ** 0.08  # big zones command a small CPM premium
     cpm = hh["daypart"].map(_HH_CPM).fillna(8.0)
     rate = cpm * hh["impressions"] / 1000.0 * size * hh["f_rate"]
-    rate = np.maximum(np.round(rate * 2) / 2, 1.0)  # rate card in half dollars, at least one dollar
+    floor = hh["daypart"].map(_MIN_RATE).fillna(1.0)
+    rate = np.maximum(np.round(rate * 2) / 2, floor)  # rate card in half dollars, a floor per daypart
     return pd.DataFrame({"zone": hh["zone"], "network": hh["network"], "daypart": hh["daypart"],
                          "week": hh["week"].astype(int), "avails": avails.astype(int), "rate": rate.round(2)})
 
@@ -350,7 +355,6 @@ def build_demo(dest: Path | None = None) -> dict:
 
     dest = Path(dest) if dest else demo_path()
     dest.mkdir(parents=True, exist_ok=True)
-    (dest / "history.parquet").unlink(missing_ok=True)
     write_tables(dest, markets=DEMO_MARKETS, networks=DEMO_NETWORKS, seed=DEMO_SEED)
     (dest / "scenario.toml").write_text(scenario_toml(
         name="demo-spring-2027", first_week=date(2027, 3, 29), weeks=13, seed=DEMO_SEED,
