@@ -10,6 +10,11 @@ Addition to the data contract: `scenario.toml` may carry a `[history_generator]`
 (`seed`, `start`, `end`, optional `short_history`, ...). When `history.parquet` and `history.csv`
 are both missing and that table is present, the loader generates `history.parquet` with
 `scenarios.generate` on first use and caches it in the folder.
+
+Addition to the data contract: the history may instead be a folder `history/` of Parquet parts
+(`history/*.parquet`, searched recursively), each part holding all the history columns, for a
+history too big for one file (bench/generate_large.py writes one part per zone). It is used
+when neither `history.parquet` nor `history.csv` exists; `scenario.history_path` is the folder.
 """
 from __future__ import annotations
 
@@ -676,13 +681,15 @@ def load_scenario(path: str | Path, *, generate: bool = True) -> Scenario:
                 problems.add(f"scenario.toml [history_generator]: short_history [{z!r}, {n!r}] names an unknown "
                              "zone or network")
         problems.raise_if_any()
-    hp, hc = folder / "history.parquet", folder / "history.csv"
-    history_path = hp if hp.is_file() else (hc if hc.is_file() else hp)
+    hp, hc, hd = folder / "history.parquet", folder / "history.csv", folder / "history"
+    history_path = hp if hp.is_file() else (hc if hc.is_file() else (hd if _history_exists(hd) else hp))
     scenario = Scenario(path=folder, name=name, first_week=first_week, weeks=int(weeks), currency=currency.strip(),
                         preempt_rate=float(preempt), dayparts=dayparts, zones=zones_df, universes=universes,
                         networks=networks_df, inventory=inventory, deals=deals, demos=demos,
                         history_path=history_path, history_generator=generator)
-    if not history_path.is_file():
+    if generate and generator is not None and history_path == hp and hp.is_file() and _stale(hp, scenario):
+        hp.unlink(missing_ok=True)  # made by the generator from other settings: make it again
+    if not _history_exists(history_path):
         if generator is None:
             raise ScenarioError("history.parquet: file is missing (no history.csv, and scenario.toml has no "
                                 "[history_generator] table to make one)")
@@ -690,13 +697,44 @@ def load_scenario(path: str | Path, *, generate: bool = True) -> Scenario:
             from scenarios.generate import spec_from_scenario, write_spec
 
             write_spec(spec_from_scenario(scenario), hp)
-    if history_path.is_file():
+    if _history_exists(history_path):
         _check_history_columns(history_path)
     return scenario
 
 
+def _stale(path: Path, scenario: Scenario) -> bool:
+    """True when `path` was written by the generator from settings other than the scenario's."""
+    import pyarrow.parquet as pq
+
+    from scenarios.generate import METADATA_KEY, spec_digest, spec_from_scenario
+
+    try:
+        meta = pq.read_schema(path).metadata or {}
+    except Exception:  # noqa: BLE001 - unreadable: the column check reports it
+        return False
+    made = meta.get(METADATA_KEY)
+    return made is not None and made.decode() != spec_digest(spec_from_scenario(scenario))
+
+
+def _history_parts(path: Path) -> list[Path]:
+    """The Parquet parts of a `history/` folder, sorted."""
+    return sorted(p for p in Path(path).rglob("*.parquet") if p.is_file())
+
+
+def _history_exists(path: Path) -> bool:
+    """A history file, or a history folder with at least one Parquet part."""
+    path = Path(path)
+    return path.is_file() or (path.is_dir() and bool(_history_parts(path)))
+
+
 def _check_history_columns(path: Path) -> None:
     name = path.name
+    if path.is_dir():  # a folder of parts: check the first part's columns
+        parts = _history_parts(path)
+        if not parts:
+            raise ScenarioError(f"{name}/: no Parquet parts in the history folder")
+        name = f"{name}/{parts[0].relative_to(path)}"
+        path = parts[0]
     if path.suffix == ".parquet":
         import pyarrow.parquet as pq
 
@@ -719,15 +757,17 @@ def _check_history_columns(path: Path) -> None:
 def history_fingerprint(scenario: Scenario) -> str:
     """A cheap token that changes when the history file changes (path, size, mtime)."""
     p = Path(scenario.history_path)
-    st = p.stat()
-    text = f"{p.resolve()}|{st.st_size}|{st.st_mtime_ns}"
+    files = _history_parts(p) if p.is_dir() else [p]
+    text = "|".join(f"{f.resolve()}|{f.stat().st_size}|{f.stat().st_mtime_ns}" for f in files)
     return hashlib.sha1(text.encode()).hexdigest()[:16]
 
 
 def _relation(con, path: Path) -> str:
     """Register `path` as DuckDB view `h` with typed (TRY_CAST) columns; returns the view name."""
     p = str(path).replace("'", "''")
-    if path.suffix == ".parquet":
+    if path.is_dir():
+        src = f"read_parquet('{p}/**/*.parquet', hive_partitioning = false, union_by_name = true)"
+    elif path.suffix == ".parquet":
         src = f"read_parquet('{p}')"
     else:
         src = f"read_csv('{p}', header=true, all_varchar=true)"
@@ -771,7 +811,7 @@ def validate_history(scenario: Scenario) -> HistorySummary:
 
     path = Path(scenario.history_path)
     name = path.name
-    if not path.is_file():
+    if not _history_exists(path):
         raise ScenarioError(f"{name}: file is missing")
     _check_history_columns(path)
     con = duckdb.connect()
@@ -804,7 +844,7 @@ def validate_history(scenario: Scenario) -> HistorySummary:
                 more = f" (and {n - 1} more)" if n > 1 else ""
                 problems.add(f"{name} row {row}{more}: {what}, got {val!r}")
         problems.raise_if_any()
-        clean = path.suffix == ".parquet" and _parquet_keys_unique(path, scenario)
+        clean = path.is_file() and path.suffix == ".parquet" and _parquet_keys_unique(path, scenario)
         dup = None if clean else con.execute("""
             SELECT zone, network, demo, date, quarter_hour, count(*) AS n FROM h
             GROUP BY ALL HAVING count(*) > 1 LIMIT 1""").fetchone()
@@ -888,7 +928,7 @@ def load_history(scenario: Scenario, columns: Sequence[str] | None = None, *, fi
 
     path = Path(scenario.history_path)
     cols = list(columns) if columns is not None else list(HISTORY_COLUMNS)
-    if path.suffix == ".parquet":
+    if path.suffix == ".parquet" or path.is_dir():
         table = pq.read_table(path, columns=cols, filters=filters)
         df = table.to_pandas(date_as_object=False)
     else:

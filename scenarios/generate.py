@@ -278,6 +278,20 @@ def _dict_column(names: Sequence[str], idx: np.ndarray) -> pa.Array:
     return pa.DictionaryArray.from_arrays(pa.array(idx.astype(np.int32)), pa.array(list(names))).cast(pa.string())
 
 
+GENERATOR_VERSION = "1"
+METADATA_KEY = b"pledge.history_generator"
+
+
+def spec_digest(spec: HistorySpec) -> str:
+    """Short digest of everything that determines the generated history (and the code version)."""
+    import hashlib
+    import json
+
+    d = {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in spec.__dict__.items()}
+    text = json.dumps({"version": GENERATOR_VERSION, **d}, sort_keys=True, default=str)
+    return hashlib.sha1(text.encode()).hexdigest()[:16]
+
+
 HISTORY_SCHEMA = pa.schema([
     ("zone", pa.string()), ("network", pa.string()), ("demo", pa.string()),
     ("date", pa.date32()), ("quarter_hour", pa.int16()), ("rating", pa.float32()),
@@ -298,7 +312,8 @@ def write_spec(spec: HistorySpec, path: str | Path) -> Path:
     qh_i = np.tile(np.arange(QH, dtype=np.int16), n_net * n_dem * days)
     day0 = (np.datetime64(spec.start, "D") - np.datetime64("1970-01-01", "D")).astype(int)
     with atomic_path(path) as tmp:
-        with pq.ParquetWriter(tmp, HISTORY_SCHEMA, compression="zstd") as writer:
+        schema = HISTORY_SCHEMA.with_metadata({METADATA_KEY: spec_digest(spec).encode()})
+        with pq.ParquetWriter(tmp, schema, compression="zstd") as writer:
             for zi, zone in enumerate(spec.zones):
                 ratings = sim.zone(zi)[:, :, :days, :].reshape(-1)
                 keep = sim.history_mask(zi).reshape(-1)
@@ -310,7 +325,7 @@ def write_spec(spec: HistorySpec, path: str | Path) -> Path:
                     "date": pa.array((day0 + day_i[keep]).astype(np.int32), type=pa.int32()).cast(pa.date32()),
                     "quarter_hour": pa.array(qh_i[keep]),
                     "rating": pa.array(ratings[keep]),
-                }, schema=HISTORY_SCHEMA)
+                }, schema=schema)
                 writer.write_table(table, row_group_size=1 << 20)
     return path
 

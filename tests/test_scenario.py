@@ -397,3 +397,17 @@ def test_cli_validate_bad_exits_2(small_scenario, scenario_copy, capsys):
 
 def test_cli_validate_missing_folder(tmp_path, capsys):
     assert main(["validate", str(tmp_path / "nope")]) == 2
+
+
+def test_generated_history_remade_when_settings_change(small_scenario, scenario_copy):
+    folder = scenario_copy(small_scenario)
+    before = pq.read_table(folder / "history.parquet")
+    text = (folder / "scenario.toml").read_text()
+    (folder / "scenario.toml").write_text(text.replace("seed = 11", "seed = 12"))
+    after = pq.read_table(load_scenario(folder).history_path)
+    assert not after.equals(before)
+    # A history the generator did not make is never replaced.
+    user = folder / "history.parquet"
+    pq.write_table(before.replace_schema_metadata(None), user)
+    load_scenario(folder)
+    assert pq.read_table(user).equals(before.replace_schema_metadata(None))
