@@ -181,14 +181,14 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
     with timed("check_commit", f"3/5 checking {len(names)} demo deals, committing the deliverable ones",
                total=len(names)) as advance:
         for name in names:
-            check, plan = evaluate_deal(scn, name, forecast=fc.table, held=held_spots(scn), solver=solver)
-            runs[name] = (check, plan)
+            check, plan, extra = evaluate_deal(scn, name, forecast=fc.table, held=held_spots(scn), solver=solver)
+            runs[name] = (check, plan, extra)
             checks[name] = _payload(check)
             if plan is not None and plan.deliverable:
                 r = commit_deal(scn, name, planner=_reuse_plan(plan, fc.table), solver=solver)
                 if r.committed:
                     committed.append(name)
-                    runs[name] = (check, r.plan)
+                    runs[name] = (check, r.plan, extra)
                 else:
                     not_committed[name] = r.reason
             else:

@@ -85,6 +85,8 @@ class BookSection:
     liability_basis: str = "refund"
     deals: Sequence[str] = ()
     extra: dict[str, Any] = field(default_factory=dict)
+    deal_rows: list[dict] = field(default_factory=list)  # per deal: shortfall chance, liability, CVaR share
+    network_rows: list[dict] = field(default_factory=list)  # networks whose level error drives the tail
 
 
 @dataclass
@@ -288,7 +290,7 @@ def _verdict_panel(d: DealSection, currency: str) -> str:
               _imp(v.get("expected_impressions"))),
         _tile(name, "probability_of_delivery", "chance of delivery", prob, fmt_pct(prob),
               "risk" if (prob is not None and conf is not None and prob < conf - 1e-9) else ""),
-        _tile(name, "confidence", "required chance", conf, fmt_pct(conf) if conf is not None
+        _tile(name, "confidence", "required chance" if conf is not None else "risk margin", conf, fmt_pct(conf) if conf is not None
               else ("pad " + fmt_pct(v.get("pad"), 0) if v.get("pad") is not None else "\u2014")),
         _tile(name, "cost", "minimum cost", v.get("cost"), fmt_money(v.get("cost"), currency)),
         _tile(name, "revenue", "revenue", revenue, fmt_money(revenue, currency)),
@@ -398,9 +400,23 @@ def _book_section(data: ReportData) -> str:
     img = _img(plots.liability_svg(b.liability_draws, b.var95, b.cvar95, c), "liability", None,
                "book liability distribution")
     deals = ", ".join(b.deals) if b.deals else "\u2014"
+    rows = "".join(
+        f"<tr><td>{_esc(r['deal'])}</td><td>{fmt_pct(r['probability_of_shortfall'])}</td>"
+        f"<td>{fmt_count(r['expected_shortfall'])}</td><td>{fmt_money(r['expected_liability'], c)}</td>"
+        f"<td>{fmt_money(r['expected_margin'], c)}</td>"
+        f"<td>{fmt_pct(r['tail_contribution'] / b.cvar95) if b.cvar95 > 0 else chr(0x2014)}</td></tr>"
+        for r in b.deal_rows)
+    table = ('<table class="summary"><thead><tr><th>deal</th><th>shortfall chance</th><th>expected shortfall (imp.)</th>'
+             '<th>expected liability</th><th>expected margin</th><th>share of CVaR95</th></tr></thead>'
+             f'<tbody>{rows}</tbody></table>') if rows else ""
+    nets = ("<div class='binding'>Networks whose audience level drives the tail (liability from their level "
+            "error in the draws beyond VaR95): " + ", ".join(
+                f"{_esc(n['network'])} {fmt_money(n['tail_liability'], c)}" for n in b.network_rows) + ".</div>"
+            ) if b.network_rows else ""
     return (f'<h2>The book</h2><div class="book"><div class="binding">Deals in the book: {_esc(deals)}. '
             f'Liability basis: {_esc(b.liability_basis)}. Shocks: {_esc(shocks)}. Seed: {_esc(b.seed)}.</div>'
-            f'<div class="tiles">{tiles}</div><div class="plots"><div class="wide">{img}</div></div></div>')
+            f'<div class="tiles">{tiles}</div><div class="plots"><div class="wide">{img}</div>'
+            f'<div class="wide">{table}</div>{nets}</div></div>')
 
 
 def _forecast_section(data: ReportData) -> str:
@@ -540,7 +556,12 @@ def book_section(stress: Any) -> BookSection:
         liability_draws=np.asarray(stress.book_liability, dtype=float), var95=float(b["var95"]),
         cvar95=float(b["cvar95"]), expected_liability=float(b["expected_liability"]), draws=int(stress.draws),
         seed=stress.seed, shocks=list(stress.shocks or ()), liability_basis=stress.liability_basis,
-        deals=list(stress.deal_names), extra={k: v for k, v in b.items()})
+        deals=list(stress.deal_names), extra={k: v for k, v in b.items()},
+        deal_rows=[{"deal": d.deal, "probability_of_shortfall": d.probability_of_shortfall,
+                    "expected_shortfall": d.expected_shortfall, "expected_liability": d.expected_liability,
+                    "expected_margin": d.expected_margin, "tail_contribution": d.tail_contribution}
+                   for d in stress.deals],
+        network_rows=[dict(n) for n in (stress.networks or [])[:5] if n.get("tail_liability", 0) > 0])
 
 
 def attach_stress(section: DealSection, stress: Any) -> None:
@@ -585,9 +606,10 @@ def frontier_frame(rows: Any) -> pd.DataFrame | None:
     return out
 
 
-def _section(scenario: Any, name: str, check: Any, plan: Any, in_book: bool) -> DealSection:
+def _section(scenario: Any, name: str, check: Any, plan: Any, in_book: bool, extra: Any = ()) -> DealSection:
     deal = scenario.deals[name]
     verdict = check_payload(check)
+    rows = list(verdict.get("frontier") or []) + list(extra or [])
     spots = pacing = None
     if plan is not None and getattr(plan, "deliverable", True):
         spots = plan.spots
@@ -595,22 +617,32 @@ def _section(scenario: Any, name: str, check: Any, plan: Any, in_book: bool) -> 
     return DealSection(
         name=name, verdict=verdict, advertiser=getattr(deal, "advertiser", None), demo=deal.demo,
         weeks=(int(deal.first_week), int(deal.last_week)), price_cpm=float(deal.price_cpm), in_book=in_book,
-        frontier=frontier_frame(verdict.get("frontier")), pacing=pacing, spots=spots)
+        frontier=frontier_frame(rows or None), pacing=pacing, spots=spots)
 
 
 def evaluate_deal(scenario: Any, name: str, *, forecast: pd.DataFrame, held: pd.DataFrame | None,
-                  solver: str = "cbc") -> tuple[Any, Any]:
-    """Check (with frontier) and buy plan of one deal from a single solve: (CheckResult, PlanResult).
+                  solver: str = "cbc") -> tuple[Any, Any, list]:
+    """Check (with frontier) and buy plan of one deal from a single solve.
 
-    The same computation as `check_deal(..., frontier=True)` and `plan_deal(...)` with the same
-    `held` spots; the plan is None when the deal is not deliverable.
+    Returns (CheckResult, PlanResult or None, extra frontier rows). The same computation as
+    `check_deal(..., frontier=True)` and `plan_deal(...)` with the same `held` spots; the plan is
+    None when the deal is not deliverable, and then a few deliverable guarantee sizes are added
+    to the frontier shown (not to the check's own figures).
     """
     from planner.deals import check_result, plan_result, run_deal
+
+    from planner.deals import frontier as frontier_rows
 
     run = run_deal(scenario, name, solver=solver, held=held, forecast=forecast)
     check = check_result(run, with_frontier=True)
     plan = plan_result(run) if run.allocation.feasible else None
-    return check, plan
+    extra = []
+    if plan is None and check.max_guarantee_lp > 0:
+        # The check's frontier is sized on the guarantee asked; below the largest deliverable
+        # guarantee it has at most one point. Add a few deliverable sizes for the picture.
+        sizes = [check.max_guarantee_lp * f for f in (0.25, 0.5, 0.75, 0.9)]
+        extra = frontier_rows(run.problem, sizes, solver=solver, max_g=check.max_guarantee_lp)
+    return check, plan, extra
 
 
 def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str | Path | None = None,
@@ -642,8 +674,8 @@ def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str
             say(f"checking {name}")
             held = held_spots(scenario, book, exclude=[name] if name in booked else [])
             runs[name] = evaluate_deal(scenario, name, forecast=forecast, held=held, solver=solver)
-        check, plan = runs[name]
-        sections.append(_section(scenario, name, check, plan, name in booked))
+        check, plan, *extra = runs[name]
+        sections.append(_section(scenario, name, check, plan, name in booked, extra[0] if extra else ()))
     book_part = None
     if booked:
         if stress is None or getattr(stress, "delivery", None) is None:
