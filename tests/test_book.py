@@ -360,3 +360,46 @@ def test_killed_after_commit_keeps_the_deal(tmp_path):
     scn, _ = make_synthetic(folder)
     assert [d.name for d in bk.list_deals(scn)] == ["alpha"]
     assert int(bk.held_spots(scn)["spots"].sum()) == 5
+
+
+# --------------------------------------------------------------------------- command line
+
+def _cli(capsys, *argv):
+    from planner.cli import main
+
+    code = main(list(argv))
+    out = capsys.readouterr()
+    return code, out.out, out.err
+
+
+def test_cli_book_list_show_release(tmp_path, capsys):
+    scn, _ = make_synthetic(tmp_path / "s")
+    bk.commit_deal(scn, "alpha", planner=greedy_planner(6))
+    code, out, _ = _cli(capsys, "book", "list", str(scn.path), "--json")
+    assert code == 0
+    listed = json.loads(out)
+    assert [d["name"] for d in listed["deals"]] == ["alpha"] and listed["deals"][0]["spots"] == 6
+    code, out, _ = _cli(capsys, "book", "show", str(scn.path), "alpha", "--json")
+    assert code == 0 and sum(h["spots"] for h in json.loads(out)["holds"]) == 6
+    code, out, _ = _cli(capsys, "book", "list", str(scn.path))
+    assert code == 0 and "alpha" in out
+    code, out, _ = _cli(capsys, "book", "show", str(scn.path), "alpha")
+    assert code == 0 and "holds by week" in out
+    code, _, err = _cli(capsys, "book", "show", str(scn.path), "nope")
+    assert code == 2 and "not in the book" in err
+    code, out, _ = _cli(capsys, "book", "release", str(scn.path), "alpha", "--json")
+    assert code == 0 and json.loads(out) == {"released": "alpha", "spots_freed": 6}
+    code, out, _ = _cli(capsys, "book", "list", str(scn.path), "--json")
+    assert json.loads(out)["deals"] == []
+    code, _, err = _cli(capsys, "book", "list", str(tmp_path / "missing"))
+    assert code == 2 and "not a scenario folder" in err
+
+
+def test_cli_book_option(tmp_path, capsys):
+    scn, _ = make_synthetic(tmp_path / "s")
+    other = tmp_path / "desk.sqlite"
+    bk.commit_deal(scn, "alpha", other, planner=greedy_planner(2))
+    code, out, _ = _cli(capsys, "book", "list", str(scn.path), "--book", str(other), "--json")
+    assert code == 0 and [d["name"] for d in json.loads(out)["deals"]] == ["alpha"]
+    code, out, _ = _cli(capsys, "book", "list", str(scn.path), "--json")
+    assert json.loads(out)["deals"] == []
