@@ -74,9 +74,14 @@ def _share(value: float, _pos=None) -> str:
 _LABEL_BOX = dict(boxstyle="round,pad=0.2", fc="white", ec="none", alpha=0.85)
 
 
-def _figure(width: float, height: float) -> Figure:
+def _figure(width: float, height: float, *, left: float = 0.75, right: float = 0.2, bottom: float = 0.5,
+            top: float = 0.35, wspace: float | None = None) -> Figure:
+    """A figure with fixed margins in inches (a layout engine would draw every figure twice)."""
     with matplotlib.rc_context(_RC):
-        return Figure(figsize=(width, height), dpi=100, layout="constrained")
+        fig = Figure(figsize=(width, height), dpi=100)
+        fig.subplots_adjust(left=left / width, right=1 - right / width, bottom=bottom / height,
+                            top=1 - top / height, wspace=wspace)
+        return fig
 
 
 def _svg(fig: Figure) -> str:
@@ -84,6 +89,16 @@ def _svg(fig: Figure) -> str:
     with matplotlib.rc_context(_RC):
         fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None}, facecolor="white")
     return buf.getvalue()
+
+
+def _two_tone(ax, heights: np.ndarray, edges: np.ndarray, split: float, low: str, high: str) -> None:
+    """A histogram drawn as two filled step outlines (one artist each, fast): bins whose centre is
+    below `split` in colour `low`, the others in `high`."""
+    centres = 0.5 * (edges[:-1] + edges[1:])
+    below = centres < split
+    for mask, colour in ((below, low), (~below, high)):
+        if mask.any():
+            ax.stairs(np.where(mask, heights, 0.0), edges, fill=True, color=colour, alpha=0.85, lw=0)
 
 
 def _style(ax) -> None:
@@ -104,7 +119,7 @@ def frontier_svg(frontier: pd.DataFrame, guarantee: float, confidence: float | N
     max_guarantee : the largest deliverable guarantee, impressions (marked when given).
     """
     with matplotlib.rc_context(_RC):
-        fig = _figure(6.4, 3.2)
+        fig = _figure(6.4, 3.3, right=0.75, bottom=0.85)
         ax = fig.add_subplot()
         f = frontier.sort_values("guarantee")
         ok = f["cost"].notna()
@@ -128,7 +143,7 @@ def frontier_svg(frontier: pd.DataFrame, guarantee: float, confidence: float | N
             ax.axvline(max_guarantee, color=BRICK, lw=1.2, ls=":", label="largest deliverable")
         h1, l1 = ax.get_legend_handles_labels()
         h2, l2 = ax2.get_legend_handles_labels()
-        fig.legend(h1 + h2, l1 + l2, loc="outside lower center", ncols=4)
+        fig.legend(h1 + h2, l1 + l2, loc="lower center", bbox_to_anchor=(0.5, 0.0), ncols=4)
         ax.set_title("Cost and chance of delivery by guarantee size", loc="left")
         return _svg(fig)
 
@@ -184,8 +199,8 @@ def money_map_svg(spots: pd.DataFrame, currency: str, dayparts: list[str] | None
     dayparts = [d for d in dayparts if d in set(spots["daypart"])] or list(dict.fromkeys(spots["daypart"]))
     networks = (spots.groupby("network")["cost"].sum().sort_values(ascending=False).index.tolist())
     with matplotlib.rc_context(_RC):
-        height = max(2.6, 0.9 + 0.28 * len(networks))
-        fig = _figure(9.6, height)
+        height = max(2.6, 1.2 + 0.3 * len(networks))
+        fig = _figure(9.6, height, left=1.35, bottom=0.62, right=0.1, wspace=0.06)
         axes = fig.subplots(1, 2, sharey=True)
         for ax, value, title, fmt in (
             (axes[0], "expected_impressions", "Expected impressions", _short),
@@ -230,9 +245,7 @@ def delivery_svg(draws: np.ndarray, guarantee: float, probability_of_shortfall: 
         pad = 0.04 * (hi - lo or 1.0)
         bins = np.linspace(lo - pad, hi + pad, 61)
         counts, edges = np.histogram(draws, bins=bins)
-        centres = 0.5 * (edges[:-1] + edges[1:])
-        colour = np.where(centres < guarantee, BRICK, TEAL)
-        ax.bar(centres, counts / counts.sum(), width=np.diff(edges), color=colour, alpha=0.85, linewidth=0)
+        _two_tone(ax, counts / max(counts.sum(), 1), edges, guarantee, BRICK, TEAL)
         ax.axvline(guarantee, color=INK, lw=1.5, ls="--")
         ax.annotate(f"guarantee\nshortfall chance {probability_of_shortfall:.1%}", (guarantee, 0.97),
                     xycoords=("data", "axes fraction"), xytext=(-6, 0), textcoords="offset points",
@@ -262,10 +275,7 @@ def liability_svg(draws: np.ndarray, var95: float, cvar95: float, currency: str)
         hi = max(float(np.quantile(draws, 0.999)), cvar95, var95, 1.0)
         bins = np.linspace(0, hi * 1.05, 61)
         counts, edges = np.histogram(np.clip(draws, 0, None), bins=bins)
-        centres = 0.5 * (edges[:-1] + edges[1:])
-        colour = np.where(centres >= var95, BRICK, TEAL)
-        share = counts / max(counts.sum(), 1)
-        ax.bar(centres, share, width=np.diff(edges), color=colour, alpha=0.85, linewidth=0)
+        _two_tone(ax, counts / max(counts.sum(), 1), edges, var95, TEAL, BRICK)
         if zero_share > 0.2:  # a tall spike at zero would flatten the rest: show it on a log scale
             ax.set_yscale("log")
         ax.axvline(var95, color=INK, lw=1.4, ls="--")
@@ -295,7 +305,7 @@ def forecast_band_svg(history: pd.DataFrame, forecast: pd.DataFrame, title: str)
         (one spot, impressions).
     """
     with matplotlib.rc_context(_RC):
-        fig = _figure(4.6, 2.5)
+        fig = _figure(4.6, 2.7, left=0.6, bottom=0.75, top=0.3)
         ax = fig.add_subplot()
         h = history.sort_values("week_start").tail(78)  # the last year and a half is enough context
         f = forecast.sort_values("week_start")
@@ -315,6 +325,6 @@ def forecast_band_svg(history: pd.DataFrame, forecast: pd.DataFrame, title: str)
 
         ax.xaxis.set_major_locator(mdates.MonthLocator(bymonth=(1, 4, 7, 10)))
         ax.xaxis.set_major_formatter(mdates.DateFormatter("%b %y"))
-        fig.legend(loc="outside lower center", ncols=3, fontsize=7.5)
+        fig.legend(loc="lower center", bbox_to_anchor=(0.5, 0.0), ncols=3, fontsize=7.5)
         ax.set_title(title, loc="left", fontsize=9.5)
         return _svg(fig)
