@@ -1,0 +1,212 @@
+"""`pledge check` (sales desk) and `pledge plan` (buyer): thin commands over `planner.deals`.
+
+Exit status: 0 for an answer (a deal that is not deliverable is an answer), 2 for bad input.
+"""
+from __future__ import annotations
+
+import re
+from pathlib import Path
+from typing import Optional
+
+import typer
+from rich.table import Table
+
+from planner.cli import app
+from planner.cli.common import count, info, money, out_console, print_json, progress
+from planner.errors import InputError
+
+_JSON_OPT = typer.Option(False, "--json", help="Print one JSON object on stdout.")
+_SOLVER_OPT = typer.Option("cbc", "--solver", help="Integer solver: cbc (shipped with pulp) or highs.")
+_BOOK_OPT = typer.Option(None, "--book", help="Book of committed deals whose spots are held "
+                                              "(default: SCENARIO/book.sqlite if it exists).")
+PLAN_COLUMNS = ["zone", "network", "daypart", "week", "spots", "rate", "cost", "expected_impressions",
+                "preempt_rate", "sd_impressions"]
+
+
+def _load(scenario: Path):
+    from planner.scenario import load_scenario
+
+    if not scenario.is_dir():
+        raise InputError(f"{scenario}: not a scenario folder")
+    return load_scenario(scenario)
+
+
+def _pct(v, digits=1) -> str:
+    return "-" if v is None else f"{100 * v:.{digits}f}%"
+
+
+def _num(v) -> str:
+    return "-" if v is None else count(v)
+
+
+def _money(v, cur) -> str:
+    return "-" if v is None else money(v, cur)
+
+
+def _risk(r) -> str:
+    if r.risk_rule == "pad":
+        return f"pad {_pct(r.pad, 0)} (expected delivery >= {_pct(1 + r.pad, 0)} of the guarantee)"
+    text = f"confidence {_pct(r.confidence)} (chance constraint)"
+    return text + (" - default, the deal sets neither" if r.default_confidence_used else "")
+
+
+def _fit_note(r) -> None:
+    if r.fitted_forecast_first:
+        info("fitted forecast first (it was missing or its history changed)")
+
+
+def _cautions(r) -> None:
+    for c in r.cautions:
+        out_console.print(c, style="dim", highlight=False)
+
+
+def _kv_table(rows) -> Table:
+    t = Table(show_header=False, box=None, pad_edge=False)
+    t.add_column("", style="bold")
+    t.add_column("", justify="right")
+    for k, v in rows:
+        t.add_row(k, v)
+    return t
+
+
+@app.command("check")
+def check_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    deal: str = typer.Argument(..., help="Deal name (deals/NAME.toml)."),
+    target_margin: Optional[float] = typer.Option(None, "--target-margin",
+                                                  help="Margin wanted, a fraction of revenue (0.25 = 25%): "
+                                                       "prints the price CPM needed."),
+    frontier: bool = typer.Option(False, "--frontier", help="Also cost and chance of delivery at other guarantee sizes."),
+    solver: str = _SOLVER_OPT,
+    book: Optional[Path] = _BOOK_OPT,
+    as_json: bool = _JSON_OPT,
+) -> None:
+    """Is DEAL deliverable with the avails not held by committed deals? Cost, margin, chance, max guarantee."""
+    from planner.deals import check_deal
+
+    scn = _load(scenario)
+    with progress(f"checking {deal}"):
+        r = check_deal(scn, deal, solver=solver, target_margin=target_margin, frontier=frontier, book=book)
+    _fit_note(r)
+    if as_json:
+        print_json(r.to_json())
+        return
+    cur = r.currency
+    colour = "green" if r.deliverable else "red"
+    out_console.print(f"[bold]{r.deal}[/] ({r.advertiser}, {r.demo}, weeks {r.first_week}-{r.last_week}): "
+                      f"[bold {colour}]{r.verdict.upper()}[/]", highlight=False)
+    rows = [("guarantee", f"{_num(r.guarantee)} impressions"), ("risk margin", _risk(r))]
+    if r.deliverable:
+        rows += [
+            ("expected delivery", f"{_num(r.expected_impressions)} (sd {_num(r.sd_impressions)})"),
+            ("chance of delivery", _pct(r.probability_of_delivery)),
+            ("  if errors were independent", f"{_pct(r.probability_if_independent)} (overstated)"),
+            ("cost", _money(r.cost, cur)),
+            ("revenue", f"{_money(r.revenue, cur)} at {r.price_cpm:,.2f} CPM"),
+            ("margin", f"{_money(r.margin, cur)} ({_pct(r.margin_pct)})"),
+            ("cost per thousand guaranteed", f"{r.cost_cpm:,.2f}"),
+            ("spots", f"{_num(r.spots)} in {_num(r.units_bought)} units"),
+        ]
+        if r.cpm_needed is not None:
+            rows.append((f"CPM for a {_pct(r.target_margin, 0)} margin", f"{r.cpm_needed:,.2f}"))
+    else:
+        rows.append(("revenue asked", f"{_money(r.revenue, cur)} at {r.price_cpm:,.2f} CPM"))
+    rows += [("largest deliverable guarantee", f"{_num(r.max_guarantee)} impressions"),
+             ("solver", f"{r.solver}, gap {_pct(r.gap, 2)}, LP bound {_money(r.lp_bound, cur)}, "
+                        f"{r.cuts} cuts, {r.solve_seconds:.1f} s")]
+    out_console.print(_kv_table(rows))
+    if r.binding:
+        out_console.print("[bold]what binds[/]" if r.deliverable else "[bold]what limits it[/]")
+        for b in r.binding:
+            out_console.print(f"  - {b}", highlight=False)
+    if r.frontier:
+        t = Table(title="frontier", title_justify="left")
+        for c in ("guarantee", "deliverable", "cost", "cost per 1000", "chance of delivery"):
+            t.add_column(c, justify="right")
+        for f in r.frontier:
+            t.add_row(_num(f["guarantee"]), "yes" if f["deliverable"] else "no", _money(f["cost"], cur),
+                      "-" if f["cost_cpm"] is None else f"{f['cost_cpm']:,.2f}", _pct(f["probability_of_delivery"]))
+        out_console.print(t)
+    _cautions(r)
+
+
+def _safe(name: str) -> str:
+    return re.sub(r"[^A-Za-z0-9._-]+", "_", str(name))
+
+
+def write_plan_files(spots, out: Path, split_by: str | None) -> list[Path]:
+    """Write the plan CSV (or one per zone) atomically; return the paths written."""
+    from planner.atomic import write_with_atomic
+
+    frame = spots[PLAN_COLUMNS]
+    if split_by is None:
+        write_with_atomic(out, lambda p: frame.to_csv(p, index=False))
+        return [out]
+    paths = []
+    for key, part in frame.groupby(split_by, sort=True, observed=True):
+        key = key[0] if isinstance(key, tuple) else key
+        path = out.with_name(f"{out.stem}-{_safe(key)}{out.suffix or '.csv'}")
+        write_with_atomic(path, lambda p, part=part: part.to_csv(p, index=False))
+        paths.append(path)
+    return paths
+
+
+@app.command("plan")
+def plan_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    deal: str = typer.Argument(..., help="Deal name (deals/NAME.toml)."),
+    out: Path = typer.Option(..., "--out", help="CSV file for the buy plan (with --split-by: the name stem)."),
+    split_by: Optional[str] = typer.Option(None, "--split-by", help="zone: one order file per zone (OUT-ZONE.csv)."),
+    solver: str = _SOLVER_OPT,
+    book: Optional[Path] = _BOOK_OPT,
+    as_json: bool = _JSON_OPT,
+) -> None:
+    """The whole-spot buy plan of DEAL at least cost, with totals and the weekly pacing table."""
+    from planner.deals import plan_deal
+
+    if split_by is not None and split_by != "zone":
+        raise InputError(f"--split-by {split_by!r}: only 'zone' is supported")
+    if out.exists() and out.is_dir():
+        raise InputError(f"--out {out}: is a folder, give a file name")
+    scn = _load(scenario)
+    with progress(f"planning {deal}"):
+        r = plan_deal(scn, deal, solver=solver, book=book)
+    _fit_note(r)
+    files = write_plan_files(r.spots, out, split_by) if r.deliverable else []
+    if as_json:
+        print_json({"deal": r.deal, "deliverable": r.deliverable, "verdict": r.verdict, "reason": r.reason,
+                    "currency": r.currency, "guarantee": r.guarantee, "risk_rule": r.risk_rule,
+                    "confidence": r.confidence, "pad": r.pad, "default_confidence_used": r.default_confidence_used,
+                    "totals": r.totals, "pacing": r.pacing.to_dict(orient="records"),
+                    "files": [str(p) for p in files], "solver": r.solver, "gap": r.gap, "lp_bound": r.lp_bound,
+                    "cuts": r.cuts, "binding": r.binding, "fitted_forecast_first": r.fitted_forecast_first,
+                    "cautions": r.cautions})
+        return
+    cur = r.currency
+    if not r.deliverable:
+        out_console.print(f"[bold]{r.deal}[/]: [bold red]NOT DELIVERABLE[/], no plan written", highlight=False)
+        for b in r.binding:
+            out_console.print(f"  - {b}", highlight=False)
+        _cautions(r)
+        return
+    t = r.totals
+    out_console.print(f"[bold]{r.deal}[/]: buy plan written to {', '.join(map(str, files))}", highlight=False)
+    out_console.print(_kv_table([
+        ("spots", f"{_num(t['spots'])} in {_num(t['units'])} units"),
+        ("cost", _money(t["cost"], cur)),
+        ("guarantee", _num(t["guarantee"])),
+        ("expected delivery", f"{_num(t['expected_impressions'])} (sd {_num(t['sd_impressions'])})"),
+        ("chance of delivery", _pct(t["probability_of_delivery"])),
+        ("margin", f"{_money(t['margin'], cur)} ({_pct(t['margin_pct'])})"),
+        ("risk margin", _risk(r)),
+        ("solver", f"{r.solver}, gap {_pct(r.gap, 2)}"),
+    ]))
+    pt = Table(title="weekly pacing (expected impressions, 10%-90% band)", title_justify="left")
+    for c in ("week", "expected", "p10", "p90", "even pacing", "vs even"):
+        pt.add_column(c, justify="right")
+    for row in r.pacing.itertuples(index=False):  # one row per flight week
+        dev = row.expected_impressions / row.even_pacing - 1 if row.even_pacing else 0.0
+        pt.add_row(str(row.week), _num(row.expected_impressions), _num(row.p10), _num(row.p90),
+                   _num(row.even_pacing), f"{100 * dev:+.1f}%")
+    out_console.print(pt)
+    _cautions(r)

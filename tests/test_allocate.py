@@ -1,0 +1,216 @@
+"""The allocator against outside references: scipy.optimize.linprog (HiGHS), cvxpy (Clarabel),
+Monte Carlo of the error model, the NIST/SEMATECH normal table, and trade worked examples."""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy.optimize import linprog
+
+from planner import allocate as al
+from planner.delivery import DeliveryModel
+from test_delivery import dense_covariance, synthetic_units
+
+WEEKS = (1, 2, 3, 4)
+MIX = dict(max_network_share=0.3, daypart_min_share={"prime": 0.4}, daypart_max_share={"day": 0.7},
+           weekly_tolerance=0.2)
+
+
+def problem(guarantee=1.0e6, seed=1, max_spots=5, held=None, **rules):
+    u = synthetic_units(zones=4, networks=5, weeks=4, seed=seed)
+    scope = al.candidate_units(u, weeks=WEEKS, max_spots_per_unit=max_spots, held=held)
+    r = dict(MIX)
+    r.update(rules)
+    return al.make_problem(scope, guarantee, al.Rules(**r), WEEKS)
+
+
+def linear_rows(prob):
+    """Independent dense formulation of the mix and pacing rules: A_ub x <= 0."""
+    u = prob.units
+    m = ((1 - u["preempt_rate"]) * u["mean_impressions"]).to_numpy()
+    r = prob.rules
+    rows = []
+    for n in u["network"].unique():
+        rows.append(m * (u["network"] == n) - r.max_network_share * m)
+    for d, s in r.daypart_min_share.items():
+        rows.append(-(m * (u["daypart"] == d) - s * m))
+    for d, s in r.daypart_max_share.items():
+        rows.append(m * (u["daypart"] == d) - s * m)
+    W = len(prob.weeks)
+    for w in prob.weeks:
+        rows.append(m * (u["week"] == w) - (1 + r.weekly_tolerance) / W * m)
+        rows.append(-(m * (u["week"] == w) - (1 - r.weekly_tolerance) / W * m))
+    return m, np.array(rows, dtype=float)
+
+
+def test_pad_lp_relaxation_matches_scipy_linprog():
+    # Reference: scipy.optimize.linprog (method="highs") on an independent dense formulation.
+    prob = problem(pad=0.1, confidence=None)
+    ours = al.allocate(prob, integer=False)
+    m, A = linear_rows(prob)
+    A_ub = np.vstack([A, -m])
+    b_ub = np.append(np.zeros(len(A)), -(1.1) * prob.guarantee)
+    ref = linprog(prob.rate, A_ub=A_ub, b_ub=b_ub, bounds=list(zip(np.zeros(prob.n), prob.ub)), method="highs")
+    assert ref.status == 0 and ours.feasible
+    assert ours.cost == pytest.approx(ref.fun, rel=1e-6)
+
+
+def test_confidence_lp_relaxation_matches_cvxpy_conic_optimum():
+    # Reference: cvxpy with Clarabel, the second-order cone form of the chance constraint
+    # (Lobo, Vandenberghe, Boyd & Lebret 1998) with the linear variance frozen at our plan's value.
+    cp = pytest.importorskip("cvxpy")
+    prob = problem(guarantee=1.5e6, confidence=0.95)
+    ours = al.allocate(prob, integer=False)
+    assert ours.feasible
+    l0 = prob.model.linear_variance(ours.x)
+    m, A = linear_rows(prob)
+    S = dense_covariance(prob.units)
+    L = np.linalg.cholesky(S + 1e-9 * np.eye(len(S)) * S.diagonal().max())
+    x = cp.Variable(prob.n)
+    z = 1.6448536269514722  # z(0.95), NIST/SEMATECH table 1.6449
+    cons = [x >= 0, x <= prob.ub, A @ x <= 0,
+            m @ x - z * cp.norm(cp.hstack([L.T @ x, np.array([np.sqrt(l0)])])) >= prob.guarantee]
+    ref = cp.Problem(cp.Minimize(prob.rate @ x), cons)
+    ref.solve(solver=cp.CLARABEL)
+    assert ref.status == "optimal"
+    assert abs(ours.cost - ref.value) / ref.value < 0.005
+    # and the exact condition holds at our relaxed plan
+    dm = prob.model
+    assert dm.mean(ours.x) - z * dm.sd(ours.x) >= prob.guarantee * (1 - 1e-5)
+
+
+@pytest.mark.parametrize("solver", ["cbc", "highs"])
+def test_integer_plan_within_reported_gap_and_rules(solver):
+    prob = problem(guarantee=1.5e6, confidence=0.95)
+    a = al.allocate(prob, solver=solver)
+    assert a.feasible
+    x = a.x
+    assert np.all(x == np.round(x)) and np.all(x >= 0) and np.all(x <= prob.ub)
+    assert a.cost >= a.lp_bound * (1 - 1e-9)  # the LP relaxation is a lower bound
+    assert a.mip_bound >= a.lp_bound * (1 - 1e-6)  # the solver's bound is at least as strong
+    assert a.gap <= 0.005 + 1e-9  # the stated 0.5% gap is met
+    assert (a.cost - a.lp_bound) / a.cost <= 0.01  # and the plan is within 1% of the LP bound
+    assert a.lp_gap == pytest.approx((a.cost - a.lp_bound) / a.cost)
+    dm = prob.model
+    assert dm.mean(x) - al.z_value(0.95) * dm.sd(x) >= prob.guarantee  # exact condition, integer plan
+    m, A = linear_rows(prob)
+    assert np.all(A @ x <= 1e-6 * dm.mean(x))  # mix rules and pacing on expected impressions
+
+
+def test_solvers_agree():
+    prob = problem(guarantee=1.2e6, confidence=0.9)
+    c1, c2 = al.allocate(prob, solver="cbc").cost, al.allocate(prob, solver="highs").cost
+    assert abs(c1 - c2) / min(c1, c2) <= 0.01
+
+
+def test_even_pacing_is_total_expected_over_weeks():
+    # Pacing is defined against the plan's own total: each week within +-tol of T/W.
+    prob = problem(guarantee=1.2e6, pad=0.0, confidence=None, weekly_tolerance=0.05)
+    a = al.allocate(prob, solver="highs")
+    dm = prob.model
+    T = dm.mean(a.x)
+    wk = prob.units["week"].to_numpy()
+    for w in WEEKS:
+        e = dm.mean(np.where(wk == w, a.x, 0))
+        assert 0.95 * T / 4 - 1e-6 * T <= e <= 1.05 * T / 4 + 1e-6 * T
+    loose = al.allocate(al.with_rules(prob, weekly_tolerance=None), solver="highs")
+    assert loose.cost <= a.cost + 1e-6
+
+
+def test_monte_carlo_agrees_with_stated_probability_and_independence_overstates():
+    # Monte Carlo of the same error model (20,000 exact draws: Bernoulli preemption per spot,
+    # per-spot airing noise) against the normal-approximation probability the plan states.
+    prob = problem(guarantee=1.5e6, confidence=0.9)
+    a = al.allocate(prob, solver="highs")
+    dm = prob.model
+    stated = dm.probability(a.x, prob.guarantee)
+    d = dm.sample(a.x, 20_000, np.random.default_rng(42), exact=True)
+    mc = float((d >= prob.guarantee).mean())
+    assert abs(mc - stated) <= 0.01
+    assert mc >= 0.9 - 0.01
+    from scipy.special import ndtr
+
+    indep = float(ndtr((dm.mean(a.x) - prob.guarantee) / np.sqrt(dm.independent_variance(a.x))))
+    assert indep > mc + 0.03  # treating the level errors as independent per spot overstates it
+
+
+def test_z_values_against_normal_table():
+    # NIST/SEMATECH e-Handbook of Statistical Methods, 1.3.6.7.1 (standard normal table).
+    for c, z in ((0.90, 1.2816), (0.95, 1.6449), (0.975, 1.9600), (0.99, 2.3263)):
+        assert al.z_value(c) == pytest.approx(z, abs=1e-4)
+
+
+def test_cpm_worked_example():
+    # Common practice: 25,000 impressions for $500 is a $20 CPM.
+    assert al.cpm_needed(500.0, 25_000, 0.0) == pytest.approx(20.0)
+    # a 20% margin on revenue: revenue must be 500 / 0.8 = 625, i.e. a $25 CPM
+    assert al.cpm_needed(500.0, 25_000, 0.2) == pytest.approx(25.0)
+
+
+def test_holds_and_max_spots_bound_the_plan():
+    u = synthetic_units(zones=4, networks=5, weeks=4, seed=1)
+    held = u.loc[u["avails"] > 2, ["zone", "network", "daypart", "week"]].assign(spots=2)
+    scope = al.candidate_units(u, weeks=WEEKS, held=held, max_spots_per_unit=3)
+    merged = u.merge(held, how="left", on=["zone", "network", "daypart", "week"]).fillna({"spots": 0})
+    expect = np.minimum(merged["avails"] - merged["spots"], 3)
+    assert np.array_equal(scope["ub"].to_numpy(), expect.to_numpy(float))
+    prob = al.make_problem(scope, 5e5, al.Rules(confidence=0.9), WEEKS)
+    a = al.allocate(prob, solver="highs")
+    assert a.feasible and np.all(a.x <= prob.ub)
+
+
+def test_max_guarantee_is_the_edge_of_feasibility():
+    prob = problem(confidence=0.95)
+    mg = al.max_guarantee(prob)
+    assert mg.value > 0 and mg.at_plan == pytest.approx(mg.value, rel=1e-4)
+    assert al.allocate(al.with_guarantee(prob, 0.97 * mg.value), integer=False).feasible
+    assert not al.allocate(al.with_guarantee(prob, 1.01 * mg.value), integer=False).feasible
+    mgi = al.max_guarantee(prob, integer=True)
+    assert mgi.integer and mgi.at_plan <= mg.value * (1 + 1e-6) and mgi.at_plan >= 0.97 * mg.value
+
+
+def test_infeasible_deal_is_explained_in_seller_words():
+    # daytime carries about a third of the audience on offer: a 90% day minimum blocks a big guarantee
+    prob = problem(guarantee=4.0e6, confidence=0.95, daypart_min_share={"day": 0.9}, daypart_max_share={},
+                   max_network_share=None, weekly_tolerance=None)
+    a = al.allocate(prob, solver="highs")
+    assert not a.feasible
+    words = al.diagnose(prob)
+    day = [w for w in words if w.startswith("day share: needs 90%, can reach")]
+    assert day, words
+    reach = float(day[0].split("can reach ")[1].split("%")[0]) / 100
+    ok = al.with_rules(prob, daypart_min_share={"day": reach - 0.01})
+    assert al.max_guarantee(ok).value >= prob.guarantee
+    too = al.with_rules(prob, daypart_min_share={"day": reach + 0.02})
+    assert al.max_guarantee(too).value < prob.guarantee
+
+
+def test_binding_rules_reported():
+    prob = problem(guarantee=1.5e6, confidence=0.95, daypart_min_share={"day": 0.6}, daypart_max_share={})
+    a = al.allocate(prob, solver="highs")
+    words = al.binding_constraints(prob, a)
+    assert any(w.startswith("day share: held at the 60% minimum") for w in words), words
+    assert any(w.startswith("confidence: a 95% chance") for w in words), words
+
+
+def test_exhausted_avails_counts_networks():
+    prob = problem(guarantee=1e5, confidence=0.9)
+    x = np.where(prob.units["week"].to_numpy() == 3, prob.ub, 0.0)
+    words = al.exhausted_avails(prob, x)
+    assert words == ["avails in week 3 exhausted on 5 of 5 networks"]
+
+
+def test_pulp_reference_model_gives_the_same_lp_cost():
+    # The one-object-per-variable pulp model (kept for the benchmark) solved by CBC as an LP.
+    import pulp
+
+    prob = problem(pad=0.05, confidence=None)
+    ref = al.pulp_reference_model(prob, integer=False)
+    ref.solve(pulp.PULP_CBC_CMD(msg=0))
+    ours = al.allocate(prob, integer=False)
+    assert pulp.value(ref.objective) == pytest.approx(ours.cost, rel=1e-6)
+
+
+def test_unknown_solver_is_rejected():
+    with pytest.raises(ValueError):
+        al.allocate(problem(), solver="nope")
