@@ -694,8 +694,10 @@ def load_scenario(path: str | Path, *, generate: bool = True) -> Scenario:
             raise ScenarioError("history.parquet: file is missing (no history.csv, and scenario.toml has no "
                                 "[history_generator] table to make one)")
         if generate:
+            from planner.cli.common import info
             from scenarios.generate import spec_from_scenario, write_spec
 
+            info(f"{folder.name}: generating the invented history into history.parquet (first use, seconds) ...")
             write_spec(spec_from_scenario(scenario), hp)
     if _history_exists(history_path):
         _check_history_columns(history_path)

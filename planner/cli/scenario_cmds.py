@@ -14,8 +14,6 @@ def scenario_summary(path: str | Path) -> dict:
     """Load and fully validate a scenario (history rows included); return a plain summary dict."""
     folder = Path(path)
     generated = not (folder / "history.parquet").exists() and not (folder / "history.csv").exists()
-    if generated:
-        info("generating the scenario's history (first use) ...")
     sc = load_scenario(folder)
     info("checking history rows ...")
     h = validate_history(sc)
