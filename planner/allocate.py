@@ -346,7 +346,7 @@ class LPResult:
     solve_seconds: float
 
 
-def solve_relaxation(model: _Model, tol: float = 1e-6, max_iter: int = 200, max_resets: int = 6) -> LPResult:
+def solve_relaxation(model: _Model, tol: float = 1e-5, max_iter: int = 200, max_resets: int = 6) -> LPResult:
     """Kelley loop on the LP relaxation until the chance constraint holds at the LP solution.
 
     tol: relative tolerance of the condition (fraction of the guarantee, or of the max guarantee).
@@ -361,13 +361,16 @@ def solve_relaxation(model: _Model, tol: float = 1e-6, max_iter: int = 200, max_
     x = col[:n]
     l0 = prob.model.linear_variance(x)
     if prob.rules.confidence is not None:
+        z = z_value(prob.rules.confidence)
         resets = 0
         while it < max_iter:
             target = prob.guarantee if model.mode == "cost" else col[model.iG] / SCALE
             scale = max(target, prob.guarantee * 1e-3, 1.0)
             if _slack(prob, x, l0, target) >= -tol * scale:
                 l_true = prob.model.linear_variance(x)
-                if abs(l_true - l0) <= 1e-4 * max(l0, 1.0):
+                q = prob.model.quadratic_variance(x)
+                # stop when freezing l at l0 instead of l(x) moves the condition by less than tol
+                if z * abs(math.sqrt(q + l0) - math.sqrt(q + l_true)) <= tol * scale:
                     break
                 if l_true > l0:  # old cuts stay valid (the frozen function only grew)
                     l0 = l_true
@@ -517,7 +520,7 @@ class Allocation:
 
 
 def allocate(prob: AllocationProblem, *, solver: str = "cbc", gap: float = DEFAULT_GAP,
-             time_limit: float = DEFAULT_TIME_LIMIT, integer: bool = True, tol: float = 1e-6) -> Allocation:
+             time_limit: float = DEFAULT_TIME_LIMIT, integer: bool = True, tol: float = 1e-5) -> Allocation:
     """Minimum-cost whole-spot plan meeting the guarantee under the deal's rules and risk margin.
 
     gap: relative MIP optimality gap (0.005 = 0.5%); time_limit in seconds per MIP solve.
@@ -597,23 +600,69 @@ def _deliverable_value(prob: AllocationProblem, x: np.ndarray) -> float:
     return dm.mean(x) - z_value(prob.rules.confidence) * dm.sd(x)
 
 
+def _max_loop(model: _Model, tol: float, max_iter: int):
+    """Kelley cuts for max G with in-out stabilisation (cuts also at the midpoint between the LP
+    point and the best point so far); stops when the LP bound and the best exact value are within
+    `tol` (relative). Returns (ok, upper bound, best x, best value with l0 frozen, iterations)."""
+    prob, n = model.prob, model.prob.n
+    dm, z = prob.model, z_value(prob.rules.confidence)
+    ok, col, _ = model.solve()
+    if not ok:
+        return False, 0.0, None, 0.0, 1
+    l0 = dm.linear_variance(col[:n])
+    f = lambda c: dm.mean(c[:n]) - z * math.sqrt(dm.quadratic_variance(c[:n]) + l0)  # noqa: E731
+    best, fb, it, ub = col.copy(), f(col), 1, col[model.iG] / SCALE
+    for _pass in range(2):
+        while it < max_iter:
+            ub = col[model.iG] / SCALE
+            fx = f(col)
+            if fx > fb:
+                best, fb = col.copy(), fx
+            if ub - fb <= tol * max(abs(ub), 1.0):
+                break
+            model.add_cut(0.5 * (col + best), l0)
+            model.add_cut(col, l0)
+            ok, col, _ = model.solve()
+            it += 1
+            if not ok:
+                return False, 0.0, None, 0.0, it
+        l_true = dm.linear_variance(best[:n])
+        q = dm.quadratic_variance(best[:n])
+        if z * abs(math.sqrt(q + l_true) - math.sqrt(q + l0)) <= tol * max(abs(ub), 1.0):
+            break
+        l0 = l_true  # freeze the linear part at the best plan's own value and go once more
+        model.reset_cuts(l0)
+        ok, col, _ = model.solve()
+        it += 1
+        if not ok:
+            return False, 0.0, None, 0.0, it
+        fb = f(best)
+    return True, max(ub, fb), best[:n], fb, it
+
+
 def max_guarantee(prob: AllocationProblem, *, integer: bool = False, solver: str = "highs",
-                  gap: float = DEFAULT_GAP, tol: float = 1e-6,
+                  gap: float = DEFAULT_GAP, tol: float = 1e-3, max_iter: int = 80,
                   time_limit: float = DEFAULT_TIME_LIMIT) -> MaxGuarantee:
     """Maximise the deliverable guarantee: mean - z sd (confidence) or mean / (1 + pad), impressions.
 
-    Kelley cuts on the LP relaxation; with `integer`, whole spots by the MIP solver afterwards
-    (the exact value at the integer plan is reported in `at_plan`).
+    Kelley cuts (in-out stabilised) on the LP relaxation until the LP bound and the best plan's
+    value agree within `tol` (relative); with `integer`, whole spots by the MIP solver afterwards.
+    `value` is the LP bound, `at_plan` the exact value at the plan returned.
     """
     if prob.n == 0:
         return MaxGuarantee(0.0, 0.0, None, 0, 0)
     model = _Model(prob, "max", time_limit)
-    lp = solve_relaxation(model, tol=tol)
-    if not lp.ok:
-        return MaxGuarantee(0.0, 0.0, None, lp.cuts, lp.iterations)
-    x = lp.x[: prob.n]
-    best = MaxGuarantee(max(float(lp.objective), 0.0), max(_deliverable_value(prob, x), 0.0), x,
-                        lp.cuts, lp.iterations)
+    if prob.rules.pad is not None:
+        ok, col, obj = model.solve()
+        if not ok:
+            return MaxGuarantee(0.0, 0.0, None, 0, 1)
+        x, ub, its = col[: prob.n], col[model.iG] / SCALE, 1
+    else:
+        ok, ub, x, _, its = _max_loop(model, tol, max_iter)
+        if not ok:
+            return MaxGuarantee(0.0, 0.0, None, model.n_cuts_total, its)
+    best = MaxGuarantee(max(float(ub), 0.0), max(_deliverable_value(prob, x), 0.0), x,
+                        model.n_cuts_total, its)
     if integer:
         _set_integer(model)
         mip = solve_mip(model, solver, gap, time_limit)
@@ -716,7 +765,8 @@ def binding_constraints(prob: AllocationProblem, alloc: Allocation, *, dual_tol:
 
 
 def _feasible_at(prob: AllocationProblem) -> bool:
-    return max_guarantee(prob).value >= prob.guarantee * (1 - 1e-6)
+    """Whether a plan (continuous spots) reaches the guarantee, to 0.1%."""
+    return max_guarantee(prob).at_plan >= prob.guarantee * (1 - 1e-3)
 
 
 def _bisect(lo: float, hi: float, ok_at, steps: int = 7) -> float:

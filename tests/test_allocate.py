@@ -162,7 +162,7 @@ def test_holds_and_max_spots_bound_the_plan():
 def test_max_guarantee_is_the_edge_of_feasibility():
     prob = problem(confidence=0.95)
     mg = al.max_guarantee(prob)
-    assert mg.value > 0 and mg.at_plan == pytest.approx(mg.value, rel=1e-4)
+    assert mg.value > 0 and mg.at_plan == pytest.approx(mg.value, rel=2e-3)
     assert al.allocate(al.with_guarantee(prob, 0.97 * mg.value), integer=False).feasible
     assert not al.allocate(al.with_guarantee(prob, 1.01 * mg.value), integer=False).feasible
     mgi = al.max_guarantee(prob, integer=True)
@@ -180,7 +180,7 @@ def test_infeasible_deal_is_explained_in_seller_words():
     assert day, words
     reach = float(day[0].split("can reach ")[1].split("%")[0]) / 100
     ok = al.with_rules(prob, daypart_min_share={"day": reach - 0.01})
-    assert al.max_guarantee(ok).value >= prob.guarantee
+    assert al.max_guarantee(ok).at_plan >= prob.guarantee
     too = al.with_rules(prob, daypart_min_share={"day": reach + 0.02})
     assert al.max_guarantee(too).value < prob.guarantee
 
