@@ -420,12 +420,26 @@ def ensure_history(folder: str | Path) -> Path:
 
 def copy_demo(dest: str | Path) -> Path:
     """Copy the demo scenario (without generated files) to `dest`, generate its history; return dest."""
+    from planner.scenario import load_scenario
+
     dest = Path(dest)
     src = demo_path()
     ignore = shutil.ignore_patterns("history.parquet", "forecast", "book.sqlite*", "__pycache__", ".*.tmp")
     shutil.copytree(src, dest, ignore=ignore, dirs_exist_ok=True)
+    cached = src / "history.parquet"
+    if cached.is_file() and _made_from(cached, spec_from_scenario(load_scenario(dest, generate=False))):
+        shutil.copyfile(cached, dest / "history.parquet")  # the same seeded history: copy, do not remake
     ensure_history(dest)
     return dest
+
+
+def _made_from(path: Path, spec: HistorySpec) -> bool:
+    """True when the Parquet file at `path` was generated from exactly `spec` (metadata digest)."""
+    try:
+        meta = pq.read_schema(path).metadata or {}
+    except Exception:  # noqa: BLE001 - unreadable cache: regenerate
+        return False
+    return meta.get(METADATA_KEY) == spec_digest(spec).encode()
 
 
 def make_small_scenario(dest: str | Path, *, seed: int = 0, n_zones: int = 3, n_networks: int = 3,
