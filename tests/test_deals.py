@@ -1,0 +1,219 @@
+"""check_deal / plan_deal and the `pledge check` / `pledge plan` commands on the small scenario,
+with an invented forecast table (the forecaster has its own tests)."""
+from __future__ import annotations
+
+import copy
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import planner.deals as deals
+from planner.cli import main
+from planner.errors import InputError
+
+DP_RATING = {"prime": 0.010, "prime_access": 0.007, "late_fringe": 0.005, "early_fringe": 0.005,
+             "daytime": 0.004, "early_morning": 0.003, "overnight": 0.001}
+
+
+def synthetic_forecast(scenario, seed=0) -> pd.DataFrame:
+    """Invented forecast table in the DEVELOPERS.md layout for every inventory unit and demo."""
+    rng = np.random.default_rng(seed)
+    inv = scenario.inventory[["zone", "network", "daypart", "week"]]
+    parts = []
+    for demo in scenario.demos:
+        f = inv.copy()
+        f["demo"] = demo
+        f = f.merge(scenario.universes[scenario.universes["demo"] == demo][["zone", "universe"]], on="zone")
+        net = {n: rng.uniform(0.5, 1.5) for n in f["network"].unique()}
+        f["mean_rating"] = f["daypart"].map(DP_RATING).fillna(0.004) * f["network"].map(net) * rng.uniform(0.8, 1.2, len(f))
+        mu = f["mean_rating"] * f["universe"]
+        f["mean_impressions"] = mu
+        f["airing_sd"] = 0.35 * mu
+        f["level_sd_network"] = 0.06 * mu
+        f["level_sd_flight"] = 0.10 * mu
+        f["level_sd_week"] = 0.05 * mu
+        f["level_sd"] = np.sqrt(f["level_sd_network"] ** 2 + f["level_sd_flight"] ** 2 + f["level_sd_week"] ** 2)
+        sd = np.sqrt(f["airing_sd"] ** 2 + f["level_sd"] ** 2)
+        f["q10_impressions"] = mu - 1.2816 * sd
+        f["q90_impressions"] = mu + 1.2816 * sd
+        f["history_weeks"] = 52
+        parts.append(f)
+    return pd.concat(parts, ignore_index=True)
+
+
+@pytest.fixture(scope="module")
+def scn(small_scenario):
+    from planner.scenario import load_scenario
+
+    return load_scenario(small_scenario)
+
+
+@pytest.fixture(scope="module")
+def fc(scn):
+    return synthetic_forecast(scn)
+
+
+def test_check_comfortable_deal(scn, fc):
+    r = deals.check_deal(scn, "small-comfortable", forecast=fc, held=None, target_margin=0.3, solver="highs")
+    assert r.deliverable and r.verdict == "deliverable"
+    d = scn.deals["small-comfortable"]
+    assert r.revenue == pytest.approx(d.impressions * d.price_cpm / 1000)  # CPM: common practice
+    assert r.margin == pytest.approx(r.revenue - r.cost)
+    assert r.margin_pct == pytest.approx(r.margin / r.revenue)
+    assert r.probability_of_delivery >= 0.95 - 1e-9
+    assert r.probability_if_independent > r.probability_of_delivery
+    assert r.max_guarantee >= d.impressions
+    assert r.cpm_needed == pytest.approx(r.cost / (d.impressions / 1000) / 0.7)
+    assert r.gap <= 0.005 + 1e-9
+    js = r.to_json()
+    for k in ("deal", "deliverable", "guarantee", "expected_impressions", "probability_of_delivery", "confidence",
+              "cost", "revenue", "margin", "max_guarantee", "binding", "margin_pct", "cpm_needed", "gap", "lp_bound",
+              "risk_rule", "default_confidence_used"):
+        assert k in js
+    json.dumps(js)
+
+
+def test_default_confidence_is_stated(scn, fc):
+    r = deals.check_deal(scn, "small-tight", forecast=fc, held=None, solver="highs")
+    assert r.default_confidence_used and r.confidence == 0.95
+    assert any("default confidence" in c for c in r.cautions)
+
+
+def test_too_big_deal_is_an_answer(scn, fc):
+    r = deals.check_deal(scn, "small-too-big", forecast=fc, held=None, solver="highs")
+    d = scn.deals["small-too-big"]
+    if r.deliverable:
+        pytest.skip("the invented forecast happens to carry this deal")
+    assert r.max_guarantee < d.impressions and r.binding
+    assert r.binding[0].startswith("largest deliverable guarantee")
+    assert r.cost is None and r.probability_of_delivery is None
+
+
+def test_plan_tables(scn, fc):
+    p = deals.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs")
+    assert p.deliverable
+    s = p.spots
+    assert list(s.columns[:8]) == ["zone", "network", "daypart", "week", "spots", "rate", "cost", "expected_impressions"]
+    assert "preempt_rate" in s and "sd_impressions" in s
+    assert s["cost"].sum() == pytest.approx(p.cost)
+    assert s["expected_impressions"].sum() == pytest.approx(p.expected_impressions)
+    assert np.allclose(s["cost"], s["spots"] * s["rate"])
+    pc = p.pacing
+    d = scn.deals["small-comfortable"]
+    assert list(pc["week"]) == d.weeks
+    assert pc["even_pacing"].iloc[0] == pytest.approx(p.expected_impressions / len(d.weeks))
+    assert pc["expected_impressions"].sum() == pytest.approx(p.expected_impressions)
+    assert np.all(pc["p10"] <= pc["expected_impressions"]) and np.all(pc["p90"] >= pc["expected_impressions"])
+    # the avails are respected
+    inv = scn.inventory.merge(s, on=["zone", "network", "daypart", "week"])
+    assert np.all(inv["spots"] <= inv["avails"])
+
+
+def test_holds_reduce_avails(scn, fc):
+    p = deals.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs")
+    held = p.spots[["zone", "network", "daypart", "week", "spots"]]
+    q = deals.plan_deal(scn, "small-comfortable", forecast=fc, held=held, solver="highs")
+    if q.deliverable:
+        both = held.merge(q.spots, on=["zone", "network", "daypart", "week"], suffixes=("_h", "_q"))
+        both = both.merge(scn.inventory, on=["zone", "network", "daypart", "week"])
+        assert np.all(both["spots_h"] + both["spots_q"] <= both["avails"])
+        assert q.cost >= p.cost - 1e-6
+    assert q.held_spots_excluded == int(held["spots"].sum())
+
+
+def _with_deal(scn, **changes):
+    s = copy.copy(scn)
+    d = copy.deepcopy(scn.deals["small-comfortable"])
+    for k, v in changes.items():
+        if k.startswith("mix_"):
+            setattr(d.mix, k[4:], v)
+        else:
+            setattr(d, k, v)
+    s.deals = {**scn.deals, "x": d}
+    return s
+
+
+@pytest.mark.parametrize("changes, words", [
+    (dict(impressions=0.0), "must be positive"),
+    (dict(impressions=-5.0), "must be positive"),
+    (dict(confidence=0.3), "confidence must be in (0.5, 0.999)"),
+    (dict(confidence=0.9995), "confidence must be in (0.5, 0.999)"),
+    (dict(confidence=0.9, pad=0.1), "either confidence or pad"),
+    (dict(last_week=99), "outside the inventory"),
+    (dict(mix_max_network_share=1.5), "share in [0, 1]"),
+    (dict(mix_daypart_min_share={"prime": 0.7, "daytime": 0.6}), "sum past 1"),
+    (dict(demo="nobody"), "no forecast rows"),
+])
+def test_bad_input(scn, fc, changes, words):
+    with pytest.raises(InputError, match=None) as e:
+        deals.check_deal(_with_deal(scn, **changes), "x", forecast=fc, held=None)
+    assert words in str(e.value)
+
+
+def test_unknown_deal_and_solver_and_margin(scn, fc):
+    with pytest.raises(InputError, match="unknown deal"):
+        deals.check_deal(scn, "nope", forecast=fc, held=None)
+    with pytest.raises(InputError, match="--solver"):
+        deals.check_deal(scn, "small-comfortable", forecast=fc, held=None, solver="glpk")
+    with pytest.raises(InputError, match="target-margin"):
+        deals.check_deal(scn, "small-comfortable", forecast=fc, held=None, target_margin=1.2)
+
+
+# ---------------------------------------------------------------------------------------------- CLI
+@pytest.fixture()
+def cli_forecast(monkeypatch, fc):
+    monkeypatch.setattr(deals, "_forecast_table", lambda scenario, forecast, progress: (fc, True))
+    monkeypatch.setattr(deals, "_held", lambda scenario, held, book: None)
+
+
+def test_cli_check_json(small_scenario, cli_forecast, capsys):
+    code = main(["check", str(small_scenario), "small-comfortable", "--json", "--solver", "highs",
+                 "--target-margin", "0.25", "--frontier"])
+    out = capsys.readouterr()
+    assert code == 0
+    js = json.loads(out.out)
+    assert js["deal"] == "small-comfortable" and js["deliverable"] is True
+    assert js["frontier"] and all("probability_of_delivery" in f for f in js["frontier"])
+    assert "fitted forecast first" in out.err
+
+
+def test_cli_check_readable(small_scenario, cli_forecast, capsys):
+    code = main(["check", str(small_scenario), "small-tight", "--solver", "highs"])
+    out = capsys.readouterr().out
+    assert code == 0
+    assert "chance of delivery" in out and "default" in out and "Forecasts are estimates" in out
+
+
+def test_cli_plan_and_split(small_scenario, cli_forecast, capsys, tmp_path):
+    target = tmp_path / "plan.csv"
+    assert main(["plan", str(small_scenario), "small-comfortable", "--out", str(target), "--solver", "highs"]) == 0
+    out = capsys.readouterr().out
+    plan = pd.read_csv(target)
+    assert list(plan.columns[:8]) == ["zone", "network", "daypart", "week", "spots", "rate", "cost",
+                                      "expected_impressions"]
+    assert "weekly pacing" in out
+    assert main(["plan", str(small_scenario), "small-comfortable", "--out", str(target), "--split-by", "zone",
+                 "--solver", "highs", "--json"]) == 0
+    js = json.loads(capsys.readouterr().out)
+    files = js["files"]
+    assert len(files) == plan["zone"].nunique()
+    parts = pd.concat([pd.read_csv(f) for f in files])
+    assert int(parts["spots"].sum()) == int(plan["spots"].sum())
+    assert not list(tmp_path.glob(".*.tmp"))
+
+
+def test_cli_bad_input_exit_2(small_scenario, cli_forecast, capsys, tmp_path):
+    assert main(["check", str(small_scenario), "no-such-deal"]) == 2
+    assert main(["check", str(small_scenario), "small-comfortable", "--solver", "x"]) == 2
+    assert main(["plan", str(small_scenario), "small-comfortable", "--out", str(tmp_path / "p.csv"),
+                 "--split-by", "network"]) == 2
+    err = capsys.readouterr().err
+    assert "unknown deal" in err and "Traceback" not in err
+
+
+def test_cli_infeasible_is_exit_0(small_scenario, cli_forecast, capsys):
+    code = main(["check", str(small_scenario), "small-too-big", "--json", "--solver", "highs"])
+    js = json.loads(capsys.readouterr().out)
+    assert code == 0 and "max_guarantee" in js
