@@ -112,7 +112,7 @@ def test_day_profiles_have_trade_shape(hist):
     assert news[news["hour"].between(6, 8)]["rating"].mean() > 3 * news[news["hour"].between(2, 4)]["rating"].mean()
     # Sports: weekend afternoons beat weekday afternoons.
     sp = m[(m["network"] == "sports-net") & m["hour"].between(13, 16)]
-    weekend = sp["date"].dt.dayofweek >= 5
+    weekend = sp["date"].dt.day_of_week >= 5
     assert sp[weekend]["rating"].mean() > 1.5 * sp[~weekend]["rating"].mean()
 
 
