@@ -335,12 +335,12 @@ def generate_history(
     *,
     zones: Sequence[str],
     networks: Sequence[str],
-    genres: Sequence[str],
     demos: Sequence[str],
     universes: Mapping[tuple[str, str], float] | np.ndarray,
     start: date,
     end: date,
     seed: int,
+    genres: Sequence[str] | None = None,
     short_history: Iterable[tuple[str, str]] = (),
     **options,
 ) -> Path:
@@ -348,7 +348,8 @@ def generate_history(
 
     Parameters
     ----------
-    zones, networks, demos : identifiers; `genres` one per network (unknown -> "general").
+    zones, networks, demos : identifiers; `genres` one per network (unknown -> "general"; None:
+        the genres in turn).
     universes : {(zone, demo): people} or an array (zones, demos) of people (or homes).
     start, end : first and last calendar day of the history, inclusive.
     seed : the whole output is a function of the inputs and this seed.
@@ -363,9 +364,12 @@ def generate_history(
     return write_spec(spec, path)
 
 
-def make_spec(*, zones, networks, genres, demos, universes, start, end, seed, short_history=(), **options) -> HistorySpec:
+def make_spec(*, zones, networks, demos, universes, start, end, seed, genres=None, short_history=(),
+              **options) -> HistorySpec:
     """Build a `HistorySpec` (see `generate_history` for the arguments)."""
     zones, networks, demos = list(zones), list(networks), list(demos)
+    if genres is None:
+        genres = [GENRES[i % len(GENRES)] for i in range(len(networks))]
     if isinstance(universes, Mapping):
         uni = np.array([[float(universes[(z, d)]) for d in demos] for z in zones])
     else:

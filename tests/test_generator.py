@@ -266,3 +266,27 @@ def test_demo_history_and_deal_sizing(demo_scenario):
     u = units[(units["demo"] == d.demo) & units["week"].between(d.first_week, d.last_week)
               & ~units["zone"].isin(d.mix.exclude_zones)]
     assert d.impressions > float((u["avails"] * u["impressions"]).sum()) * 0.3  # even with no other rule
+
+
+def test_posted_actuals_follow_the_simulated_future(small_scenario):
+    from planner.scenario import load_scenario
+    from scenarios.actuals import posted_actuals
+
+    sc = load_scenario(small_scenario)
+    inv = sc.inventory[sc.inventory["week"] <= 2]
+    plan = inv[["zone", "network", "daypart", "week"]].assign(spots=inv["avails"].clip(upper=40))
+    act = posted_actuals(sc, plan, "hh", weeks=[1, 2], seed=1)
+    assert list(act.columns) == ["zone", "network", "daypart", "week", "spots_aired", "impressions"]
+    assert len(act) == int((plan["spots"] > 0).sum()) and (act["spots_aired"] <= plan.set_index(
+        ["zone", "network", "daypart", "week"]).loc[act.set_index(["zone", "network", "daypart", "week"]).index,
+                                                   "spots"].to_numpy()).all()
+    # Preemption: aired share near 1 - 0.03 (binomial, thousands of spots).
+    share = act["spots_aired"].sum() / plan["spots"].sum()
+    assert share == pytest.approx(0.97, abs=0.01)
+    # Delivery: aired spots x the simulated unit-week mean audience, within a few percent in total.
+    truth = unit_truth(sc)
+    t = truth[truth["demo"] == "hh"].merge(act, on=["zone", "network", "daypart", "week"])
+    expected = float((t["spots_aired"] * t["impressions_x"]).sum())
+    assert act["impressions"].sum() == pytest.approx(expected, rel=0.05)
+    again = posted_actuals(sc, plan, "hh", weeks=[1, 2], seed=1)
+    pd.testing.assert_frame_equal(act, again)

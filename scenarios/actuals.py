@@ -1,0 +1,82 @@
+"""Invented posted actuals: what bought spots delivered in the generator's simulated future.
+
+The history generator simulates past the end of the history (`horizon_days`), so the plan weeks
+have a "true" audience. `posted_actuals` airs a buy plan against it: each bought spot is preempted
+with the unit's preemption chance, and an aired spot lands on a random day of the daypart in its
+week and a random quarter-hour of the daypart, delivering that quarter-hour's simulated rating x
+universe. The result has the posted-actuals layout of the data contract, for mid-flight demos and
+tests. Everything is invented.
+"""
+from __future__ import annotations
+
+from typing import Iterable
+
+import numpy as np
+import pandas as pd
+
+from scenarios.generate import QH, _Sim, spec_from_scenario
+
+ACTUALS_COLUMNS = ["zone", "network", "daypart", "week", "spots_aired", "impressions"]
+
+
+def posted_actuals(scenario, spots: pd.DataFrame, demo: str, *, weeks: Iterable[int], seed: int = 0) -> pd.DataFrame:
+    """Posted actuals of a plan for the plan weeks `weeks` (spots aired, impressions in `demo`).
+
+    Parameters
+    ----------
+    scenario : a loaded Scenario with a `[history_generator]` table.
+    spots : DataFrame zone, network, daypart, week, spots (whole spots bought per unit-week).
+    demo : the deal's demo.
+    weeks : plan weeks that have aired.
+    seed : preemption and airing-slot draws.
+
+    Returns a DataFrame zone, network, daypart, week, spots_aired (int), impressions (float,
+    people or homes), one row per unit-week of `spots` in `weeks` with spots > 0.
+    """
+    if scenario.history_generator is None:
+        raise ValueError("posted_actuals needs a scenario with a [history_generator] table")
+    spec = spec_from_scenario(scenario)
+    weeks = sorted(set(int(w) for w in weeks))
+    plan = spots[spots["week"].isin(weeks) & (spots["spots"] > 0)].reset_index(drop=True)
+    if plan.empty:
+        return pd.DataFrame({c: pd.Series(dtype="int64" if c in ("week", "spots_aired") else
+                                          ("float64" if c == "impressions" else "str")) for c in ACTUALS_COLUMNS})
+    inv = scenario.inventory[["zone", "network", "daypart", "week", "preempt_rate"]]
+    plan = plan.merge(inv, on=["zone", "network", "daypart", "week"], how="left")
+    plan["preempt_rate"] = plan["preempt_rate"].fillna(scenario.preempt_rate)
+    rng = np.random.default_rng([seed, 4242])
+    aired = rng.binomial(plan["spots"].to_numpy().astype(np.int64), 1.0 - plan["preempt_rate"].to_numpy())
+    plan["spots_aired"] = aired
+
+    start = np.datetime64(spec.start, "D")
+    di = spec.demos.index(demo)
+    uni = scenario.universes.set_index(["zone", "demo"])["universe"]
+    total = np.zeros(len(plan))
+    sim = _Sim(spec)
+    for zone, rows in plan.groupby("zone").groups.items():
+        rows = np.asarray(rows)
+        flat = sim.zone(spec.zones.index(zone))[:, di].reshape(len(spec.networks), -1)  # (networks, days*96)
+        r = plan.loc[rows]
+        n_air = r["spots_aired"].to_numpy()
+        rep = np.repeat(np.arange(len(r)), n_air)  # one entry per aired spot
+        if rep.size == 0:
+            continue
+        net = r["network"].map({n: i for i, n in enumerate(spec.networks)}).to_numpy()[rep]
+        idx = np.empty(rep.size, dtype=np.int64)
+        # Draw the airing slot per spot, daypart by daypart (days and quarter-hours differ).
+        for dp in scenario.dayparts:
+            sel = (r["daypart"].to_numpy() == dp.name)[rep]
+            if not sel.any():
+                continue
+            wk = r["week"].to_numpy()[rep][sel]
+            monday = (np.array([np.datetime64(scenario.week_start(w), "D") for w in wk]) - start).astype(np.int64)
+            days = np.asarray(dp.days)
+            day = monday + days[rng.integers(0, days.size, sel.sum())]
+            q = np.asarray(dp.quarter_hours)[rng.integers(0, len(dp.quarter_hours), sel.sum())]
+            idx[sel] = day * QH + q
+        if idx.max() >= flat.shape[1]:
+            raise ValueError("plan weeks run past the simulated horizon: raise horizon_days")
+        imp = flat[net, idx].astype(float) * float(uni[(zone, demo)])
+        total[rows] = np.bincount(rep, weights=imp, minlength=len(r))
+    plan["impressions"] = np.round(total)  # posted impressions are whole people (or homes)
+    return plan[ACTUALS_COLUMNS].astype({"week": "int64", "spots_aired": "int64", "impressions": "float64"})
