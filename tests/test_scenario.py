@@ -434,3 +434,21 @@ def test_generated_history_remade_when_settings_change(small_scenario, scenario_
     pq.write_table(before.replace_schema_metadata(None), user)
     load_scenario(folder)
     assert pq.read_table(user).equals(before.replace_schema_metadata(None))
+
+
+def test_dayparts_on_different_days_do_not_overlap(small_scenario, scenario_copy):
+    folder = scenario_copy(small_scenario)
+    _edit_text(folder, "scenario.toml", 'name = "daytime"\nstart = "09:00"\nend = "16:00"\n'
+               'days = ["mon", "tue", "wed", "thu", "fri", "sat", "sun"]',
+               'name = "daytime"\nstart = "09:00"\nend = "16:00"\ndays = ["mon", "tue", "wed", "thu", "fri"]\n\n'
+               '[[daypart]]\nname = "weekend_day"\nstart = "09:00"\nend = "16:00"\ndays = ["sat", "sun"]')
+    sc = load_scenario(folder)
+    assert sc.daypart("daytime").days == (0, 1, 2, 3, 4) and sc.daypart("weekend_day").days == (5, 6)
+    assert sorted(s for d in sc.dayparts for s in d.slots()) == list(range(7 * 96))
+
+
+def test_cli_validate_text(small_scenario, capsys):
+    assert main(["validate", str(small_scenario)]) == 0
+    out = capsys.readouterr().out
+    assert "late_fringe 23:00-01:00" in out and "completeness" in out and "small-tight" in out
+    assert "estimates" in out  # the caution travels with the summary
