@@ -72,6 +72,48 @@ def make_synthetic(folder, *, seed=0, zones=3, networks=3, dayparts=("prime", "d
     return scn, fc
 
 
+def synthetic_forecast(scenario, capacity=15e6, seed=0):
+    """An invented forecast table (contract columns) for a loaded scenario: per demo, ratings
+    scaled so the whole inventory delivers about `capacity` impressions in expectation."""
+    rng = np.random.default_rng(seed)
+    inv = scenario.inventory
+    parts = []
+    for demo in scenario.demos:
+        fc = inv[UNIT + ["avails", "preempt_rate"]].copy()
+        fc["demo"] = demo
+        uni = scenario.universes[scenario.universes["demo"] == demo].set_index("zone")["universe"]
+        fc["universe"] = fc["zone"].map(uni).astype(float)
+        shape = rng.uniform(0.5, 1.5, len(fc)) * np.where(fc["daypart"] == "prime", 3.0, 1.0)
+        scale = capacity / float((fc["avails"] * (1 - fc["preempt_rate"]) * fc["universe"] * shape).sum())
+        fc["mean_rating"] = shape * scale
+        mu = fc["mean_rating"] * fc["universe"]
+        fc["mean_impressions"] = mu
+        fc["airing_sd"] = 0.3 * mu
+        fc["level_sd_network"] = 0.06 * mu
+        fc["level_sd_flight"] = 0.05 * mu
+        fc["level_sd_week"] = 0.04 * mu
+        fc["level_sd"] = np.sqrt(0.06 ** 2 + 0.05 ** 2 + 0.04 ** 2) * mu
+        fc["q10_impressions"] = np.maximum(mu - 1.2816 * 0.33 * mu, 0)
+        fc["q90_impressions"] = mu + 1.2816 * 0.33 * mu
+        fc["history_weeks"] = 60
+        parts.append(fc.drop(columns=["avails", "preempt_rate"]))
+    return pd.concat(parts, ignore_index=True)
+
+
+def use_forecast(monkeypatch, table):
+    """Make `planner.forecast_job.ensure_forecast` return `table` (no fitting in this test)."""
+    import importlib
+    import types
+
+    try:
+        mod = importlib.import_module("planner.forecast_job")
+    except ModuleNotFoundError:
+        mod = types.ModuleType("planner.forecast_job")
+        monkeypatch.setitem(sys.modules, "planner.forecast_job", mod)
+    monkeypatch.setattr(mod, "ensure_forecast",
+                        lambda scenario, **kw: SimpleNamespace(table=table, fitted_now=False), raising=False)
+
+
 def greedy_planner(need_spots, units=None, sleep=0.0):
     """A planner for commit_deal: `need_spots` whole spots from the units with avails left
     (first in key order, optionally only `units`); respects `held`."""

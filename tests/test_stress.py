@@ -224,3 +224,65 @@ def test_empty_book_is_input_error(tmp_path):
     scn, fc = make_synthetic(tmp_path / "s")
     with pytest.raises(InputError, match="no committed deals"):
         st.stress_book(scn, draws=100, forecast=fc)
+
+
+# --------------------------------------------------------------------------- command line, end to end
+
+def _cli(capsys, *argv):
+    from planner.cli import main
+
+    code = main([str(a) for a in argv])
+    out = capsys.readouterr()
+    return code, out.out, out.err
+
+
+def test_cli_commit_stress_rebalance_end_to_end(small_scenario, scenario_copy, monkeypatch, capsys):
+    import json
+
+    from planner.scenario import load_scenario
+    from test_book import synthetic_forecast, use_forecast
+
+    folder = scenario_copy(small_scenario)
+    scn = load_scenario(folder)
+    fc = synthetic_forecast(scn)
+    use_forecast(monkeypatch, fc)
+    code, out, _ = _cli(capsys, "book", "commit", folder, "small-comfortable", "--json", "--solver", "highs")
+    assert code == 0 and json.loads(out)["committed"] is True
+    code, out, _ = _cli(capsys, "book", "commit", folder, "small-too-big", "--solver", "highs")
+    assert code == 0 and "not committed" in out  # an answer, not bad input
+    code, _, err = _cli(capsys, "book", "commit", folder, "small-comfortable")
+    assert code == 2 and "already in the book" in err
+    code, out, _ = _cli(capsys, "stress", folder, "--draws", 20000, "--seed", 4, "--json",
+                        "--shock", f"network={scn.network_names[0]}:-0.15", "--shock", "all:-0.05",
+                        "--preempt-multiplier", 2)
+    assert code == 0
+    d = json.loads(out)
+    assert d["draws"] == 20000 and d["seed"] == 4 and len(d["shocks"]) == 2 and d["preempt_multiplier"] == 2
+    assert {"deal", "probability_of_shortfall", "expected_shortfall", "expected_liability"} <= set(d["deals"][0])
+    assert {"expected_liability", "var95", "cvar95"} <= set(d["book"])
+    code, out2, _ = _cli(capsys, "stress", folder, "--draws", 20000, "--seed", 4, "--json",
+                         "--shock", f"network={scn.network_names[0]}:-0.15", "--shock", "all:-0.05",
+                         "--preempt-multiplier", 2)
+    assert json.loads(out2) == d  # same seed, same numbers
+    code, out, _ = _cli(capsys, "stress", folder, "--draws", 5000)
+    assert code == 0 and "VaR95" in out and "CVaR95" in out and "contract" in out
+    for bad in (["--shock", "network=nowhere:-0.1"], ["--shock", "prime-0.1"], ["--liability", "x"], ["--draws", 1]):
+        code, _, err = _cli(capsys, "stress", folder, *bad)
+        assert code == 2 and err.startswith("error:"), bad
+    # mid-flight: weeks 1-3 posted 20% under forecast
+    held = bk.get_deal(scn, "small-comfortable").holds
+    a = held[held["week"] <= 3][UNIT + ["spots"]].merge(fc[fc["demo"] == "a25-54"][UNIT + ["mean_impressions"]], on=UNIT)
+    acts = a[UNIT].assign(spots_aired=a["spots"], impressions=0.8 * a["spots"] * a["mean_impressions"])
+    path = folder / "actuals.csv"
+    acts.to_csv(path, index=False)
+    code, out, _ = _cli(capsys, "rebalance", folder, "small-comfortable", "--actuals", path, "--json",
+                        "--solver", "highs", "--commit")
+    assert code == 0
+    r = json.loads(out)
+    assert r["aired_weeks"] == [1, 2, 3] and r["posted_vs_forecast"] == pytest.approx(-0.2)
+    assert r["deliverable"] and r["probability_after"] >= 0.95 - 1e-6 and r["committed"]
+    code, out, _ = _cli(capsys, "rebalance", folder, "small-comfortable", "--actuals", path, "--solver", "highs")
+    assert code == 0 and "chance of delivery" in out
+    path.write_text("zone,network,daypart,week,spots_aired,impressions\nx,y,z,1,1,1\n")
+    code, _, err = _cli(capsys, "rebalance", folder, "small-comfortable", "--actuals", path)
+    assert code == 2 and "actuals.csv" in err and "row 2" in err

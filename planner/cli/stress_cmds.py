@@ -28,15 +28,23 @@ def stress_cmd(
 ) -> None:
     """Stress every committed deal at once: shortfall chances, liability, VaR95, CVaR95."""
     from planner.scenario import load_scenario
-    from planner.stress import CAUTION, stress_book
+    from planner.stress import CAUTION, LIABILITY_BASES, parse_shock, stress_book
 
     if not scenario.is_dir():
         raise InputError(f"{scenario}: not a scenario folder")
     if draws < 2:
         raise InputError(f"--draws {draws}: need at least 2 draws")
+    if liability not in LIABILITY_BASES:
+        raise InputError(f"--liability {liability!r}: expected one of {', '.join(LIABILITY_BASES)}")
+    if preempt_multiplier < 0:
+        raise InputError(f"--preempt-multiplier {preempt_multiplier}: must be >= 0")
     scn = load_scenario(scenario)
+    inv = scn.inventory
+    shocks = [parse_shock(s, networks=inv["network"].astype(str).unique().tolist(),
+                          dayparts=[d.name for d in scn.dayparts], zones=inv["zone"].astype(str).unique().tolist())
+              for s in (shock or ())]
     with progress(f"stress: {draws:,} draws", total=draws) as advance:
-        r = stress_book(scn, book, draws=draws, seed=seed, shocks=shock or (), preempt_multiplier=preempt_multiplier,
+        r = stress_book(scn, book, draws=draws, seed=seed, shocks=shocks, preempt_multiplier=preempt_multiplier,
                         liability=liability, method=method, keep_draws=False, advance=advance)
     if as_json:
         print_json(r.as_dict())
