@@ -879,44 +879,44 @@ def validate_history(scenario: Scenario) -> HistorySummary:
 
 
 def _parquet_keys_unique(path: Path, scenario: Scenario) -> bool:
-    """True when the Parquet history's keys are unique (numpy: strictly increasing, or sorted).
+    """True when the Parquet history's keys are unique (numpy, streamed by batches).
 
-    Cheap on the usual file written in key order; False means "look closer" (DuckDB finds it).
-    Assumes zone/network/demo/date/quarter_hour already checked (known and valid).
+    One int64 key per row; strictly increasing (the usual file, written in key order) or unique
+    after sorting. False means "look closer" (DuckDB then locates the duplicate). Assumes
+    zone/network/demo/date/quarter_hour already checked (known and valid).
     """
     import pyarrow as pa
     import pyarrow.compute as pc
     import pyarrow.parquet as pq
 
+    cols = ["zone", "network", "demo", "date", "quarter_hour"]
+    known = [scenario.zone_names, scenario.network_names, list(scenario.demos)]
     try:
-        t = pq.read_table(path, columns=["zone", "network", "demo", "date", "quarter_hour"],
-                          read_dictionary=["zone", "network", "demo"])
-    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        pf = pq.ParquetFile(path, read_dictionary=cols[:3])
+        keys = np.empty(pf.metadata.num_rows, dtype=np.int64)
+        at = 0
+        for batch in pf.iter_batches(batch_size=1 << 20, columns=cols):
+            code = np.zeros(batch.num_rows, dtype=np.int64)
+            for i, names in enumerate(known):
+                col = batch.column(i)
+                if not pa.types.is_dictionary(col.type):
+                    col = pc.dictionary_encode(pc.cast(col, pa.string()))
+                lookup = pc.index_in(pc.utf8_trim_whitespace(col.dictionary), value_set=pa.array(names, pa.string()))
+                if lookup.null_count:
+                    return False
+                code = code * len(names) + lookup.to_numpy()[col.indices.to_numpy()].astype(np.int64)
+            day = pc.cast(batch.column(3), pa.date32()).cast(pa.int32()).to_numpy().astype(np.int64)
+            qh = pc.cast(batch.column(4), pa.int64()).to_numpy()
+            # 2**18 days (~700 years) per series, offset so dates before 1970 stay positive
+            keys[at:at + batch.num_rows] = (code * 262_144 + (day + 131_072)) * QUARTER_HOURS + qh
+            at += batch.num_rows
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError, pa.ArrowTypeError):
         return False
-    if t.num_rows == 0:
+    keys = keys[:at]
+    if keys.size < 2 or np.all(keys[1:] > keys[:-1]):
         return True
-    key = np.zeros(t.num_rows, dtype=np.int64)
-    for col, names in (("zone", scenario.zone_names), ("network", scenario.network_names),
-                       ("demo", list(scenario.demos))):
-        parts = []
-        for chunk in t[col].chunks:  # map each chunk's small dictionary, then its codes
-            if not pa.types.is_dictionary(chunk.type) or not pa.types.is_string(chunk.type.value_type):
-                return False
-            lookup = pc.index_in(pc.utf8_trim_whitespace(chunk.dictionary), value_set=pa.array(names, pa.string()))
-            if lookup.null_count:
-                return False
-            parts.append(lookup.to_numpy()[chunk.indices.to_numpy()])
-        key = key * len(names) + np.concatenate(parts).astype(np.int64)
-    try:
-        days = pc.cast(t["date"], pa.date32()).cast(pa.int32()).to_numpy().astype(np.int64)
-        qh = pc.cast(t["quarter_hour"], pa.int64()).to_numpy()
-    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
-        return False
-    key = (key * (days.max() - days.min() + 1) + (days - days.min())) * QUARTER_HOURS + qh
-    if np.all(key[1:] > key[:-1]):
-        return True
-    key.sort()
-    return bool(np.all(key[1:] != key[:-1]))
+    keys.sort()
+    return bool(np.all(keys[1:] != keys[:-1]))
 
 
 def load_history(scenario: Scenario, columns: Sequence[str] | None = None, *, filters=None) -> pd.DataFrame:

@@ -6,6 +6,7 @@ import os
 import re
 from datetime import date, timedelta
 
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -452,3 +453,12 @@ def test_cli_validate_text(small_scenario, capsys):
     out = capsys.readouterr().out
     assert "late_fringe 23:00-01:00" in out and "completeness" in out and "small-tight" in out
     assert "estimates" in out  # the caution travels with the summary
+
+
+def test_history_rows_in_any_order(small_scenario, scenario_copy):
+    folder = scenario_copy(small_scenario)
+    t = pq.read_table(folder / "history.parquet").slice(0, 30_000)
+    shuffled = t.take(pa.array(np.random.default_rng(0).permutation(t.num_rows)))
+    pq.write_table(shuffled, folder / "history.parquet")
+    h = validate_history(load_scenario(folder))
+    assert h.rows == 30_000
