@@ -157,7 +157,7 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
 
     with timed("forecast", "2/5 fitting the forecasts (reused when already fitted)"):
         fc = ensure_forecast(scn)
-    reused_forecast = bool(getattr(fc, "reused", getattr(fc, "cached", False)))
+    reused_forecast = (not bool(fc.fitted_now)) if hasattr(fc, "fitted_now") else bool(getattr(fc, "reused", False))
     say(f"forecast {'reused from' if reused_forecast else 'fitted and saved in'} {folder / 'forecast'}")
 
     released = []
