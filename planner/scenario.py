@@ -233,7 +233,7 @@ def _read_csv(folder: Path, name: str, required: Sequence[str]) -> pd.DataFrame:
     if not path.is_file():
         raise ScenarioError(f"{name}: file is missing")
     try:
-        df = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True, encoding="utf-8")
+        df = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True, encoding="utf-8-sig")
     except UnicodeDecodeError:
         raise ScenarioError(f"{name}: not UTF-8 text") from None
     except pd.errors.EmptyDataError:

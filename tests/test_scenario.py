@@ -462,3 +462,13 @@ def test_history_rows_in_any_order(small_scenario, scenario_copy):
     pq.write_table(shuffled, folder / "history.parquet")
     h = validate_history(load_scenario(folder))
     assert h.rows == 30_000
+
+
+def test_csv_with_byte_order_mark_and_non_utf8(small_scenario, scenario_copy):
+    folder = scenario_copy(small_scenario)
+    text = (folder / "zones.csv").read_text()
+    (folder / "zones.csv").write_bytes(b"\xef\xbb\xbf" + text.encode())  # spreadsheet exports add a BOM
+    assert len(load_scenario(folder).zones) == 3
+    (folder / "zones.csv").write_bytes(text.replace("pellham", "p\xe9llham").encode("latin-1"))
+    with pytest.raises(ScenarioError, match=r"zones\.csv: not UTF-8 text"):
+        load_scenario(folder)
