@@ -37,6 +37,27 @@ def _load(scenario: Path):
     return load_scenario(_folder(scenario))
 
 
+def print_table(table: Table) -> None:
+    """Print a table on stdout; when stdout is not a terminal, wide enough not to truncate."""
+    if out_console.is_terminal:
+        out_console.print(table)
+    else:
+        from rich.console import Console
+
+        Console(width=140, no_color=True).print(table)
+
+
+def short(value) -> str:
+    """Compact number: 1,076,000 -> '1.08M', 73,550 -> '73.6k'."""
+    if value is None:
+        return "-"
+    v = float(value)
+    for unit, size in (("B", 1e9), ("M", 1e6), ("k", 1e3)):
+        if abs(v) >= size:
+            return f"{v / size:.3g}{unit}"
+    return f"{v:,.0f}"
+
+
 def _f(value, fmt="{:,.0f}", none="-"):
     return none if value is None else fmt.format(value)
 
@@ -89,12 +110,13 @@ def list_cmd(
         out_console.print(f"no deals committed in {book_path(scenario, book)}")
         return
     t = Table(title=f"book {book_path(scenario, book)}")
-    for c in ("deal", "demo", "weeks", "guarantee", "CPM", "revenue", "cost", "spots", "P(deliver)", "committed"):
-        t.add_column(c, justify="left" if c in ("deal", "demo", "committed") else "right")
+    t.add_column("deal", no_wrap=True)
+    for c in ("demo", "weeks", "guarantee", "CPM", "cost", "spots", "P(deliver)"):
+        t.add_column(c, justify="left" if c == "demo" else "right", no_wrap=True)
     for d in deals:
-        t.add_row(d.name, d.demo, f"{d.first_week}-{d.last_week}", count(d.guarantee), f"{d.price_cpm:.2f}",
-                  count(d.revenue), _f(d.cost), _f(d.spots), _f(d.probability, "{:.1%}"), d.committed_at)
-    out_console.print(t)
+        t.add_row(d.name, d.demo, f"{d.first_week}-{d.last_week}", short(d.guarantee), f"{d.price_cpm:.2f}",
+                  short(d.cost), _f(d.spots), _f(d.probability, "{:.1%}"))
+    print_table(t)
 
 
 @book_app.command("show")
@@ -125,7 +147,7 @@ def show_cmd(
             t.add_column(c, justify="right")
         for r in by_week.itertuples(index=False):
             t.add_row(str(r.week), count(r.spots), count(r.cost), count(r.expected_impressions))
-        out_console.print(t)
+        print_table(t)
 
 
 @book_app.command("release")

@@ -8,6 +8,7 @@ import typer
 from rich.table import Table
 
 from planner.cli import app
+from planner.cli.book_cmds import print_table, short
 from planner.cli.common import count, money, out_console, print_json, progress
 from planner.errors import InputError
 
@@ -54,18 +55,18 @@ def stress_cmd(
                       f"liability basis {r.liability_basis}")
     out_console.print("  shocks: " + (", ".join(r.shocks) if r.shocks else "none")
                       + (f"; preemption x{r.preempt_multiplier:g}" if r.preempt_multiplier != 1 else ""))
-    t = Table(title="deals (+- Monte Carlo standard error)")
-    for c in ("deal", "guarantee", "expected delivery", "P(short)", "expected shortfall", "expected liability",
-              "expected margin", "share of CVaR"):
-        t.add_column(c, justify="left" if c == "deal" else "right")
+    t = Table(title=f"deals (+- Monte Carlo standard error; money in {cur})")
+    t.add_column("deal", no_wrap=True)
+    for c in ("guarantee", "P(short)", "exp. shortfall", "exp. liability", "exp. margin", "share of CVaR"):
+        t.add_column(c, justify="right", no_wrap=True)
     cvar = r.book["cvar95"]
     for d in r.deals:
-        t.add_row(d.deal, count(d.guarantee), count(d.expected_delivery),
-                  f"{d.probability_of_shortfall:.2%} +- {d.probability_of_shortfall_se:.2%}",
-                  f"{count(d.expected_shortfall)} +- {count(d.expected_shortfall_se)}",
-                  f"{count(d.expected_liability)} +- {count(d.expected_liability_se)}",
-                  count(d.expected_margin), f"{d.tail_contribution / cvar:.0%}" if cvar > 0 else "-")
-    out_console.print(t)
+        t.add_row(d.deal, short(d.guarantee),
+                  f"{100 * d.probability_of_shortfall:.2f}+-{100 * d.probability_of_shortfall_se:.2f}%",
+                  f"{short(d.expected_shortfall)}+-{short(d.expected_shortfall_se)}",
+                  f"{short(d.expected_liability)}+-{short(d.expected_liability_se)}",
+                  short(d.expected_margin), f"{d.tail_contribution / cvar:.0%}" if cvar > 0 else "-")
+    print_table(t)
     b = r.book
     out_console.print(f"[bold]book[/]: expected liability {money(b['expected_liability'], cur)} +- {count(b['expected_liability_se'])}; "
                       f"VaR95 {money(b['var95'], cur)} +- {count(b['var95_se']) if b['var95_se'] == b['var95_se'] else '-'}; "
