@@ -194,10 +194,11 @@ def test_shocks_move_liability_the_right_way():
     ("all:-1.5", "must be > -1"),
     ("daypart=prime:abc", "expected network=NAME"),
     ("channel=x:-0.1", "expected network=NAME"),
+    ("zone=z9:-0.1", "unknown zone"),
 ])
 def test_bad_shocks_are_input_errors(text, msg):
     with pytest.raises(InputError, match=msg):
-        st.parse_shock(text, networks=["n1", "n2"], dayparts=["prime"])
+        st.parse_shock(text, networks=["n1", "n2"], dayparts=["prime"], zones=["z1"])
 
 
 def test_stress_book_end_to_end_from_the_sqlite_book(tmp_path):
@@ -214,6 +215,14 @@ def test_stress_book_end_to_end_from_the_sqlite_book(tmp_path):
     assert r.deal_names == ["alpha", "beta"]
     mk = st.stress_book(scn, draws=20_000, seed=9, forecast=fc, liability="makegood")
     assert mk.liability_basis == "makegood"
+    for d, booked in zip(mk.deals, bk.list_deals(scn)):
+        # make-good: the shortfall bought back at the plan's cost per expected impression
+        cpi = booked.cost / booked.expected_impressions
+        assert d.expected_liability == pytest.approx(d.expected_shortfall * cpi, rel=1e-9)
+    for d, booked in zip(r.deals, bk.list_deals(scn)):
+        # refund: shortfall x price CPM / 1000 (CPM definition, common practice)
+        assert d.expected_liability == pytest.approx(d.expected_shortfall * booked.price_cpm / 1000, rel=1e-9)
+        assert d.expected_margin == pytest.approx(booked.revenue - booked.cost - d.expected_liability)
     with pytest.raises(InputError, match="unknown network"):
         st.stress_book(scn, draws=100, forecast=fc, shocks=["network=nope:-0.1"])
     with pytest.raises(InputError, match="--liability"):
@@ -286,3 +295,33 @@ def test_cli_commit_stress_rebalance_end_to_end(small_scenario, scenario_copy, m
     path.write_text("zone,network,daypart,week,spots_aired,impressions\nx,y,z,1,1,1\n")
     code, _, err = _cli(capsys, "rebalance", folder, "small-comfortable", "--actuals", path)
     assert code == 2 and "actuals.csv" in err and "row 2" in err
+
+
+@pytest.mark.slow
+def test_demo_book_stress_agrees_with_the_allocator_and_the_exact_sampler(demo_fitted, scenario_copy):
+    """On the demo book: each deal's MC chance of shortfall is the allocator's own normal
+    figure (1 - chance of delivery of the committed plan; same uncertainty model), and the fast
+    sampler agrees with the exact one (every factor, Binomial preemptions, airing noise)."""
+    from planner.forecast_job import ensure_forecast
+    from planner.scenario import load_scenario
+
+    folder = scenario_copy(demo_fitted)
+    scn = load_scenario(folder)
+    fc = ensure_forecast(scn).table
+    plans = {}
+    for name in scn.deals:
+        r = bk.commit_deal(scn, name, forecast=fc, solver="highs")
+        if r.committed:
+            plans[name] = r.plan
+    assert len(plans) >= 2
+    fast = st.stress_book(scn, draws=100_000, seed=1, forecast=fc)
+    for d in fast.deals:
+        p_plan = plans[d.deal].probability
+        assert d.probability_of_shortfall_normal == pytest.approx(1 - p_plan, abs=1e-6)
+        # Monte Carlo error plus the normal approximation of the per-spot part (CLT)
+        assert abs(d.probability_of_shortfall - (1 - p_plan)) < 4 * d.probability_of_shortfall_se + 0.01
+    exact = st.stress_book(scn, draws=20_000, seed=2, forecast=fc, method="exact")
+    for f, e in zip(fast.deals, exact.deals):
+        se = np.hypot(f.probability_of_shortfall_se, e.probability_of_shortfall_se)
+        assert abs(f.probability_of_shortfall - e.probability_of_shortfall) < 4 * se + 1e-3
+        assert f.sd_delivery == pytest.approx(e.sd_delivery, rel=0.03)
