@@ -445,3 +445,19 @@ def test_cli_book_option(tmp_path, capsys):
     assert code == 0 and [d["name"] for d in json.loads(out)["deals"]] == ["alpha"]
     code, out, _ = _cli(capsys, "book", "list", str(scn.path), "--json")
     assert json.loads(out)["deals"] == []
+
+
+def test_replace_holds_refuses_to_overhold(tmp_path):
+    scn, _ = make_synthetic(tmp_path / "s", avails=(2, 2))
+    scarce = _scarce_units()
+    bk.commit_deal(scn, "alpha", planner=greedy_planner(2, scarce))
+    bk.commit_deal(scn, "beta", planner=greedy_planner(2, scarce))
+    before = bk.held_spots(scn)
+    too_many = scarce.assign(spots=2)  # alpha would take all 6 scarce spots while beta holds 2
+    with pytest.raises(InputError, match="exceed the avails"):
+        bk.replace_holds(scn, "alpha", too_many, {"note": "test"})
+    pd.testing.assert_frame_equal(bk.held_spots(scn), before)  # rolled back
+    ok = scarce.iloc[[2]].assign(spots=2)  # z2: 2 spots where beta holds none
+    bk.replace_holds(scn, "alpha", ok, {"note": "test"})
+    assert bk.get_deal(scn, "alpha").spots == 2
+    assert bk.check_book(scn) == {**bk.check_book(scn), "over_avails": 0, "spot_count_mismatch": 0}
