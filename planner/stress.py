@@ -8,7 +8,9 @@ networks therefore fall short together.
 
 Fast sampler (the default). Conditional on the level factors, a deal's delivery is a sum of
 many independent per-spot terms (preemption Bernoulli, airing noise), drawn as one normal with
-the model's linear variance (law of total variance; central limit theorem). The network factors
+the model's linear variance (central limit theorem; the linear variance is the conditional
+variance averaged over the factors, so the total variance is exactly the allocator's, by the law
+of total variance, and only the factors' second-order effect on the per-spot spread is dropped). The network factors
 (few) are drawn explicitly, so the tail can be attributed to networks; the flight and unit-week
 factors touch deals only through the units they hold, so their joint contribution to the D
 deals, together with the per-spot part, is a D-variate normal with covariance
