@@ -157,8 +157,23 @@ def _baseline_zone(ratings: np.ndarray, hist_days: int, dow0: int, universe: np.
     return res
 
 
-def write_history_and_baseline(out: Path, layout: dict, *, seed: int, history: bool = True) -> dict:
-    """Simulate one zone at a time; write history/part-<zone>.parquet and forecast/forecast.parquet."""
+def _baseline_frame(zone, nets, demos, dp_names, universe, base) -> pd.DataFrame:
+    d_i, n_i, m_i = (a.ravel() for a in np.indices(base["mean"].shape))  # (dayparts, networks, demos)
+    return pd.DataFrame({
+        "zone": zone, "network": np.asarray(nets)[n_i], "daypart": np.asarray(dp_names)[d_i],
+        "demo": np.asarray(demos)[m_i], "universe": universe[m_i],
+        "mean_rating": base["mean_rating"].ravel(), "mean_impressions": base["mean"].ravel(),
+        "airing_sd": base["airing_sd"].ravel(), "level_sd": base["level_sd"].ravel(),
+    })
+
+
+def write_history_and_baseline(out: Path, layout: dict, *, seed: int, history: bool = True,
+                               history_zones: int | None = None) -> dict:
+    """Simulate one zone at a time; write history/part-<zone>.parquet and forecast/forecast.parquet.
+
+    `history_zones`: only the first that many zones get history parts (None: all). The others'
+    baseline comes from a short simulation of the last TRAIL_WEEKS weeks only (cheap).
+    """
     zones, nets, demos = layout["zones"], layout["networks"], layout["demos"]
     start, end, first_week, weeks = layout["start"], layout["end"], layout["first_week"], layout["weeks"]
     hist_days = (end - start).days + 1
@@ -167,6 +182,13 @@ def write_history_and_baseline(out: Path, layout: dict, *, seed: int, history: b
                          universes=layout["universes"], start=start, end=end, seed=seed,
                          horizon_days=horizon)
     sim = gen._Sim(spec)
+    n_hist = len(zones) if history_zones is None else max(0, min(int(history_zones), len(zones)))
+    short_start = end - timedelta(days=7 * TRAIL_WEEKS - 1)
+    short = None
+    if n_hist < len(zones):
+        short = gen._Sim(gen.make_spec(zones=zones, networks=nets, genres=layout["genres"], demos=demos,
+                                       universes=layout["universes"], start=short_start, end=end,
+                                       seed=seed, horizon_days=2))
     n_net, n_dem = len(nets), len(demos)
     net_i = np.repeat(np.arange(n_net, dtype=np.int32), n_dem * hist_days * QH)
     dem_i = np.tile(np.repeat(np.arange(n_dem, dtype=np.int32), hist_days * QH), n_net)
@@ -183,6 +205,11 @@ def write_history_and_baseline(out: Path, layout: dict, *, seed: int, history: b
     t0 = time.perf_counter()
     dp_names = [d[0] for d in DAYPARTS]
     for zi, zone in enumerate(zones):
+        if zi >= n_hist:                             # baseline only, from the short simulation
+            base = _baseline_zone(short.zone(zi), 7 * TRAIL_WEEKS, short_start.weekday(),
+                                  layout["universes"][zi])
+            frames.append(_baseline_frame(zone, nets, demos, dp_names, layout["universes"][zi], base))
+            continue
         ratings = sim.zone(zi)                       # (net, demo, total_days, 96) float32
         if history:
             keep = sim.history_mask(zi).reshape(-1)
@@ -202,15 +229,8 @@ def write_history_and_baseline(out: Path, layout: dict, *, seed: int, history: b
             rows += n
             del table, keep, flat
         base = _baseline_zone(ratings, hist_days, start.weekday(), layout["universes"][zi])
-        shape = base["mean"].shape                   # (dayparts, networks, demos)
-        d_i, n_i, m_i = (a.ravel() for a in np.indices(shape))
-        frames.append(pd.DataFrame({
-            "zone": zone, "network": np.asarray(nets)[n_i], "daypart": np.asarray(dp_names)[d_i],
-            "demo": np.asarray(demos)[m_i], "universe": layout["universes"][zi][m_i],
-            "mean_rating": base["mean_rating"].ravel(), "mean_impressions": base["mean"].ravel(),
-            "airing_sd": base["airing_sd"].ravel(), "level_sd": base["level_sd"].ravel(),
-        }))
-        if (zi + 1) % 10 == 0 or zi + 1 == len(zones):
+        frames.append(_baseline_frame(zone, nets, demos, dp_names, layout["universes"][zi], base))
+        if (zi + 1) % 10 == 0 or zi + 1 == n_hist:
             el = time.perf_counter() - t0
             _log(f"  zone {zi + 1}/{len(zones)}: {rows:,} history rows, {el:.0f} s")
     per_unit = pd.concat(frames, ignore_index=True)
@@ -338,7 +358,7 @@ def write_deals(out: Path, layout: dict, plans: list[dict], forecast: pd.DataFra
     (ddir / "national-check.toml").write_text(_deal_toml(
         "national-check", "Invented Advertiser National", layout["demos"][0], 0.2 * cap, 1, layout["weeks"],
         24.0, "confidence = 0.95",
-        {"max_network_share": 0.08, "daypart_min_share": {"prime": 0.2}, "weekly_tolerance": 0.2,
+        {"max_network_share": max(0.08, round(2.0 / len(layout["networks"]), 2)), "daypart_min_share": {"prime": 0.2}, "weekly_tolerance": 0.2,
          "max_spots_per_unit": 3}))
 
 
@@ -392,6 +412,8 @@ def main(argv=None) -> int:
     ap.add_argument("--deals", type=int, default=20, help="deals committed to the book")
     ap.add_argument("--seed", type=int, default=2027)
     ap.add_argument("--no-history", action="store_true", help="skip writing the history parts")
+    ap.add_argument("--history-zones", type=int, default=None,
+                    help="write history for the first N zones only (default: every zone)")
     ap.add_argument("--no-book", action="store_true", help="skip committing the book")
     args = ap.parse_args(argv)
     if args.days < 7 * TRAIL_WEEKS:
@@ -404,7 +426,8 @@ def main(argv=None) -> int:
                           demos=DEMOS[: args.demos], weeks=args.weeks, seed=args.seed)
     _log(f"{out}: {args.zones} zones x {args.networks} networks x {len(DAYPARTS)} dayparts x "
          f"{args.weeks} weeks = {args.zones * args.networks * len(DAYPARTS) * args.weeks:,} units per demo")
-    hist = write_history_and_baseline(out, layout, seed=args.seed, history=not args.no_history)
+    hist = write_history_and_baseline(out, layout, seed=args.seed, history=not args.no_history,
+                                      history_zones=args.history_zones)
     forecast = pd.read_parquet(out / "forecast" / "forecast.parquet")
     inventory = write_inventory(out, layout, forecast, seed=args.seed)
     plans = book_plans(layout, forecast, inventory, n_deals=args.deals, seed=args.seed)
@@ -414,7 +437,8 @@ def main(argv=None) -> int:
     facts = {"out": str(out), "zones": args.zones, "networks": args.networks, "dayparts": len(DAYPARTS),
              "weeks": args.weeks, "demos": args.demos, "days": args.days,
              "units_per_demo": len(inventory), "history_rows": hist["history_rows"],
-             "history_parts": args.zones if not args.no_history else 0,
+             "history_parts": 0 if args.no_history else len(list((out / "history").glob("*.parquet"))),
+             "history_zones": 0 if args.no_history else min(args.history_zones or args.zones, args.zones),
              "forecast_rows": hist["forecast_rows"], "book_deals": 0 if args.no_book else len(plans),
              "book_spots": 0 if args.no_book else held, "book_units": int(sum(len(p["spots"]) for p in plans)),
              "seconds": round(time.perf_counter() - t0, 1), "book_seconds": round(book_s, 1),

@@ -1,0 +1,149 @@
+"""`bench/run`: run every benchmark, print ONE table (figure, target, measured, ratio), and write
+bench/RESULTS.md with the machine it ran on. See bench/run --help."""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+import _measure as M  # noqa: E402
+
+BENCH = Path(__file__).resolve().parent
+
+# (name, script, extra args, adapter): scale benchmarks print {"rows": [...]}; the others print
+# their own JSON (last stdout line), turned into rows by an adapter.
+SCALE = ["ingest", "fit", "allocate", "stress"]
+SCRIPTS = {"ingest": "bench_ingest.py", "fit": "bench_scale_fit.py", "allocate": "bench_scale_allocate.py",
+           "stress": "bench_scale_stress.py", "demo-stress": "bench_stress.py", "demo-generate": "bench_generate.py",
+           "demo-fit": "bench_fit.py", "demo-allocate": "bench_allocate.py"}
+
+
+def _generic_rows(name: str, out: dict) -> list[dict]:
+    """Rows from another helper's benchmark JSON (target_seconds + a seconds figure)."""
+    target = out.get("target_seconds")
+    secs = None
+    for key in ("seconds_best", "seconds", "fit_seconds", "total_seconds"):
+        if isinstance(out.get(key), (int, float)):
+            secs = float(out[key])
+            break
+    if secs is None and isinstance(out.get("steps"), list) and out["steps"]:
+        secs = float(out["steps"][0].get("seconds", float("nan")))
+    if secs is None:
+        return [M.row(f"{name}", "", json.dumps(out)[:80], None)]
+    met = out.get("meets_target")
+    label = f"{int(out['draws']):,} draws" if isinstance(out.get("draws"), (int, float)) else "demo"
+    return [M.row(f"{name} ({label})",
+                  f"< {target:g} s" if target else "", f"{secs:.2f} s",
+                  secs / target if target else None, met if isinstance(met, bool) else None)]
+
+
+def run_one(name: str, args) -> tuple[list[dict], dict]:
+    script = BENCH / SCRIPTS[name]
+    if not script.exists():
+        return [], {}
+    cmd = [sys.executable, str(script)]
+    if name in SCALE:
+        cmd += ["--json", "--large", str(args.large)]
+    env = dict(os.environ, PYTHONPATH=str(BENCH.parent))
+    t0 = time.perf_counter()
+    proc = subprocess.run(cmd, capture_output=True, text=True, env=env, cwd=str(BENCH.parent))
+    wall = time.perf_counter() - t0
+    lines = [ln for ln in proc.stdout.strip().splitlines() if ln.startswith("{")]
+    if proc.returncode != 0 or not lines:
+        msg = (proc.stderr.strip().splitlines() or ["no output"])[-1][:100]
+        return [M.row(f"{name}: FAILED", "", msg, None, False)], {"stderr": proc.stderr[-3000:]}
+    out = json.loads(lines[-1])
+    rows = out["rows"] if name in SCALE else _generic_rows(name, out)
+    details = out.get("details", out)
+    details = dict(details) if isinstance(details, dict) else {"value": details}
+    details["bench_wall_seconds"] = wall
+    return rows, details
+
+
+def markdown(rows: list[dict]) -> str:
+    lines = ["| figure | target | measured | ratio | met |", "| --- | --- | --- | --- | --- |"]
+    for r in rows:
+        ratio = "" if r["ratio"] is None else f"{r['ratio']:.3g}"
+        met = "" if r["met"] is None else ("yes" if r["met"] else "**no**")
+        lines.append(f"| {r['figure']} | {r['target']} | {r['measured']} | {ratio} | {met} |")
+    return "\n".join(lines)
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(prog="bench/run", description=(
+        "Run the benchmarks and print one table. ratio: measured / target for a target (<= 1 meets "
+        "it); for a side-by-side comparison, how many times faster (or the stated quotient)."))
+    ap.add_argument("--large", type=Path, default=M.default_large(),
+                    help="the large instance from bench/generate_large.py (default $PLEDGE_LARGE or "
+                         "/work/large/national)")
+    ap.add_argument("--only", default=None, help=f"comma list of {', '.join(SCRIPTS)}")
+    ap.add_argument("--no-write", action="store_true", help="do not rewrite bench/RESULTS.md")
+    args = ap.parse_args(argv)
+    names = args.only.split(",") if args.only else list(SCRIPTS)
+    unknown = [n for n in names if n not in SCRIPTS]
+    if unknown:
+        ap.error(f"unknown benchmark(s) {', '.join(unknown)}")
+    if any(n in SCALE for n in names) and not (args.large / "LARGE.json").exists():
+        ap.error(f"{args.large}: no large instance (run: python bench/generate_large.py {args.large})")
+    facts_start = M.machine_facts()
+    t0 = time.perf_counter()
+    rows, details = [], {}
+    for name in names:
+        print(f"running {name} ...", file=sys.stderr, flush=True)
+        r, d = run_one(name, args)
+        rows += r
+        if d:
+            details[name] = d
+    facts = M.machine_facts()
+    facts["load_avg_1m_at_start"] = facts_start.get("load_avg_1m")
+    facts["total_seconds"] = round(time.perf_counter() - t0, 1)
+    M.print_rows(rows)
+    if args.no_write:
+        return 0
+    large = {}
+    if (args.large / "LARGE.json").exists():
+        large = json.loads((args.large / "LARGE.json").read_text())
+    notes = BENCH / "notes.md"
+    text = [
+        "# Benchmark results (last run of `bench/run`)",
+        "",
+        f"Run {facts['date_utc']} on {facts.get('nproc')} CPUs ({facts.get('cpu', 'unknown CPU')}), "
+        f"{facts.get('memory_gib')} GiB memory; load average {facts.get('load_avg_1m_at_start')} at the start "
+        f"and {facts.get('load_avg_1m')} at the end (the machine may be shared: timings are wall clock).",
+        "",
+        "ratio: measured / target for a target (<= 1 meets it); for a side-by-side, the quotient shown "
+        "in `measured` (how many times slower the alternative is). Memory is the whole-process peak "
+        "resident set of the child process that ran the step (`os.wait4` rusage), not an estimate.",
+        "",
+        markdown(rows),
+        "",
+        "## Machine and versions",
+        "",
+        "```",
+        json.dumps(facts, indent=2),
+        "```",
+        "",
+        "## Large instance (bench/generate_large.py)",
+        "",
+        "```",
+        json.dumps(large, indent=2),
+        "```",
+        "",
+    ]
+    if notes.exists():
+        text += [notes.read_text().rstrip(), ""]
+    text += ["## Details of each benchmark", "", "```", json.dumps(details, indent=1, default=str)[:60000], "```",
+             "", "Invented data throughout; figures are measurements of this code on this machine, not promises.",
+             ""]
+    (BENCH / "RESULTS.md").write_text("\n".join(text))
+    print(f"wrote {BENCH / 'RESULTS.md'}", file=sys.stderr)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
