@@ -27,6 +27,13 @@ months before the end of the history).
 
 The simulation runs `horizon_days` past the end of the history (never written to the history
 file) so that tests and the demo builder can size deals against what the "future" delivers.
+
+References
+----------
+- Box, G. E. P., Jenkins, G. M. (1970), *Time Series Analysis: Forecasting and Control*: the AR(1)
+  process used for day-to-day and within-day noise (unit marginal variance: scale sqrt(1 - rho^2)).
+- Mardia, K. V., Jupp, P. E. (2000), *Directional Statistics*: the von Mises shape
+  exp(kappa (cos(theta - mu) - 1)) used for the bumps of a day profile on the 24-hour circle.
 """
 from __future__ import annotations
 
