@@ -1,0 +1,339 @@
+"""The daypart forecaster: quarter-hour model + rolling-origin uncertainty -> forecast table.
+
+`DaypartForecaster.fit` does, on a history cube and a plan calendar:
+
+1. K rolling-origin refits of `ProfileForecaster` at the SAME lead time as the real forecast
+   (origin = plan start - gap - k x horizon; each scores the horizon after the same gap), with a
+   share of series truncated on purpose to measure how short histories degrade. Held-out errors
+   of unit-week daypart means feed `LevelErrorModel`; the baselines' errors in the same folds
+   give their own spreads.
+2. The final `ProfileForecaster` on the whole history, predicted for the plan weeks.
+3. Airing noise from the recent history's within-week dispersion (`airing_cv`).
+
+`forecast_table` turns this into the contract table of DEVELOPERS.md ("Forecast table").
+
+References
+----------
+Tashman (2000), rolling-origin evaluation; Gneiting & Raftery (2007), calibration and CRPS.
+"""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from typing import Callable, Sequence
+
+import numpy as np
+import pandas as pd
+from scipy.stats import norm
+
+from .baselines import BASELINES, last_year, spread_by_daypart, trailing_mean
+from .dayparts import DaypartSpec, as_specs, daypart_week_means, daypart_week_sums
+from .models import ProfileForecaster
+from .profiles import ProfileCube
+from .scoring import coverage
+from .uncertainty import FLOOR_SD, LevelErrorModel, airing_cv
+
+Progress = Callable[[str, float], None]
+
+Z90 = norm.ppf(0.90)  # 1.2816 (NIST/SEMATECH table: z(0.90) = 1.2816)
+
+
+def _noop(message: str, fraction: float) -> None:
+    return None
+
+
+@dataclass
+class FoldResult:
+    """Held-out daypart-week means of one rolling-origin refit."""
+
+    origin: int
+    actual: np.ndarray      # (S, P, W) mean rating over observed cells
+    counts: np.ndarray      # (S, P, W) observed cells
+    forecast: np.ndarray    # (S, P, W) model mean over the same cells
+    baselines: dict = field(default_factory=dict)  # name -> (S, P, W)
+    truncated: np.ndarray | None = None  # (S,) bool
+    history_weeks: np.ndarray | None = None  # (S,)
+
+
+def fold_origins(n_days: int, gap: int, horizon: int, n_folds: int, min_train: int) -> list[int]:
+    """Origins (day index of the first held-out day's origin, i.e. training ends before it).
+
+    Fold k trains on days [0, o_k) and is scored on [o_k + gap, o_k + gap + horizon), inside the
+    history of `n_days` days; windows do not overlap. Returns up to `n_folds` origins, latest first.
+    """
+    out = []
+    for k in range(n_folds):
+        o = n_days - gap - horizon * (k + 1)
+        if o < min_train:
+            break
+        out.append(o)
+    return out
+
+
+class DaypartForecaster:
+    """Probabilistic daypart forecasts for every series of a history cube.
+
+    Parameters
+    ----------
+    n_folds : rolling-origin refits for the uncertainty (at most; fewer if history is short).
+    truncate_share : share of zone x network series whose history is cut short in each fold.
+    truncate_weeks : history lengths (weeks) given to those series (0 = never seen).
+    airing_weeks : recent weeks used for the airing-noise dispersion.
+    min_train_days : a fold needs at least this many days of training history.
+    min_cells : a held-out unit-week counts only with this share of its cells observed.
+    model_params : keyword arguments of `ProfileForecaster`.
+    random_state : seed of everything.
+
+    Attributes
+    ----------
+    model_ : final `ProfileForecaster`; level_ : `LevelErrorModel`; folds_ : list of origins;
+    plan_mean_ : (S, P, W) bias-corrected mean ratings of the plan weeks; airing_cv_ : (S, P);
+    history_weeks_ : (S,); baseline_spread_ : {baseline: {daypart: rel_sd}};
+    calibration_ : leave-one-fold-out coverage of the level bands; timings_ : seconds by step.
+    """
+
+    def __init__(self, n_folds: int = 3, truncate_share: float = 0.3,
+                 truncate_weeks: Sequence[int] = (0, 4, 13, 26), airing_weeks: int = 52,
+                 min_train_days: int = 182, min_cells: float = 0.5, model_params: dict | None = None,
+                 random_state: int = 0):
+        self.n_folds = n_folds
+        self.truncate_share = truncate_share
+        self.truncate_weeks = tuple(truncate_weeks)
+        self.airing_weeks = airing_weeks
+        self.min_train_days = min_train_days
+        self.min_cells = min_cells
+        self.model_params = model_params
+        self.random_state = random_state
+
+    # ------------------------------------------------------------------ helpers
+    def _new_model(self, seed_offset: int) -> ProfileForecaster:
+        params = dict(self.model_params or {})
+        params["random_state"] = self.random_state + seed_offset
+        return ProfileForecaster(**params)
+
+    def _expected_cells(self, dayparts: Sequence[DaypartSpec]) -> np.ndarray:
+        return np.array([len(dp.quarter_hours) * len(dp.days) for dp in dayparts], dtype=float)
+
+    def _run_fold(self, cube: ProfileCube, info: pd.DataFrame, dayparts, origin: int, gap: int,
+                  weeks: int, k: int) -> FoldResult:
+        rng = np.random.default_rng([self.random_state, 101, k])
+        S = cube.n_series
+        train = cube.values[:, :origin].copy()
+        # Truncate a share of zone x network pairs (all their demos together).
+        pair = pd.factorize(info["zone"].astype(str) + "\x1f" + info["network"].astype(str))[0]
+        n_pairs = pair.max() + 1
+        chosen = rng.random(n_pairs) < self.truncate_share
+        lengths = rng.choice(np.asarray(self.truncate_weeks), size=n_pairs)
+        truncated = chosen[pair]
+        for s in np.nonzero(truncated)[0]:
+            keep_from = max(origin - 7 * int(lengths[pair[s]]), 0)
+            train[s, :keep_from] = np.nan
+        history_weeks = np.isfinite(train).any(axis=2).sum(axis=1) / 7.0
+        model = self._new_model(1000 * (k + 1)).fit(train, info, cube.day0)
+        start = origin + gap
+        horizon = 7 * weeks
+        days = np.arange(start, start + horizon + 1)
+        pred = model.predict(days).astype(np.float32)
+        actual = cube.values[:, start:min(start + horizon + 1, cube.n_days)]
+        if actual.shape[1] < pred.shape[1]:
+            pad = np.full((S, pred.shape[1] - actual.shape[1], 96), np.nan, dtype=np.float32)
+            actual = np.concatenate([actual, pad], axis=1)
+        wd = (cube.day0.day_of_week + start) % 7
+        starts = 7 * np.arange(weeks)
+        a_mean, counts = daypart_week_means(actual, wd, starts, dayparts)
+        f_mean, _ = daypart_week_means(np.where(np.isfinite(actual), pred, np.nan), wd, starts, dayparts)
+        # Baselines at the same origin, from the training history only (nothing truncated).
+        base = {
+            "last_year": last_year(cube.values[:, :origin], cube.day0.day_of_week, start + starts, dayparts),
+            "trailing_8w": trailing_mean(cube.values, cube.day0.day_of_week, origin, dayparts, weeks),
+        }
+        return FoldResult(origin, a_mean, counts, f_mean, base, truncated, history_weeks)
+
+    def _errors_frame(self, folds: list[FoldResult], info: pd.DataFrame, dayparts) -> tuple[pd.DataFrame, pd.DataFrame]:
+        need = self.min_cells * self._expected_cells(dayparts)[None, :, None]
+        model_rows, base_rows = [], []
+        names = np.array([dp.name for dp in dayparts])
+        for j, f in enumerate(folds):
+            ok = (f.counts >= need) & (f.forecast > 0) & np.isfinite(f.actual)
+            s, p, w = np.nonzero(ok)
+            rel = f.actual[s, p, w] / f.forecast[s, p, w] - 1.0
+            model_rows.append(pd.DataFrame({
+                "fold": j, "zone": info["zone"].to_numpy()[s], "network": info["network"].to_numpy()[s],
+                "genre": info["genre"].to_numpy()[s], "demo": info["demo"].to_numpy()[s],
+                "daypart": names[p], "week": w + 1, "rel_error": rel,
+                "truncated": f.truncated[s], "history_weeks": f.history_weeks[s]}))
+            for name, fb in f.baselines.items():
+                okb = (f.counts >= need) & np.isfinite(f.actual) & np.isfinite(fb) & (fb > 0) & ~f.truncated[:, None, None]
+                s, p, w = np.nonzero(okb)
+                base_rows.append(pd.DataFrame({"baseline": name, "daypart": names[p],
+                                               "rel_error": f.actual[s, p, w] / fb[s, p, w] - 1.0}))
+        errors = pd.concat(model_rows, ignore_index=True)
+        base = pd.concat(base_rows, ignore_index=True) if base_rows else pd.DataFrame(
+            columns=["baseline", "daypart", "rel_error"])
+        return errors, base
+
+    def _calibration(self, errors: pd.DataFrame) -> dict:
+        """Leave-one-fold-out coverage of the unit-week level bands (full-history units)."""
+        out = {}
+        folds = sorted(errors["fold"].unique())
+        if len(folds) < 2:
+            return out
+        cover = {lv: [] for lv in (0.5, 0.8, 0.95)}
+        for j in folds:
+            try:
+                lm = LevelErrorModel().fit(errors[errors["fold"] != j])
+            except ValueError:
+                continue
+            held = errors[(errors["fold"] == j) & ~errors["truncated"]]
+            sd = lm.predict(held)
+            tot = np.sqrt(sd["rel_sd_network"] ** 2 + sd["rel_sd_flight"] ** 2 + sd["rel_sd_week"] ** 2)
+            ratio = (1.0 + held["rel_error"]) / (1.0 + sd["bias"])  # actual over bias-corrected forecast
+            for lv in cover:
+                cover[lv].append((coverage(ratio, 1.0, tot, lv), len(held)))
+        for lv, vals in cover.items():
+            if vals:
+                w = np.array([n for _, n in vals], dtype=float)
+                out[str(lv)] = float(np.sum([c for c, _ in vals] * w) / w.sum())
+        return {"leave_one_fold_out_coverage": out}
+
+    # ------------------------------------------------------------------ fit
+    def fit(self, cube: ProfileCube, info: pd.DataFrame, dayparts, plan_start, weeks: int,
+            progress: Progress | None = None) -> "DaypartForecaster":
+        """Fit everything for plan weeks starting on `plan_start` (a date; weeks of 7 days).
+
+        Parameters
+        ----------
+        cube : the history (`ProfileCube`), day index 0 = ``cube.day0``.
+        info : ``zone, network, demo, genre`` aligned with ``cube.series``.
+        dayparts : objects with ``name, days, quarter_hours``.
+        plan_start : first day of plan week 1.
+        weeks : number of plan weeks.
+        progress : callback ``(message, fraction_done)``.
+        """
+        progress = progress or _noop
+        dayparts = as_specs(dayparts)
+        self.dayparts_ = dayparts
+        self.info_ = info.reset_index(drop=True)
+        self.weeks_ = int(weeks)
+        self.day0_ = cube.day0
+        T = cube.n_days
+        p0 = cube.day_index(plan_start)
+        self.plan_start_index_ = p0
+        self.gap_days_ = max(p0 - T, 0)
+        horizon = 7 * self.weeks_
+        origins = fold_origins(T, self.gap_days_, horizon, self.n_folds, self.min_train_days)
+        if not origins:
+            need = self.min_train_days + self.gap_days_ + horizon
+            raise ValueError(f"history too short to estimate forecast uncertainty: {T} days, need at least "
+                             f"{need} (training {self.min_train_days} + lead gap {self.gap_days_} + "
+                             f"{self.weeks_} held-out weeks)")
+        self.folds_ = origins
+        timings = {}
+        steps = len(origins) + 2
+        folds = []
+        for k, o in enumerate(origins):
+            progress(f"rolling-origin refit {k + 1}/{len(origins)}", k / steps)
+            t0 = time.perf_counter()
+            folds.append(self._run_fold(cube, self.info_, dayparts, o, self.gap_days_, self.weeks_, k))
+            timings[f"fold_{k + 1}"] = time.perf_counter() - t0
+        errors, base_errors = self._errors_frame(folds, self.info_, dayparts)
+        self.heldout_errors_ = errors
+        self.level_ = LevelErrorModel().fit(errors)
+        self.calibration_ = self._calibration(errors)
+        self.baseline_spread_ = spread_by_daypart(base_errors)
+
+        progress("final fit on the whole history", len(origins) / steps)
+        t0 = time.perf_counter()
+        self.model_ = self._new_model(0).fit(cube.values, self.info_, cube.day0)
+        timings["final_fit"] = time.perf_counter() - t0
+        progress("plan-week forecasts", (len(origins) + 1) / steps)
+        t0 = time.perf_counter()
+        days = np.arange(p0, p0 + horizon + 1)
+        pred = self.model_.predict(days).astype(np.float32)
+        self.plan_pred_ = pred  # (S, 7 W + 1, 96) expected quarter-hour ratings, before bias correction
+        wd = (cube.day0.day_of_week + p0) % 7
+        raw_mean, _ = daypart_week_means(pred, wd, 7 * np.arange(self.weeks_), dayparts)
+        bias = np.array([self.level_.bias_.get(dp.name, 0.0) for dp in dayparts])
+        self.plan_raw_mean_ = raw_mean
+        self.plan_mean_ = raw_mean * (1.0 + bias)[None, :, None]
+        # Airing noise: dispersion of cells within daypart weeks of the recent history.
+        a_start = max(T - 7 * self.airing_weeks, 0)
+        starts = np.arange(a_start, T - 6, 7) - a_start
+        sums, sq, cnt = daypart_week_sums(cube.values[:, a_start:], (cube.day0.day_of_week + a_start) % 7,
+                                          starts, dayparts, squares=True)
+        pool = pd.factorize(self.info_["network"].astype(str) + "\x1f" + self.info_["demo"].astype(str))[0]
+        self.airing_cv_ = airing_cv(sums, sq, cnt, pool)
+        self.history_weeks_ = cube.history_days() / 7.0
+        timings["predict"] = time.perf_counter() - t0
+        self.timings_ = timings
+        progress("done", 1.0)
+        return self
+
+    # ------------------------------------------------------------------ outputs
+    def forecast_table(self, universes: pd.DataFrame, units: pd.DataFrame | None = None) -> pd.DataFrame:
+        """The forecast table (DEVELOPERS.md, "Forecast table"), impressions per 30-second spot.
+
+        Parameters
+        ----------
+        universes : ``zone, demo, universe`` (people or homes).
+        units : optional ``zone, network, daypart, week`` to keep (e.g. the inventory rows);
+            default every series x daypart x plan week.
+
+        Returns
+        -------
+        DataFrame with ``zone, network, daypart, week, demo, universe, mean_rating,
+        mean_impressions, airing_sd, level_sd, level_sd_network, level_sd_flight, level_sd_week,
+        q10_impressions, q90_impressions, history_weeks``.
+        """
+        info = self.info_
+        S, P, W = self.plan_mean_.shape
+        s, p, w = np.meshgrid(np.arange(S), np.arange(P), np.arange(W), indexing="ij")
+        s, p, w = s.ravel(), p.ravel(), w.ravel()
+        names = np.array([dp.name for dp in self.dayparts_])
+        t = pd.DataFrame({
+            "zone": info["zone"].to_numpy()[s], "network": info["network"].to_numpy()[s],
+            "daypart": names[p], "week": (w + 1).astype(np.int64), "demo": info["demo"].to_numpy()[s],
+            "genre": info["genre"].to_numpy()[s],
+            "mean_rating": self.plan_mean_[s, p, w], "history_weeks": np.round(self.history_weeks_[s], 1),
+            "cv": self.airing_cv_[s, p],
+        })
+        uni = universes[["zone", "demo", "universe"]].copy()
+        uni["zone"] = uni["zone"].astype(str)
+        uni["demo"] = uni["demo"].astype(str)
+        t = t.merge(uni, on=["zone", "demo"], how="left")
+        t["universe"] = t["universe"].astype(float)
+        sd = self.level_.predict(t)
+        mu = t["mean_rating"].to_numpy(float) * t["universe"].to_numpy(float)
+        t["mean_impressions"] = mu
+        t["airing_sd"] = t["cv"].to_numpy() * mu
+        t["level_sd_network"] = sd["rel_sd_network"].to_numpy() * mu
+        t["level_sd_flight"] = sd["rel_sd_flight"].to_numpy() * mu
+        t["level_sd_week"] = sd["rel_sd_week"].to_numpy() * mu
+        t["level_sd"] = np.sqrt(t["level_sd_network"] ** 2 + t["level_sd_flight"] ** 2 + t["level_sd_week"] ** 2)
+        spot_sd = np.sqrt(t["level_sd"] ** 2 + t["airing_sd"] ** 2)
+        t["q10_impressions"] = np.maximum(mu - Z90 * spot_sd, 0.0)
+        t["q90_impressions"] = mu + Z90 * spot_sd
+        if units is not None:
+            keys = units[["zone", "network", "daypart", "week"]].drop_duplicates().copy()
+            keys["week"] = keys["week"].astype(np.int64)
+            for c in ("zone", "network", "daypart"):
+                keys[c] = keys[c].astype(str)
+            t = t.merge(keys, on=["zone", "network", "daypart", "week"], how="inner")
+        cols = ["zone", "network", "daypart", "week", "demo", "universe", "mean_rating", "mean_impressions",
+                "airing_sd", "level_sd", "level_sd_network", "level_sd_flight", "level_sd_week",
+                "q10_impressions", "q90_impressions", "history_weeks"]
+        return t[cols].sort_values(["zone", "network", "daypart", "week", "demo"]).reset_index(drop=True)
+
+    def summary(self) -> dict:
+        """Figures for meta.json: folds, lead gap, components, calibration, baselines' spreads."""
+        return {
+            "folds": len(self.folds_), "fold_origins": [str((self.day0_ + pd.Timedelta(days=o)).date())
+                                                        for o in self.folds_],
+            "lead_gap_days": int(self.gap_days_),
+            "pca_components": int(self.model_.pca_.components_.shape[0]),
+            "pca_explained": float(self.model_.pca_.explained_variance_ratio_.sum()),
+            "level_error": self.level_.summary(),
+            "calibration": self.calibration_,
+            "baseline_spread": self.baseline_spread_,
+            "timings_seconds": {k: round(v, 2) for k, v in self.timings_.items()},
+        }

@@ -1,0 +1,245 @@
+"""Uncertainty of daypart forecasts, estimated from held-out errors and from history.
+
+Level error. For each rolling-origin refit (fold j) and each unit-week (zone z, network n,
+daypart d, demo m, week w) the relative error of the daypart mean is
+``e = actual / forecast - 1``. It is decomposed as nested random effects
+
+    e = a[n, j] + b[z, n, d, m, j] + c[z, n, d, m, w, j]
+
+(network factor shared by every unit of the network; flight factor shared across the weeks of a
+zone x network x daypart (x demo); unit-week own factor), with variances estimated by the method
+of moments of the nested ANOVA, pooled by daypart x genre and shrunk toward the daypart.
+Units with short history: series truncated on purpose in the folds measure how much larger
+their errors are; the extra variance goes to the flight factor (a poorly known level persists
+through the flight).
+
+Airing noise. The spread of one spot around the unit-week level: the dispersion of the
+quarter-hour-day ratings of a daypart week around their mean, as a coefficient of variation
+pooled over the weeks of the recent history and shrunk toward network x daypart x demo.
+
+References
+----------
+Searle, S. R., Casella, G. & McCulloch, C. E. (1992). Variance Components. Wiley, ch. 3-4
+    (ANOVA / method-of-moments estimators for nested random effects).
+Tashman, L. J. (2000). Out-of-sample tests of forecasting accuracy: an analysis and review.
+    Int. J. Forecasting 16(4) (rolling-origin evaluation).
+"""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+FLIGHT_KEYS = ["fold", "zone", "network", "daypart", "demo"]
+
+#: floors on the relative sds (fractions of the mean) so nothing has zero variance
+FLOOR_SD = {"network": 0.01, "flight": 0.01, "week": 0.02, "airing": 0.05}
+
+
+def _group_mean(df: pd.DataFrame, keys, col: str) -> pd.Series:
+    return df.groupby(keys, sort=False, observed=True)[col].transform("mean")
+
+
+class LevelErrorModel:
+    """Variance components of relative unit-week level errors (fractions of the forecast mean).
+
+    Parameters
+    ----------
+    prior_flights : shrinkage weight (in flights) of a daypart x genre cell toward its daypart.
+
+    Attributes
+    ----------
+    bias_ : dict daypart -> mean relative error (the forecast is multiplied by 1 + bias).
+    var_network_ : float, variance of the network factor.
+    var_flight_, var_week_ : DataFrame indexed by (daypart, genre), columns ``flight, week``.
+    var_flight_daypart_, var_week_daypart_ : Series by daypart (fallback for unseen genres).
+    history_ratio_ : DataFrame ``weeks, ratio`` -- error variance of series with that many weeks
+        of history over the full-history variance (>= 1, non-increasing in weeks).
+    full_weeks_ : typical history length (weeks) of the full-history series in the folds.
+    n_rows_ : number of held-out unit-weeks used.
+    """
+
+    def __init__(self, prior_flights: float = 30.0):
+        self.prior_flights = prior_flights
+
+    def fit(self, errors: pd.DataFrame) -> "LevelErrorModel":
+        """Fit on held-out errors.
+
+        Parameters
+        ----------
+        errors : one row per held-out unit-week with ``fold, zone, network, genre, daypart, demo,
+            week, rel_error`` (actual / forecast - 1), ``truncated`` (bool: history cut on
+            purpose) and ``history_weeks`` (weeks of history the fold's fit had for the series).
+        """
+        df = errors[np.isfinite(errors["rel_error"])].copy()
+        full = df[~df["truncated"]].copy()
+        if len(full) < 10:
+            raise ValueError("too few held-out unit-weeks to estimate forecast uncertainty")
+        self.bias_ = full.groupby("daypart")["rel_error"].mean().to_dict()
+        for frame in (df, full):
+            b = frame["daypart"].map(self.bias_).astype(float).fillna(0.0)
+            frame["e"] = (1.0 + frame["rel_error"]) / (1.0 + b) - 1.0
+        self.n_rows_ = len(full)
+
+        # Within flights: unit-week own factor.
+        full["flight_mean"] = _group_mean(full, FLIGHT_KEYS, "e")
+        g = full.groupby(FLIGHT_KEYS, sort=False, observed=True)
+        flights = g.agg(daypart=("daypart", "first"), genre=("genre", "first"), network=("network", "first"),
+                        fold=("fold", "first"), W=("e", "size"), mean=("e", "mean"),
+                        ss=("e", lambda x: float(((x - x.mean()) ** 2).sum()))).reset_index(drop=True)
+        # Network x fold means, and each flight's deviation from its network mean.
+        net = full.groupby(["fold", "network"], observed=True).agg(
+            net_mean=("e", "mean"), N=("e", "size")).reset_index()
+        nflights = flights.groupby(["fold", "network"]).size().rename("M").reset_index()
+        net = net.merge(nflights, on=["fold", "network"])
+        flights = flights.merge(net, on=["fold", "network"], how="left")
+        flights["dev"] = flights["mean"] - flights["net_mean"]
+
+        def components(fl: pd.DataFrame) -> tuple[float, float, float]:
+            dof = float((fl["W"] - 1).clip(lower=0).sum())
+            var_w = float(fl["ss"].sum() / dof) if dof > 0 else np.nan
+            m = fl["M"].clip(lower=2).to_numpy(float)
+            corr = m / (m - 1.0)  # the deviation from a mean of M flights loses 1/M of the variance
+            var_f = float(np.mean(fl["dev"].to_numpy() ** 2 * corr) - np.mean(var_w / fl["W"]))
+            return var_w, var_f, float(len(fl))
+
+        by_dp = {}
+        for dp, fl in flights.groupby("daypart"):
+            var_w, var_f, n = components(fl)
+            by_dp[dp] = (var_w, max(var_f, FLOOR_SD["flight"] ** 2))
+        self.var_week_daypart_ = pd.Series({k: max(v[0], FLOOR_SD["week"] ** 2) for k, v in by_dp.items()})
+        self.var_flight_daypart_ = pd.Series({k: v[1] for k, v in by_dp.items()})
+        rows = []
+        k0 = self.prior_flights
+        for (dp, genre), fl in flights.groupby(["daypart", "genre"]):
+            var_w, var_f, n = components(fl)
+            pw, pf = self.var_week_daypart_[dp], self.var_flight_daypart_[dp]
+            var_w = pw if not np.isfinite(var_w) else (n * var_w + k0 * pw) / (n + k0)
+            var_f = (n * max(var_f, 0.0) + k0 * pf) / (n + k0)
+            rows.append({"daypart": dp, "genre": genre, "flight": max(var_f, FLOOR_SD["flight"] ** 2),
+                         "week": max(var_w, FLOOR_SD["week"] ** 2)})
+        self.var_cells_ = pd.DataFrame(rows).set_index(["daypart", "genre"])
+
+        # Network factor: mean square of the network x fold means less what flights and weeks add.
+        fl_var = flights["daypart"].map(self.var_flight_daypart_).astype(float)
+        wk_var = flights["daypart"].map(self.var_week_daypart_).astype(float)
+        inner = (fl_var + wk_var / flights["W"]).groupby([flights["fold"], flights["network"]]).mean()
+        net = net.set_index(["fold", "network"])
+        noise = inner.reindex(net.index).to_numpy() / net["M"].to_numpy()
+        self.var_network_ = max(float(np.mean(net["net_mean"].to_numpy() ** 2 - noise)),
+                                FLOOR_SD["network"] ** 2)
+
+        self._fit_history(df[df["truncated"]], full)
+        return self
+
+    def _fit_history(self, short: pd.DataFrame, full: pd.DataFrame) -> None:
+        self.full_weeks_ = float(full["history_weeks"].median()) if len(full) else 52.0
+        if len(short) == 0:
+            self.history_ratio_ = pd.DataFrame({"weeks": [self.full_weeks_], "ratio": [1.0]})
+            return
+        v_full = self._total_var(short["daypart"], short["genre"])
+        ratio = (short["e"] ** 2 / v_full).groupby(short["history_weeks"].round().astype(int)).mean()
+        ratio = ratio.sort_index()
+        # Non-increasing in history length, never below 1.
+        vals = np.maximum.accumulate(np.maximum(ratio.to_numpy()[::-1], 1.0))[::-1]
+        self.history_ratio_ = pd.DataFrame({"weeks": ratio.index.to_numpy(dtype=float), "ratio": vals})
+
+    def _cell_vars(self, daypart: pd.Series, genre: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+        key = pd.MultiIndex.from_arrays([daypart.astype(str).to_numpy(), genre.astype(str).to_numpy()])
+        cells = self.var_cells_.reindex(key)
+        vf = cells["flight"].to_numpy(float)
+        vw = cells["week"].to_numpy(float)
+        fb_f = daypart.map(self.var_flight_daypart_).to_numpy(float)
+        fb_w = daypart.map(self.var_week_daypart_).to_numpy(float)
+        allf = float(self.var_flight_daypart_.mean())
+        allw = float(self.var_week_daypart_.mean())
+        vf = np.where(np.isfinite(vf), vf, np.where(np.isfinite(fb_f), fb_f, allf))
+        vw = np.where(np.isfinite(vw), vw, np.where(np.isfinite(fb_w), fb_w, allw))
+        return vf, vw
+
+    def _total_var(self, daypart: pd.Series, genre: pd.Series) -> np.ndarray:
+        vf, vw = self._cell_vars(daypart, genre)
+        return self.var_network_ + vf + vw
+
+    def history_factor(self, history_weeks) -> np.ndarray:
+        """Error-variance multiplier (>= 1) for series with `history_weeks` weeks of history.
+
+        Interpolated in log(1 + weeks) between the measured buckets and 1 at the full-history
+        length of the folds; beyond it, 1.
+        """
+        h = np.asarray(history_weeks, dtype=float)
+        weeks = self.history_ratio_["weeks"].to_numpy(float)
+        ratio = self.history_ratio_["ratio"].to_numpy(float)
+        if weeks[-1] < self.full_weeks_:
+            weeks = np.r_[weeks, self.full_weeks_]
+            ratio = np.r_[ratio, 1.0]
+        return np.maximum(np.interp(np.log1p(np.maximum(h, 0.0)), np.log1p(weeks), ratio), 1.0)
+
+    def predict(self, units: pd.DataFrame) -> pd.DataFrame:
+        """Relative sds of the three level factors for forecast units.
+
+        Parameters
+        ----------
+        units : ``daypart, genre, history_weeks``.
+
+        Returns
+        -------
+        DataFrame ``bias, rel_sd_network, rel_sd_flight, rel_sd_week`` (fractions of the mean),
+        aligned with `units`.
+        """
+        dp = units["daypart"].astype(str)
+        vf, vw = self._cell_vars(dp, units["genre"].astype(str))
+        total = self.var_network_ + vf + vw
+        extra = (self.history_factor(units["history_weeks"].to_numpy(float)) - 1.0) * total
+        return pd.DataFrame({
+            "bias": dp.map(self.bias_).astype(float).fillna(0.0).to_numpy(),
+            "rel_sd_network": np.full(len(units), np.sqrt(self.var_network_)),
+            "rel_sd_flight": np.sqrt(vf + extra),
+            "rel_sd_week": np.sqrt(vw),
+        }, index=units.index)
+
+    def summary(self) -> dict:
+        """Plain figures for meta.json."""
+        return {
+            "rel_sd_network": float(np.sqrt(self.var_network_)),
+            "rel_sd_flight_by_daypart": {k: float(np.sqrt(v)) for k, v in self.var_flight_daypart_.items()},
+            "rel_sd_week_by_daypart": {k: float(np.sqrt(v)) for k, v in self.var_week_daypart_.items()},
+            "bias_by_daypart": {k: float(v) for k, v in self.bias_.items()},
+            "history_ratio": {str(int(w)): float(r) for w, r in zip(self.history_ratio_["weeks"],
+                                                                    self.history_ratio_["ratio"])},
+            "heldout_unit_weeks": int(self.n_rows_),
+        }
+
+
+def airing_cv(sums: np.ndarray, sumsq: np.ndarray, counts: np.ndarray, group: np.ndarray,
+              prior_weeks: float = 4.0) -> np.ndarray:
+    """Coefficient of variation of one airing around its unit-week level (fraction).
+
+    Parameters
+    ----------
+    sums, sumsq, counts : (n_series, n_dayparts, n_weeks) of the quarter-hour-day cells of each
+        daypart week (see `forecasting.dayparts.daypart_week_sums`).
+    group : (n_series,) integer pool of each series (e.g. network x demo) for shrinkage.
+    prior_weeks : shrinkage weight, in weeks, toward the pool.
+
+    Returns
+    -------
+    cv : (n_series, n_dayparts), ``sqrt(sum_w var_w / sum_w mean_w^2)`` shrunk toward the pool,
+        floored at FLOOR_SD["airing"].
+    """
+    ok = counts >= 4
+    n = np.where(ok, counts, 1.0)
+    mean = np.where(ok, sums / n, 0.0)
+    var = np.where(ok, np.maximum(sumsq - sums**2 / n, 0.0) / np.maximum(n - 1.0, 1.0), 0.0)
+    num = var.sum(axis=2)
+    den = (mean**2).sum(axis=2)
+    weeks = ok.sum(axis=2).astype(float)
+    S, P = num.shape
+    gnum = np.zeros((group.max() + 1, P))
+    gden = np.zeros((group.max() + 1, P))
+    np.add.at(gnum, group, num)
+    np.add.at(gden, group, den)
+    tot = num.sum(axis=0) / np.maximum(den.sum(axis=0), 1e-300)
+    pool = np.where(gden > 0, gnum / np.maximum(gden, 1e-300), tot[None, :])[group]
+    own = np.where(den > 0, num / np.maximum(den, 1e-300), pool)
+    cv2 = (weeks * own + prior_weeks * pool) / (weeks + prior_weeks)
+    return np.maximum(np.sqrt(cv2), FLOOR_SD["airing"])
