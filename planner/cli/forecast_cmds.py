@@ -1,0 +1,168 @@
+"""`pledge forecast fit | backtest | show`: probabilistic daypart forecasts of a scenario."""
+from __future__ import annotations
+
+import contextlib
+from pathlib import Path
+from typing import Iterator
+
+import typer
+from rich.table import Table
+
+from planner.cli import app
+from planner.cli.common import info, out_console, print_json, progress
+from planner.errors import InputError
+
+forecast_app = typer.Typer(help="Fit, backtest and show the daypart forecasts of a scenario.",
+                           no_args_is_help=True)
+app.add_typer(forecast_app, name="forecast")
+
+CAUTION = ("Forecasts are estimates from past audiences; contract terms decide what is owed. "
+           "Review before committing.")
+
+
+@contextlib.contextmanager
+def _progress(description: str) -> Iterator:
+    """A `(message, fraction)` callback driving the shared progress bar."""
+    with progress(description, total=100) as advance:
+        done = {"f": 0.0}
+
+        def callback(message: str, fraction: float) -> None:
+            step = max(0.0, min(fraction, 1.0) - done["f"]) * 100
+            done["f"] = max(done["f"], min(fraction, 1.0))
+            advance(step, description=f"{description}: {message}")
+
+        yield callback
+
+
+def _engine(engine: str) -> str:
+    if engine not in ("duckdb", "spark"):
+        raise InputError(f"--engine {engine!r}: use duckdb or spark")
+    return engine
+
+
+@forecast_app.command("fit")
+def fit_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    demo: str = typer.Option(None, "--demo", help="Fit one demo only (default: all demos)."),
+    engine: str = typer.Option("duckdb", "--engine", help="History reduction engine: duckdb or spark."),
+    seed: int = typer.Option(0, "--seed", help="Seed of every sample and model."),
+    json_out: bool = typer.Option(False, "--json", help="Print one JSON object."),
+) -> None:
+    """Fit the forecast on the history and write <scenario>/forecast/ (table, model, meta)."""
+    from planner.forecast_job import fit_forecast
+    from planner.scenario import load_scenario
+
+    scn = load_scenario(scenario)
+    with _progress("forecast fit") as cb:
+        res = fit_forecast(scn, demo=demo, engine=_engine(engine), seed=seed, progress=cb)
+    meta = res.meta
+    fit = meta["fit"]
+    out = {"scenario": scn.name, "path": str(res.path), "rows": meta["rows"], "seed": seed,
+           "history": meta["history"], "lead_gap_days": fit["lead_gap_days"], "folds": fit["folds"],
+           "level_error": fit["level_error"], "calibration": fit["calibration"],
+           "seconds": meta["seconds"], "caution": CAUTION}
+    if json_out:
+        print_json(out)
+        return
+    le = fit["level_error"]
+    out_console.print(f"forecast written: {res.path} ({meta['rows']:,} unit-week rows)")
+    out_console.print(f"history {meta['history']['first_day']} .. {meta['history']['last_day']}, "
+                      f"lead gap {fit['lead_gap_days']} days, {fit['folds']} rolling-origin refits, "
+                      f"{meta['seconds']['total']:.0f} s")
+    out_console.print(f"level error (relative sd): network {le['rel_sd_network']:.3f}; flight by daypart "
+                      + ", ".join(f"{k} {v:.3f}" for k, v in le["rel_sd_flight_by_daypart"].items()))
+    cal = fit["calibration"].get("leave_one_fold_out_coverage", {})
+    if cal:
+        out_console.print("held-out coverage of level bands: "
+                          + ", ".join(f"{float(k):.0%} -> {v:.1%}" for k, v in cal.items()))
+    out_console.print(CAUTION)
+
+
+@forecast_app.command("backtest")
+def backtest_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    holdout_weeks: int = typer.Option(13, "--holdout-weeks", help="Weeks at the end of the history held out."),
+    demo: str = typer.Option(None, "--demo", help="Backtest one demo only."),
+    engine: str = typer.Option("duckdb", "--engine", help="History reduction engine: duckdb or spark."),
+    seed: int = typer.Option(0, "--seed", help="Seed of every sample and model."),
+    json_out: bool = typer.Option(False, "--json", help="Print one JSON object."),
+) -> None:
+    """Refit before a cut-off and score the held-out weeks (CRPS, WAPE, coverage) against baselines."""
+    from planner.forecast_job import backtest_scenario
+    from planner.scenario import load_scenario
+
+    scn = load_scenario(scenario)
+    with _progress("forecast backtest") as cb:
+        s = backtest_scenario(scn, holdout_weeks=holdout_weeks, demo=demo, engine=_engine(engine), seed=seed,
+                              progress=cb)
+    if json_out:
+        print_json(s)
+        return
+    h = s["holdout"]
+    out_console.print(f"held out {h['first_day']} .. {h['last_day']} ({h['weeks']} weeks), cut-off "
+                      f"{h['cutoff_day']}, lead gap {h['lead_gap_days']} days; {s['units']:,} unit-weeks scored "
+                      "(unit-week mean impressions of one spot)")
+    t = Table(title="daypart backtest")
+    for col in ("forecast", "CRPS (impr.)", "WAPE", "50%", "80%", "95%"):
+        t.add_column(col, justify="right" if col != "forecast" else "left")
+
+    def row(name: str, sc: dict) -> None:
+        cov = sc["coverage"]
+        t.add_row(name, f"{sc['crps']:,.0f}", f"{sc['wape']:.1%}", f"{cov['0.5']:.1%}", f"{cov['0.8']:.1%}",
+                  f"{cov['0.95']:.1%}")
+
+    row("model", s)
+    for name, sc in s["baselines"].items():
+        row(f"baseline {name}", sc)
+    t.add_section()
+    for dp, sc in s["by_daypart"].items():
+        row(f"model, {dp}", sc)
+    out_console.print(t)
+    out_console.print(f"CRPS skill against the better baseline: {s['crps_skill_vs_best_baseline']:.1%}")
+    out_console.print(s["caution"])
+
+
+@forecast_app.command("show")
+def show_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    zone: str = typer.Option(..., "--zone", help="Zone."),
+    network: str = typer.Option(..., "--network", help="Network."),
+    demo: str = typer.Option(None, "--demo", help="Demo (default: the scenario's first)."),
+    json_out: bool = typer.Option(False, "--json", help="Print one JSON object."),
+) -> None:
+    """Print one zone x network's daypart forecasts with their bands (fits first if needed)."""
+    from planner.forecast_job import ensure_forecast
+    from planner.scenario import load_scenario
+
+    scn = load_scenario(scenario)
+    if zone not in set(map(str, scn.zone_names)):
+        raise InputError(f"--zone {zone!r}: not in zones.csv")
+    if network not in set(map(str, scn.network_names)):
+        raise InputError(f"--network {network!r}: not in networks.csv")
+    demo = demo or scn.demos[0]
+    if demo not in scn.demos:
+        raise InputError(f"--demo {demo!r}: not a demo of the scenario (known: {', '.join(scn.demos)})")
+    with _progress("forecast") as cb:
+        res = ensure_forecast(scn, progress=cb)
+    if res.fitted_now:
+        info("the forecast was fitted now")
+    t = res.table
+    t = t[(t["zone"] == zone) & (t["network"] == network) & (t["demo"] == demo)]
+    if t.empty:
+        raise InputError(f"no forecast rows for zone {zone}, network {network}, demo {demo} "
+                         "(no inventory for this unit?)")
+    order = {d.name: i for i, d in enumerate(scn.dayparts)}
+    t = t.assign(_o=t["daypart"].map(order)).sort_values(["_o", "week"]).drop(columns="_o")
+    if json_out:
+        print_json({"zone": zone, "network": network, "demo": demo, "rows": t.to_dict(orient="records"),
+                    "caution": CAUTION})
+        return
+    tab = Table(title=f"{zone} x {network}, demo {demo}: impressions of one 30-second spot")
+    for col in ("daypart", "week", "rating pts", "mean", "10%", "90%", "airing sd", "level sd", "history wks"):
+        tab.add_column(col, justify="left" if col == "daypart" else "right")
+    for r in t.itertuples(index=False):
+        tab.add_row(r.daypart, str(r.week), f"{100 * r.mean_rating:.3f}", f"{r.mean_impressions:,.0f}",
+                    f"{r.q10_impressions:,.0f}", f"{r.q90_impressions:,.0f}", f"{r.airing_sd:,.0f}",
+                    f"{r.level_sd:,.0f}", f"{r.history_weeks:.0f}")
+    out_console.print(tab)
+    out_console.print(CAUTION)

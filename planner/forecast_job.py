@@ -1,0 +1,229 @@
+"""Fit or load the forecast of a scenario; cache in ``<scenario>/forecast/``.
+
+Files (each written atomically; ``meta.json`` last, so a complete meta means a complete fit):
+
+- ``forecast.parquet``: the forecast table (DEVELOPERS.md, "Forecast table").
+- ``model.pkl``: the fitted `forecasting.pipeline.DaypartForecaster` (pickle; load only files you
+  wrote yourself).
+- ``meta.json``: the fit key (history fingerprint, scenario calendar, dayparts, units, universes,
+  demos, seed, versions), fold origins, variance components and calibration figures.
+
+Forecasts are estimates from past audiences; contract terms decide what is owed on delivery.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import pickle
+import platform
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+
+from planner.atomic import write_text_atomic, write_with_atomic
+from planner.errors import InputError
+
+FORECAST_DIR = "forecast"
+TABLE_FILE = "forecast.parquet"
+MODEL_FILE = "model.pkl"
+META_FILE = "meta.json"
+#: bump when the model or the table changes meaning (old caches are then refitted)
+MODEL_VERSION = "1"
+
+Progress = Callable[[str, float], None]
+
+
+@dataclass
+class ForecastResult:
+    """A scenario's forecast: the table, whether it was fitted by this call, where it lives."""
+
+    table: pd.DataFrame
+    fitted_now: bool
+    path: Path
+    meta: dict = field(default_factory=dict)
+
+
+def forecast_dir(scenario) -> Path:
+    return Path(scenario.path) / FORECAST_DIR
+
+
+def _versions() -> dict:
+    import duckdb
+    import sklearn
+
+    return {"model": MODEL_VERSION, "numpy": np.__version__, "pandas": pd.__version__,
+            "scikit-learn": sklearn.__version__, "duckdb": duckdb.__version__,
+            "python": platform.python_version()}
+
+
+def fit_key(scenario, *, demo: str | None = None, seed: int = 0) -> dict:
+    """What the forecast depends on; a change in any of it means a refit."""
+    from planner.scenario import history_fingerprint
+
+    inv = scenario.inventory[["zone", "network", "daypart", "week"]].astype(str)
+    inv_hash = hashlib.sha1(pd.util.hash_pandas_object(
+        inv.sort_values(list(inv.columns)), index=False).to_numpy().tobytes()).hexdigest()[:16]
+    uni = scenario.universes[["zone", "demo", "universe"]].astype(str)
+    uni_hash = hashlib.sha1(pd.util.hash_pandas_object(
+        uni.sort_values(["zone", "demo"]), index=False).to_numpy().tobytes()).hexdigest()[:16]
+    nets = scenario.networks[["network", "genre"]].astype(str).sort_values("network")
+    return {
+        "history": history_fingerprint(scenario),
+        "first_week": str(scenario.first_week), "weeks": int(scenario.weeks),
+        "dayparts": [[d.name, list(d.days), list(d.quarter_hours)] for d in scenario.dayparts],
+        "inventory": inv_hash, "universes": uni_hash,
+        "networks": [list(r) for r in nets.itertuples(index=False)],
+        "demos": [demo] if demo else list(scenario.demos),
+        "seed": int(seed), "model_version": MODEL_VERSION,
+    }
+
+
+def _read_meta(folder: Path) -> dict | None:
+    p = folder / META_FILE
+    if not p.is_file() or not (folder / TABLE_FILE).is_file():
+        return None
+    try:
+        return json.loads(p.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+
+
+def load_history_cube(scenario, *, demos=None, engine: str = "duckdb", progress: Progress | None = None):
+    """History -> (ProfileCube, series info with genre). Raises InputError when there is none."""
+    from forecasting.ingest import daily_profiles
+    from forecasting.profiles import ProfileCube
+
+    progress = progress or (lambda m, f: None)
+    progress("reading history into daily profiles", 0.0)
+    demos = list(demos) if demos else list(scenario.demos)
+    path = Path(scenario.history_path)
+    if not path.exists():
+        raise InputError(f"{path.name}: history file is missing in {scenario.path}")
+    try:
+        profiles = daily_profiles(path, engine=engine, demos=demos)
+    except FileNotFoundError as exc:
+        raise InputError(str(exc)) from None
+    if profiles.empty:
+        raise InputError(f"{path.name}: no history rows for demo(s) {', '.join(demos)}")
+    series = pd.MultiIndex.from_product(
+        [sorted(map(str, scenario.zone_names)), sorted(map(str, scenario.network_names)), sorted(demos)],
+        names=["zone", "network", "demo"]).to_frame(index=False)
+    cube = ProfileCube.from_profiles(profiles, series=series)
+    genre = scenario.networks.assign(network=scenario.networks["network"].astype(str)).set_index("network")["genre"]
+    info = cube.series.copy()
+    info["genre"] = info["network"].map(genre).astype(str)
+    return cube, info
+
+
+def fit_forecast(scenario, *, demo: str | None = None, engine: str = "duckdb", seed: int = 0,
+                 progress: Progress | None = None) -> ForecastResult:
+    """Fit the forecast of `scenario` (all demos, or `demo`) and write ``<scenario>/forecast/``.
+
+    Returns
+    -------
+    ForecastResult with the table of every inventory unit x demo for the plan weeks.
+    """
+    from forecasting.pipeline import DaypartForecaster
+
+    progress = progress or (lambda m, f: None)
+    if demo is not None and demo not in scenario.demos:
+        raise InputError(f"--demo {demo!r}: not a demo of the scenario (known: {', '.join(scenario.demos)})")
+    key = fit_key(scenario, demo=demo, seed=seed)
+    t0 = time.perf_counter()
+    cube, info = load_history_cube(scenario, demos=[demo] if demo else None, engine=engine, progress=progress)
+    t_ingest = time.perf_counter() - t0
+
+    def sub(message: str, fraction: float) -> None:
+        progress(message, 0.15 + 0.85 * fraction)
+
+    fc = DaypartForecaster(random_state=seed)
+    try:
+        fc.fit(cube, info, scenario.dayparts, pd.Timestamp(scenario.first_week), scenario.weeks, progress=sub)
+    except ValueError as exc:
+        raise InputError(f"{Path(scenario.history_path).name}: {exc}") from None
+    table = fc.forecast_table(scenario.universes, units=scenario.inventory)
+    folder = forecast_dir(scenario)
+    folder.mkdir(parents=True, exist_ok=True)
+    write_with_atomic(folder / TABLE_FILE, lambda p: table.to_parquet(p, index=False))
+    write_with_atomic(folder / MODEL_FILE, lambda p: p.write_bytes(pickle.dumps(fc, protocol=pickle.HIGHEST_PROTOCOL)))
+    hist_end = cube.day0 + pd.Timedelta(days=cube.n_days - 1)
+    meta = {
+        "key": key, "versions": _versions(), "engine": engine, "seed": int(seed),
+        "history": {"first_day": str(cube.day0.date()), "last_day": str(hist_end.date()),
+                    "series": int(cube.n_series), "days": int(cube.n_days)},
+        "rows": int(len(table)),
+        "fit": fc.summary(),
+        "seconds": {"ingest": round(t_ingest, 2), "total": round(time.perf_counter() - t0, 2)},
+        "caution": "Forecasts are estimates from past audiences; contract terms decide what is owed.",
+    }
+    write_text_atomic(folder / META_FILE, json.dumps(meta, indent=2, default=str))
+    return ForecastResult(table=table, fitted_now=True, path=folder / TABLE_FILE, meta=meta)
+
+
+def ensure_forecast(scenario, *, demo: str | None = None, engine: str = "duckdb", seed: int = 0,
+                    progress: Progress | None = None, force: bool = False) -> ForecastResult:
+    """The scenario's forecast, fitted now when missing or stale (history, calendar, dayparts,
+    inventory, universes, networks, demos, seed or model version changed), else read from cache."""
+    folder = forecast_dir(scenario)
+    meta = _read_meta(folder)
+    if not force and meta is not None:
+        try:
+            fresh = meta.get("key") == json.loads(json.dumps(fit_key(scenario, demo=demo, seed=seed)))
+        except OSError:
+            fresh = False
+        if fresh:
+            return ForecastResult(table=pd.read_parquet(folder / TABLE_FILE), fitted_now=False,
+                                  path=folder / TABLE_FILE, meta=meta)
+    return fit_forecast(scenario, demo=demo, engine=engine, seed=seed, progress=progress)
+
+
+def load_forecast(scenario) -> pd.DataFrame:
+    """The cached forecast table; InputError when the scenario has none."""
+    folder = forecast_dir(scenario)
+    path = folder / TABLE_FILE
+    if not path.is_file():
+        raise InputError(f"{folder}: no forecast yet (run `pledge forecast fit {scenario.path}`)")
+    return pd.read_parquet(path)
+
+
+def load_model(scenario):
+    """The fitted `DaypartForecaster` saved beside the table (InputError when missing)."""
+    path = forecast_dir(scenario) / MODEL_FILE
+    if not path.is_file():
+        raise InputError(f"{path}: no saved model (run `pledge forecast fit {scenario.path}`)")
+    return pickle.loads(path.read_bytes())
+
+
+def backtest_scenario(scenario, *, holdout_weeks: int = 13, demo: str | None = None, engine: str = "duckdb",
+                      seed: int = 0, gap_days: int | None = None, progress: Progress | None = None) -> dict:
+    """Backtest the forecaster on the scenario's history (`forecasting.backtest.run_backtest`).
+
+    The held-out weeks are the last `holdout_weeks` of the history; the cut-off sits the real
+    forecast's lead gap before them (history end -> plan week 1) unless `gap_days` is given.
+    Returns the JSON-able summary.
+    """
+    from forecasting.backtest import run_backtest
+    from forecasting.pipeline import DaypartForecaster
+
+    if holdout_weeks < 1:
+        raise InputError(f"--holdout-weeks {holdout_weeks}: must be at least 1")
+    progress = progress or (lambda m, f: None)
+    cube, info = load_history_cube(scenario, demos=[demo] if demo else None, engine=engine, progress=progress)
+    if gap_days is None:
+        gap_days = max(cube.day_index(pd.Timestamp(scenario.first_week)) - cube.n_days, 0)
+
+    def sub(message: str, fraction: float) -> None:
+        progress(message, 0.15 + 0.85 * fraction)
+
+    try:
+        res = run_backtest(cube, info, scenario.dayparts, scenario.universes, holdout_weeks=holdout_weeks,
+                           gap_days=gap_days, forecaster=DaypartForecaster(random_state=seed), progress=sub)
+    except ValueError as exc:
+        raise InputError(f"{Path(scenario.history_path).name}: {exc}") from None
+    out = res.summary
+    out["caution"] = "Backtest scores are of past weeks; future errors can be larger."
+    return out
