@@ -85,8 +85,7 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
     actual, counts = daypart_week_means(actual_cells, wd, starts, specs)
     masked = np.where(np.isfinite(actual_cells), fc.plan_pred_, np.nan)
     model_raw, _ = daypart_week_means(masked, wd, starts, specs)
-    bias = np.array([fc.level_.bias_.get(dp.name, 0.0) for dp in specs])
-    model_mean = model_raw * (1.0 + bias)[None, :, None]
+    model_mean = model_raw * fc.level_factor(fc.plan_recent_)
     base = {
         "last_year": last_year(cube.values[:, :cut], cube.day0.day_of_week, h0 + starts, specs),
         "trailing_8w": trailing_mean(cube.values, cube.day0.day_of_week, cut, specs, W),

@@ -52,10 +52,10 @@ def calendar_features(dates) -> pd.DataFrame:
         year, period 365.25), ``weekend`` (0/1) and ``day`` (days since 2000-01-01, for slow trends).
     """
     d = pd.DatetimeIndex(pd.to_datetime(np.asarray(dates)))
-    dow_s, dow_c = circle(d.dayofweek.to_numpy(), 7.0)
-    doy_s, doy_c = circle(d.dayofyear.to_numpy() - 1, 365.25)
+    dow_s, dow_c = circle(d.day_of_week.to_numpy(), 7.0)
+    doy_s, doy_c = circle(d.day_of_year.to_numpy() - 1, 365.25)
     day = ((d - pd.Timestamp("2000-01-01")) // pd.Timedelta(days=1)).to_numpy(dtype=float)
     return pd.DataFrame({
         "dow_sin": dow_s, "dow_cos": dow_c, "doy_sin": doy_s, "doy_cos": doy_c,
-        "weekend": (d.dayofweek >= 5).astype(float), "day": day,
+        "weekend": (d.day_of_week >= 5).astype(float), "day": day,
     })

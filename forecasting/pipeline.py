@@ -53,6 +53,7 @@ class FoldResult:
     baselines: dict = field(default_factory=dict)  # name -> (S, P, W)
     truncated: np.ndarray | None = None  # (S,) bool
     history_weeks: np.ndarray | None = None  # (S,)
+    recent: np.ndarray | None = None  # (S, P) log(actual / fitted) over the last weeks before the origin
 
 
 def fold_origins(n_days: int, gap: int, horizon: int, n_folds: int, min_train: int) -> list[int]:
@@ -81,6 +82,7 @@ class DaypartForecaster:
     airing_weeks : recent weeks used for the airing-noise dispersion.
     min_train_days : a fold needs at least this many days of training history.
     min_cells : a held-out unit-week counts only with this share of its cells observed.
+    recent_weeks : weeks before the origin whose residual feeds the level correction.
     model_params : keyword arguments of `ProfileForecaster`.
     random_state : seed of everything.
 
@@ -94,14 +96,15 @@ class DaypartForecaster:
 
     def __init__(self, n_folds: int = 3, truncate_share: float = 0.3,
                  truncate_weeks: Sequence[int] = (0, 4, 13, 26), airing_weeks: int = 52,
-                 min_train_days: int = 182, min_cells: float = 0.5, model_params: dict | None = None,
-                 random_state: int = 0):
+                 min_train_days: int = 182, min_cells: float = 0.5, recent_weeks: int = 8,
+                 model_params: dict | None = None, random_state: int = 0):
         self.n_folds = n_folds
         self.truncate_share = truncate_share
         self.truncate_weeks = tuple(truncate_weeks)
         self.airing_weeks = airing_weeks
         self.min_train_days = min_train_days
         self.min_cells = min_cells
+        self.recent_weeks = recent_weeks
         self.model_params = model_params
         self.random_state = random_state
 
@@ -113,6 +116,26 @@ class DaypartForecaster:
 
     def _expected_cells(self, dayparts: Sequence[DaypartSpec]) -> np.ndarray:
         return np.array([len(dp.quarter_hours) * len(dp.days) for dp in dayparts], dtype=float)
+
+    def _recent_residual(self, model: ProfileForecaster, values: np.ndarray, day0: pd.Timestamp,
+                         origin: int, dayparts) -> np.ndarray:
+        """log(actual / model) of each series x daypart over the `recent_weeks` before `origin`.
+
+        0 where the series has no observed cells there. Shape (S, P).
+        """
+        start = max(origin - 7 * self.recent_weeks, 0)
+        days = np.arange(start, origin)
+        pred = model.predict(days)
+        actual = values[:, start:origin]
+        wd = (day0.day_of_week + start) % 7
+        starts = np.arange(0, max(origin - start - 6, 1), 7)
+        a_sum, a_cnt = daypart_week_sums(actual, wd, starts, dayparts)
+        p_sum, _ = daypart_week_sums(np.where(np.isfinite(actual), pred, np.nan), wd, starts, dayparts)
+        a, pm, c = a_sum.sum(axis=2), p_sum.sum(axis=2), a_cnt.sum(axis=2)
+        need = 0.25 * self._expected_cells(dayparts)[None, :] * len(starts)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            r = np.log(a / pm)
+        return np.where((c >= need) & np.isfinite(r), r, 0.0)
 
     def _run_fold(self, cube: ProfileCube, info: pd.DataFrame, dayparts, origin: int, gap: int,
                   weeks: int, k: int) -> FoldResult:
@@ -147,7 +170,8 @@ class DaypartForecaster:
             "last_year": last_year(cube.values[:, :origin], cube.day0.day_of_week, start + starts, dayparts),
             "trailing_8w": trailing_mean(cube.values, cube.day0.day_of_week, origin, dayparts, weeks),
         }
-        return FoldResult(origin, a_mean, counts, f_mean, base, truncated, history_weeks)
+        recent = self._recent_residual(model, train, cube.day0, origin, dayparts)
+        return FoldResult(origin, a_mean, counts, f_mean, base, truncated, history_weeks, recent)
 
     def _errors_frame(self, folds: list[FoldResult], info: pd.DataFrame, dayparts) -> tuple[pd.DataFrame, pd.DataFrame]:
         need = self.min_cells * self._expected_cells(dayparts)[None, :, None]
@@ -161,7 +185,8 @@ class DaypartForecaster:
                 "fold": j, "zone": info["zone"].to_numpy()[s], "network": info["network"].to_numpy()[s],
                 "genre": info["genre"].to_numpy()[s], "demo": info["demo"].to_numpy()[s],
                 "daypart": names[p], "week": w + 1, "rel_error": rel,
-                "truncated": f.truncated[s], "history_weeks": f.history_weeks[s]}))
+                "truncated": f.truncated[s], "history_weeks": f.history_weeks[s],
+                "recent": f.recent[s, p]}))
             for name, fb in f.baselines.items():
                 okb = (f.counts >= need) & np.isfinite(f.actual) & np.isfinite(fb) & (fb > 0) & ~f.truncated[:, None, None]
                 s, p, w = np.nonzero(okb)
@@ -187,7 +212,8 @@ class DaypartForecaster:
             held = errors[(errors["fold"] == j) & ~errors["truncated"]]
             sd = lm.predict(held)
             tot = np.sqrt(sd["rel_sd_network"] ** 2 + sd["rel_sd_flight"] ** 2 + sd["rel_sd_week"] ** 2)
-            ratio = (1.0 + held["rel_error"]) / (1.0 + sd["bias"])  # actual over bias-corrected forecast
+            # actual over the corrected forecast (carry-over of the recent residual, bias)
+            ratio = (1.0 + held["rel_error"]) / lm.mean_factor(held)
             for lv in cover:
                 cover[lv].append((coverage(ratio, 1.0, tot, lv), len(held)))
         for lv, vals in cover.items():
@@ -253,9 +279,9 @@ class DaypartForecaster:
         self.plan_pred_ = pred  # (S, 7 W + 1, 96) expected quarter-hour ratings, before bias correction
         wd = (cube.day0.day_of_week + p0) % 7
         raw_mean, _ = daypart_week_means(pred, wd, 7 * np.arange(self.weeks_), dayparts)
-        bias = np.array([self.level_.bias_.get(dp.name, 0.0) for dp in dayparts])
+        self.plan_recent_ = self._recent_residual(self.model_, cube.values, cube.day0, T, dayparts)
         self.plan_raw_mean_ = raw_mean
-        self.plan_mean_ = raw_mean * (1.0 + bias)[None, :, None]
+        self.plan_mean_ = raw_mean * self.level_factor(self.plan_recent_)
         # Airing noise: dispersion of cells within daypart weeks of the recent history.
         a_start = max(T - 7 * self.airing_weeks, 0)
         starts = np.arange(a_start, T - 6, 7) - a_start
@@ -268,6 +294,13 @@ class DaypartForecaster:
         self.timings_ = timings
         progress("done", 1.0)
         return self
+
+    def level_factor(self, recent: np.ndarray) -> np.ndarray:
+        """Multiplier (S, P, W) of the raw daypart means: recent-residual carry-over x bias."""
+        names = [dp.name for dp in self.dayparts_]
+        beta = self.level_.recent_beta(np.arange(1, self.weeks_ + 1))  # (W,)
+        bias = np.array([self.level_.bias_.get(n, 0.0) for n in names])
+        return np.exp(recent[:, :, None] * beta[None, None, :]) * (1.0 + bias)[None, :, None]
 
     # ------------------------------------------------------------------ outputs
     def forecast_table(self, universes: pd.DataFrame, units: pd.DataFrame | None = None) -> pd.DataFrame:

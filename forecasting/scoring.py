@@ -22,10 +22,9 @@ def crps_gaussian(y, mu, sigma) -> np.ndarray:
     Gneiting & Raftery (2007), JASA 102(477), eq. (21).
     """
     y, mu, sigma = np.broadcast_arrays(*(np.asarray(a, dtype=float) for a in (y, mu, sigma)))
-    out = np.abs(y - mu)
-    pos = sigma > 0
+    out = np.array(np.abs(y - mu), dtype=float)
+    pos = np.asarray(sigma > 0)
     z = (y[pos] - mu[pos]) / sigma[pos]
-    out = out.copy()
     out[pos] = sigma[pos] * (z * (2.0 * norm.cdf(z) - 1.0) + 2.0 * norm.pdf(z) - 1.0 / np.sqrt(np.pi))
     return out
 

@@ -70,14 +70,19 @@ class LevelErrorModel:
             week, rel_error`` (actual / forecast - 1), ``truncated`` (bool: history cut on
             purpose) and ``history_weeks`` (weeks of history the fold's fit had for the series).
         """
-        df = errors[np.isfinite(errors["rel_error"])].copy()
+        df = errors[np.isfinite(errors["rel_error"]) & (errors["rel_error"] > -1.0)].copy()
+        if "recent" not in df:
+            df["recent"] = 0.0
         full = df[~df["truncated"]].copy()
         if len(full) < 10:
             raise ValueError("too few held-out unit-weeks to estimate forecast uncertainty")
-        self.bias_ = full.groupby("daypart")["rel_error"].mean().to_dict()
+        self._fit_recent(full)
+        for frame in (df, full):
+            frame["ratio"] = (1.0 + frame["rel_error"]) / np.exp(self.recent_beta(frame["week"]) * frame["recent"])
+        self.bias_ = (full.groupby("daypart")["ratio"].mean() - 1.0).to_dict()
         for frame in (df, full):
             b = frame["daypart"].map(self.bias_).astype(float).fillna(0.0)
-            frame["e"] = (1.0 + frame["rel_error"]) / (1.0 + b) - 1.0
+            frame["e"] = frame["ratio"] / (1.0 + b) - 1.0
         self.n_rows_ = len(full)
 
         # Within flights: unit-week own factor.
@@ -130,6 +135,38 @@ class LevelErrorModel:
 
         self._fit_history(df[df["truncated"]], full)
         return self
+
+    def _fit_recent(self, full: pd.DataFrame) -> None:
+        """Carry-over of the recent residual: per horizon week w, the slope of
+        ``log(actual / forecast)`` on ``recent`` (log(actual / fitted) just before the origin),
+        within dayparts (least squares), clipped to [0, 1]. A stacked correction estimated on
+        held-out errors at the real lead time (Wolpert 1992)."""
+        y = np.log1p(full["rel_error"].to_numpy(float))
+        r = full["recent"].to_numpy(float)
+        keys = full["daypart"].astype(str) + "|" + full["week"].astype(str)
+        yc = y - pd.Series(y).groupby(keys.to_numpy()).transform("mean").to_numpy()
+        rc = r - pd.Series(r).groupby(keys.to_numpy()).transform("mean").to_numpy()
+        wk = full["week"].to_numpy(int)
+        num = pd.Series(yc * rc).groupby(wk).sum()
+        den = pd.Series(rc * rc).groupby(wk).sum()
+        beta = (num / den.where(den > 0)).fillna(0.0).clip(0.0, 1.0)
+        self.recent_beta_ = beta.to_dict()
+
+    def mean_factor(self, units: pd.DataFrame) -> np.ndarray:
+        """Multiplier of a raw forecast: ``exp(beta_week * recent) * (1 + bias_daypart)``.
+
+        `units` has ``daypart, week, recent``."""
+        b = units["daypart"].astype(str).map(self.bias_).astype(float).fillna(0.0).to_numpy()
+        return np.exp(self.recent_beta(units["week"]) * units["recent"].to_numpy(float)) * (1.0 + b)
+
+    def recent_beta(self, week) -> np.ndarray:
+        """Carry-over slope for plan week(s) `week` (1-based); the last estimated week beyond."""
+        week = np.asarray(week, dtype=int)
+        keys = np.array(sorted(self.recent_beta_))
+        vals = np.array([self.recent_beta_[k] for k in keys])
+        if len(keys) == 0:
+            return np.zeros(week.shape)
+        return np.interp(week, keys, vals)
 
     def _fit_history(self, short: pd.DataFrame, full: pd.DataFrame) -> None:
         self.full_weeks_ = float(full["history_weeks"].median()) if len(full) else 52.0
@@ -204,6 +241,7 @@ class LevelErrorModel:
             "rel_sd_flight_by_daypart": {k: float(np.sqrt(v)) for k, v in self.var_flight_daypart_.items()},
             "rel_sd_week_by_daypart": {k: float(np.sqrt(v)) for k, v in self.var_week_daypart_.items()},
             "bias_by_daypart": {k: float(v) for k, v in self.bias_.items()},
+            "recent_carry_over_by_week": {str(k): float(v) for k, v in self.recent_beta_.items()},
             "history_ratio": {str(int(w)): float(r) for w, r in zip(self.history_ratio_["weeks"],
                                                                     self.history_ratio_["ratio"])},
             "heldout_unit_weeks": int(self.n_rows_),

@@ -1,0 +1,173 @@
+"""Forecasting building blocks against outside references (scores, PCA, transform, clock, dayparts)."""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from forecasting.cyclic import calendar_features, clock_features
+from forecasting.dayparts import DaypartSpec, daypart_week_means, daypart_week_sums
+from forecasting.profiles import ProfileCube, ProfilePCA
+from forecasting.scoring import (central_interval, coverage, crps_gaussian, crps_sample, pit,
+                                 pit_histogram, wape)
+from forecasting.transform import C_RATING, expected_rating, from_log, to_log
+
+
+# ------------------------------------------------------------------ CRPS
+def test_crps_gaussian_closed_form_and_reference_libraries():
+    import properscoring
+    import scoringrules
+    from scipy.stats import norm
+
+    rng = np.random.default_rng(1)
+    y = rng.normal(size=200) * 3
+    mu = rng.normal(size=200)
+    sigma = rng.uniform(0.1, 4, size=200)
+    ours = crps_gaussian(y, mu, sigma)
+    # Gneiting & Raftery (2007), JASA 102(477), eq. (21), written out independently here.
+    z = (y - mu) / sigma
+    closed = sigma * (z * (2 * norm.cdf(z) - 1) + 2 * norm.pdf(z) - 1 / np.sqrt(np.pi))
+    np.testing.assert_allclose(ours, closed, rtol=1e-12)
+    # Reference libraries: scoringrules.crps_normal and properscoring.crps_gaussian.
+    np.testing.assert_allclose(ours, scoringrules.crps_normal(y, mu, sigma), rtol=1e-9)
+    np.testing.assert_allclose(ours, properscoring.crps_gaussian(y, mu, sigma), rtol=1e-9)
+    # Worked value from the closed form at the mean: sigma * (2 phi(0) - 1/sqrt(pi)) = 0.2337 sigma.
+    assert crps_gaussian(0.0, 0.0, 1.0)[()] == pytest.approx(2 / np.sqrt(2 * np.pi) - 1 / np.sqrt(np.pi))
+    # Zero spread reduces to the absolute error.
+    assert crps_gaussian(3.0, 1.0, 0.0)[()] == pytest.approx(2.0)
+
+
+def test_crps_sample_matches_reference_and_converges_to_gaussian():
+    import properscoring
+    import scoringrules
+
+    rng = np.random.default_rng(2)
+    y = rng.normal(size=20)
+    ens = rng.normal(0.3, 1.5, size=(20, 300))
+    ours = crps_sample(y, ens)
+    np.testing.assert_allclose(ours, properscoring.crps_ensemble(y, ens), rtol=1e-9)
+    np.testing.assert_allclose(ours, scoringrules.crps_ensemble(y, ens, estimator="nrg"), rtol=1e-9)
+    big = rng.normal(0.3, 1.5, size=(1, 200_000))
+    assert crps_sample([0.7], big)[0] == pytest.approx(crps_gaussian(0.7, 0.3, 1.5)[()], rel=0.01)
+
+
+def test_wape_coverage_pit():
+    assert wape([10, 20, 30], [12, 18, 30]) == pytest.approx(4 / 60)
+    lo, hi = central_interval(0.0, 1.0, 0.95)
+    # Standard normal table (NIST/SEMATECH e-Handbook): z(0.975) = 1.9600.
+    assert hi == pytest.approx(1.95996, abs=1e-4) and lo == pytest.approx(-hi)
+    rng = np.random.default_rng(3)
+    y = rng.normal(2.0, 3.0, size=100_000)
+    for lv in (0.5, 0.8, 0.95):
+        assert coverage(y, 2.0, 3.0, lv) == pytest.approx(lv, abs=0.01)
+    h = pit_histogram(y, 2.0, 3.0)
+    assert np.all(np.abs(h - 0.1) < 0.01)
+    assert pit(2.0, 2.0, 3.0)[()] == pytest.approx(0.5)
+
+
+# ------------------------------------------------------------------ transform and clock
+def test_log_coordinate_round_trips_exactly():
+    r = np.array([0.0, 1e-9, 1e-6, 3e-5, 1e-4, 0.0042, 0.01, 0.2, 1.0])
+    back = from_log(to_log(r))
+    np.testing.assert_allclose(back, r, rtol=1e-12, atol=1e-18)
+    assert to_log(0.0) == 0.0
+    assert to_log(C_RATING) == pytest.approx(np.log10(2.0))
+    # Mean of the inverse, not the inverse of the mean (Duan 1983): with e ~ N(0, s^2) in log10
+    # units, E[10^e] = exp((s ln 10)^2 / 2).
+    s = 0.1
+    smear = np.exp((s * np.log(10)) ** 2 / 2)
+    rng = np.random.default_rng(4)
+    y = 1.5 + rng.normal(0, s, 400_000)
+    assert expected_rating(1.5, smear) == pytest.approx(from_log(y).mean(), rel=0.005)
+
+
+def test_clock_encoding_neighbours():
+    f = clock_features(np.arange(96))
+    step = np.linalg.norm(f[1] - f[0])
+    # 23:45 (95) and 00:00 (0) are as close as any two neighbouring quarter-hours ...
+    assert np.linalg.norm(f[95] - f[0]) == pytest.approx(step)
+    # ... while 00:00 and 12:00 are opposite on the circle.
+    assert np.linalg.norm(f[48] - f[0]) == pytest.approx(2.0)
+    np.testing.assert_allclose(np.linalg.norm(f, axis=1), 1.0)
+    cal = calendar_features(pd.to_datetime(["2026-12-31", "2027-01-01", "2027-01-03", "2027-01-04"]))
+    # New Year's Eve next to New Year's Day; Sunday (2027-01-03) next to Monday (2027-01-04).
+    d_year = np.hypot(*(cal.loc[0, ["doy_sin", "doy_cos"]] - cal.loc[1, ["doy_sin", "doy_cos"]]))
+    assert d_year < 0.03
+    d_week = np.hypot(*(cal.loc[2, ["dow_sin", "dow_cos"]] - cal.loc[3, ["dow_sin", "dow_cos"]]))
+    assert d_week == pytest.approx(2 * np.sin(np.pi / 7))
+    assert cal["weekend"].tolist() == [0.0, 0.0, 1.0, 0.0]
+
+
+# ------------------------------------------------------------------ PCA
+def test_pca_matches_sklearn_and_svd():
+    from sklearn.decomposition import PCA
+
+    rng = np.random.default_rng(5)
+    basis = rng.normal(size=(4, 96))
+    Y = rng.normal(size=(500, 4)) * [5, 3, 2, 1] @ basis + rng.normal(0, 0.1, (500, 96)) + 2.0
+    ours = ProfilePCA(n_components=4).fit(Y)
+    ref = PCA(n_components=4, svd_solver="full").fit(Y)
+    # scikit-learn PCA: same axes up to sign, same explained variance.
+    signs = np.sign(np.sum(ours.components_ * ref.components_, axis=1))
+    np.testing.assert_allclose(ours.components_, ref.components_ * signs[:, None], atol=1e-8)
+    np.testing.assert_allclose(ours.explained_variance_, ref.explained_variance_, rtol=1e-8)
+    np.testing.assert_allclose(ours.explained_variance_ratio_, ref.explained_variance_ratio_, rtol=1e-8)
+    # numpy SVD of the centred data: singular values squared / (n - 1) are the variances.
+    s = np.linalg.svd(Y - Y.mean(axis=0), compute_uv=False)
+    np.testing.assert_allclose(ours.explained_variance_, s[:4] ** 2 / (len(Y) - 1), rtol=1e-8)
+    # Reconstruction by the pseudo-inverse: exact for profiles inside the span.
+    inside = ours.mean_ + rng.normal(size=(10, 4)) @ ours.components_
+    np.testing.assert_allclose(ours.inverse_transform(ours.transform(inside)), inside, atol=1e-9)
+    chosen = ProfilePCA(variance_target=0.99).fit(Y)
+    assert chosen.components_.shape[0] == 4
+
+
+# ------------------------------------------------------------------ cube and dayparts
+def _profiles_frame(values: np.ndarray, day0: str) -> pd.DataFrame:
+    S, D, _ = values.shape
+    s, d = np.meshgrid(np.arange(S), np.arange(D), indexing="ij")
+    df = pd.DataFrame(values.reshape(S * D, 96), columns=[f"q{k:02d}" for k in range(96)])
+    df.insert(0, "date", pd.Timestamp(day0) + pd.to_timedelta(d.ravel(), unit="D"))
+    df.insert(0, "demo", "hh")
+    df.insert(0, "network", "n1")
+    df.insert(0, "zone", [f"z{i}" for i in s.ravel()])
+    return df
+
+
+def test_daypart_wrapping_past_midnight():
+    # Day t quarter-hour q holds the value 1000 t + q, so every cell is identifiable.
+    D = 15
+    vals = (1000.0 * np.arange(D)[:, None] + np.arange(96)[None, :])[None].astype(np.float64)
+    cube = ProfileCube.from_profiles(_profiles_frame(vals, "2027-03-01"))  # a Monday
+    assert cube.values.shape == (1, D, 96)
+    late = DaypartSpec("late", days=(0, 1, 2, 3, 4, 5, 6), quarter_hours=tuple(range(92, 100)))  # 23:00-01:00
+    sat = DaypartSpec("sat_late", days=(5,), quarter_hours=tuple(range(92, 100)))
+    means, counts = daypart_week_means(cube.values.astype(float), 0, [0, 7], [late, sat])
+    # Week 1: start days 0..6; cells (t, 92..95) and (t + 1, 0..3).
+    expect = np.mean([1000 * t + q for t in range(7) for q in (92, 93, 94, 95)]
+                     + [1000 * (t + 1) + q for t in range(7) for q in (0, 1, 2, 3)])
+    assert means[0, 0, 0] == pytest.approx(expect)
+    assert counts[0, 0, 0] == 56
+    # Saturday start (day 5) takes Sunday's early quarter-hours (day 6), not Saturday's.
+    expect_sat = np.mean([5092, 5093, 5094, 5095, 6000, 6001, 6002, 6003])
+    assert means[0, 1, 0] == pytest.approx(expect_sat)
+    # Week 2's last start day (day 13) wraps onto day 14, the last day of the cube.
+    assert counts[0, 0, 1] == 56
+    # Past the end of the cube counts as missing, not zero.
+    _, c = daypart_week_means(cube.values[:, :14].astype(float), 0, [7], [late])
+    assert c[0, 0, 0] == 52
+    sums, sq, cnt = daypart_week_sums(cube.values.astype(float), 0, [0], [late], squares=True)
+    assert sq[0, 0, 0] == pytest.approx(sum(v * v for v in
+                                           [1000 * t + q for t in range(7) for q in (92, 93, 94, 95)]
+                                           + [1000 * (t + 1) + q for t in range(7) for q in (0, 1, 2, 3)]))
+
+
+def test_cube_keeps_gaps_missing():
+    vals = np.random.default_rng(6).uniform(0, 0.01, (2, 5, 96))
+    df = _profiles_frame(vals, "2027-01-04").drop(index=[3]).reset_index(drop=True)
+    df.loc[0, "q10"] = np.nan
+    cube = ProfileCube.from_profiles(df)
+    assert np.isnan(cube.values[0, 3]).all()
+    assert np.isnan(cube.values[0, 0, 10])
+    assert cube.values[1, 2, 5] == pytest.approx(vals[1, 2, 5], rel=1e-6)
+    assert cube.history_days().tolist() == [4, 5]
