@@ -545,21 +545,49 @@ def allocate(prob: AllocationProblem, *, solver: str = "cbc", gap: float = DEFAU
         return Allocation(True, lp_x, lp.objective, lp.objective, lp.objective, 0.0, mip_rounds=0,
                           status="lp optimal", solve_seconds=time.perf_counter() - t0, lp_x=lp_x,
                           row_duals=duals, row_values=values, **{k: v for k, v in base.items()})
+    rc = np.asarray(model.h.getSolution().col_dual)[: prob.n]
     _set_integer(model)
-    rounds, mip = 0, None
+    free = _neighbourhood(prob, lp_x, rc)
+    restricted = not bool(free.all())
+    if restricted:
+        _fix_outside(model, free, lp_x)
+    rounds, mip, x = 0, None, None
     l0 = lp.linear_variance
-    x = None
-    while rounds < 8:
+    escalated = False
+    while rounds < 10:
         rounds += 1
         mip = solve_mip(model, solver, gap, time_limit)
         if not mip.ok:
+            if restricted:  # the neighbourhood holds no integer plan: search every column
+                _fix_outside(model, np.ones(prob.n, bool), lp_x)
+                restricted = False
+                continue
             break
         x = np.rint(mip.x[: prob.n])
-        if prob.rules.confidence is None or _slack(prob, x, None, prob.guarantee) >= -1e-9 * prob.guarantee:
-            break
-        l0 = max(l0, prob.model.linear_variance(x))
-        model.add_cut(np.concatenate([x, mip.x[prob.n:]]), l0)
-        x = None
+        if prob.rules.confidence is not None and _slack(prob, x, None, prob.guarantee) < -1e-9 * prob.guarantee:
+            l0 = max(l0, prob.model.linear_variance(x))
+            model.add_cut(np.concatenate([x, mip.x[prob.n:]]), l0)
+            x = None
+            continue
+        cost = float(np.dot(prob.rate, x))
+        if restricted and not escalated and cost > 0 and (cost - lp.objective) / cost > gap:
+            # the neighbourhood plan misses the stated gap against the LP bound: search every column
+            escalated = True
+            best = (x, mip)
+            _fix_outside(model, np.ones(prob.n, bool), lp_x)
+            restricted = False
+            full = solve_mip(model, solver, gap, time_limit)
+            rounds += 1
+            if full.ok:
+                xf = np.rint(full.x[: prob.n])
+                ok_f = prob.rules.confidence is None or _slack(prob, xf, None, prob.guarantee) >= -1e-9 * prob.guarantee
+                if ok_f and float(np.dot(prob.rate, xf)) < cost:
+                    x, mip = xf, full
+                else:
+                    x, mip = best
+            else:
+                x, mip = best
+        break
     base["cuts"] = model.n_cuts_total
     if x is None:
         return Allocation(False, None, None, lp.objective, None, None, mip_rounds=rounds,
@@ -567,13 +595,44 @@ def allocate(prob: AllocationProblem, *, solver: str = "cbc", gap: float = DEFAU
                           solve_seconds=time.perf_counter() - t0, lp_x=lp_x, row_duals=duals,
                           row_values=values, **base)
     cost = float(np.dot(prob.rate, x))
-    bound = max(lp.objective, mip.bound if mip.bound is not None else -np.inf)
+    # A bound from a MIP over the LP neighbourhood is not a global bound: use the LP bound there.
+    mip_bound = None if restricted else mip.bound
+    bound = max(lp.objective, mip_bound if mip_bound is not None else -np.inf)
     bound = min(bound, cost)
     g = (cost - bound) / cost if cost > 0 else 0.0
     lg = max(cost - lp.objective, 0.0) / cost if cost > 0 else 0.0
-    return Allocation(True, x, cost, lp.objective, mip.bound, g, mip_rounds=rounds, status=mip.status,
+    status = mip.status + (f" (in the LP neighbourhood: {int(free.sum())} of {prob.n} columns free)" if restricted else "")
+    return Allocation(True, x, cost, lp.objective, mip_bound, g, mip_rounds=rounds, status=status,
                       solve_seconds=time.perf_counter() - t0, lp_x=lp_x, row_duals=duals,
                       row_values=values, lp_gap=lg, **base)
+
+
+FULL_MIP_COLUMNS = 3000  # up to this many candidate units the MIP searches every column
+NEIGHBOURHOOD_EXTRA = 2000  # columns at a bound freed besides the LP's fractional/interior ones
+
+
+def _neighbourhood(prob: AllocationProblem, lp_x: np.ndarray, rc: np.ndarray) -> np.ndarray:
+    """Columns the MIP may move (bool (n,)): all for small problems; else the LP's fractional and
+    interior columns plus the NEIGHBOURHOOD_EXTRA at a bound with the smallest |reduced cost|."""
+    n = prob.n
+    if n <= FULL_MIP_COLUMNS:
+        return np.ones(n, bool)
+    ub = prob.ub
+    free = (np.abs(lp_x - np.rint(lp_x)) > 1e-6) | ((lp_x > 1e-6) & (lp_x < ub - 1e-6))
+    rest = np.flatnonzero(~free)
+    k = min(NEIGHBOURHOOD_EXTRA, rest.size)
+    if k:
+        pick = np.argpartition(np.abs(rc[rest]), k - 1)[:k] if k < rest.size else np.arange(rest.size)
+        free[rest[pick]] = True
+    return free
+
+
+def _fix_outside(model: _Model, free: np.ndarray, lp_x: np.ndarray) -> None:
+    """Fix columns outside `free` at their (integral) LP values; free columns get 0..ub."""
+    n = model.prob.n
+    lo = np.where(free, 0.0, np.rint(lp_x))
+    hi = np.where(free, model.prob.ub, np.rint(lp_x))
+    model.h.changeColsBounds(n, np.arange(n, dtype=np.int32), lo, hi)
 
 
 @dataclass

@@ -46,8 +46,8 @@ def _money(v, cur) -> str:
 def _risk(r) -> str:
     if r.risk_rule == "pad":
         return f"pad {_pct(r.pad, 0)} (expected delivery >= {_pct(1 + r.pad, 0)} of the guarantee)"
-    text = f"confidence {_pct(r.confidence)} (chance constraint)"
-    return text + (" - default, the deal sets neither" if r.default_confidence_used else "")
+    text = f"confidence {_pct(r.confidence)}"
+    return text + (" (default: the deal sets neither)" if r.default_confidence_used else " (chance constraint)")
 
 
 def _fit_note(r) -> None:
@@ -111,9 +111,10 @@ def check_cmd(
             rows.append((f"CPM for a {_pct(r.target_margin, 0)} margin", f"{r.cpm_needed:,.2f}"))
     else:
         rows.append(("revenue asked", f"{_money(r.revenue, cur)} at {r.price_cpm:,.2f} CPM"))
-    rows += [("largest deliverable guarantee", f"{_num(r.max_guarantee)} impressions"),
-             ("solver", f"{r.solver}, gap {_pct(r.gap, 2)}, LP bound {_money(r.lp_bound, cur)}, "
-                        f"{r.cuts} cuts, {r.solve_seconds:.1f} s")]
+    rows.append(("largest deliverable guarantee", f"{_num(r.max_guarantee)} impressions"))
+    if r.deliverable:
+        rows.append(("solver", f"{r.solver}, gap {_pct(r.gap, 2)}, LP bound {_money(r.lp_bound, cur)}, "
+                               f"{r.cuts} cuts, {r.solve_seconds:.1f} s"))
     out_console.print(_kv_table(rows))
     if r.binding:
         out_console.print("[bold]what binds[/]" if r.deliverable else "[bold]what limits it[/]")
