@@ -104,7 +104,7 @@ def backtest_cmd(
                       "(unit-week mean impressions of one spot)")
     t = Table(title="daypart backtest")
     for col in ("forecast", "CRPS (impr.)", "WAPE", "50%", "80%", "95%"):
-        t.add_column(col, justify="right" if col != "forecast" else "left")
+        t.add_column(col, justify="right" if col != "forecast" else "left", no_wrap=True)
 
     def row(name: str, sc: dict) -> None:
         cov = sc["coverage"]
@@ -159,7 +159,7 @@ def show_cmd(
         return
     tab = Table(title=f"{zone} x {network}, demo {demo}: impressions of one 30-second spot")
     for col in ("daypart", "week", "rating pts", "mean", "10%", "90%", "airing sd", "level sd", "history wks"):
-        tab.add_column(col, justify="left" if col == "daypart" else "right")
+        tab.add_column(col, justify="left" if col == "daypart" else "right", no_wrap=True)
     for r in t.itertuples(index=False):
         tab.add_row(r.daypart, str(r.week), f"{100 * r.mean_rating:.3f}", f"{r.mean_impressions:,.0f}",
                     f"{r.q10_impressions:,.0f}", f"{r.q90_impressions:,.0f}", f"{r.airing_sd:,.0f}",

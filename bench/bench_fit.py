@@ -1,0 +1,96 @@
+#!/usr/bin/env python
+"""Benchmark: the forecast fit on the demo scenario, and the demo backtest against its targets.
+
+Targets (issue 2): fit on the demo (about 17 million quarter-hour rows, 175 thousand daily
+profiles) in under 2 minutes on a 2-core machine; on the demo backtest (13 held-out weeks at the
+real lead time), coverage of the 50/80/95% central intervals within 5 points of nominal and CRPS
+at least 15% lower than the better baseline. Each step runs in its own process (wall time and
+peak RSS measured by `_measure.run_step`).
+
+Usage:
+    python bench/bench_fit.py [--scenario DIR] [--skip-backtest] [--holdout-weeks 13] [--json]
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+import _measure as M  # noqa: E402
+
+TARGET_FIT_SECONDS = 120.0
+
+
+def step_fit(args) -> None:
+    from planner.forecast_job import fit_forecast
+    from planner.scenario import load_scenario
+
+    scn = load_scenario(args.scenario)
+    t0 = time.perf_counter()
+    res = fit_forecast(scn, seed=0)
+    print(json.dumps({"fit_seconds": time.perf_counter() - t0, "rows": len(res.table),
+                      "series": res.meta["history"]["series"], "ingest_seconds": res.meta["seconds"]["ingest"],
+                      "timings": res.meta["fit"]["timings_seconds"],
+                      "calibration": res.meta["fit"]["calibration"]}))
+
+
+def step_backtest(args) -> None:
+    from planner.forecast_job import backtest_scenario
+    from planner.scenario import load_scenario
+
+    scn = load_scenario(args.scenario)
+    t0 = time.perf_counter()
+    s = backtest_scenario(scn, holdout_weeks=args.holdout_weeks, seed=0)
+    s.pop("fit", None)
+    s["seconds"] = time.perf_counter() - t0
+    print(json.dumps(s))
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--scenario", default=None, help="scenario folder (default: a fresh copy of the demo)")
+    ap.add_argument("--step", choices=["fit", "backtest"], default=None, help=argparse.SUPPRESS)
+    ap.add_argument("--holdout-weeks", type=int, default=13)
+    ap.add_argument("--skip-backtest", action="store_true")
+    ap.add_argument("--json", action="store_true")
+    args = ap.parse_args()
+    if args.step == "fit":
+        return step_fit(args)
+    if args.step == "backtest":
+        return step_backtest(args)
+    with tempfile.TemporaryDirectory(prefix="pledge-bench-fit-", dir="/tmp") as tmp:
+        scenario = args.scenario
+        if scenario is None:
+            from scenarios.generate import copy_demo
+
+            scenario = str(copy_demo(Path(tmp) / "demo"))
+        fit = M.run_step([Path(__file__), "--step", "fit", "--scenario", scenario])
+        rows = [M.row("forecast fit on the demo, time", "< 120 s", f"{fit['fit_seconds']:.1f} s",
+                      fit["fit_seconds"] / TARGET_FIT_SECONDS, fit["fit_seconds"] < TARGET_FIT_SECONDS),
+                M.row("forecast fit on the demo, peak memory", "-", f"{fit['peak_rss_bytes'] / M.GIB:.2f} GiB",
+                      None, True)]
+        result = {"fit": fit}
+        if not args.skip_backtest:
+            bt = M.run_step([Path(__file__), "--step", "backtest", "--scenario", scenario,
+                             "--holdout-weeks", str(args.holdout_weeks)])
+            result["backtest"] = bt
+            for lv in ("0.5", "0.8", "0.95"):
+                c = bt["coverage"][lv]
+                rows.append(M.row(f"backtest coverage of the {float(lv):.0%} interval", f"{float(lv):.0%} +- 5 pts",
+                                  f"{c:.1%}", abs(c - float(lv)) / 0.05, abs(c - float(lv)) <= 0.05))
+            skill = bt["crps_skill_vs_best_baseline"]
+            rows.append(M.row("backtest CRPS below the better baseline", ">= 15%", f"{skill:.1%}",
+                              0.15 / skill if skill > 0 else float("inf"), skill >= 0.15))
+        result["rows"] = rows
+    if args.json:
+        print(json.dumps(result, indent=2, default=str))
+    else:
+        M.print_rows(rows)
+
+
+if __name__ == "__main__":
+    main()

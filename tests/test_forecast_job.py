@@ -1,0 +1,125 @@
+"""The forecast job (cache, staleness) and the `pledge forecast` commands on a small scenario."""
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from planner.cli import main
+from planner.errors import InputError
+
+CONTRACT = ["zone", "network", "daypart", "week", "demo", "universe", "mean_rating", "mean_impressions",
+            "airing_sd", "level_sd", "level_sd_network", "level_sd_flight", "level_sd_week",
+            "q10_impressions", "q90_impressions", "history_weeks"]
+
+
+@pytest.fixture(scope="module")
+def fitted_small(small_scenario, tmp_path_factory):
+    import shutil
+
+    from planner.forecast_job import ensure_forecast
+    from planner.scenario import load_scenario
+
+    dest = tmp_path_factory.mktemp("fc") / "small"
+    shutil.copytree(small_scenario, dest, ignore=shutil.ignore_patterns("forecast"))
+    scn = load_scenario(dest)
+    first = ensure_forecast(scn)
+    return dest, scn, first
+
+
+def test_table_follows_the_contract(fitted_small):
+    dest, scn, first = fitted_small
+    t = first.table
+    assert first.fitted_now
+    assert list(t.columns) == CONTRACT
+    assert len(t) == len(scn.inventory) * len(scn.demos)
+    assert not t[CONTRACT[5:]].isna().any().any()
+    assert (t["level_sd_network"] > 0).all() and (t["level_sd_week"] > 0).all()
+    # q10/q90 of one spot: mean -+ z(0.90) sd with sd^2 = level^2 + airing^2
+    # (z(0.90) = 1.2816, NIST/SEMATECH normal table), q10 floored at zero.
+    sd = np.sqrt(t["level_sd"] ** 2 + t["airing_sd"] ** 2)
+    np.testing.assert_allclose(t["q90_impressions"], t["mean_impressions"] + 1.2816 * sd, rtol=1e-4)
+    np.testing.assert_allclose(t["q10_impressions"], np.maximum(t["mean_impressions"] - 1.2816 * sd, 0),
+                               rtol=1e-4, atol=1e-6)
+    # Prime delivers more than overnight (common practice).
+    by = t.groupby("daypart")["mean_rating"].mean()
+    assert by["prime"] > by["overnight"]
+    meta = json.loads((dest / "forecast" / "meta.json").read_text())
+    assert meta["key"]["seed"] == 0 and meta["fit"]["folds"] >= 1
+    assert set(meta["fit"]["calibration"]["leave_one_fold_out_coverage"]) == {"0.5", "0.8", "0.95"}
+
+
+def test_cache_reused_and_key_tracks_inputs(fitted_small):
+    from planner.forecast_job import ensure_forecast, fit_key, load_forecast
+
+    dest, scn, first = fitted_small
+    again = ensure_forecast(scn)
+    assert not again.fitted_now
+    pd.testing.assert_frame_equal(again.table, first.table)
+    pd.testing.assert_frame_equal(load_forecast(scn), first.table)
+    base = fit_key(scn)
+    inv = scn.inventory.copy()
+    changed = type(scn)(**{**scn.__dict__, "inventory": inv[inv["week"] != inv["week"].max()]})
+    assert fit_key(changed)["inventory"] != base["inventory"]
+    dp = list(scn.dayparts)
+    changed = type(scn)(**{**scn.__dict__, "dayparts": dp[:-1]})
+    assert fit_key(changed)["dayparts"] != base["dayparts"]
+    assert fit_key(scn, seed=3) != base
+
+
+def test_load_forecast_without_fit_is_input_error(small_scenario, scenario_copy):
+    from planner.forecast_job import load_forecast
+    from planner.scenario import load_scenario
+
+    scn = load_scenario(scenario_copy(small_scenario))
+    import shutil
+
+    shutil.rmtree(scn.path / "forecast", ignore_errors=True)
+    with pytest.raises(InputError, match="no forecast yet"):
+        load_forecast(scn)
+
+
+def test_cli_show_and_errors(fitted_small, capsys):
+    dest, scn, first = fitted_small
+    zone, network = first.table.iloc[0][["zone", "network"]]
+    assert main(["forecast", "show", str(dest), "--zone", zone, "--network", network, "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["zone"] == zone and len(out["rows"]) == int(((first.table["zone"] == zone)
+                                                           & (first.table["network"] == network)
+                                                           & (first.table["demo"] == scn.demos[0])).sum())
+    assert main(["forecast", "show", str(dest), "--zone", "nowhere", "--network", network]) == 2
+    assert "nowhere" in capsys.readouterr().err
+    assert main(["forecast", "fit", str(dest), "--demo", "nobody"]) == 2
+    assert main(["forecast", "fit", str(dest), "--engine", "abacus"]) == 2
+
+
+@pytest.mark.slow
+def test_backtest_json_on_small_scenario(fitted_small, capsys):
+    dest, scn, first = fitted_small
+    assert main(["forecast", "backtest", str(dest), "--holdout-weeks", "6", "--json"]) == 0
+    s = json.loads(capsys.readouterr().out)
+    assert set(s["coverage"]) == {"0.5", "0.8", "0.95"}
+    assert set(s["baselines"]) == {"last_year", "trailing_8w"}
+    for b in s["baselines"].values():
+        assert b["crps"] > 0 and 0 < b["wape"] < 1
+    assert s["crps"] > 0 and 0 < s["wape"] < 1
+    assert s["coverage"]["0.5"] <= s["coverage"]["0.8"] <= s["coverage"]["0.95"]
+    assert s["units"] > 100
+
+
+@pytest.mark.slow
+def test_demo_forecast_table(demo_fitted):
+    from planner.forecast_job import load_forecast
+    from planner.scenario import load_scenario
+
+    scn = load_scenario(demo_fitted)
+    t = load_forecast(scn)
+    assert len(t) == len(scn.inventory) * len(scn.demos)
+    assert not t[CONTRACT[5:]].isna().any().any()
+    rel = t["level_sd"] / t["mean_impressions"]
+    # Short-history series (the demo has a few) get wider level bands than the rest.
+    short = t["history_weeks"] < 30
+    assert short.any()
+    assert rel[short].median() > rel[~short].median()
