@@ -53,7 +53,7 @@ def main(argv=None) -> dict:
     ap.add_argument("--scenario", type=Path, help="an existing scenario folder with a book and a forecast")
     ap.add_argument("--folder", type=Path, help="folder for the demo copy (default: a temporary folder)")
     ap.add_argument("--draws", type=int, default=100_000)
-    ap.add_argument("--naive-draws", type=int, default=5_000)
+    ap.add_argument("--naive-draws", type=int, default=500)
     ap.add_argument("--seed", type=int, default=0)
     ap.add_argument("--repeat", type=int, default=3, help="timed repetitions (best is reported)")
     args = ap.parse_args(argv)
