@@ -107,7 +107,7 @@ def _style(ax) -> None:
 
 
 def frontier_svg(frontier: pd.DataFrame, guarantee: float, confidence: float | None, currency: str,
-                 max_guarantee: float | None = None) -> str:
+                 max_guarantee: float | None = None, relaxed: bool = False) -> str:
     """Cost and probability of delivery against guarantee size.
 
     Parameters
@@ -117,13 +117,15 @@ def frontier_svg(frontier: pd.DataFrame, guarantee: float, confidence: float | N
     guarantee : the deal's guarantee, impressions (marked with a vertical line).
     confidence : the deal's required chance of delivery (marked on the probability axis).
     max_guarantee : the largest deliverable guarantee, impressions (marked when given).
+    relaxed : the costs come from the linear relaxation (said in the legend).
     """
     with matplotlib.rc_context(_RC):
         fig = _figure(6.4, 3.3, right=0.75, bottom=0.85)
         ax = fig.add_subplot()
         f = frontier.sort_values("guarantee")
         ok = f["cost"].notna()
-        ax.plot(f["guarantee"][ok], f["cost"][ok], color=TEAL, marker="o", ms=3.5, lw=2, label="minimum cost")
+        ax.plot(f["guarantee"][ok], f["cost"][ok], color=TEAL, marker="o", ms=3.5, lw=2,
+                label="least cost (linear relaxation)" if relaxed else "least cost")
         ax.set_xlabel("guarantee (impressions)")
         ax.set_ylabel(f"minimum cost ({currency})", color=TEAL)
         ax.xaxis.set_major_formatter(SHORT)

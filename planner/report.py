@@ -63,6 +63,7 @@ class DealSection:
     price_cpm: float | None = None
     in_book: bool = False
     frontier: pd.DataFrame | None = None
+    frontier_relaxed: bool = False
     pacing: pd.DataFrame | None = None
     spots: pd.DataFrame | None = None
     delivery_draws: np.ndarray | None = None
@@ -328,7 +329,7 @@ def _deal_plots(d: DealSection, data: ReportData) -> str:
     guarantee = _num(v.get("guarantee")) or 0.0
     if d.frontier is not None and len(d.frontier):
         parts.append(_img(plots.frontier_svg(d.frontier, guarantee, _num(v.get("confidence")), data.currency,
-                                             _num(v.get("max_guarantee"))),
+                                             _num(v.get("max_guarantee")), d.frontier_relaxed),
                           "frontier", d.name, "cost and chance of delivery by guarantee size"))
     if d.pacing is not None and len(d.pacing):
         parts.append(_img(plots.pacing_svg(d.pacing), "pacing", d.name, "weekly pacing"))
@@ -623,31 +624,55 @@ def _section(scenario: Any, name: str, check: Any, plan: Any, in_book: bool, ext
     return DealSection(
         name=name, verdict=verdict, advertiser=getattr(deal, "advertiser", None), demo=deal.demo,
         weeks=(int(deal.first_week), int(deal.last_week)), price_cpm=float(deal.price_cpm), in_book=in_book,
-        frontier=frontier_frame(rows or None), pacing=pacing, spots=spots)
+        frontier=frontier_frame(rows or None), pacing=pacing, spots=spots,
+        frontier_relaxed=any(isinstance(r, dict) and r.get("relaxed") for r in rows))
+
+
+FRONTIER_SIZES = (0.5, 0.75, 0.9, 1.0, 1.1, 1.25, 1.5)
+
+
+def relaxed_frontier(problem: Any, guarantee: float, max_guarantee: float) -> list[dict]:
+    """Least cost and chance of delivery against guarantee size, from the linear relaxation.
+
+    One LP (with the chance constraint's tangent cuts) per size: guarantee x FRONTIER_SIZES plus
+    fractions of the largest deliverable guarantee, each size at most that guarantee. The LP cost
+    is a lower bound of the whole-spot cost (within the stated MIP gap of it on the demo), at a
+    fraction of the time of one integer solve per size. Returns dicts ``guarantee`` (impressions),
+    ``cost`` (currency), ``probability_of_delivery`` (0..1) and ``relaxed`` (True).
+    """
+    from planner import allocate as al
+
+    sizes = {round(guarantee * f) for f in FRONTIER_SIZES}
+    if max_guarantee > 0:
+        sizes |= {round(max_guarantee * f) for f in (0.25, 0.5, 0.75, 1.0)}
+    rows = []
+    for g in sorted(v for v in sizes if v > 0):
+        if g > max_guarantee * (1 + 1e-9):
+            rows.append(dict(guarantee=float(g), cost=None, probability_of_delivery=None, relaxed=True))
+            continue
+        a = al.allocate(al.with_guarantee(problem, float(g)), integer=False)
+        if not a.feasible:
+            rows.append(dict(guarantee=float(g), cost=None, probability_of_delivery=None, relaxed=True))
+            continue
+        rows.append(dict(guarantee=float(g), cost=float(a.cost), relaxed=True,
+                         probability_of_delivery=float(problem.model.probability(a.x, float(g)))))
+    return rows
 
 
 def evaluate_deal(scenario: Any, name: str, *, forecast: pd.DataFrame, held: pd.DataFrame | None,
                   solver: str = "cbc") -> tuple[Any, Any, list]:
-    """Check (with frontier) and buy plan of one deal from a single solve.
+    """Check and buy plan of one deal from a single solve, and its frontier for the picture.
 
-    Returns (CheckResult, PlanResult or None, extra frontier rows). The same computation as
-    `check_deal(..., frontier=True)` and `plan_deal(...)` with the same `held` spots; the plan is
-    None when the deal is not deliverable, and then a few deliverable guarantee sizes are added
-    to the frontier shown (not to the check's own figures).
+    Returns (CheckResult, PlanResult or None, frontier rows). The check and plan are the same
+    computation as `check_deal(...)` and `plan_deal(...)` with the same `held` spots (the plan is
+    None when the deal is not deliverable); the frontier is `relaxed_frontier`.
     """
     from planner.deals import check_result, plan_result, run_deal
 
-    from planner.deals import frontier as frontier_rows
-
     run = run_deal(scenario, name, solver=solver, held=held, forecast=forecast)
-    check = check_result(run, with_frontier=True)
+    check = check_result(run)
     plan = plan_result(run) if run.allocation.feasible else None
-    extra = []
-    if plan is None and check.max_guarantee_lp > 0:
-        # The check's frontier is sized on the guarantee asked; below the largest deliverable
-        # guarantee it has at most one point. Add a few deliverable sizes for the picture.
-        sizes = [check.max_guarantee_lp * f for f in (0.25, 0.5, 0.75, 0.9)]
-        extra = frontier_rows(run.problem, sizes, solver=solver, max_g=check.max_guarantee_lp)
+    extra = relaxed_frontier(run.problem, check.guarantee, check.max_guarantee_lp)
     return check, plan, extra
 
 

@@ -5,6 +5,7 @@ from pathlib import Path
 from typing import List, Optional
 
 import typer
+from rich import box
 from rich.table import Table
 
 from planner.cli import app
@@ -19,24 +20,28 @@ def _pct(v) -> str:
     return "-" if v is None else f"{100 * float(v):.1f}%"
 
 
+def _k(v) -> str:
+    """Impressions in thousands, grouped: 26,729,000 -> '26,729'."""
+    return "-" if v is None else f"{float(v) / 1000:,.0f}"
+
+
 def _verdict_table(checks: dict[str, dict], currency: str, committed: set[str] | None = None) -> Table:
-    t = Table(title=f"deals (money in {currency}, impressions in each deal's demo)")
-    cols = ["deal", "verdict", "guarantee (imp.)", f"cost ({currency})", f"margin ({currency})",
-            "chance of delivery", "largest guarantee (imp.)"]
-    if committed is not None:
-        cols.append("book")
+    """One line per deal, narrow enough for an 80-column terminal."""
+    t = Table(title=f"deals: money in {currency}; impressions (000) in each deal's demo", box=box.SIMPLE_HEAD,
+              title_justify="left", pad_edge=False, padding=(0, 1, 0, 0), show_edge=False)
+    cols = ["deal", "verdict", "guarantee", "cost", "margin", "P(deliv.)", "max guar."]
     for c in cols:
-        t.add_column(c, justify="left" if c in ("deal", "verdict", "book") else "right")
+        t.add_column(c, justify="left" if c in ("deal", "verdict") else "right", no_wrap=True)
     for name, v in checks.items():
-        row = [name, "deliverable" if v.get("deliverable") else "not deliverable",
-               count(v["guarantee"]) if v.get("guarantee") is not None else "-",
-               count(v["cost"]) if v.get("cost") is not None else "-",
-               count(v["margin"]) if v.get("margin") is not None else "-",
-               _pct(v.get("probability_of_delivery")),
-               count(v["max_guarantee"]) if v.get("max_guarantee") is not None else "-"]
-        if committed is not None:
-            row.append("committed" if name in committed else "not committed")
-        t.add_row(*row)
+        ok = bool(v.get("deliverable"))
+        verdict = ("held" if name in committed else "yes") if (ok and committed is not None) else ("yes" if ok else "NO")
+        t.add_row(name, verdict, _k(v.get("guarantee")),
+                  count(v["cost"]) if v.get("cost") is not None else "-",
+                  count(v["margin"]) if v.get("margin") is not None else "-",
+                  _pct(v.get("probability_of_delivery")), _k(v.get("max_guarantee")))
+    if committed is not None:
+        t.caption = "verdict: held = deliverable and committed to the book; NO = not deliverable"
+        t.caption_justify = "left"
     return t
 
 
@@ -99,6 +104,7 @@ def demo_cmd(
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object on stdout."),
 ) -> None:
     """The whole job on the invented demo: copy, fit, check, commit, stress, report."""
+    import contextlib
     import time
 
     from planner.demo import run_demo
@@ -107,9 +113,12 @@ def demo_cmd(
         raise InputError(f"--draws {draws}: need at least 2 draws")
     t0 = time.perf_counter()
 
+    @contextlib.contextmanager
     def stage(description: str, total: float | None = None):
-        info(description)
-        return progress(f"  {description.split(' ', 1)[1]}", total=total)
+        t = time.perf_counter()
+        with progress(description, total=total) as advance:
+            yield advance
+        info(f"{description}: done in {time.perf_counter() - t:,.1f} s")
 
     result = run_demo(out, draws=draws, seed=seed, solver=solver, stage=stage, say=lambda text: info(f"  {text}"))
     elapsed = time.perf_counter() - t0
