@@ -181,10 +181,21 @@ def make_problem(scope: pd.DataFrame, guarantee: float, rules: Rules, weeks) -> 
 # ---------------------------------------------------------------------------------------------
 # The LP in HiGHS, built from arrays
 # ---------------------------------------------------------------------------------------------
-class _Model:
-    """The LP relaxation of one problem in HiGHS; `mode` 'cost' (min cost) or 'max' (max G)."""
+SIFT_COLUMNS = 40_000  # above this many candidate units the LP starts from a column subset
+SIFT_PER_GROUP = 3  # cheapest columns kept per network x daypart x week in the first subset
+SIFT_CAPACITY = 3.0  # first subset also carries this multiple of the needed expected impressions
 
-    def __init__(self, prob: AllocationProblem, mode: str = "cost", time_limit: float = DEFAULT_TIME_LIMIT):
+
+class _Model:
+    """The LP relaxation of one problem in HiGHS; `mode` 'cost' (min cost) or 'max' (max G).
+
+    Solutions are handled in a canonical layout [x (n,), T, (G)] whatever the HiGHS column order
+    (HiGHS holds T, G first and then only the `active` x columns). For large problems the LP starts
+    from a subset of columns and prices the rest from the duals (column generation / sifting).
+    """
+
+    def __init__(self, prob: AllocationProblem, mode: str = "cost", time_limit: float = DEFAULT_TIME_LIMIT,
+                 columns: np.ndarray | None = None):
         t0 = time.perf_counter()
         self.prob, self.mode = prob, mode
         r = prob.rules
@@ -194,8 +205,9 @@ class _Model:
         self.m = m
         self.iT = n
         self.iG = n + 1 if mode == "max" else None
-        ncol = n + 1 + (mode == "max")
+        self.off = 1 + (mode == "max")  # HiGHS columns: T, (G), then active x
         rows, cols, vals, lo, hi, labels = [], [], [], [], [], []
+        t_rows, t_vals = [], []
         nrow = 0
 
         def block(row_of_x, k, coef_T, lower, upper, names):
@@ -203,7 +215,7 @@ class _Model:
             nonlocal nrow
             sel = row_of_x >= 0
             rows.append(nrow + row_of_x[sel]); cols.append(np.flatnonzero(sel)); vals.append(m[sel])
-            rows.append(nrow + np.arange(k)); cols.append(np.full(k, n)); vals.append(np.asarray(coef_T, float))
+            t_rows.append(nrow + np.arange(k)); t_vals.append(np.asarray(coef_T, float))
             lo.append(np.asarray(lower, float)); hi.append(np.asarray(upper, float))
             labels.extend(names)
             nrow += k
@@ -222,13 +234,12 @@ class _Model:
                 continue
             pos = {d: j for j, d in enumerate(names)}
             code = u["daypart"].map(pos).fillna(-1).to_numpy(np.int64)
-            s = np.array([shares[d] for d in names], float)
+            sh = np.array([shares[d] for d in names], float)
+            k = len(names)
             if sign > 0:  # y_d - s T >= 0
-                block(code, len(names), -s, np.zeros(len(names)), np.full(len(names), INF),
-                      [(kind, d) for d in names])
+                block(code, k, -sh, np.zeros(k), np.full(k, INF), [(kind, d) for d in names])
             else:
-                block(code, len(names), -s, np.full(len(names), -INF), np.zeros(len(names)),
-                      [(kind, d) for d in names])
+                block(code, k, -sh, np.full(k, -INF), np.zeros(k), [(kind, d) for d in names])
         if r.weekly_tolerance is not None:
             W = len(prob.weeks)
             pos = {w: j for j, w in enumerate(prob.weeks)}
@@ -241,88 +252,198 @@ class _Model:
         # Risk base row on T (and G in max mode).
         G = prob.guarantee * SCALE
         factor = 1.0 + r.pad if r.pad is not None else 1.0
+        t_rows.append(np.array([nrow])); t_vals.append(np.array([1.0]))
+        g_entry = None
         if mode == "cost":
-            rows.append(np.array([nrow])); cols.append(np.array([n])); vals.append(np.array([1.0]))
-            lo.append(np.array([factor * G])); hi.append(np.array([INF]))
+            lo.append(np.array([factor * G]))
         else:
-            rows.append(np.array([nrow, nrow])); cols.append(np.array([n, n + 1])); vals.append(np.array([1.0, -factor]))
-            lo.append(np.array([0.0])); hi.append(np.array([INF]))
+            lo.append(np.array([0.0]))
+            g_entry = (nrow, -factor)
+        hi.append(np.array([INF]))
         labels.append(("pad" if r.pad is not None else "risk_base", None))
         nrow += 1
-        A = sp.csc_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(nrow, ncol))
-        A.sum_duplicates()
+        self.A = sp.csc_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(nrow, n))
+        self.A.sum_duplicates()
+        self.A_T = self.A.T.tocsr()  # for pricing: A^T y
+        self.cost_x = prob.rate.copy() if mode == "cost" else np.zeros(n)
+        self.labels = labels
+        self.n_struct = nrow
+        self.row_lo, self.row_hi = np.concatenate(lo), np.concatenate(hi)
+        self.cuts: list[tuple[np.ndarray, np.ndarray, float]] = []  # (nz, x[nz], l0) per cut row
+        self.cut_points = self.cuts
+        self.n_cuts_total = 0
+        self.time_limit = time_limit
+        if columns is None:
+            columns = np.arange(n) if n <= SIFT_COLUMNS else self._first_columns()
+        self.active = np.asarray(columns, dtype=np.int64)
+        self.pos = np.full(n, -1, dtype=np.int64)
+        self.pos[self.active] = np.arange(self.active.size)
+        # T (and G) columns then the active x columns, column-wise.
+        tcol = sp.csc_matrix((np.concatenate(t_vals), (np.concatenate(t_rows), np.zeros(sum(map(len, t_rows)), int))),
+                             shape=(nrow, 1))
+        blocks = [tcol]
+        if mode == "max":
+            blocks.append(sp.csc_matrix(([g_entry[1]], ([g_entry[0]], [0])), shape=(nrow, 1)))
+        blocks.append(self.A[:, self.active])
+        M = sp.hstack(blocks, format="csc")
+        ncol = M.shape[1]
         cost = np.zeros(ncol)
         upper = np.full(ncol, INF)
-        upper[:n] = prob.ub
-        if mode == "cost":
-            cost[:n] = prob.rate
-        else:
-            cost[n + 1] = -1.0
+        upper[self.off:] = prob.ub[self.active]
+        cost[self.off:] = self.cost_x[self.active]
+        if mode == "max":
+            cost[1] = -1.0
         lp = highspy.HighsLp()
         lp.num_col_, lp.num_row_ = ncol, nrow
         lp.col_cost_, lp.col_lower_, lp.col_upper_ = cost, np.zeros(ncol), upper
-        lp.row_lower_, lp.row_upper_ = np.concatenate(lo), np.concatenate(hi)
+        lp.row_lower_, lp.row_upper_ = self.row_lo, self.row_hi
         lp.a_matrix_.format_ = highspy.MatrixFormat.kColwise
-        lp.a_matrix_.start_, lp.a_matrix_.index_, lp.a_matrix_.value_ = A.indptr, A.indices, A.data
+        lp.a_matrix_.start_, lp.a_matrix_.index_, lp.a_matrix_.value_ = M.indptr, M.indices, M.data
         lp.a_matrix_.num_col_, lp.a_matrix_.num_row_ = ncol, nrow
         self.h = _new_highs()
-        self.h.setOptionValue("output_flag", False)
         self.h.setOptionValue("time_limit", float(time_limit))
         self.h.passModel(lp)
-        self.labels = labels
-        self.n_struct = nrow
-        self.cut_points: list[tuple[np.ndarray, np.ndarray]] = []
-        self.n_cuts_total = 0
         self.ncol = ncol
         self.build_seconds = time.perf_counter() - t0
 
-    # -- LP solves ---------------------------------------------------------------------------
-    def solve(self):
-        """Solve the current LP; return (ok, x, objective)."""
-        self.h.run()
-        st = self.h.getModelStatus()
-        if st != highspy.HighsModelStatus.kOptimal:
-            return False, None, None
-        col = np.asarray(self.h.getSolution().col_value)
-        return True, col, self.h.getInfo().objective_function_value
+    # -- columns -------------------------------------------------------------------------------
+    @property
+    def complete(self) -> bool:
+        return self.active.size == self.prob.n
 
-    def add_cut(self, x: np.ndarray, l0: float, store: bool = True) -> None:
-        """Tangent cut of T - z sqrt(q + l0) >= G (or >= G_var) at spots x."""
+    def _first_columns(self) -> np.ndarray:
+        """Cheapest columns per network x daypart x week, plus the cheapest overall carrying
+        SIFT_CAPACITY times the expected impressions the deal needs."""
+        prob = self.prob
+        dm = prob.model
+        u = prob.units
+        cpi = np.where(dm.m > 0, prob.rate / np.maximum(dm.m, 1e-12), np.inf)
+        grp = pd.DataFrame({"g": pd.factorize(pd.MultiIndex.from_frame(u[["network", "daypart", "week"]]))[0],
+                            "c": cpi, "i": np.arange(prob.n)}).sort_values(["g", "c"])
+        pick = grp.groupby("g").head(SIFT_PER_GROUP)["i"].to_numpy()
+        order = np.argsort(cpi, kind="stable")
+        need = SIFT_CAPACITY * (1 + (prob.rules.pad or 0.0)) * prob.guarantee
+        cap = np.cumsum(dm.m[order] * prob.ub[order])
+        k = int(np.searchsorted(cap, need)) + 1
+        return np.unique(np.concatenate([pick, order[:k]]))
+
+    def _cut_coef(self, nz, v, l0, idx=None) -> tuple[np.ndarray, float]:
+        """Coefficients of one cut on x (all n, or `idx`) and its right-hand side (model units)."""
         dm, z = self.prob.model, z_value(self.prob.rules.confidence)
-        x = np.asarray(x, float)[: self.prob.n]
+        x = np.zeros(self.prob.n)
+        x[nz] = v
         s = math.sqrt(max(dm.quadratic_variance(x) + l0, 1e-300))
         g = dm.quadratic_gradient(x) / s
         coef = (dm.m - z * g) * SCALE
         rhs = z * l0 / s * SCALE
-        idx = np.flatnonzero(coef != 0).astype(np.int32)
-        val = coef[idx]
+        return (coef if idx is None else coef[idx]), rhs
+
+    def add_columns(self, new: np.ndarray) -> None:
+        """Bring columns `new` (global indices) into the HiGHS model with their cut entries."""
+        new = np.asarray(new, dtype=np.int64)
+        if new.size == 0:
+            return
+        sub = self.A[:, new].tocoo()
+        r_idx, c_idx, vals = [sub.row], [sub.col], [sub.data]
+        for k, (nz, v, l0) in enumerate(self.cuts):
+            coef, _ = self._cut_coef(nz, v, l0, new)
+            keep = np.flatnonzero(coef != 0)
+            r_idx.append(np.full(keep.size, self.n_struct + k)); c_idx.append(keep); vals.append(coef[keep])
+        M = sp.csc_matrix((np.concatenate(vals), (np.concatenate(r_idx), np.concatenate(c_idx))),
+                          shape=(self.h.getNumRow(), new.size))
+        self.h.addCols(new.size, self.cost_x[new], np.zeros(new.size), self.prob.ub[new], M.nnz,
+                       M.indptr[:-1].astype(np.int32), M.indices.astype(np.int32), M.data)
+        self.pos[new] = self.active.size + np.arange(new.size)
+        self.active = np.concatenate([self.active, new])
+        self.ncol = self.h.getNumCol()
+
+    def reduced_costs(self) -> np.ndarray:
+        """Reduced cost c - A^T y of every x column (n,) from the current duals (model units)."""
+        y = np.asarray(self.h.getSolution().row_dual)
+        rc = self.cost_x - self.A_T @ y[: self.n_struct]
+        for k, (nz, v, l0) in enumerate(self.cuts):
+            yk = y[self.n_struct + k]
+            if yk != 0:
+                coef, _ = self._cut_coef(nz, v, l0)
+                rc = rc - yk * coef
+        return rc
+
+    def price(self, max_add: int | None = None) -> int:
+        """Add the inactive columns with negative reduced cost (most negative first); return count."""
+        if self.complete:
+            return 0
+        rc = self.reduced_costs()
+        scale = max(float(np.max(np.abs(self.cost_x))) if self.mode == "cost" else 1.0, 1e-12)
+        cand = np.flatnonzero((self.pos < 0) & (rc < -1e-9 * scale))
+        if cand.size == 0:
+            return 0
+        k = max_add or max(5_000, self.active.size // 2)
+        if cand.size > k:
+            cand = cand[np.argpartition(rc[cand], k - 1)[:k]]
+        self.add_columns(np.sort(cand))
+        return int(cand.size)
+
+    def add_all_columns(self) -> None:
+        self.add_columns(np.flatnonzero(self.pos < 0))
+
+    def canonical(self, hcol) -> np.ndarray:
+        """HiGHS column values -> [x (n,), T, (G)]."""
+        hcol = np.asarray(hcol)
+        out = np.zeros(self.prob.n + self.off)
+        out[self.active] = hcol[self.off: self.off + self.active.size]
+        out[self.prob.n] = hcol[0]
+        if self.mode == "max":
+            out[self.prob.n + 1] = hcol[1]
+        return out
+
+    # -- LP solves ---------------------------------------------------------------------------
+    def solve(self):
+        """Solve the current LP; return (ok, canonical solution, objective)."""
+        self.h.run()
+        st = self.h.getModelStatus()
+        if st != highspy.HighsModelStatus.kOptimal:
+            return False, None, None
+        return True, self.canonical(self.h.getSolution().col_value), self.h.getInfo().objective_function_value
+
+    def add_cut(self, x: np.ndarray, l0: float, store: bool = True) -> None:
+        """Tangent cut of T - z sqrt(q + l0) >= G (or >= G_var) at spots x (canonical or (n,))."""
+        x = np.asarray(x, float)[: self.prob.n]
+        nz = np.flatnonzero(x > 1e-12)
+        coef, rhs = self._cut_coef(nz, x[nz], l0, self.active)
+        idx = (self.off + np.flatnonzero(coef != 0)).astype(np.int32)
+        val = coef[coef != 0]
         if self.mode == "cost":
             lower = self.prob.guarantee * SCALE + rhs
         else:
-            idx = np.append(idx, np.int32(self.iG))
+            idx = np.append(idx, np.int32(1))
             val = np.append(val, -1.0)
             lower = rhs
         self.h.addRow(float(lower), INF, len(idx), idx, val)
         self.n_cuts_total += 1
         if store:
-            nz = np.flatnonzero(x > 1e-12)
-            self.cut_points.append((nz, x[nz].copy()))
+            self.cuts.append((nz, x[nz].copy(), float(l0)))
 
     def reset_cuts(self, l0: float) -> None:
         """Re-derive every stored cut with a new frozen linear variance l0."""
         k = self.h.getNumRow() - self.n_struct
         if k > 0:
             self.h.deleteRows(k, np.arange(self.n_struct, self.n_struct + k, dtype=np.int32))
-        for nz, v in self.cut_points:
+        old, self.cuts = self.cuts, []
+        self.cut_points = self.cuts
+        for nz, v, _ in old:
             x = np.zeros(self.prob.n)
             x[nz] = v
-            self.add_cut(x, l0, store=False)
+            self.add_cut(x, l0)
 
     def row_duals(self) -> np.ndarray:
         return np.asarray(self.h.getSolution().row_dual)
 
     def row_values(self) -> np.ndarray:
         return np.asarray(self.h.getSolution().row_value)
+
+    def x_columns(self) -> np.ndarray:
+        """HiGHS indices of the active x columns (int32)."""
+        return (self.off + np.arange(self.active.size)).astype(np.int32)
 
 
 def _slack(prob: AllocationProblem, x: np.ndarray, l0: float | None, target: float) -> float:
@@ -347,10 +468,24 @@ class LPResult:
 
 
 def solve_relaxation(model: _Model, tol: float = 1e-5, max_iter: int = 200, max_resets: int = 6) -> LPResult:
-    """Kelley loop on the LP relaxation until the chance constraint holds at the LP solution.
+    """Kelley loop on the LP relaxation until the chance constraint holds at the LP solution;
+    for a column subset, columns with negative reduced cost are then added and the loop repeats.
 
     tol: relative tolerance of the condition (fraction of the guarantee, or of the max guarantee).
     """
+    t0 = time.perf_counter()
+    its = 0
+    while True:
+        res = _kelley(model, tol, max_iter, max_resets)
+        its += res.iterations
+        if not res.ok and not model.complete:
+            model.add_all_columns()  # the subset may just lack capacity: decide on every column
+            continue
+        if not res.ok or model.price() == 0:
+            return replace(res, iterations=its, cuts=model.n_cuts_total, solve_seconds=time.perf_counter() - t0)
+
+
+def _kelley(model: _Model, tol: float, max_iter: int, max_resets: int) -> LPResult:
     t0 = time.perf_counter()
     prob = model.prob
     n = prob.n
@@ -360,6 +495,14 @@ def solve_relaxation(model: _Model, tol: float = 1e-5, max_iter: int = 200, max_
         return LPResult(False, None, None, 0.0, 0, it, model.build_seconds, time.perf_counter() - t0)
     x = col[:n]
     l0 = prob.model.linear_variance(x)
+    if prob.rules.confidence is not None and any(abs(c[2] - l0) > 1e-12 * max(l0, 1.0) for c in model.cuts):
+        model.reset_cuts(l0)  # cuts from an earlier round carry another frozen l0: re-derive them
+        ok, col, obj = model.solve()
+        it += 1
+        if not ok:
+            return LPResult(False, None, None, l0, model.n_cuts_total, it, model.build_seconds,
+                            time.perf_counter() - t0)
+        x = col[:n]
     if prob.rules.confidence is not None:
         z = z_value(prob.rules.confidence)
         resets = 0
@@ -412,9 +555,9 @@ class MIPResult:
 
 
 def _set_integer(model: _Model, on: bool = True) -> None:
-    n = model.prob.n
+    idx = model.x_columns()
     kind = highspy.HighsVarType.kInteger if on else highspy.HighsVarType.kContinuous
-    model.h.changeColsIntegrality(n, np.arange(n, dtype=np.int32), np.full(n, kind))
+    model.h.changeColsIntegrality(idx.size, idx, np.full(idx.size, kind))
 
 
 def _solve_mip_highs(model: _Model, gap: float, time_limit: float) -> MIPResult:
@@ -428,7 +571,7 @@ def _solve_mip_highs(model: _Model, gap: float, time_limit: float) -> MIPResult:
     name = h.modelStatusToString(st)
     if info.primal_solution_status != 2 and st != highspy.HighsModelStatus.kOptimal:
         return MIPResult(False, None, None, None, name, time.perf_counter() - t0)
-    col = np.asarray(h.getSolution().col_value)
+    col = model.canonical(h.getSolution().col_value)
     return MIPResult(True, col, info.objective_function_value, info.mip_dual_bound, name,
                      time.perf_counter() - t0)
 
@@ -469,6 +612,7 @@ def _solve_mip_cbc(model: _Model, gap: float, time_limit: float) -> MIPResult:
             idx = np.array([int(p[0]) for p in parts])
             val = np.array([float(p[2]) for p in parts])
             col[idx] = val
+        col = model.canonical(col)
         mobj = re.search(r"objective value\s+" + _CBC_NUM, first)
         obj = float(mobj.group(1)) if mobj else float(np.dot(model.prob.rate, col[: model.prob.n]))
         mlb = re.search(r"Lower bound:\s+" + _CBC_NUM, out)
@@ -545,10 +689,10 @@ def allocate(prob: AllocationProblem, *, solver: str = "cbc", gap: float = DEFAU
         return Allocation(True, lp_x, lp.objective, lp.objective, lp.objective, 0.0, mip_rounds=0,
                           status="lp optimal", solve_seconds=time.perf_counter() - t0, lp_x=lp_x,
                           row_duals=duals, row_values=values, **{k: v for k, v in base.items()})
-    rc = np.asarray(model.h.getSolution().col_dual)[: prob.n]
+    rc = model.reduced_costs()
     _set_integer(model)
-    free = _neighbourhood(prob, lp_x, rc)
-    restricted = not bool(free.all())
+    free = _neighbourhood(prob, lp_x, rc) & (model.pos >= 0)
+    restricted = not bool(free[model.active].all())
     if restricted:
         _fix_outside(model, free, lp_x)
     rounds, mip, x = 0, None, None
@@ -602,6 +746,8 @@ def allocate(prob: AllocationProblem, *, solver: str = "cbc", gap: float = DEFAU
     g = (cost - bound) / cost if cost > 0 else 0.0
     lg = max(cost - lp.objective, 0.0) / cost if cost > 0 else 0.0
     status = mip.status + (f" (in the LP neighbourhood: {int(free.sum())} of {prob.n} columns free)" if restricted else "")
+    if not model.complete:
+        status += f" ({model.active.size} of {prob.n} columns priced in)"
     return Allocation(True, x, cost, lp.objective, mip_bound, g, mip_rounds=rounds, status=status,
                       solve_seconds=time.perf_counter() - t0, lp_x=lp_x, row_duals=duals,
                       row_values=values, lp_gap=lg, **base)
@@ -628,11 +774,12 @@ def _neighbourhood(prob: AllocationProblem, lp_x: np.ndarray, rc: np.ndarray) ->
 
 
 def _fix_outside(model: _Model, free: np.ndarray, lp_x: np.ndarray) -> None:
-    """Fix columns outside `free` at their (integral) LP values; free columns get 0..ub."""
-    n = model.prob.n
-    lo = np.where(free, 0.0, np.rint(lp_x))
-    hi = np.where(free, model.prob.ub, np.rint(lp_x))
-    model.h.changeColsBounds(n, np.arange(n, dtype=np.int32), lo, hi)
+    """Fix active columns outside `free` at their (integral) LP values; free ones get 0..ub."""
+    a = model.active
+    lo = np.where(free[a], 0.0, np.rint(lp_x[a]))
+    hi = np.where(free[a], model.prob.ub[a], np.rint(lp_x[a]))
+    idx = model.x_columns()
+    model.h.changeColsBounds(idx.size, idx, lo, hi)
 
 
 @dataclass
@@ -711,15 +858,20 @@ def max_guarantee(prob: AllocationProblem, *, integer: bool = False, solver: str
     if prob.n == 0:
         return MaxGuarantee(0.0, 0.0, None, 0, 0)
     model = _Model(prob, "max", time_limit)
-    if prob.rules.pad is not None:
-        ok, col, obj = model.solve()
-        if not ok:
-            return MaxGuarantee(0.0, 0.0, None, 0, 1)
-        x, ub, its = col[: prob.n], col[model.iG] / SCALE, 1
-    else:
-        ok, ub, x, _, its = _max_loop(model, tol, max_iter)
+    its = 0
+    while True:  # with a column subset: price the rest in until no column improves the bound
+        if prob.rules.pad is not None:
+            ok, col, obj = model.solve()
+            its += 1
+            if ok:
+                x, ub = col[: prob.n], col[model.iG] / SCALE
+        else:
+            ok, ub, x, _, k = _max_loop(model, tol, max_iter)
+            its += k
         if not ok:
             return MaxGuarantee(0.0, 0.0, None, model.n_cuts_total, its)
+        if model.price() == 0:
+            break
     best = MaxGuarantee(max(float(ub), 0.0), max(_deliverable_value(prob, x), 0.0), x,
                         model.n_cuts_total, its)
     if integer:
