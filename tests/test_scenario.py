@@ -409,6 +409,8 @@ def test_cli_validate_ok_json(small_scenario, capsys):
                                   "days": 7, "wraps_midnight": True}
     assert out["units"] == 3 * 3 * 7 and len(out["deals"]) == 3
     assert 0.8 < out["history"]["completeness"] < 1.0
+    assert {(x["zone"], x["network"]) for x in out["history"]["short_series_list"]} == {
+        ("pellham-lower", "marbleberry-kids")}
 
 
 def test_cli_validate_bad_exits_2(small_scenario, scenario_copy, capsys):

@@ -43,7 +43,8 @@ def scenario_summary(path: str | Path) -> dict:
                   for name, d in sc.deals.items()},
         "history": {"file": Path(h.path).name, "generated_now": generated, "rows": h.rows, "series": h.series,
                     "start": h.start, "end": h.end, "days": h.days, "completeness": h.completeness,
-                    "zero_share": h.zero_share, "short_series": len(h.short_series)},
+                    "zero_share": h.zero_share, "short_series": len(h.short_series),
+                    "short_series_list": h.short_series},
     }
 
 
