@@ -100,15 +100,21 @@ class DeliveryModel:
         if missing:
             raise KeyError(f"units lack columns {missing}")
         net_code, networks = pd.factorize(units["network"], sort=True)
-        flight_idx = pd.MultiIndex.from_frame(units[FLIGHT_KEY])
-        flight_code, flights = pd.factorize(flight_idx, sort=True)
+        zc, zu = pd.factorize(units["zone"], sort=True)
+        dc, du = pd.factorize(units["daypart"], sort=True)
+        nn, nd = max(len(networks), 1), max(len(du), 1)
+        combo = (zc.astype(np.int64) * nn + net_code) * nd + dc  # one integer per zone x network x daypart
+        uniq, flight_code = np.unique(combo, return_inverse=True)
+        flights = pd.MultiIndex.from_arrays(
+            [np.asarray(zu)[uniq // (nn * nd)], np.asarray(networks)[(uniq // nd) % nn], np.asarray(du)[uniq % nd]],
+            names=FLIGHT_KEY)
         keys = pd.MultiIndex.from_frame(units[UNIT_KEY])
         return cls(
             units["mean_impressions"].to_numpy(float), units["airing_sd"].to_numpy(float),
             units["level_sd_network"].to_numpy(float), units["level_sd_flight"].to_numpy(float),
             units["level_sd_week"].to_numpy(float), units["preempt_rate"].to_numpy(float),
             net_code, flight_code, networks=pd.Index(networks, name="network"),
-            flights=pd.MultiIndex.from_tuples(list(flights), names=FLIGHT_KEY) if len(flights) else None,
+            flights=flights if len(flights) else None,
             keys=keys,
         )
 
