@@ -206,3 +206,34 @@ def test_rebalance_needs_a_committed_deal(tmp_path):
     acts = pd.DataFrame(columns=UNIT + ["spots_aired", "impressions"])
     with pytest.raises(InputError, match="not in the book"):
         rb.rebalance_deal(scn, "alpha", acts, forecast=fc)
+
+
+@pytest.mark.slow
+def test_update_from_simulated_postings_moves_the_forecast_toward_the_truth(demo_fitted, scenario_copy):
+    """Demo book: post weeks 1-4 of a committed plan from the generator's simulated future
+    (`scenarios.actuals.posted_actuals`); the updated forecast of the remaining weeks' spots is
+    closer to what they then deliver in that simulated future than the prior forecast."""
+    from planner.forecast_job import ensure_forecast
+    from planner.scenario import load_scenario
+    from scenarios.actuals import posted_actuals
+
+    folder = scenario_copy(demo_fitted)
+    scn = load_scenario(folder)
+    fc = ensure_forecast(scn).table
+    name = next(n for n in scn.deals if bk.commit_deal(scn, n, forecast=fc, solver="highs").committed)
+    d = bk.get_deal(scn, name)
+    spots = d.holds[UNIT + ["spots"]]
+    aired = range(d.first_week, d.first_week + 4)
+    later = range(d.first_week + 4, d.last_week + 1)
+    acts = posted_actuals(scn, spots, d.demo, weeks=aired, seed=0)
+    truth = posted_actuals(scn, spots, d.demo, weeks=later, seed=1)
+    r = rb.rebalance_deal(scn, name, acts, forecast=fc, solver="highs")
+    key = fc["demo"] == d.demo
+    f = truth.merge(fc[key][UNIT + ["mean_impressions"]], on=UNIT).merge(
+        r.forecast[r.forecast["demo"] == d.demo][UNIT + ["mean_impressions"]].rename(
+            columns={"mean_impressions": "posterior"}), on=UNIT)
+    prior = float((f["spots_aired"] * f["mean_impressions"]).sum())
+    post = float((f["spots_aired"] * f["posterior"]).sum())
+    actual = float(f["impressions"].sum())
+    assert abs(post - actual) < abs(prior - actual)
+    assert r.deliverable or r.unmet > 0
