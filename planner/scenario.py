@@ -800,6 +800,7 @@ class HistorySummary:
     zero_share: float
     rating_max: float
     short_series: list[dict]
+    missing_series: list[dict] = field(default_factory=list)
 
 
 def validate_history(scenario: Scenario) -> HistorySummary:
@@ -872,10 +873,17 @@ def validate_history(scenario: Scenario) -> HistorySummary:
     late = per[(first - pd.Timestamp(start)).dt.days > 28]
     short = [{"zone": r.zone, "network": r.network, "demo": r.demo, "first": pd.Timestamp(r.first).date()}
              for r in late.itertuples()]
+    # Sold units (inventory zone x network) with no history at all in some demo: forecasts must
+    # borrow everything from the network and genre.
+    sold = scenario.inventory[["zone", "network"]].drop_duplicates()
+    want = sold.merge(pd.DataFrame({"demo": list(scenario.demos)}), how="cross")
+    have = per[["zone", "network", "demo"]].astype(str).assign(_h=True)
+    lack = want.merge(have, on=["zone", "network", "demo"], how="left")
+    missing = lack.loc[lack["_h"].isna(), ["zone", "network", "demo"]].to_dict("records")
     return HistorySummary(path=str(path), rows=rows, series=len(per), start=start, end=end, days=days,
                           completeness=rows / (len(per) * days * QUARTER_HOURS),
                           zero_share=float(per["zeros"].sum()) / rows, rating_max=float(per["rmax"].max()),
-                          short_series=short)
+                          short_series=short, missing_series=missing)
 
 
 def _parquet_keys_unique(path: Path, scenario: Scenario) -> bool:

@@ -9,6 +9,7 @@ from datetime import date, timedelta
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute  # noqa: F401 - pa.compute
 import pyarrow.parquet as pq
 import pytest
 
@@ -353,6 +354,18 @@ def test_validate_history_summary(small_scenario):
     assert h.completeness == pytest.approx(h.rows / full)
     assert 0 < h.zero_share < 0.5
     assert len(h.short_series) == 2  # one zone x network, both demos
+    assert h.missing_series == []
+
+
+def test_validate_history_names_sold_series_without_history(small_scenario, scenario_copy):
+    folder = scenario_copy(small_scenario)
+    t = pq.read_table(folder / "history.parquet")
+    keep = pa.compute.invert(pa.compute.and_(pa.compute.equal(t["zone"], "wyncote-east"),
+                                             pa.compute.equal(t["demo"], "a25-54")))
+    pq.write_table(t.filter(keep), folder / "history.parquet")
+    h = validate_history(load_scenario(folder))
+    assert sorted(x["network"] for x in h.missing_series) == sorted(load_scenario(folder).network_names)
+    assert {(x["zone"], x["demo"]) for x in h.missing_series} == {("wyncote-east", "a25-54")}
 
 
 def test_history_csv_accepted(small_scenario, scenario_copy):

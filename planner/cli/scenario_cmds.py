@@ -44,7 +44,7 @@ def scenario_summary(path: str | Path) -> dict:
         "history": {"file": Path(h.path).name, "generated_now": generated, "rows": h.rows, "series": h.series,
                     "start": h.start, "end": h.end, "days": h.days, "completeness": h.completeness,
                     "zero_share": h.zero_share, "short_series": len(h.short_series),
-                    "short_series_list": h.short_series},
+                    "short_series_list": h.short_series, "missing_series": h.missing_series},
     }
 
 
@@ -70,7 +70,8 @@ def validate(
         f"avails {s['avails']:,} spots",
         f"history ({h['file']}): {h['rows']:,} rows, {h['series']} series, {h['start']} to {h['end']} "
         f"({h['days']} days), completeness {h['completeness']:.1%}, zeros {h['zero_share']:.1%}, "
-        f"short series {h['short_series']}",
+        f"short series {h['short_series']}"
+        + (f", sold zone x network x demo with no history {len(h['missing_series'])}" if h["missing_series"] else ""),
         f"deals {len(s['deals'])}:",
     ]
     for name, d in s["deals"].items():
