@@ -24,7 +24,11 @@ def pledge(*args, cwd=None) -> subprocess.CompletedProcess:
 @pytest.fixture(scope="module")
 def demo_run(demo_fitted, tmp_path_factory):
     folder = tmp_path_factory.mktemp("demo-run") / "pledge-demo"
-    shutil.copytree(demo_fitted, folder)
+    shutil.copytree(demo_fitted, folder, ignore=shutil.ignore_patterns("book.sqlite*"))
+    # The forecast cache is keyed on the history file itself (path, size, mtime): link to the
+    # fitted folder's history so the copy's cache is current and the demo reuses it.
+    (folder / "history.parquet").unlink()
+    (folder / "history.parquet").symlink_to((Path(demo_fitted) / "history.parquet").resolve())
     r = pledge("demo", "--out", folder, "--draws", "5000", "--json")
     assert r.returncode == 0, r.stderr
     return folder, json.loads(r.stdout), r.stderr
