@@ -120,7 +120,7 @@ def frontier_svg(frontier: pd.DataFrame, guarantee: float, confidence: float | N
     relaxed : the costs come from the linear relaxation (said in the legend).
     """
     with matplotlib.rc_context(_RC):
-        fig = _figure(6.4, 3.3, right=0.75, bottom=0.85)
+        fig = _figure(6.4, 3.5, right=0.75, bottom=1.05)
         ax = fig.add_subplot()
         f = frontier.sort_values("guarantee")
         ok = f["cost"].notna()
@@ -145,7 +145,7 @@ def frontier_svg(frontier: pd.DataFrame, guarantee: float, confidence: float | N
             ax.axvline(max_guarantee, color=BRICK, lw=1.2, ls=":", label="largest deliverable")
         h1, l1 = ax.get_legend_handles_labels()
         h2, l2 = ax2.get_legend_handles_labels()
-        fig.legend(h1 + h2, l1 + l2, loc="lower center", bbox_to_anchor=(0.5, 0.0), ncols=4)
+        fig.legend(h1 + h2, l1 + l2, loc="lower center", bbox_to_anchor=(0.5, 0.0), ncols=2)
         ax.set_title("Cost and chance of delivery by guarantee size", loc="left")
         return _svg(fig)
 

@@ -354,6 +354,9 @@ def _zone_table(spots: pd.DataFrame, currency: str) -> str:
     """The plan by zone: spots, cost, expected impressions and the plan's CPM."""
     z = spots.groupby("zone", observed=True)[["spots", "cost", "expected_impressions"]].sum()
     z = z[z["spots"] > 0].sort_values("cost", ascending=False)
+    if len(z) > 7:  # the largest six and the rest, so the table stays beside its plot
+        rest = z.iloc[6:].sum().rename(f"{len(z) - 6} other zones")
+        z = pd.concat([z.iloc[:6], rest.to_frame().T])
     rows = "".join(
         f"<tr><td>{_esc(zone)}</td><td>{fmt_count(r.spots)}</td><td>{fmt_money(r.cost, currency)}</td>"
         f"<td>{fmt_count(r.expected_impressions)}</td>"

@@ -29,7 +29,7 @@ def _verdict_table(checks: dict[str, dict], currency: str, committed: set[str] |
     """One line per deal, narrow enough for an 80-column terminal."""
     t = Table(title=f"deals: money in {currency}; impressions (000) in each deal's demo", box=box.SIMPLE_HEAD,
               title_justify="left", pad_edge=False, padding=(0, 1, 0, 0), show_edge=False)
-    cols = ["deal", "verdict", "guarantee", "cost", "margin", "P(deliv.)", "max guar."]
+    cols = ["deal", "verdict", "guarantee", "cost", "margin", "P(deliv.)", "max"]
     for c in cols:
         t.add_column(c, justify="left" if c in ("deal", "verdict") else "right", no_wrap=True)
     for name, v in checks.items():
@@ -40,7 +40,8 @@ def _verdict_table(checks: dict[str, dict], currency: str, committed: set[str] |
                   count(v["margin"]) if v.get("margin") is not None else "-",
                   _pct(v.get("probability_of_delivery")), _k(v.get("max_guarantee")))
     if committed is not None:
-        t.caption = "verdict: held = deliverable and committed to the book; NO = not deliverable"
+        t.caption = ("verdict: held = deliverable and committed to the book, NO = not deliverable; "
+                     "max: the largest deliverable guarantee")
         t.caption_justify = "left"
     return t
 
