@@ -183,7 +183,7 @@ def make_problem(scope: pd.DataFrame, guarantee: float, rules: Rules, weeks) -> 
 # ---------------------------------------------------------------------------------------------
 SIFT_COLUMNS = 40_000  # above this many candidate units the LP starts from a column subset
 SIFT_PER_GROUP = 3  # cheapest columns kept per network x daypart x week in the first subset
-SIFT_CAPACITY = 3.0  # first subset also carries this multiple of the needed expected impressions
+SIFT_CAPACITY = 1.5  # first subset carries this multiple of the needed expected impressions
 
 
 class _Model:
@@ -311,21 +311,28 @@ class _Model:
     def complete(self) -> bool:
         return self.active.size == self.prob.n
 
-    def _first_columns(self) -> np.ndarray:
-        """Cheapest columns per network x daypart x week, plus the cheapest overall carrying
-        SIFT_CAPACITY times the expected impressions the deal needs."""
+    def _first_columns(self, capacity: float | None = None) -> np.ndarray:
+        """The first column subset: in every network x daypart x week group the cheapest columns
+        (cost per expected impression) up to a common rank, the rank chosen so the subset carries
+        `capacity` (default SIFT_CAPACITY) times the expected impressions the deal needs; at least
+        SIFT_PER_GROUP per group. Within a group the rows are the same, so the LP fills the
+        cheapest first (exactly so for a pad, nearly so with cuts; pricing restores the rest)."""
         prob = self.prob
         dm = prob.model
         u = prob.units
+        capacity = SIFT_CAPACITY if capacity is None else capacity
         cpi = np.where(dm.m > 0, prob.rate / np.maximum(dm.m, 1e-12), np.inf)
-        grp = pd.DataFrame({"g": pd.factorize(pd.MultiIndex.from_frame(u[["network", "daypart", "week"]]))[0],
-                            "c": cpi, "i": np.arange(prob.n)}).sort_values(["g", "c"])
-        pick = grp.groupby("g").head(SIFT_PER_GROUP)["i"].to_numpy()
-        order = np.argsort(cpi, kind="stable")
-        need = SIFT_CAPACITY * (1 + (prob.rules.pad or 0.0)) * prob.guarantee
-        cap = np.cumsum(dm.m[order] * prob.ub[order])
-        k = int(np.searchsorted(cap, need)) + 1
-        return np.unique(np.concatenate([pick, order[:k]]))
+        g = pd.factorize(pd.MultiIndex.from_frame(u[["network", "daypart", "week"]]))[0]
+        order = np.lexsort((cpi, g))
+        gs = g[order]
+        start = np.r_[0, np.flatnonzero(np.diff(gs)) + 1]
+        rank = np.arange(gs.size) - np.repeat(start, np.diff(np.r_[start, gs.size]))
+        cap = (dm.m * prob.ub)[order]
+        by_rank = np.bincount(rank, cap)
+        need = capacity * (1 + (prob.rules.pad or 0.0)) * prob.guarantee
+        r = int(np.searchsorted(np.cumsum(by_rank), need)) + 1
+        r = max(r, SIFT_PER_GROUP)
+        return np.sort(order[rank < r])
 
     def _cut_coef(self, nz, v, l0, idx=None) -> tuple[np.ndarray, float]:
         """Coefficients of one cut on x (all n, or `idx`) and its right-hand side (model units)."""
@@ -474,12 +481,15 @@ def solve_relaxation(model: _Model, tol: float = 1e-5, max_iter: int = 200, max_
     tol: relative tolerance of the condition (fraction of the guarantee, or of the max guarantee).
     """
     t0 = time.perf_counter()
-    its = 0
+    its, grow = 0, SIFT_CAPACITY
     while True:
         res = _kelley(model, tol, max_iter, max_resets)
         its += res.iterations
         if not res.ok and not model.complete:
-            model.add_all_columns()  # the subset may just lack capacity: decide on every column
+            # the subset may just lack capacity: widen it (twice the capacity), at last every column
+            grow *= 2.0
+            more = model._first_columns(grow) if grow < 64 else np.arange(model.prob.n)
+            model.add_columns(np.setdiff1d(more, model.active))
             continue
         if not res.ok or model.price() == 0:
             return replace(res, iterations=its, cuts=model.n_cuts_total, solve_seconds=time.perf_counter() - t0)
