@@ -57,18 +57,19 @@ class FoldResult:
 
 
 def fold_origins(n_days: int, gap: int, horizon: int, n_folds: int, min_train: int) -> list[int]:
-    """Origins (day index of the first held-out day's origin, i.e. training ends before it).
+    """Origins of the rolling-origin refits (training ends just before the origin).
 
     Fold k trains on days [0, o_k) and is scored on [o_k + gap, o_k + gap + horizon), inside the
-    history of `n_days` days; windows do not overlap. Returns up to `n_folds` origins, latest first.
+    history of `n_days` days. Origins step back by one horizon (windows do not overlap) when the
+    history allows `n_folds` of them, else by less (at least 4 weeks) so that more folds fit.
+    Returns up to `n_folds` origins, latest first; empty when not even one fits.
     """
-    out = []
-    for k in range(n_folds):
-        o = n_days - gap - horizon * (k + 1)
-        if o < min_train:
-            break
-        out.append(o)
-    return out
+    latest = n_days - gap - horizon
+    if latest < min_train:
+        return []
+    room = latest - min_train
+    step = horizon if n_folds <= 1 or room >= horizon * (n_folds - 1) else max(room // (n_folds - 1), 28)
+    return [latest - k * step for k in range(n_folds) if latest - k * step >= min_train]
 
 
 class DaypartForecaster:
@@ -220,7 +221,11 @@ class DaypartForecaster:
             if vals:
                 w = np.array([n for _, n in vals], dtype=float)
                 out[str(lv)] = float(np.sum([c for c, _ in vals] * w) / w.sum())
-        return {"leave_one_fold_out_coverage": out}
+        full = errors[~errors["truncated"]]
+        rms = full.groupby("fold")["rel_error"].apply(lambda x: float(np.sqrt(np.mean(x**2))))
+        return {"leave_one_fold_out_coverage": out,
+                "rms_relative_error_by_fold": {str(self.day0_ + pd.Timedelta(days=self.folds_[int(j)]))[:10]: v
+                                               for j, v in rms.items()}}
 
     # ------------------------------------------------------------------ fit
     def fit(self, cube: ProfileCube, info: pd.DataFrame, dayparts, plan_start, weeks: int,

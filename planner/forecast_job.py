@@ -103,6 +103,12 @@ def load_history_cube(scenario, *, demos=None, engine: str = "duckdb", progress:
     path = Path(scenario.history_path)
     if not path.exists():
         raise InputError(f"{path.name}: history file is missing in {scenario.path}")
+    if engine == "spark":
+        from forecasting.spark_engine import spark_available
+
+        ok, why = spark_available()
+        if not ok:
+            raise InputError(f"--engine spark: {why}")
     try:
         profiles = daily_profiles(path, engine=engine, demos=demos)
     except FileNotFoundError as exc:

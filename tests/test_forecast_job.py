@@ -39,10 +39,14 @@ def test_table_follows_the_contract(fitted_small):
     assert (t["level_sd_network"] > 0).all() and (t["level_sd_week"] > 0).all()
     # q10/q90 of one spot: mean -+ z(0.90) sd with sd^2 = level^2 + airing^2
     # (z(0.90) = 1.2816, NIST/SEMATECH normal table), q10 floored at zero.
+    from scipy.stats import norm
+
+    z = norm.ppf(0.90)
+    assert z == pytest.approx(1.2816, abs=1e-4)
     sd = np.sqrt(t["level_sd"] ** 2 + t["airing_sd"] ** 2)
-    np.testing.assert_allclose(t["q90_impressions"], t["mean_impressions"] + 1.2816 * sd, rtol=1e-4)
-    np.testing.assert_allclose(t["q10_impressions"], np.maximum(t["mean_impressions"] - 1.2816 * sd, 0),
-                               rtol=1e-4, atol=1e-6)
+    np.testing.assert_allclose(t["q90_impressions"], t["mean_impressions"] + z * sd, rtol=1e-9)
+    np.testing.assert_allclose(t["q10_impressions"], np.maximum(t["mean_impressions"] - z * sd, 0),
+                               rtol=1e-9, atol=1e-9)
     # Prime delivers more than overnight (common practice).
     by = t.groupby("daypart")["mean_rating"].mean()
     assert by["prime"] > by["overnight"]
