@@ -441,7 +441,8 @@ class CommitResult:
     plan: Any = None
 
     def as_dict(self) -> dict:
-        return {"deal": self.deal, "committed": self.committed, "book": self.book,
+        return {"deal": self.deal, "committed": self.committed,
+                "verdict": "committed" if self.committed else "not committed", "book": self.book,
                 "reason": self.reason, "replanned_under_lock": self.replanned, **self.summary}
 
 
