@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import signal
 import subprocess
 import sys
 import time
@@ -21,6 +22,9 @@ SCALE = ["ingest", "fit", "allocate", "stress"]
 SCRIPTS = {"ingest": "bench_ingest.py", "fit": "bench_scale_fit.py", "allocate": "bench_scale_allocate.py",
            "stress": "bench_scale_stress.py", "demo-stress": "bench_stress.py", "demo-generate": "bench_generate.py",
            "demo-fit": "bench_fit.py", "demo-allocate": "bench_allocate.py"}
+
+
+DEFAULT = ["ingest", "stress", "allocate", "fit", "demo-stress", "demo-generate"]
 
 
 def _generic_rows(name: str, out: dict) -> list[dict]:
@@ -51,12 +55,22 @@ def run_one(name: str, args) -> tuple[list[dict], dict]:
         cmd += ["--json", "--large", str(args.large)]
     env = dict(os.environ, PYTHONPATH=str(BENCH.parent))
     t0 = time.perf_counter()
-    proc = subprocess.run(cmd, capture_output=True, text=True, env=env, cwd=str(BENCH.parent))
+    # Own process group, so a timeout stops the benchmark and the step it is running.
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env,
+                            cwd=str(BENCH.parent), start_new_session=True)
+    try:
+        stdout, stderr = proc.communicate(timeout=args.timeout)
+    except subprocess.TimeoutExpired:
+        os.killpg(proc.pid, signal.SIGKILL)
+        stdout, stderr = proc.communicate()
+        wall = time.perf_counter() - t0
+        return ([M.row(f"{name}: did not finish", f"(run stopped at {args.timeout:.0f} s)",
+                       f"> {wall:.0f} s", None, False)], {"stderr": stderr[-3000:], "stopped_after_s": wall})
     wall = time.perf_counter() - t0
-    lines = [ln for ln in proc.stdout.strip().splitlines() if ln.startswith("{")]
+    lines = [ln for ln in stdout.strip().splitlines() if ln.startswith("{")]
     if proc.returncode != 0 or not lines:
-        msg = (proc.stderr.strip().splitlines() or ["no output"])[-1][:100]
-        return [M.row(f"{name}: FAILED", "", msg, None, False)], {"stderr": proc.stderr[-3000:]}
+        msg = (stderr.strip().splitlines() or ["no output"])[-1][:100]
+        return [M.row(f"{name}: FAILED", "", msg, None, False)], {"stderr": stderr[-3000:]}
     out = json.loads(lines[-1])
     rows = out["rows"] if name in SCALE else _generic_rows(name, out)
     details = out.get("details", out)
@@ -83,8 +97,10 @@ def main(argv=None) -> int:
                          "/work/large/national)")
     ap.add_argument("--only", default=None, help=f"comma list of {', '.join(SCRIPTS)}")
     ap.add_argument("--no-write", action="store_true", help="do not rewrite bench/RESULTS.md")
+    ap.add_argument("--timeout", type=float, default=1800.0,
+                    help="stop a benchmark that runs longer than this many seconds (reported as such)")
     args = ap.parse_args(argv)
-    names = args.only.split(",") if args.only else list(SCRIPTS)
+    names = args.only.split(",") if args.only else DEFAULT
     unknown = [n for n in names if n not in SCRIPTS]
     if unknown:
         ap.error(f"unknown benchmark(s) {', '.join(unknown)}")
@@ -99,19 +115,27 @@ def main(argv=None) -> int:
         rows += r
         if d:
             details[name] = d
+        if not args.no_write:
+            write_results(args, rows, details, facts_start, t0, done=False)
+    M.print_rows(rows)
+    if not args.no_write:
+        write_results(args, rows, details, facts_start, t0, done=True)
+    return 0
+
+
+def write_results(args, rows, details, facts_start, t0, done: bool) -> None:
+    """Rewrite bench/RESULTS.md (also after each benchmark, so a stopped run leaves what it measured)."""
     facts = M.machine_facts()
     facts["load_avg_1m_at_start"] = facts_start.get("load_avg_1m")
     facts["total_seconds"] = round(time.perf_counter() - t0, 1)
-    M.print_rows(rows)
-    if args.no_write:
-        return 0
     large = {}
     if (args.large / "LARGE.json").exists():
         large = json.loads((args.large / "LARGE.json").read_text())
     notes = BENCH / "notes.md"
     text = [
-        "# Benchmark results (last run of `bench/run`)",
+        "# Benchmark results (last run of `bench/run`)" + ("" if done else " - run in progress"),
         "",
+        f"Command: `bench/run {' '.join(sys.argv[1:])}`".rstrip() + ". "
         f"Run {facts['date_utc']} on {facts.get('nproc')} CPUs ({facts.get('cpu', 'unknown CPU')}), "
         f"{facts.get('memory_gib')} GiB memory; load average {facts.get('load_avg_1m_at_start')} at the start "
         f"and {facts.get('load_avg_1m')} at the end (the machine may be shared: timings are wall clock).",
@@ -142,7 +166,6 @@ def main(argv=None) -> int:
              ""]
     (BENCH / "RESULTS.md").write_text("\n".join(text))
     print(f"wrote {BENCH / 'RESULTS.md'}", file=sys.stderr)
-    return 0
 
 
 if __name__ == "__main__":

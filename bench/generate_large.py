@@ -351,15 +351,34 @@ def write_deals(out: Path, layout: dict, plans: list[dict], forecast: pd.DataFra
         (ddir / f"{p['name']}.toml").write_text(_deal_toml(
             p["name"], f"Invented Advertiser {p['name'][-2:]}", p["demo"], g, p["first"], p["last"],
             cpm, f"pad = {DEAL_PAD}", {}))
-    # The national deal the allocation benchmark checks (not committed): about a fifth of what
-    # the whole hh inventory can deliver, all zones, networks and dayparts, 13 weeks.
-    hh = forecast[forecast["demo"] == layout["demos"][0]].merge(inventory, on=["zone", "network", "daypart", "week"])
-    cap = float((np.minimum(hh["avails"], 3) * 0.97 * hh["mean_impressions"]).sum())
-    (ddir / "national-check.toml").write_text(_deal_toml(
-        "national-check", "Invented Advertiser National", layout["demos"][0], 0.2 * cap, 1, layout["weeks"],
+    write_check_deal(out, layout, forecast, inventory, held=None)
+
+
+CHECK_SHARE = 0.08  # the national deal asks for this share of what the avails left can deliver
+
+
+def write_check_deal(out: Path, layout: dict, forecast: pd.DataFrame, inventory: pd.DataFrame,
+                     held: pd.DataFrame | None) -> float:
+    """deals/national-check.toml, the deal the allocation benchmark checks (never committed).
+
+    All zones, networks and dayparts, every week, confidence 95%, mix rules; the guarantee is
+    CHECK_SHARE of the expected hh impressions of the avails left after `held` (capped at 3 per
+    unit), so it is deliverable but not trivially. Returns the guarantee.
+    """
+    key = ["zone", "network", "daypart", "week"]
+    hh = forecast[forecast["demo"] == layout["demos"][0]].merge(inventory, on=key)
+    avail = hh["avails"].to_numpy(float)
+    if held is not None and len(held):
+        h = held.groupby(key, as_index=False)["spots"].sum()
+        avail = avail - hh[key].merge(h, on=key, how="left")["spots"].fillna(0).to_numpy(float)
+    cap = float((np.minimum(np.maximum(avail, 0), 3) * 0.97 * hh["mean_impressions"]).sum())
+    g = CHECK_SHARE * cap
+    (out / "deals" / "national-check.toml").write_text(_deal_toml(
+        "national-check", "Invented Advertiser National", layout["demos"][0], g, 1, layout["weeks"],
         24.0, "confidence = 0.95",
-        {"max_network_share": max(0.08, round(2.0 / len(layout["networks"]), 2)), "daypart_min_share": {"prime": 0.2}, "weekly_tolerance": 0.2,
-         "max_spots_per_unit": 3}))
+        {"max_network_share": max(0.10, round(2.5 / len(layout["networks"]), 2)),
+         "daypart_min_share": {"prime": 0.2}, "weekly_tolerance": 0.25, "max_spots_per_unit": 3}))
+    return g
 
 
 class _FixedPlan:
@@ -433,6 +452,11 @@ def main(argv=None) -> int:
     plans = book_plans(layout, forecast, inventory, n_deals=args.deals, seed=args.seed)
     write_deals(out, layout, plans, forecast, inventory, seed=args.seed)
     book_s = 0.0 if args.no_book else commit_book(out, plans)
+    if not args.no_book:  # size the checked deal against the avails the book leaves
+        from planner.book import held_spots
+        from planner.scenario import load_scenario
+
+        write_check_deal(out, layout, forecast, inventory, held_spots(load_scenario(out, generate=False)))
     held = sum(int(p["spots"]["spots"].sum()) for p in plans)
     facts = {"out": str(out), "zones": args.zones, "networks": args.networks, "dayparts": len(DAYPARTS),
              "weeks": args.weeks, "demos": args.demos, "days": args.days,
