@@ -507,11 +507,11 @@ def unit_history(scenario: Any, zone: str, network: str, daypart: str, demo: str
     shift = (qh < start_qh) if dp.wraps else np.zeros(len(qh), dtype=bool)
     start_day = dates - pd.to_timedelta(shift.astype(int), unit="D")
     rel = qh + 96 * shift
-    member = np.isin(rel, np.asarray(dp.quarter_hours)) & np.isin(start_day.dt.dayofweek, np.asarray(dp.days))
+    member = np.isin(rel, np.asarray(dp.quarter_hours)) & np.isin(start_day.dt.day_of_week, np.asarray(dp.days))
     if not member.any():
         return pd.DataFrame({"week_start": pd.Series([], dtype="datetime64[ns]"), "impressions": []})
     sd = start_day[member]
-    week = (sd - pd.to_timedelta(sd.dt.dayofweek, unit="D")).dt.normalize()
+    week = (sd - pd.to_timedelta(sd.dt.day_of_week, unit="D")).dt.normalize()
     g = pd.Series(h["rating"].to_numpy()[member], index=week.to_numpy()).groupby(level=0).mean()
     universe = scenario.universe(zone, demo)
     return pd.DataFrame({"week_start": g.index, "impressions": g.to_numpy(dtype=float) * universe})
