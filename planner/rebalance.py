@@ -36,7 +36,6 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy.special import ndtri
 
 from planner.delivery import FLIGHT_KEY, UNIT_KEY, DeliveryModel
 from planner.errors import InputError
