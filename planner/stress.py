@@ -134,6 +134,7 @@ class BookModel:
     other_cov: np.ndarray
     cost_per_impression: np.ndarray
     rows: pd.DataFrame | None = None
+    fixed: np.ndarray | None = None  # impressions already delivered and posted (rebalanced deals)
 
     @property
     def revenue(self) -> np.ndarray:
@@ -306,6 +307,8 @@ def exact_chunks(model: BookModel, draws: int, rng: np.random.Generator, *, per_
             aired = rng.binomial(x, 1.0 - p, size=(k, R))
             vals = aired * level + np.sqrt(aired) * sd * rng.standard_normal((k, R))
             block = np.asarray(vals @ agg)
+        if model.fixed is not None:
+            block = block + model.fixed
         yield block, z_net.astype(np.float32)
 
 
@@ -564,7 +567,11 @@ def stress_model(model: BookModel, *, draws: int = 100_000, seed: int = 0, metho
 
 def load_book_model(scenario: Any, book: str | os.PathLike | None = None, *, forecast: pd.DataFrame | None = None,
                     shocks: Sequence[str | Shock] = (), preempt_multiplier: float = 1.0):
-    """Read the book and the forecast and build the (shocked) `BookModel`. Returns (model, shocks)."""
+    """Read the book and the forecast and build the (shocked) `BookModel`. Returns (model, shocks).
+
+    A deal rebalanced with `--commit` counts its posted impressions as delivered (`fixed`) and
+    only its holds after the last posted week as uncertain.
+    """
     from planner.book import read_book
 
     deals, holds = read_book(scenario, book)
@@ -580,8 +587,21 @@ def load_book_model(scenario: Any, book: str | os.PathLike | None = None, *, for
         s, networks=inv["network"].astype(str).unique().tolist(),
         dayparts=[d.name for d in scenario.dayparts], zones=inv["zone"].astype(str).unique().tolist())
         for s in shocks]
-    units = apply_shocks(book_units(deals, holds, forecast, inv), parsed, preempt_multiplier)
-    return build_book_model(deals, units), parsed
+    units = book_units(deals, holds, forecast, inv)
+    # A deal rebalanced from posted actuals: its aired weeks are known (posted impressions), only
+    # the weeks after them are uncertain.
+    fixed = np.zeros(len(deals))
+    for j, d in enumerate(deals):
+        after = (getattr(d, "summary", None) or {}).get("rebalanced_after_week")
+        if after is not None:
+            units = units[~((units["deal"] == d.name) & (units["week"] <= int(after)))]
+            fixed[j] = float(d.summary.get("delivered") or 0.0)
+    units = apply_shocks(units.reset_index(drop=True), parsed, preempt_multiplier)
+    model = build_book_model(deals, units)
+    if fixed.any():
+        model.mean = model.mean + fixed
+        model.fixed = fixed
+    return model, parsed
 
 
 def stress_book(scenario: Any, book: str | os.PathLike | None = None, *, draws: int = 100_000, seed: int = 0,

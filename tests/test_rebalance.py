@@ -177,6 +177,18 @@ def test_rebalance_commit_replaces_the_remaining_holds(tmp_path):
     assert bk.events(scn)["action"].tolist()[-1] == "rebalance"
     beta = bk.get_deal(scn, "beta")  # the other deal's holds are untouched
     assert beta.spots == int(beta.holds["spots"].sum())
+    # the stress then counts the posted weeks as delivered and draws only the remaining weeks
+    from planner import stress as st
+
+    model, _ = st.load_book_model(scn, forecast=fc)
+    j = model.deals.index("alpha")
+    assert model.fixed[j] == pytest.approx(r.delivered) and model.fixed[model.deals.index("beta")] == 0
+    rows = model.rows[model.rows["deal"] == "alpha"]
+    assert rows["week"].min() == 5
+    fast = st.stress_model(model, draws=20_000, seed=1)
+    exact = st.stress_model(model, draws=20_000, seed=2, method="exact")
+    assert exact.deals[j].expected_delivery == pytest.approx(fast.deals[j].expected_delivery, rel=0.01)
+    assert fast.deals[j].expected_delivery == pytest.approx(model.mean[j], rel=0.01)
 
 
 def test_shortfall_that_cannot_be_closed_is_reported(tmp_path):
