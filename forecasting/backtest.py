@@ -73,7 +73,7 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
         raise ValueError(f"history of {T} days is too short for {W} held-out weeks")
     fc = forecaster or DaypartForecaster()
     train = ProfileCube(cube.series, cube.day0, cube.values[:, :cut])
-    fc.fit(train, info, specs, cube.day0 + pd.Timedelta(days=h0), W, progress=progress)
+    fc.fit(train, info, specs, cube.day0 + pd.Timedelta(days=h0), W, progress=progress, universes=universes)
 
     actual_cells = cube.values[:, h0:]
     pad = fc.plan_pred_.shape[1] - actual_cells.shape[1]
@@ -105,6 +105,7 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
     uni = universes[["zone", "demo", "universe"]].astype({"zone": str, "demo": str})
     u = df.merge(uni, on=["zone", "demo"], how="left")["universe"].to_numpy(float)
     u = np.where(np.isfinite(u), u, 1.0)
+    df["size"] = np.log10(np.maximum(model_mean[s, p, w] * fc.universe_s_[s], 1e-9))
     rel = fc.level_.predict(df)
     rel_sd = np.sqrt(rel["rel_sd_network"] ** 2 + rel["rel_sd_flight"] ** 2 + rel["rel_sd_week"] ** 2).to_numpy()
     df["actual"] = actual[s, p, w] * u

@@ -187,7 +187,8 @@ class DaypartForecaster:
                 "genre": info["genre"].to_numpy()[s], "demo": info["demo"].to_numpy()[s],
                 "daypart": names[p], "week": w + 1, "rel_error": rel,
                 "truncated": f.truncated[s], "history_weeks": f.history_weeks[s],
-                "recent": f.recent[s, p]}))
+                "recent": f.recent[s, p],
+                "size": np.log10(np.maximum(f.forecast[s, p, w] * self.universe_s_[s], 1e-9))}))
             for name, fb in f.baselines.items():
                 okb = (f.counts >= need) & np.isfinite(f.actual) & np.isfinite(fb) & (fb > 0) & ~f.truncated[:, None, None]
                 s, p, w = np.nonzero(okb)
@@ -229,7 +230,7 @@ class DaypartForecaster:
 
     # ------------------------------------------------------------------ fit
     def fit(self, cube: ProfileCube, info: pd.DataFrame, dayparts, plan_start, weeks: int,
-            progress: Progress | None = None) -> "DaypartForecaster":
+            progress: Progress | None = None, universes: pd.DataFrame | None = None) -> "DaypartForecaster":
         """Fit everything for plan weeks starting on `plan_start` (a date; weeks of 7 days).
 
         Parameters
@@ -240,11 +241,14 @@ class DaypartForecaster:
         plan_start : first day of plan week 1.
         weeks : number of plan weeks.
         progress : callback ``(message, fraction_done)``.
+        universes : optional ``zone, demo, universe``; the level-error pools then use each unit's
+            expected impressions as its size (else its expected rating).
         """
         progress = progress or _noop
         dayparts = as_specs(dayparts)
         self.dayparts_ = dayparts
         self.info_ = info.reset_index(drop=True)
+        self.universe_s_ = self._series_universe(universes)
         self.weeks_ = int(weeks)
         self.day0_ = cube.day0
         T = cube.n_days
@@ -300,6 +304,15 @@ class DaypartForecaster:
         progress("done", 1.0)
         return self
 
+    def _series_universe(self, universes: pd.DataFrame | None) -> np.ndarray:
+        """Universe of each series (people); 1 where unknown (sizes are then ratings)."""
+        if universes is None:
+            return np.ones(len(self.info_))
+        uni = universes[["zone", "demo", "universe"]].astype({"zone": str, "demo": str})
+        u = self.info_[["zone", "demo"]].astype(str).merge(uni, on=["zone", "demo"], how="left")["universe"]
+        u = u.to_numpy(float)
+        return np.where(np.isfinite(u) & (u > 0), u, 1.0)
+
     def level_factor(self, recent: np.ndarray) -> np.ndarray:
         """Multiplier (S, P, W) of the raw daypart means: recent-residual carry-over x bias."""
         names = [dp.name for dp in self.dayparts_]
@@ -340,8 +353,10 @@ class DaypartForecaster:
         uni["demo"] = uni["demo"].astype(str)
         t = t.merge(uni, on=["zone", "demo"], how="left")
         t["universe"] = t["universe"].astype(float)
-        sd = self.level_.predict(t)
         mu = t["mean_rating"].to_numpy(float) * t["universe"].to_numpy(float)
+        # Size as in the folds (the fit's universes, else ratings): log10 expected impressions.
+        t["size"] = np.log10(np.maximum(self.plan_mean_[s, p, w] * self.universe_s_[s], 1e-9))
+        sd = self.level_.predict(t)
         t["mean_impressions"] = mu
         t["airing_sd"] = t["cv"].to_numpy() * mu
         t["level_sd_network"] = sd["rel_sd_network"].to_numpy() * mu

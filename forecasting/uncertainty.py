@@ -8,7 +8,8 @@ daypart d, demo m, week w) the relative error of the daypart mean is
 
 (network factor shared by every unit of the network; flight factor shared across the weeks of a
 zone x network x daypart (x demo); unit-week own factor), with variances estimated by the method
-of moments of the nested ANOVA, pooled by daypart x genre and shrunk toward the daypart.
+of moments of the nested ANOVA, pooled by daypart x size class (expected impressions) x genre and shrunk
+toward daypart x size class, then toward the daypart.
 Units with short history: series truncated on purpose in the folds measure how much larger
 their errors are; the extra variance goes to the flight factor (a poorly known level persists
 through the flight).
@@ -85,11 +86,18 @@ class LevelErrorModel:
             b = frame["daypart"].map(self.bias_).astype(float).fillna(0.0)
             frame["e"] = frame["ratio"] / (1.0 + b) - 1.0
         self.n_rows_ = len(full)
+        if "size" in full and np.isfinite(full["size"]).any():
+            self.size_edges_ = np.quantile(full["size"][np.isfinite(full["size"])], [0.25, 0.5, 0.75])
+        else:
+            self.size_edges_ = np.array([])
+        for frame in (df, full):
+            frame["size_bin"] = self.size_bin(frame)
 
         # Within flights: unit-week own factor.
         full["flight_mean"] = _group_mean(full, FLIGHT_KEYS, "e")
         g = full.groupby(FLIGHT_KEYS, sort=False, observed=True)
         flights = g.agg(daypart=("daypart", "first"), genre=("genre", "first"), network=("network", "first"),
+                        size_bin=("size_bin", "first"),
                         fold=("fold", "first"), W=("e", "size"), mean=("e", "mean"),
                         ss=("e", lambda x: float(((x - x.mean()) ** 2).sum()))).reset_index(drop=True)
         # Network x fold means, and each flight's deviation from its network mean.
@@ -108,22 +116,34 @@ class LevelErrorModel:
             var_f = float(np.mean(fl["dev"].to_numpy() ** 2 * corr) - np.mean(var_w / fl["W"]))
             return var_w, var_f, float(len(fl))
 
+        # Pools: daypart <- daypart x size class <- daypart x size class x genre, each shrunk
+        # toward its parent by `prior_flights` (size: the unit's expected impressions, whose
+        # relative errors shrink as the audience grows).
+        k0 = self.prior_flights
         by_dp = {}
         for dp, fl in flights.groupby("daypart"):
             var_w, var_f, n = components(fl)
-            by_dp[dp] = (var_w, max(var_f, FLOOR_SD["flight"] ** 2))
-        self.var_week_daypart_ = pd.Series({k: max(v[0], FLOOR_SD["week"] ** 2) for k, v in by_dp.items()})
+            by_dp[dp] = (max(var_w, FLOOR_SD["week"] ** 2) if np.isfinite(var_w) else FLOOR_SD["week"] ** 2,
+                         max(var_f, FLOOR_SD["flight"] ** 2))
+        self.var_week_daypart_ = pd.Series({k: v[0] for k, v in by_dp.items()})
         self.var_flight_daypart_ = pd.Series({k: v[1] for k, v in by_dp.items()})
-        rows = []
-        k0 = self.prior_flights
-        for (dp, genre), fl in flights.groupby(["daypart", "genre"]):
+
+        def shrunk(fl, parent_w, parent_f):
             var_w, var_f, n = components(fl)
-            pw, pf = self.var_week_daypart_[dp], self.var_flight_daypart_[dp]
-            var_w = pw if not np.isfinite(var_w) else (n * var_w + k0 * pw) / (n + k0)
-            var_f = (n * max(var_f, 0.0) + k0 * pf) / (n + k0)
-            rows.append({"daypart": dp, "genre": genre, "flight": max(var_f, FLOOR_SD["flight"] ** 2),
-                         "week": max(var_w, FLOOR_SD["week"] ** 2)})
-        self.var_cells_ = pd.DataFrame(rows).set_index(["daypart", "genre"])
+            var_w = parent_w if not np.isfinite(var_w) else (n * var_w + k0 * parent_w) / (n + k0)
+            var_f = (n * max(var_f, 0.0) + k0 * parent_f) / (n + k0)
+            return max(var_w, FLOOR_SD["week"] ** 2), max(var_f, FLOOR_SD["flight"] ** 2)
+
+        mid = {}
+        for (dp, sb), fl in flights.groupby(["daypart", "size_bin"]):
+            mid[(dp, sb)] = shrunk(fl, self.var_week_daypart_[dp], self.var_flight_daypart_[dp])
+        rows = []
+        for (dp, sb, genre), fl in flights.groupby(["daypart", "size_bin", "genre"]):
+            vw, vf = shrunk(fl, *mid[(dp, sb)])
+            rows.append({"daypart": dp, "size_bin": sb, "genre": genre, "flight": vf, "week": vw})
+        self.var_mid_ = pd.DataFrame([{"daypart": k[0], "size_bin": k[1], "week": v[0], "flight": v[1]}
+                                      for k, v in mid.items()]).set_index(["daypart", "size_bin"])
+        self.var_cells_ = pd.DataFrame(rows).set_index(["daypart", "size_bin", "genre"])
 
         # Network factor: mean square of the network x fold means less what flights and weeks add.
         fl_var = flights["daypart"].map(self.var_flight_daypart_).astype(float)
@@ -140,13 +160,13 @@ class LevelErrorModel:
 
     def _fit_scale(self, full: pd.DataFrame) -> None:
         """One factor k on every level sd so the held-out errors' central 50/80/95% coverage is
-        closest to nominal (least squares over the three levels).
+        closest to nominal (least squares over the three levels), on the errors of `full`.
 
         The errors are heavier-tailed than normal (shocks), so sds matched to the variance give
         bands too wide in the centre; matching the quantiles that deals are priced on is what the
         normal model downstream needs. k is estimated from the same held-out errors.
         """
-        vf, vw = self._cell_vars(full["daypart"].astype(str), full["genre"].astype(str))
+        vf, vw = self._cell_vars(full)
         z = np.abs(full["e"].to_numpy(float)) / np.sqrt(self.var_network_ + vf + vw)
         levels = np.array([0.5, 0.8, 0.95])
         q = norm.ppf(0.5 + levels / 2)
@@ -158,6 +178,7 @@ class LevelErrorModel:
         self.scale_ = k
         self.var_network_ *= k * k
         self.var_cells_ = self.var_cells_ * (k * k)
+        self.var_mid_ = self.var_mid_ * (k * k)
         self.var_flight_daypart_ = self.var_flight_daypart_ * (k * k)
         self.var_week_daypart_ = self.var_week_daypart_ * (k * k)
 
@@ -198,28 +219,44 @@ class LevelErrorModel:
         if len(short) == 0:
             self.history_ratio_ = pd.DataFrame({"weeks": [self.full_weeks_], "ratio": [1.0]})
             return
-        v_full = self._total_var(short["daypart"], short["genre"])
+        v_full = self._total_var(short)
         ratio = (short["e"] ** 2 / v_full).groupby(short["history_weeks"].round().astype(int)).mean()
         ratio = ratio.sort_index()
         # Non-increasing in history length, never below 1.
         vals = np.maximum.accumulate(np.maximum(ratio.to_numpy()[::-1], 1.0))[::-1]
         self.history_ratio_ = pd.DataFrame({"weeks": ratio.index.to_numpy(dtype=float), "ratio": vals})
 
-    def _cell_vars(self, daypart: pd.Series, genre: pd.Series) -> tuple[np.ndarray, np.ndarray]:
-        key = pd.MultiIndex.from_arrays([daypart.astype(str).to_numpy(), genre.astype(str).to_numpy()])
-        cells = self.var_cells_.reindex(key)
-        vf = cells["flight"].to_numpy(float)
-        vw = cells["week"].to_numpy(float)
-        fb_f = daypart.map(self.var_flight_daypart_).to_numpy(float)
-        fb_w = daypart.map(self.var_week_daypart_).to_numpy(float)
+    def size_bin(self, units: pd.DataFrame) -> np.ndarray:
+        """Size class 0..3 of units from their ``size`` (log10 expected impressions; 0 if absent)."""
+        if "size" not in units or len(self.size_edges_) == 0:
+            return np.zeros(len(units), dtype=int)
+        size = units["size"].to_numpy(float)
+        size = np.where(np.isfinite(size), size, np.median(self.size_edges_))
+        return np.searchsorted(self.size_edges_, size)
+
+    def _cell_vars(self, units: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+        dp = units["daypart"].astype(str).to_numpy()
+        sb = self.size_bin(units)
+        genre = units["genre"].astype(str).to_numpy()
+        cells = self.var_cells_.reindex(pd.MultiIndex.from_arrays([dp, sb, genre]))
+        mid = self.var_mid_.reindex(pd.MultiIndex.from_arrays([dp, sb]))
+        fb_f = pd.Series(dp).map(self.var_flight_daypart_).to_numpy(float)
+        fb_w = pd.Series(dp).map(self.var_week_daypart_).to_numpy(float)
         allf = float(self.var_flight_daypart_.mean())
         allw = float(self.var_week_daypart_.mean())
-        vf = np.where(np.isfinite(vf), vf, np.where(np.isfinite(fb_f), fb_f, allf))
-        vw = np.where(np.isfinite(vw), vw, np.where(np.isfinite(fb_w), fb_w, allw))
+
+        def pick(*cands):
+            out = cands[-1]
+            for c in reversed(cands[:-1]):
+                out = np.where(np.isfinite(c), c, out)
+            return out
+
+        vf = pick(cells["flight"].to_numpy(float), mid["flight"].to_numpy(float), fb_f, np.full(len(dp), allf))
+        vw = pick(cells["week"].to_numpy(float), mid["week"].to_numpy(float), fb_w, np.full(len(dp), allw))
         return vf, vw
 
-    def _total_var(self, daypart: pd.Series, genre: pd.Series) -> np.ndarray:
-        vf, vw = self._cell_vars(daypart, genre)
+    def _total_var(self, units: pd.DataFrame) -> np.ndarray:
+        vf, vw = self._cell_vars(units)
         return self.var_network_ + vf + vw
 
     def history_factor(self, history_weeks) -> np.ndarray:
@@ -241,7 +278,7 @@ class LevelErrorModel:
 
         Parameters
         ----------
-        units : ``daypart, genre, history_weeks``.
+        units : ``daypart, genre, history_weeks`` and ``size`` (log10 expected impressions).
 
         Returns
         -------
@@ -249,7 +286,7 @@ class LevelErrorModel:
         aligned with `units`.
         """
         dp = units["daypart"].astype(str)
-        vf, vw = self._cell_vars(dp, units["genre"].astype(str))
+        vf, vw = self._cell_vars(units)
         total = self.var_network_ + vf + vw
         extra = (self.history_factor(units["history_weeks"].to_numpy(float)) - 1.0) * total
         return pd.DataFrame({

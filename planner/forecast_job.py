@@ -32,7 +32,7 @@ TABLE_FILE = "forecast.parquet"
 MODEL_FILE = "model.pkl"
 META_FILE = "meta.json"
 #: bump when the model or the table changes meaning (old caches are then refitted)
-MODEL_VERSION = "1"
+MODEL_VERSION = "2"
 
 Progress = Callable[[str, float], None]
 
@@ -148,7 +148,8 @@ def fit_forecast(scenario, *, demo: str | None = None, engine: str = "duckdb", s
 
     fc = DaypartForecaster(random_state=seed)
     try:
-        fc.fit(cube, info, scenario.dayparts, pd.Timestamp(scenario.first_week), scenario.weeks, progress=sub)
+        fc.fit(cube, info, scenario.dayparts, pd.Timestamp(scenario.first_week), scenario.weeks, progress=sub,
+               universes=scenario.universes)
     except ValueError as exc:
         raise InputError(f"{Path(scenario.history_path).name}: {exc}") from None
     table = fc.forecast_table(scenario.universes, units=scenario.inventory)
