@@ -372,10 +372,10 @@ def test_commit_killed_midway_leaves_the_book_as_before(tmp_path):
     code = (f"import sys; sys.path.insert(0, {str(TESTS)!r}); import test_book as t; "
             f"from planner import book as bk; scn, _ = t.make_synthetic({str(folder)!r}, avails=(2, 2)); "
             f"bk.commit_deal(scn, 'beta', planner=t.greedy_planner(3, t._scarce_units()))")
-    env = {**os.environ, "PYTHONPATH": str(ROOT), bk._SLEEP_ENV: "60"}
+    env = {**os.environ, "PYTHONPATH": str(ROOT), bk._SLEEP_ENV: "300"}
     p = subprocess.Popen([PY, "-c", code], env=env, cwd=ROOT, stderr=subprocess.PIPE)
     path = folder / "book.sqlite"
-    deadline = time.time() + 60
+    deadline = time.time() + 180
     while not _locked(path):  # wait until the child holds the write lock, its rows written
         assert p.poll() is None and time.time() < deadline
         time.sleep(0.05)
