@@ -25,7 +25,9 @@ def run_step(argv: list[str], *, env: dict | None = None, timeout: float | None 
     """Run `argv` (a Python script and its arguments) as a child; return its JSON result.
 
     The result gains ``wall_seconds`` (parent clock, process start to exit) and
-    ``peak_rss_bytes`` (the child's whole-process peak). Raises RuntimeError on failure.
+    ``peak_rss_bytes`` (the child's whole-process peak). Raises RuntimeError on failure. With
+    `timeout`, a child still running is killed; if it had printed a (partial) JSON result, that
+    is returned with ``timed_out: True``.
     """
     cmd = [sys.executable, *map(str, argv)]
     full_env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
@@ -36,6 +38,7 @@ def run_step(argv: list[str], *, env: dict | None = None, timeout: float | None 
         t0 = time.perf_counter()
         proc = subprocess.Popen(cmd, stdout=out, stderr=None, env=full_env, cwd=str(ROOT))
         deadline = None if timeout is None else t0 + timeout
+        timed_out = False
         while True:
             pid, status, usage = os.wait4(proc.pid, os.WNOHANG)
             if pid:
@@ -43,12 +46,18 @@ def run_step(argv: list[str], *, env: dict | None = None, timeout: float | None 
             if deadline is not None and time.perf_counter() > deadline:
                 proc.kill()
                 pid, status, usage = os.wait4(proc.pid, 0)
+                timed_out = True
                 break
             time.sleep(0.05)
         wall = time.perf_counter() - t0
         proc.returncode = os.waitstatus_to_exitcode(status)
         out.seek(0)
         text = out.read()
+    lines = [ln for ln in text.strip().splitlines() if ln.startswith("{")]
+    if timed_out and lines:  # a step that reports as it goes: keep what it measured
+        result = json.loads(lines[-1])
+        result.update(wall_seconds=wall, peak_rss_bytes=int(usage.ru_maxrss) * 1024, timed_out=True)
+        return result
     if proc.returncode != 0:
         raise RuntimeError(f"step failed (exit {proc.returncode}): {' '.join(cmd)}\n{text[-2000:]}")
     lines = [ln for ln in text.strip().splitlines() if ln.startswith("{")]

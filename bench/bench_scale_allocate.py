@@ -110,26 +110,28 @@ def step_allocate(args) -> None:
     nnz = int(model.h.getLp().a_matrix_.value_.__len__())
     del model
 
-    t0 = time.perf_counter()
-    res = check_deal(scenario, args.deal, solver=args.solver, forecast=forecast, held=held)
-    check_s = time.perf_counter() - t0
-
     pulp_s = None
     if not args.skip_pulp:
         t0 = time.perf_counter()
         lp = build_pulp(prob)
         pulp_s = time.perf_counter() - t0
         del lp
-    M.emit({"variables": int(prob.n), "in_scope_units": int(len(prob.scope)), "nonzeros": nnz,
+    part = {"variables": int(prob.n), "in_scope_units": int(len(prob.scope)), "nonzeros": nnz,
             "load_seconds": load_s, "prep_seconds": prep_s, "array_build_seconds": array_build_s,
             "lp_solve_seconds": lp_solve_s, "lp_ok": bool(ok), "lp_objective": lp_obj,
+            "pulp_build_seconds": pulp_s, "solver": args.solver, "check_started_at": time.time()}
+    M.emit(part)  # partial result, kept if the check is stopped by the time limit
+
+    t0 = time.perf_counter()
+    res = check_deal(scenario, args.deal, solver=args.solver, forecast=forecast, held=held)
+    check_s = time.perf_counter() - t0
+    M.emit({**part,
             "check_seconds": check_s, "check_build_seconds": res.build_seconds,
             "check_solve_seconds": res.solve_seconds, "deliverable": bool(res.deliverable),
             "cost": res.cost, "gap": res.gap, "probability_of_delivery": res.probability_of_delivery,
             "max_guarantee": res.max_guarantee, "guarantee": res.guarantee, "cuts": res.cuts,
             "spots": res.spots, "units_bought": res.units_bought, "binding": res.binding[:5],
-            "pulp_build_seconds": pulp_s, "held_spots": int(held["spots"].sum()) if len(held) else 0,
-            "solver": args.solver})
+            "held_spots": int(held["spots"].sum()) if len(held) else 0})
 
 
 def main(argv=None) -> int:
@@ -138,6 +140,8 @@ def main(argv=None) -> int:
     ap.add_argument("--deal", default="national-check")
     ap.add_argument("--solver", default="cbc", choices=["cbc", "highs"])
     ap.add_argument("--skip-pulp", action="store_true")
+    ap.add_argument("--timeout", type=float, default=840.0,
+                    help="stop the check after this many seconds in all (reported as not finished)")
     ap.add_argument("--json", action="store_true")
     ap.add_argument("--step", default=None)
     args = ap.parse_args(argv)
@@ -148,13 +152,20 @@ def main(argv=None) -> int:
     cmd = [Path(__file__), "--step", "allocate", "--large", args.large, "--deal", args.deal, "--solver", args.solver]
     if args.skip_pulp:
         cmd.append("--skip-pulp")
-    res = M.run_step(cmd)
+    res = M.run_step(cmd, timeout=args.timeout)
     peak = M.gib(res["peak_rss_bytes"])
     build = res["prep_seconds"] + res["array_build_seconds"]
+    if "check_seconds" in res:
+        check_row = M.row(f"check of a national deal, {res['variables']:,} spot variables ({args.solver}), time",
+                          "< 60 s", f"{res['check_seconds']:.1f} s", res["check_seconds"] / TARGET_CHECK,
+                          res["check_seconds"] < TARGET_CHECK)
+    else:  # stopped: the check ran from check_started_at until the kill
+        ran = time.time() - res["check_started_at"]
+        res["check_seconds_at_stop"] = ran
+        check_row = M.row(f"check of a national deal, {res['variables']:,} spot variables ({args.solver}), time",
+                          "< 60 s", f"> {ran:.0f} s (stopped)", ran / TARGET_CHECK, False)
     rows = [
-        M.row(f"check of a national deal, {res['variables']:,} spot variables ({args.solver}), time", "< 60 s",
-              f"{res['check_seconds']:.1f} s", res["check_seconds"] / TARGET_CHECK,
-              res["check_seconds"] < TARGET_CHECK),
+        check_row,
         M.row("  model build: problem prep + array LP build", "< 15 s",
               f"{res['prep_seconds']:.1f} + {res['array_build_seconds']:.2f} s", build / TARGET_BUILD,
               build < TARGET_BUILD),
