@@ -261,6 +261,8 @@ def test_cli_commit_stress_rebalance_end_to_end(small_scenario, scenario_copy, m
     assert code == 0 and "not committed" in out  # an answer, not bad input
     code, _, err = _cli(capsys, "book", "commit", folder, "small-comfortable")
     assert code == 2 and "already in the book" in err
+    code, out, _ = _cli(capsys, "book", "check", folder, "--json")
+    assert code == 0 and json.loads(out)["consistent"] is True and json.loads(out)["deals"] == 1
     code, out, _ = _cli(capsys, "stress", folder, "--draws", 20000, "--seed", 4, "--json",
                         "--shock", f"network={scn.network_names[0]}:-0.15", "--shock", "all:-0.05",
                         "--preempt-multiplier", 2)

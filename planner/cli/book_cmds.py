@@ -15,7 +15,7 @@ from planner.cli import app
 from planner.cli.common import count, info, money, out_console, print_json, progress
 from planner.errors import InputError
 
-book_app = typer.Typer(help="The book of sold deals: commit, list, show, release.", no_args_is_help=True)
+book_app = typer.Typer(help="The book of sold deals: commit, list, show, release, check.", no_args_is_help=True)
 app.add_typer(book_app, name="book")
 
 CAUTION = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
@@ -166,6 +166,27 @@ def release_cmd(
         print_json({"released": d.name, "spots_freed": d.spots})
         return
     out_console.print(f"released {d.name}: {count(d.spots or 0)} spots freed")
+
+
+@book_app.command("check")
+def check_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    book: Optional[Path] = _BOOK_OPT,
+    as_json: bool = _JSON_OPT,
+) -> None:
+    """Check the book: database integrity, units held beyond their avails, orphan holds."""
+    from planner.book import book_path, check_book
+
+    scn = _load(scenario)
+    r = check_book(scn, book)
+    ok = r.get("integrity", "ok") == "ok" and not (r["over_avails"] or r["orphan_holds"] or r["spot_count_mismatch"])
+    if as_json:
+        print_json({"book": str(book_path(scenario, book)), "consistent": ok, **r})
+        return
+    out_console.print(f"book {book_path(scenario, book)}: {r['deals']} deal(s); "
+                      f"{'consistent' if ok else 'NOT consistent'} (integrity {r.get('integrity', 'ok')}, "
+                      f"units over avails {r['over_avails']}, orphan holds {r['orphan_holds']}, "
+                      f"spot-count mismatches {r['spot_count_mismatch']})")
 
 
 @app.command("rebalance")
