@@ -987,10 +987,10 @@ def binding_constraints(prob: AllocationProblem, alloc: Allocation, *, dual_tol:
 
 def _feasible_at(prob: AllocationProblem) -> bool:
     """Whether a plan (continuous spots) reaches the guarantee, to 0.1%."""
-    return max_guarantee(prob).at_plan >= prob.guarantee * (1 - 1e-3)
+    return max_guarantee(prob, tol=2e-3, max_iter=40).at_plan >= prob.guarantee * (1 - 1e-3)
 
 
-def _bisect(lo: float, hi: float, ok_at, steps: int = 7) -> float:
+def _bisect(lo: float, hi: float, ok_at, steps: int = 5) -> float:
     """The feasible end of [lo, hi] closest to the infeasible end (lo feasible, hi not)."""
     for _ in range(steps):
         mid = 0.5 * (lo + hi)
@@ -1001,7 +1001,7 @@ def _bisect(lo: float, hi: float, ok_at, steps: int = 7) -> float:
     return lo
 
 
-def diagnose(prob: AllocationProblem, steps: int = 7) -> list[str]:
+def diagnose(prob: AllocationProblem, steps: int = 5) -> list[str]:
     """Why a guarantee cannot be met: each rule family relaxed in turn, in seller words.
 
     For each rule that alone blocks the guarantee, the loosest setting of it that would make the

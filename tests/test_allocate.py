@@ -181,7 +181,7 @@ def test_infeasible_deal_is_explained_in_seller_words():
     reach = float(day[0].split("can reach ")[1].split("%")[0]) / 100
     ok = al.with_rules(prob, daypart_min_share={"day": reach - 0.01})
     assert al.max_guarantee(ok).at_plan >= prob.guarantee
-    too = al.with_rules(prob, daypart_min_share={"day": reach + 0.02})
+    too = al.with_rules(prob, daypart_min_share={"day": reach + 0.9 / 2 ** 5 + 0.01})  # bisection step
     assert al.max_guarantee(too).value < prob.guarantee
 
 
