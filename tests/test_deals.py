@@ -217,3 +217,36 @@ def test_cli_infeasible_is_exit_0(small_scenario, cli_forecast, capsys):
     code = main(["check", str(small_scenario), "small-too-big", "--json", "--solver", "highs"])
     js = json.loads(capsys.readouterr().out)
     assert code == 0 and "max_guarantee" in js
+
+
+# ---------------------------------------------------------------------------------------------- demo
+DEMO_VERDICTS = {"brambleford-spring": True, "corvella-launch": True, "saltmarsh-flu": False,
+                 "wrenfield-weekly": True}  # intended verdicts written in the invented deal files
+
+
+@pytest.mark.slow
+def test_demo_deals_verdicts_gap_and_monte_carlo(demo_fitted):
+    from planner.forecast_job import ensure_forecast
+    from planner.scenario import load_scenario
+
+    scn = load_scenario(demo_fitted)
+    fc = ensure_forecast(scn).table
+    for name, deliverable in DEMO_VERDICTS.items():
+        run = deals.run_deal(scn, name, forecast=fc, held=None)
+        a, prob = run.allocation, run.problem
+        assert a.feasible == deliverable, name
+        if not deliverable:
+            r = deals.check_result(run)
+            assert r.max_guarantee < prob.guarantee and len(r.binding) >= 2
+            continue
+        assert a.gap <= 0.01 and a.lp_gap <= 0.01, name
+        dm = prob.model
+        stated = dm.probability(a.x, prob.guarantee)
+        # Monte Carlo of the same error model: 20,000 exact draws (Bernoulli preemption per spot)
+        d = dm.sample(a.x, 20_000, np.random.default_rng(1), exact=True)
+        mc = float((d >= prob.guarantee).mean())
+        assert abs(mc - stated) <= 0.01, (name, mc, stated)
+        if prob.rules.confidence is not None:
+            assert mc >= prob.rules.confidence - 0.01, name
+        r = deals.plan_result(run)
+        assert r.probability_if_independent >= mc  # all-independent errors overstate the chance
