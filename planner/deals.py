@@ -375,15 +375,20 @@ def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
 
 
 def frontier(prob: al.AllocationProblem, sizes, *, solver: str = "cbc", gap: float = al.DEFAULT_GAP,
-             time_limit: float = al.DEFAULT_TIME_LIMIT, max_g: float | None = None) -> list[dict]:
-    """Cost and probability of delivery of the min-cost plan at each guarantee size (impressions)."""
+             time_limit: float = al.DEFAULT_TIME_LIMIT, max_g: float | None = None,
+             integer: bool = False) -> list[dict]:
+    """Cost and probability of delivery of the min-cost plan at each guarantee size (impressions).
+
+    By default from the LP relaxation (continuous spots: one LP per size, a lower bound on the
+    whole-spot cost); `integer=True` solves each size as a MIP.
+    """
     rows = []
     for g in sorted(set(float(v) for v in sizes if v > 0)):
         if max_g is not None and g > max_g * (1 + 1e-9):
             rows.append(dict(guarantee=g, deliverable=False, cost=None, cost_cpm=None, expected_impressions=None,
                              probability_of_delivery=None))
             continue
-        a = al.allocate(al.with_guarantee(prob, g), solver=solver, gap=gap, time_limit=time_limit)
+        a = al.allocate(al.with_guarantee(prob, g), solver=solver, gap=gap, time_limit=time_limit, integer=integer)
         if not a.feasible:
             rows.append(dict(guarantee=g, deliverable=False, cost=None, cost_cpm=None, expected_impressions=None,
                              probability_of_delivery=None))

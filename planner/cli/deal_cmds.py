@@ -121,7 +121,7 @@ def check_cmd(
         for b in r.binding:
             out_console.print(f"  - {b}", highlight=False)
     if r.frontier:
-        t = Table(title="frontier", title_justify="left")
+        t = Table(title="frontier (LP relaxation: continuous spots)", title_justify="left")
         for c in ("guarantee", "deliverable", "cost", "cost per 1000", "chance of delivery"):
             t.add_column(c, justify="right")
         for f in r.frontier:
