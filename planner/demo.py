@@ -202,7 +202,9 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
             stress = stress_book(scn, draws=draws, seed=seed, forecast=fc.table)
     report = folder / REPORT_NAME
     with timed("report", "5/5 writing the report"):
-        data = build_report(scn, forecast=fc.table, stress=stress, runs=runs, seed=seed, solver=solver)
+        data = build_report(scn, forecast=fc.table, stress=stress, runs=runs, seed=seed, solver=solver,
+                            check_note="The demo checked each deal in turn against the book as it stood "
+                                       "(the deals committed before it), and committed it when deliverable.")
         write_report(data, report)
     result = DemoResult(folder=folder, report=report, scenario=scn.name, currency=scn.currency,
                         reused_folder=reused_folder, reused_forecast=reused_forecast, checks=checks,

@@ -682,14 +682,16 @@ def evaluate_deal(scenario: Any, name: str, *, forecast: pd.DataFrame, held: pd.
 def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str | Path | None = None,
                  forecast: pd.DataFrame | None = None, stress: Any = None,
                  runs: dict[str, tuple[Any, Any]] | None = None, draws: int = 20_000, seed: int = 0,
-                 solver: str = "cbc", n_units: int = 3, stage: Any = None) -> ReportData:
+                 solver: str = "cbc", n_units: int = 3, stage: Any = None,
+                 check_note: str | None = None) -> ReportData:
     """Gather everything the report shows for `deals` (default: every deal of the scenario).
 
     Each deal is checked (with its frontier) and planned against the avails not held by the
     book; a deal already in the book is checked against the other deals' holds (its own set
-    aside). `runs` supplies (CheckResult, PlanResult) pairs already computed (the demo passes the
-    ones it committed). The book, when it holds deals, is stress-tested with `draws` and `seed`
-    unless `stress` (a `planner.stress.StressResult` with draws kept) is given.
+    aside). `runs` supplies (CheckResult, PlanResult, frontier rows) already computed (the demo
+    passes the ones it made; `check_note` then says how they were made). The book, when it holds
+    deals, is stress-tested with `draws` and `seed` unless `stress` (a `StressResult` with its
+    draws kept) is given.
     """
     from planner.book import held_spots, list_deals
 
@@ -731,9 +733,9 @@ def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str
         g = pd.concat([g.drop_duplicates("network"), g]).drop_duplicates(["zone", "network", "daypart"])
         units = [tuple(r) for r in g.head(n_units)[["zone", "network", "daypart", "demo"]].itertuples(index=False)]
     bands = forecast_bands(scenario, forecast, units)
-    notes = [f"Every deal is checked against the avails not held by the book; a deal in the book is "
-             f"checked against the other deals' holds (its own set aside). Impressions are per deal demo; "
-             f"money in {scenario.currency}."]
+    notes = [(check_note or "Every deal is checked against the avails not held by the book; a deal in the "
+              "book is checked against the other deals' holds (its own set aside).")
+             + f" Impressions are in each deal's demo; money in {scenario.currency}."]
     return ReportData(
         scenario_name=scenario.name, scenario_path=str(scenario.path), currency=scenario.currency,
         deals=sections, book=book_part, forecasts=bands, dayparts=[d.name for d in scenario.dayparts],
