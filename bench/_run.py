@@ -79,6 +79,40 @@ def run_one(name: str, args) -> tuple[list[dict], dict]:
     return rows, details
 
 
+_PREFIX = {"ingest": "ingest", "stress": "stress", "naive": "stress", "check": "allocate",
+           "allocation": "allocate", "forecast": "fit", "demo-stress": "demo-stress",
+           "demo-generate": "demo-generate", "demo-fit": "demo-fit", "demo-allocate": "demo-allocate"}
+
+
+def previous_results() -> tuple[list[dict], dict]:
+    """Rows (tagged with their benchmark) and details of the last RESULTS.md, for --merge."""
+    path = BENCH / "RESULTS.md"
+    if not path.exists():
+        return [], {}
+    text = path.read_text()
+    rows, bench = [], None
+    for line in text.splitlines():
+        if not line.startswith("| ") or line.startswith("| figure") or line.startswith("| ---"):
+            continue
+        cells = [c for c in line[2:-2].split(" | ")]
+        if len(cells) != 5:
+            continue
+        fig, target, measured, ratio, met = cells
+        if not fig.startswith(" "):
+            bench = next((b for k, b in _PREFIX.items() if fig.split(":")[0].split(" ")[0] == k), bench)
+        rows.append({"figure": fig, "target": target, "measured": measured,
+                     "ratio": float(ratio) if ratio else None,
+                     "met": None if not met else met == "yes", "bench": bench})
+    details = {}
+    if "## Details of each benchmark" in text:
+        block = text.split("## Details of each benchmark", 1)[1].split("```")[1]
+        try:
+            details = json.loads(block)
+        except ValueError:
+            details = {}
+    return rows, details
+
+
 def markdown(rows: list[dict]) -> str:
     lines = ["| figure | target | measured | ratio | met |", "| --- | --- | --- | --- | --- |"]
     for r in rows:
@@ -97,6 +131,8 @@ def main(argv=None) -> int:
                          "/work/large/national)")
     ap.add_argument("--only", default=None, help=f"comma list of {', '.join(SCRIPTS)}")
     ap.add_argument("--no-write", action="store_true", help="do not rewrite bench/RESULTS.md")
+    ap.add_argument("--merge", action="store_true",
+                    help="keep the other benchmarks' rows of the last RESULTS.md, replace those re-run")
     ap.add_argument("--timeout", type=float, default=1800.0,
                     help="stop a benchmark that runs longer than this many seconds (reported as such)")
     args = ap.parse_args(argv)
@@ -109,14 +145,23 @@ def main(argv=None) -> int:
     facts_start = M.machine_facts()
     t0 = time.perf_counter()
     rows, details = [], {}
+    keep_rows, keep_details = previous_results() if args.merge else ([], {})
+    keep_rows = [r for r in keep_rows if r.get("bench") not in names]
+    keep_details = {k: v for k, v in keep_details.items() if k not in names}
     for name in names:
         print(f"running {name} ...", file=sys.stderr, flush=True)
         r, d = run_one(name, args)
+        for row in r:
+            row["bench"] = name
         rows += r
         if d:
             details[name] = d
         if not args.no_write:
-            write_results(args, rows, details, facts_start, t0, done=False)
+            write_results(args, keep_rows + rows, {**keep_details, **details}, facts_start, t0, done=False)
+    if args.merge:  # benchmark order of DEFAULT, the re-run ones in their place
+        order = DEFAULT + [n for n in SCRIPTS if n not in DEFAULT]
+        rows = sorted(keep_rows + rows, key=lambda r: order.index(r["bench"]) if r.get("bench") in order else 99)
+        details = {**keep_details, **details}
     M.print_rows(rows)
     if not args.no_write:
         write_results(args, rows, details, facts_start, t0, done=True)

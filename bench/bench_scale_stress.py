@@ -49,7 +49,16 @@ def step_stress(args) -> None:
     r = stress_model(model, draws=args.draws, seed=args.seed, keep_draws=False, currency=scenario.currency)
     sample_s = time.perf_counter() - t0
     deals = [d.__dict__ for d in r.deals]
-    M.emit({"deals": len(r.deals), "draws": r.draws, "held_rows": int(len(model.rows)),
+    shocked = None
+    if args.shock:  # the same book under a finance shock, so shortfalls (and their errors) show
+        t1 = time.perf_counter()
+        smodel, _ = load_book_model(scenario, forecast=forecast, shocks=[args.shock])
+        sr = stress_model(smodel, draws=args.draws, seed=args.seed, keep_draws=False, currency=scenario.currency)
+        sd = [d.__dict__ for d in sr.deals]
+        shocked = {"shock": args.shock, "seconds": time.perf_counter() - t1, "book": sr.book,
+                   "max_probability_of_shortfall": max(d["probability_of_shortfall"] for d in sd),
+                   "max_se_probability_of_shortfall": max(d["probability_of_shortfall_se"] for d in sd)}
+    M.emit({"shocked": shocked,"deals": len(r.deals), "draws": r.draws, "held_rows": int(len(model.rows)),
             "held_spots": int(model.rows["spots"].sum()), "networks": len(model.networks),
             "build_seconds": build_s, "sample_seconds": sample_s, "book": r.book,
             "max_se_probability_of_shortfall": max(d["probability_of_shortfall_se"] for d in deals),
@@ -94,6 +103,8 @@ def main(argv=None) -> int:
     ap.add_argument("--compare-draws", type=int, default=100_000,
                     help="draws of each sampler in the side-by-side (equal for both)")
     ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--shock", default="all:-0.10",
+                    help="also stress the book under this shock (planner.stress syntax; '' for none)")
     ap.add_argument("--json", action="store_true")
     ap.add_argument("--step", default=None)
     args = ap.parse_args(argv)
@@ -105,23 +116,32 @@ def main(argv=None) -> int:
         step_compare(args)
         return 0
     res = M.run_step([Path(__file__), "--step", "stress", "--large", args.large, "--draws", args.draws,
-                      "--seed", args.seed])
+                      "--seed", args.seed, "--shock", args.shock])
     small = ensure_small(args.small)
     cd = args.compare_draws
     cmp_ = M.run_step([Path(__file__), "--step", "compare", "--small", small, "--draws", cd, "--seed", args.seed])
     total = res["build_seconds"] + res["sample_seconds"]
     peak = M.gib(res["peak_rss_bytes"])
     book = res["book"]
-    se_txt = ", ".join(f"{k} {book[k]:,.0f} +- {book.get(k + '_se', float('nan')):,.3g}"
-                       for k in ("expected_liability", "var95", "cvar95") if k in book)
+    def se_text(book):
+        return ", ".join(f"{k} {book[k]:,.0f} +- {book.get(k + '_se', float('nan')):,.3g}"
+                         for k in ("expected_liability", "var95", "cvar95") if k in book)
+
+    se_txt = se_text(book)
     rows = [
         M.row(f"stress {res['draws']:,} draws, {res['deals']}-deal book ({res['held_spots']:,} spots on "
               f"{res['held_rows']:,} units), time", "< 10 s",
               f"{total:.1f} s ({res['build_seconds']:.1f} model + {res['sample_seconds']:.1f} draws)",
               total / TARGET_SECONDS, total < TARGET_SECONDS),
         M.row("  Monte Carlo standard error, P(shortfall) (largest over deals)", "reported",
-              f"{res['max_se_probability_of_shortfall']:.5f}", None),
-        M.row("  book liability (MC standard error)", "reported", se_txt or "n/a", None),
+              f"{res['max_se_probability_of_shortfall']:.2g}", None),
+        M.row("  book liability, USD (MC standard error)", "reported", se_txt or "n/a", None),
+        *([] if not res.get("shocked") else [
+            M.row(f"  same book under shock {res['shocked']['shock']}: time; largest P(shortfall) (MC se)", "",
+                  f"{res['shocked']['seconds']:.1f} s; {res['shocked']['max_probability_of_shortfall']:.4f} "
+                  f"(+- {res['shocked']['max_se_probability_of_shortfall']:.2g})", None),
+            M.row("  book liability under the shock, USD (MC standard error)", "reported",
+                  se_text(res["shocked"]["book"]), None)]),
         M.row("stress, peak memory (whole process)", "", f"{peak:.2f} GiB", None),
         M.row(f"naive per-spot vs fast sampler, {cmp_['draws']:,} draws each, small book "
               f"({cmp_['held_spots']:,} spots)", "", f"{cmp_['per_spot_seconds']:.1f} s vs "
