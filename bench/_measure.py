@@ -25,7 +25,7 @@ def run_step(argv: list[str], *, env: dict | None = None, timeout: float | None 
     """Run `argv` (a Python script and its arguments) as a child; return its JSON result.
 
     The result gains ``wall_seconds`` (parent clock, process start to exit) and
-    ``peak_rss_bytes`` (the child's whole-process peak). Raises RuntimeError on failure. With
+    ``peak_rss_bytes`` (the child's whole-process peak) and ``cpu_seconds`` (user + system). Raises RuntimeError on failure. With
     `timeout`, a child still running is killed; if it had printed a (partial) JSON result, that
     is returned with ``timed_out: True``.
     """
@@ -56,7 +56,8 @@ def run_step(argv: list[str], *, env: dict | None = None, timeout: float | None 
     lines = [ln for ln in text.strip().splitlines() if ln.startswith("{")]
     if timed_out and lines:  # a step that reports as it goes: keep what it measured
         result = json.loads(lines[-1])
-        result.update(wall_seconds=wall, peak_rss_bytes=int(usage.ru_maxrss) * 1024, timed_out=True)
+        result.update(wall_seconds=wall, peak_rss_bytes=int(usage.ru_maxrss) * 1024, timed_out=True,
+                      cpu_seconds=usage.ru_utime + usage.ru_stime)
         return result
     if proc.returncode != 0:
         raise RuntimeError(f"step failed (exit {proc.returncode}): {' '.join(cmd)}\n{text[-2000:]}")
@@ -66,6 +67,7 @@ def run_step(argv: list[str], *, env: dict | None = None, timeout: float | None 
     result = json.loads(lines[-1])
     result["wall_seconds"] = wall
     result["peak_rss_bytes"] = int(usage.ru_maxrss) * 1024
+    result["cpu_seconds"] = usage.ru_utime + usage.ru_stime  # user + system, all threads
     return result
 
 

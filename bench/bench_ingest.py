@@ -96,7 +96,7 @@ def main(argv=None) -> int:
     out = {
         "rows": [
             M.row(f"ingest {rows / 1e6:,.1f} M rows -> {res['profiles']:,} daily profiles ({args.engine}), time",
-                  "< 120 s", f"{wall:.1f} s", wall / TARGET_SECONDS, wall < TARGET_SECONDS and rows_ok),
+                  "< 120 s", f"{wall:.1f} s (CPU {res.get('cpu_seconds', float('nan')):.0f} s)", wall / TARGET_SECONDS, wall < TARGET_SECONDS and rows_ok),
             M.row("ingest, peak memory (whole process)", "< 8 GiB", f"{peak:.2f} GiB", peak / TARGET_GIB,
                   peak < TARGET_GIB),
             M.row("ingest throughput", "", f"{rows / wall / 1e6:.2f} M rows/s", None),
