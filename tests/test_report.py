@@ -246,3 +246,14 @@ def test_report_in_headless_chromium(booked_report, tmp_path):
         seen.setdefault((deal, field), value)
     for deal, check in checks.items():
         assert_verdict_equal(seen, deal, check)
+
+
+def test_report_bad_input_exits_2(small_scenario, tmp_path):
+    """Bad options are input errors: exit 2, one line naming what is wrong, nothing written."""
+    r = pledge("report", small_scenario, "--out", tmp_path / "r.txt")
+    assert r.returncode == 2 and "ending in .html" in r.stderr and "Traceback" not in r.stderr
+    r = pledge("report", small_scenario, "--out", tmp_path / "r.html", "--deal", "no-such-deal")
+    assert r.returncode == 2 and "no-such-deal" in r.stderr
+    r = pledge("report", tmp_path / "missing", "--out", tmp_path / "r.html")
+    assert r.returncode == 2 and "not a scenario folder" in r.stderr
+    assert not (tmp_path / "r.html").exists()
