@@ -30,12 +30,12 @@ TARGET_SECONDS = 300.0
 TARGET_GIB = 8.0
 
 
-def pick_zone_parts(history: Path, profiles: int, networks: int, days: int) -> list[Path]:
-    """Per-zone parts (one demo kept) until zones x networks x days reaches `profiles`."""
+def pick_zone_parts(history: Path, profiles: int, networks: int, days: int, demos: int) -> list[Path]:
+    """Per-zone parts until zones x networks x demos x days reaches `profiles`."""
     parts = sorted(history.glob("*.parquet"))
     if not parts:
         raise SystemExit(f"{history}: no Parquet parts (run bench/generate_large.py first)")
-    need = -(-profiles // (networks * days))
+    need = -(-profiles // (networks * days * demos))
     return parts[:need]
 
 
@@ -77,7 +77,7 @@ def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--large", type=Path, default=None)
     ap.add_argument("--profiles", type=int, default=1_000_000)
-    ap.add_argument("--demo", default="hh")
+    ap.add_argument("--demo", default="all", help="demo to fit, or 'all' (every demo of the instance)")
     ap.add_argument("--threads", type=int, default=2)
     ap.add_argument("--json", action="store_true")
     ap.add_argument("--step", default=None)
@@ -88,13 +88,14 @@ def main(argv=None) -> int:
         step_fit(args)
         return 0
     facts = json.loads((args.large / "LARGE.json").read_text())
-    parts = pick_zone_parts(args.large / "history", args.profiles, facts["networks"], facts["days"])
+    n_demos = facts["demos"] if args.demo == "all" else 1
+    parts = pick_zone_parts(args.large / "history", args.profiles, facts["networks"], facts["days"], n_demos)
     with tempfile.TemporaryDirectory(prefix="pledge-fit-", dir="/tmp") as tmp:
         src = subset_folder(parts, Path(tmp) / "history")
         pfile = Path(tmp) / "profiles.parquet"
         ing = M.run_step([Path(__file__).parent / "bench_ingest.py", "--step", "ingest", "--source", src,
                           "--threads", args.threads, "--memory-limit", "4GB", "--spill", Path(tmp) / "spill",
-                          "--demos", args.demo, "--save", pfile])
+                          *([] if args.demo == "all" else ["--demos", args.demo]), "--save", pfile])
         res = M.run_step([Path(__file__), "--step", "fit", "--large", args.large, "--profiles-file", pfile])
     peak = M.gib(res["peak_rss_bytes"])
     fit_s = res["fit_seconds"]
