@@ -6,7 +6,6 @@ from pathlib import Path
 from typing import Iterator
 
 import typer
-from rich.table import Table
 
 from planner.cli import app
 from planner.cli.common import info, out_console, print_json, progress
@@ -32,6 +31,19 @@ def _progress(description: str) -> Iterator:
             advance(step, description=f"{description}: {message}")
 
         yield callback
+
+
+def _print_aligned(head: list[str], rows: list[list[str]]) -> None:
+    """Plain aligned table on stdout (first column left, the rest right), any terminal width."""
+    widths = [max(len(str(x)) for x in col) for col in zip(head, *rows)]
+
+    def line(cells):
+        return "  ".join(str(c).ljust(w) if i == 0 else str(c).rjust(w) for i, (c, w) in enumerate(zip(cells, widths)))
+
+    out_console.print(line(head), markup=False, highlight=False, soft_wrap=True)
+    out_console.print("  ".join("-" * w for w in widths), markup=False, highlight=False, soft_wrap=True)
+    for r in rows:
+        out_console.print(line(r), markup=False, highlight=False, soft_wrap=True)
 
 
 def _engine(engine: str) -> str:
@@ -102,22 +114,20 @@ def backtest_cmd(
     out_console.print(f"held out {h['first_day']} .. {h['last_day']} ({h['weeks']} weeks), cut-off "
                       f"{h['cutoff_day']}, lead gap {h['lead_gap_days']} days; {s['units']:,} unit-weeks scored "
                       "(unit-week mean impressions of one spot)")
-    t = Table(title="daypart backtest")
-    for col in ("forecast", "CRPS (impr.)", "WAPE", "50%", "80%", "95%"):
-        t.add_column(col, justify="right" if col != "forecast" else "left", no_wrap=True)
+    head = ["forecast", "CRPS (impr.)", "WAPE", "50%", "80%", "95%"]
+    rows = []
 
     def row(name: str, sc: dict) -> None:
         cov = sc["coverage"]
-        t.add_row(name, f"{sc['crps']:,.0f}", f"{sc['wape']:.1%}", f"{cov['0.5']:.1%}", f"{cov['0.8']:.1%}",
-                  f"{cov['0.95']:.1%}")
+        rows.append([name, f"{sc['crps']:,.0f}", f"{sc['wape']:.1%}", f"{cov['0.5']:.1%}", f"{cov['0.8']:.1%}",
+                     f"{cov['0.95']:.1%}"])
 
     row("model", s)
     for name, sc in s["baselines"].items():
         row(f"baseline {name}", sc)
-    t.add_section()
     for dp, sc in s["by_daypart"].items():
         row(f"model, {dp}", sc)
-    out_console.print(t)
+    _print_aligned(head, rows)
     out_console.print(f"CRPS skill against the better baseline: {s['crps_skill_vs_best_baseline']:.1%}")
     out_console.print(s["caution"])
 
@@ -157,12 +167,12 @@ def show_cmd(
         print_json({"zone": zone, "network": network, "demo": demo, "rows": t.to_dict(orient="records"),
                     "caution": CAUTION})
         return
-    tab = Table(title=f"{zone} x {network}, demo {demo}: impressions of one 30-second spot")
-    for col in ("daypart", "week", "rating pts", "mean", "10%", "90%", "airing sd", "level sd", "history wks"):
-        tab.add_column(col, justify="left" if col == "daypart" else "right", no_wrap=True)
-    for r in t.itertuples(index=False):
-        tab.add_row(r.daypart, str(r.week), f"{100 * r.mean_rating:.3f}", f"{r.mean_impressions:,.0f}",
-                    f"{r.q10_impressions:,.0f}", f"{r.q90_impressions:,.0f}", f"{r.airing_sd:,.0f}",
-                    f"{r.level_sd:,.0f}", f"{r.history_weeks:.0f}")
-    out_console.print(tab)
+    head = ["daypart", "week", "rating pts", "mean", "10%", "90%", "airing sd", "level sd", "history wks"]
+    rows = [[r.daypart, str(r.week), f"{100 * r.mean_rating:.3f}", f"{r.mean_impressions:,.0f}",
+             f"{r.q10_impressions:,.0f}", f"{r.q90_impressions:,.0f}", f"{r.airing_sd:,.0f}",
+             f"{r.level_sd:,.0f}", f"{r.history_weeks:.0f}"] for r in t.itertuples(index=False)]
+    out_console.print(f"{zone} x {network}, demo {demo}: impressions of one 30-second spot "
+                      "(mean, 10% and 90% quantiles; sds of one airing and of the unit-week level)",
+                      markup=False, highlight=False)
+    _print_aligned(head, rows)
     out_console.print(CAUTION)
