@@ -614,7 +614,8 @@ def _solve_mip_cbc(model: _Model, gap: float, time_limit: float) -> MIPResult:
         with open(sol) as fh:
             first = fh.readline()
             lines = fh.read().splitlines()
-        if "infeasible" in first.lower() or "no feasible" in status.lower() or "infeasible" in status.lower():
+        low = (first + " " + status + " " + out).lower()
+        if "infeasible" in first.lower() or "no feasible" in low or "no integer" in low or "infeasible" in status.lower():
             return MIPResult(False, None, None, None, status, time.perf_counter() - t0)
         col = np.zeros(model.ncol)
         if lines:
@@ -623,6 +624,8 @@ def _solve_mip_cbc(model: _Model, gap: float, time_limit: float) -> MIPResult:
             val = np.array([float(p[2]) for p in parts])
             col[idx] = val
         col = model.canonical(col)
+        if not np.any(col[: model.prob.n] > 0.5) and model.prob.guarantee > 0:  # stopped with no plan
+            return MIPResult(False, None, None, None, status, time.perf_counter() - t0)
         mobj = re.search(r"objective value\s+" + _CBC_NUM, first)
         obj = float(mobj.group(1)) if mobj else float(np.dot(model.prob.rate, col[: model.prob.n]))
         mlb = re.search(r"Lower bound:\s+" + _CBC_NUM, out)
