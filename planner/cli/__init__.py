@@ -50,13 +50,13 @@ def main(argv: list[str] | None = None) -> int:
     except SystemExit as exc:
         code = exc.code if isinstance(exc.code, int) else (0 if exc.code is None else 1)
     except InputError as exc:
-        err_console.print(f"error: {exc}", markup=False, highlight=False)
+        err_console.print(f"error: {exc}", markup=False, highlight=False, soft_wrap=True)
         code = 2
     except KeyboardInterrupt:
         err_console.print("interrupted")
         code = 1
     except Exception as exc:  # noqa: BLE001 - the documented 'internal error' exit
-        err_console.print(f"internal error: {type(exc).__name__}: {exc}", markup=False, highlight=False)
+        err_console.print(f"internal error: {type(exc).__name__}: {exc}", markup=False, highlight=False, soft_wrap=True)
         code = 1
     if argv is None:
         sys.exit(code)
