@@ -60,7 +60,7 @@ SOLVERS = ("cbc", "highs")
 
 
 def _new_highs() -> highspy.Highs:
-    """A silent HiGHS instance (its one-time banner goes to stderr, keeping stdout for --json)."""
+    """A silent HiGHS instance (its one-time banner is discarded, keeping stdout for --json)."""
     if _BANNER_DONE:
         h = highspy.Highs()
     else:
@@ -70,7 +70,9 @@ def _new_highs() -> highspy.Highs:
         sys.stdout.flush()
         saved = os.dup(1)
         try:
-            os.dup2(2, 1)
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, 1)
+            os.close(devnull)
             h = highspy.Highs()
             h.setOptionValue("output_flag", False)
             try:

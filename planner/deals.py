@@ -190,14 +190,16 @@ def _forecast_table(scenario, forecast, progress):
     return res.table, bool(getattr(res, "fitted_now", False))
 
 
-def _held(scenario, held, book):
+def _held(scenario, held, book, deal_name: str):
+    """Spots held by the book's committed deals, the deal's own holds left out (a booked deal
+    re-checked or re-planned competes only with the others)."""
     if held is not None:
         return held
     try:
         from planner.book import held_spots
     except ImportError:  # the book module is optional for check/plan
         return None
-    return held_spots(scenario, book)
+    return held_spots(scenario, book, exclude=(deal_name,))
 
 
 def deal_units(scenario, forecast: pd.DataFrame, deal) -> pd.DataFrame:
@@ -239,7 +241,7 @@ def run_deal(scenario, deal_name: str, *, solver: str = "cbc", held=None, book=N
     deal = _get_deal(scenario, deal_name)
     table, fitted = _forecast_table(scenario, forecast, progress)
     units = deal_units(scenario, table, deal)
-    held_df = _held(scenario, held, book)
+    held_df = _held(scenario, held, book, deal.name)
     mix = deal.mix
     scope = al.candidate_units(units, weeks=deal.weeks, exclude_networks=mix.exclude_networks,
                                exclude_zones=mix.exclude_zones, max_spots_per_unit=mix.max_spots_per_unit,

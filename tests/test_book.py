@@ -461,3 +461,16 @@ def test_replace_holds_refuses_to_overhold(tmp_path):
     bk.replace_holds(scn, "alpha", ok, {"note": "test"})
     assert bk.get_deal(scn, "alpha").spots == 2
     assert bk.check_book(scn) == {**bk.check_book(scn), "over_avails": 0, "spot_count_mismatch": 0}
+
+
+def test_check_of_a_booked_deal_counts_its_own_holds_as_available(tmp_path):
+    """Re-checking a committed deal competes only with the other deals' holds."""
+    from planner.deals import check_deal
+    from planner.rebalance import plan_for_commit
+
+    scn, fc = make_synthetic(tmp_path / "s", avails=(1, 3), deals=[("alpha", 0.60, 0.95, 22.0)])
+    before = check_deal(scn, "alpha", solver="highs", forecast=fc)
+    assert bk.commit_deal(scn, "alpha", planner=plan_for_commit(fc, solver="highs")).committed
+    after = check_deal(scn, "alpha", solver="highs", forecast=fc)
+    assert after.deliverable and before.deliverable
+    assert after.cost == pytest.approx(before.cost, rel=0.01)

@@ -165,7 +165,7 @@ def test_unknown_deal_and_solver_and_margin(scn, fc):
 @pytest.fixture()
 def cli_forecast(monkeypatch, fc):
     monkeypatch.setattr(deals, "_forecast_table", lambda scenario, forecast, progress: (fc, True))
-    monkeypatch.setattr(deals, "_held", lambda scenario, held, book: None)
+    monkeypatch.setattr(deals, "_held", lambda scenario, held, book, deal_name: None)
 
 
 def test_cli_check_json(small_scenario, cli_forecast, capsys):
