@@ -335,7 +335,7 @@ DEMO_DEALS = [
              1, 13, 0.15, 1.6, "comfortably deliverable",
              mix={"max_network_share": 0.3, "daypart_min_share": {"prime": 0.2},
                   "daypart_max_share": {"overnight": 0.05}, "weekly_tolerance": 0.25}),
-    DealSpec("corvella-motors.toml", "corvella-launch", "Corvella Motors (invented)", "hh", 3, 8, 0.8, 1.12,
+    DealSpec("corvella-motors.toml", "corvella-launch", "Corvella Motors (invented)", "hh", 3, 8, 0.8, 1.35,
              "tight (most of the allowed avails, thin margin)", risk="",
              mix={"max_network_share": 0.25, "daypart_min_share": {"prime": 0.4, "prime_access": 0.15},
                   "exclude_networks": ["marbleberry-kids"], "weekly_tolerance": 0.2}),
@@ -343,7 +343,7 @@ DEMO_DEALS = [
              "not deliverable (guarantee larger than the avails can carry under the mix)",
              risk="confidence = 0.9",
              mix={"daypart_min_share": {"daytime": 0.3}, "exclude_zones": ["marrowdale-central"]}),
-    DealSpec("wrenfield-grocers.toml", "wrenfield-weekly", "Wrenfield Grocers (invented)", "hh", 5, 13, 0.3, 1.4,
+    DealSpec("wrenfield-grocers.toml", "wrenfield-weekly", "Wrenfield Grocers (invented)", "hh", 5, 13, 0.3, 1.7,
              "deliverable with room to spare (risk margin given as a pad)", risk="pad = 0.1",
              mix={"max_network_share": 0.35, "daypart_max_share": {"overnight": 0.1}, "max_spots_per_unit": 6}),
 ]
