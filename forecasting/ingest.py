@@ -1,8 +1,8 @@
 """Quarter-hour rating history -> daily profiles (one row per zone x network x demo x date).
 
 The reduction is ONE SQL statement (`profile_sql`) in standard SQL that both DuckDB and Spark SQL
-accept: a GROUP BY over the series and the date with conditional aggregation
-``max(CASE WHEN quarter_hour = k THEN rating END)`` for the 96 quarter-hours. DuckDB reads the
+accept: a GROUP BY over the series and the date with conditional aggregation of the 96
+quarter-hours (in two levels, blocks of quarter-hours then days). DuckDB reads the
 Parquet (or CSV) files directly and streams them, so the history never has to fit in memory; a
 memory limit and a spill folder keep it out of core on hundreds of millions of rows.
 """
@@ -25,16 +25,29 @@ QH_COLUMNS = [f"q{k:02d}" for k in range(QUARTER_HOURS)]
 #: The relation name the reduction reads from; each engine binds it to the history files.
 SOURCE_RELATION = "history"
 
-_SELECT = ",\n  ".join(
-    f"max(CASE WHEN quarter_hour = {k} THEN rating END) AS {c}" for k, c in enumerate(QH_COLUMNS)
+#: Quarter-hours per block of the two-level reduction (see `PROFILE_SQL`).
+BLOCK = 8
+
+_INNER = ",\n    ".join(
+    f"max(CASE WHEN quarter_hour - {BLOCK} * blk = {j} THEN rating END) AS s{j}" for j in range(BLOCK)
+)
+_OUTER = ",\n  ".join(
+    f"max(CASE WHEN blk = {k // BLOCK} THEN s{k % BLOCK} END) AS {c}" for k, c in enumerate(QH_COLUMNS)
 )
 
-#: The reduction, standard SQL. ``{where}`` is replaced by a WHERE clause (or nothing).
+#: The reduction, standard SQL (CASE, FLOOR, CAST, GROUP BY only). Two levels: first the
+#: quarter-hours of each block of BLOCK, then the blocks of each day. Each cell is still the
+#: value of one history row (the key is unique), so the result equals a one-level pivot, but
+#: only BLOCK conditional aggregates run over every input row instead of 96 (about 2x faster).
+#: ``{where}`` is replaced by a WHERE clause (or nothing).
 PROFILE_SQL = (
-    "SELECT zone, network, demo, CAST(date AS DATE) AS date,\n  "
-    + _SELECT
-    + f"\nFROM {SOURCE_RELATION}\n{{where}}\n"
-    "GROUP BY zone, network, demo, CAST(date AS DATE)\n"
+    "SELECT zone, network, demo, date,\n  " + _OUTER + "\nFROM (\n"
+    "  SELECT zone, network, demo, d AS date, blk,\n    " + _INNER + "\n  FROM (\n"
+    "    SELECT zone, network, demo, CAST(date AS DATE) AS d,\n"
+    f"           CAST(FLOOR(quarter_hour / {BLOCK}) AS INTEGER) AS blk, quarter_hour, rating\n"
+    f"    FROM {SOURCE_RELATION}\n    {{where}}\n  ) t0\n"
+    "  GROUP BY zone, network, demo, d, blk\n) t1\n"
+    "GROUP BY zone, network, demo, date\n"
     "ORDER BY zone, network, demo, date"
 )
 
