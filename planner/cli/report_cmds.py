@@ -41,7 +41,7 @@ def _verdict_table(checks: dict[str, dict], currency: str, committed: set[str] |
                   _pct(v.get("probability_of_delivery")), _k(v.get("max_guarantee")))
     if committed is not None:
         t.caption = ("verdict: held = deliverable and committed to the book, NO = not deliverable; "
-                     "max: the largest deliverable guarantee")
+                     "max: the largest deliverable guarantee against the holds the book had when the deal was checked")
         t.caption_justify = "left"
     return t
 
