@@ -56,6 +56,9 @@ SCALE = 1e-3  # impressions -> thousands inside the model
 INF = highspy.kHighsInf
 DEFAULT_GAP = 0.005
 DEFAULT_TIME_LIMIT = 60.0
+LP_TIME_LIMIT_FACTOR = 10.0  # LP relaxation solves: this many times the MIP time limit ...
+LP_TIME_LIMIT_FLOOR = 600.0  # ... and at least this many seconds
+UNDECIDED = "undecided"  # status prefix: the solver stopped before proving either way
 SOLVERS = ("cbc", "highs")
 
 
@@ -275,6 +278,10 @@ class _Model:
         self.cut_points = self.cuts
         self.n_cuts_total = 0
         self.time_limit = time_limit
+        # LP relaxations get a longer limit than one MIP solve: a verdict rests on them.
+        self.lp_time_limit = max(LP_TIME_LIMIT_FACTOR * float(time_limit), LP_TIME_LIMIT_FLOOR)
+        self.stopped = False
+        self.last_status = ""
         if columns is None:
             columns = np.arange(n) if n <= SIFT_COLUMNS else self._first_columns()
         self.active = np.asarray(columns, dtype=np.int64)
@@ -407,10 +414,18 @@ class _Model:
 
     # -- LP solves ---------------------------------------------------------------------------
     def solve(self):
-        """Solve the current LP; return (ok, canonical solution, objective)."""
+        """Solve the current LP; return (ok, canonical solution, objective).
+
+        A solve the solver stopped before an answer (time or iteration limit) is remembered in
+        `stopped`, so that it is never reported as infeasibility.
+        """
+        self.h.setOptionValue("time_limit", float(self.lp_time_limit))
         self.h.run()
         st = self.h.getModelStatus()
+        self.last_status = self.h.modelStatusToString(st)
         if st != highspy.HighsModelStatus.kOptimal:
+            if st not in (highspy.HighsModelStatus.kInfeasible, highspy.HighsModelStatus.kUnboundedOrInfeasible):
+                self.stopped = True
             return False, None, None
         return True, self.canonical(self.h.getSolution().col_value), self.h.getInfo().objective_function_value
 
@@ -695,7 +710,9 @@ def allocate(prob: AllocationProblem, *, solver: str = "cbc", gap: float = DEFAU
     base = dict(cuts=lp.cuts, iterations=lp.iterations, solver=solver, build_seconds=model.build_seconds,
                 row_labels=model.labels, requested_gap=gap, integer=integer)
     if not lp.ok:
-        return Allocation(False, None, None, None, None, None, mip_rounds=0, status="infeasible",
+        status = (f"{UNDECIDED}: the solver stopped ({model.last_status}) before proving the deal "
+                  "feasible or infeasible" if model.stopped else "infeasible")
+        return Allocation(False, None, None, None, None, None, mip_rounds=0, status=status,
                           solve_seconds=time.perf_counter() - t0, **base)
     duals = model.row_duals()
     values = model.row_values()
@@ -749,8 +766,10 @@ def allocate(prob: AllocationProblem, *, solver: str = "cbc", gap: float = DEFAU
         break
     base["cuts"] = model.n_cuts_total
     if x is None:
+        why = mip.status if mip else "no run"
+        timed_out = "time" in why.lower() or "stopped" in why.lower()
         return Allocation(False, None, None, lp.objective, None, None, mip_rounds=rounds,
-                          status=f"integer plan not found ({mip.status if mip else 'no run'})",
+                          status=(f"{UNDECIDED}: " if timed_out else "") + f"integer plan not found ({why})",
                           solve_seconds=time.perf_counter() - t0, lp_x=lp_x, row_duals=duals,
                           row_values=values, **base)
     cost = float(np.dot(prob.rate, x))

@@ -332,6 +332,8 @@ def _verdict(run: DealRun, binding_reason: str = "") -> str:
     a = run.allocation
     if a.feasible:
         return "deliverable"
+    if str(a.status).startswith(al.UNDECIDED):
+        return f"undecided: {a.status[len(al.UNDECIDED) + 2:]} (raise the time limit)"
     return "not deliverable" + (f": {binding_reason}" if binding_reason else "")
 
 
@@ -354,6 +356,9 @@ def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
     if a.feasible:
         binding = al.binding_constraints(prob, a) if explain else []
         reason = ""
+    elif str(a.status).startswith(al.UNDECIDED):
+        binding = []
+        reason = a.status
     else:
         binding = al.diagnose(prob) if explain else []
         reason = "no plan meets the guarantee under the deal's rules and risk margin"
@@ -425,6 +430,8 @@ def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=a
     if a.feasible:
         binding = al.binding_constraints(prob, a)
         max_g = max(max_g, deal.impressions)  # the plan found is itself a witness
+    elif str(a.status).startswith(al.UNDECIDED):  # no verdict, so nothing to diagnose
+        binding = [f"{a.status}; the largest deliverable guarantee found is {max_g:,.0f} impressions"]
     else:
         binding = [f"largest deliverable guarantee at these rules: {max_g:,.0f} impressions "
                    f"({100 * max_g / deal.impressions:.0f}% of the {deal.impressions:,.0f} asked)"]

@@ -237,3 +237,14 @@ def test_column_subset_pricing_reaches_the_full_lp(monkeypatch, rules):
     assert mg_sub.at_plan == pytest.approx(mg_full.at_plan, rel=2e-3)
     a = al.allocate(prob, solver="highs")
     assert a.feasible and a.cost <= full.cost * 1.01
+
+
+def test_a_solver_stopped_by_its_time_limit_is_undecided_not_infeasible(monkeypatch):
+    """A relaxation the solver did not finish proves nothing: never report it as infeasible."""
+    prob = problem(guarantee=1.0e6, confidence=0.95)
+    assert al.allocate(prob, solver="highs").feasible  # the deal is deliverable
+    monkeypatch.setattr(al, "LP_TIME_LIMIT_FACTOR", 0.0)
+    monkeypatch.setattr(al, "LP_TIME_LIMIT_FLOOR", 1e-12)  # HiGHS stops at once
+    a = al.allocate(prob, solver="highs")
+    assert not a.feasible
+    assert a.status.startswith(al.UNDECIDED) and "infeasible" not in a.status.split("(")[0]

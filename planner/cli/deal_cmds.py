@@ -78,6 +78,8 @@ def check_cmd(
                                                        "prints the price CPM needed."),
     frontier: bool = typer.Option(False, "--frontier", help="Also cost and chance of delivery at other guarantee sizes."),
     solver: str = _SOLVER_OPT,
+    time_limit: float = typer.Option(60.0, "--time-limit", min=1.0,
+                                     help="Seconds per integer solve (LP relaxations get 10x, at least 600 s)."),
     book: Optional[Path] = _BOOK_OPT,
     as_json: bool = _JSON_OPT,
 ) -> None:
@@ -86,7 +88,8 @@ def check_cmd(
 
     scn = _load(scenario)
     with progress(f"checking {deal}"):
-        r = check_deal(scn, deal, solver=solver, target_margin=target_margin, frontier=frontier, book=book)
+        r = check_deal(scn, deal, solver=solver, target_margin=target_margin, frontier=frontier, book=book,
+                      time_limit=time_limit)
     _fit_note(r)
     if as_json:
         print_json(r.to_json())
@@ -159,6 +162,8 @@ def plan_cmd(
     out: Path = typer.Option(..., "--out", help="CSV file for the buy plan (with --split-by: the name stem)."),
     split_by: Optional[str] = typer.Option(None, "--split-by", help="zone: one order file per zone (OUT-ZONE.csv)."),
     solver: str = _SOLVER_OPT,
+    time_limit: float = typer.Option(60.0, "--time-limit", min=1.0,
+                                     help="Seconds per integer solve (LP relaxations get 10x, at least 600 s)."),
     book: Optional[Path] = _BOOK_OPT,
     as_json: bool = _JSON_OPT,
 ) -> None:
@@ -171,7 +176,7 @@ def plan_cmd(
         raise InputError(f"--out {out}: is a folder, give a file name")
     scn = _load(scenario)
     with progress(f"planning {deal}"):
-        r = plan_deal(scn, deal, solver=solver, book=book)
+        r = plan_deal(scn, deal, solver=solver, book=book, time_limit=time_limit)
     _fit_note(r)
     files = write_plan_files(r.spots, out, split_by) if r.deliverable else []
     if as_json:
