@@ -516,6 +516,11 @@ def _kelley(model: _Model, tol: float, max_iter: int, max_resets: int) -> LPResu
     t0 = time.perf_counter()
     prob = model.prob
     n = prob.n
+
+    def failed(l0: float) -> LPResult:  # a solve ended without an optimum
+        return LPResult(False, None, None, l0, model.n_cuts_total, it, model.build_seconds,
+                        time.perf_counter() - t0)
+
     ok, col, obj = model.solve()
     it = 1
     if not ok:
@@ -527,8 +532,7 @@ def _kelley(model: _Model, tol: float, max_iter: int, max_resets: int) -> LPResu
         ok, col, obj = model.solve()
         it += 1
         if not ok:
-            return LPResult(False, None, None, l0, model.n_cuts_total, it, model.build_seconds,
-                            time.perf_counter() - t0)
+            return failed(l0)
         x = col[:n]
     if prob.rules.confidence is not None:
         z = z_value(prob.rules.confidence)
@@ -553,16 +557,14 @@ def _kelley(model: _Model, tol: float, max_iter: int, max_resets: int) -> LPResu
                 ok, col, obj = model.solve()  # the model changed: re-solve before going on
                 it += 1
                 if not ok:
-                    return LPResult(False, None, None, l0, model.n_cuts_total, it, model.build_seconds,
-                                    time.perf_counter() - t0)
+                    return failed(l0)
                 x = col[:n]
                 continue
             model.add_cut(col, l0)
             ok, col, obj = model.solve()
             it += 1
             if not ok:
-                return LPResult(False, None, None, l0, model.n_cuts_total, it, model.build_seconds,
-                                time.perf_counter() - t0)
+                return failed(l0)
             x = col[:n]
     value = obj if model.mode == "cost" else col[model.iG] / SCALE
     return LPResult(True, col, value, l0, model.n_cuts_total, it, model.build_seconds, time.perf_counter() - t0)
