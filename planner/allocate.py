@@ -189,6 +189,13 @@ def make_problem(scope: pd.DataFrame, guarantee: float, rules: Rules, weeks) -> 
 SIFT_COLUMNS = 40_000  # above this many candidate units the LP starts from a column subset
 SIFT_PER_GROUP = 3  # cheapest columns kept per network x daypart x week in the first subset
 SIFT_CAPACITY = 1.5  # first subset carries this multiple of the needed expected impressions
+# Cold LP solves with at least this many columns (cost mode) run HiGHS's interior point method with
+# crossover and no presolve. Measured on the 708,000-unit national deal (bench/RESULTS.md): its
+# first 83,721-column LP took 41.6 s with the defaults (presolve 18 s, then a dual simplex whose
+# bound-flipping iterations over many boxed columns take seconds each), 6.1 s by dual simplex
+# without presolve and 1.4 s by interior point. Warm re-solves after a cut stay on the dual simplex
+# (0.05-0.1 s each there).
+IPM_COLUMNS = 20_000
 
 
 class _Model:
@@ -313,6 +320,7 @@ class _Model:
         self.h.setOptionValue("time_limit", float(time_limit))
         self.h.passModel(lp)
         self.ncol = ncol
+        self.warm = False  # a basis from the last optimal solve is still a good start
         self.build_seconds = time.perf_counter() - t0
 
     # -- columns -------------------------------------------------------------------------------
@@ -372,6 +380,7 @@ class _Model:
         self.pos[new] = self.active.size + np.arange(new.size)
         self.active = np.concatenate([self.active, new])
         self.ncol = self.h.getNumCol()
+        self.warm = False  # new columns priced in with negative reduced costs: start afresh
 
     def reduced_costs(self) -> np.ndarray:
         """Reduced cost c - A^T y of every x column (n,) from the current duals (model units)."""
@@ -420,9 +429,13 @@ class _Model:
         `stopped`, so that it is never reported as infeasibility.
         """
         self.h.setOptionValue("time_limit", float(self.lp_time_limit))
+        cold_large = not self.warm and self.mode == "cost" and self.ncol >= IPM_COLUMNS
+        self.h.setOptionValue("solver", "ipm" if cold_large else "simplex")
+        self.h.setOptionValue("presolve", "off" if cold_large else "choose")
         self.h.run()
         st = self.h.getModelStatus()
         self.last_status = self.h.modelStatusToString(st)
+        self.warm = st == highspy.HighsModelStatus.kOptimal
         if st != highspy.HighsModelStatus.kOptimal:
             if st not in (highspy.HighsModelStatus.kInfeasible, highspy.HighsModelStatus.kUnboundedOrInfeasible):
                 self.stopped = True
@@ -454,6 +467,7 @@ class _Model:
             self.h.deleteRows(k, np.arange(self.n_struct, self.n_struct + k, dtype=np.int32))
         old, self.cuts = self.cuts, []
         self.cut_points = self.cuts
+        self.warm = False  # rows deleted: the basis is no longer a good start
         for nz, v, _ in old:
             x = np.zeros(self.prob.n)
             x[nz] = v
@@ -592,6 +606,8 @@ def _set_integer(model: _Model, on: bool = True) -> None:
 def _solve_mip_highs(model: _Model, gap: float, time_limit: float) -> MIPResult:
     t0 = time.perf_counter()
     h = model.h
+    h.setOptionValue("solver", "choose")
+    h.setOptionValue("presolve", "choose")
     h.setOptionValue("mip_rel_gap", float(gap))
     h.setOptionValue("time_limit", float(time_limit))
     h.run()

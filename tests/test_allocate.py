@@ -239,6 +239,27 @@ def test_column_subset_pricing_reaches_the_full_lp(monkeypatch, rules):
     assert a.feasible and a.cost <= full.cost * 1.01
 
 
+@pytest.mark.parametrize("rules", [dict(pad=0.1, confidence=None), dict(confidence=0.95)])
+def test_interior_point_cold_solves_reach_the_simplex_optimum(monkeypatch, rules):
+    # Large models start each cold LP by interior point + crossover (no presolve) and re-solve
+    # warm by dual simplex; the optimum, the duals used for pricing and the MIP must not change.
+    prob = problem(guarantee=1.5e6, seed=4, **rules)
+    ref = al.allocate(prob, integer=False)
+    ref_mip = al.allocate(prob, solver="highs")
+    monkeypatch.setattr(al, "IPM_COLUMNS", 1)
+    model = al._Model(prob, "cost")
+    ok, col, _ = model.solve()
+    assert ok and model.h.getInfo().ipm_iteration_count > 0 and model.warm
+    hd = np.asarray(model.h.getSolution().col_dual)[model.off:]
+    assert np.allclose(model.reduced_costs()[model.active], hd, atol=1e-7)
+    lp = al.allocate(prob, integer=False)
+    assert lp.cost == pytest.approx(ref.cost, rel=1e-6)
+    monkeypatch.setattr(al, "SIFT_COLUMNS", 10)  # with column generation too
+    assert al.allocate(prob, integer=False).cost == pytest.approx(ref.cost, rel=1e-5)
+    a = al.allocate(prob, solver="highs")
+    assert a.feasible and a.cost == pytest.approx(ref_mip.cost, rel=0.01)
+
+
 def test_a_solver_stopped_by_its_time_limit_is_undecided_not_infeasible(monkeypatch):
     """A relaxation the solver did not finish proves nothing: never report it as infeasible."""
     prob = problem(guarantee=1.0e6, confidence=0.95)
