@@ -286,25 +286,66 @@ def _deal_from_row(row: sqlite3.Row, holds: pd.DataFrame | None = None) -> BookD
         cost=d["cost"], spots=d["spots"], summary=json.loads(d["summary_json"] or "{}"), holds=holds)
 
 
-def _holds_of(conn: sqlite3.Connection, deal: str | None = None) -> pd.DataFrame:
-    cols = ["deal"] + HOLD_COLUMNS
-    sql = f"SELECT {', '.join(cols)} FROM holds"
-    args: tuple = ()
-    if deal is not None:
-        sql += " WHERE deal = ?"
-        args = (deal,)
-    # Plain tuples (no Row objects) and the sort in pandas: on a national book (over a million
-    # holds) SQLite's ORDER BY and Row construction took most of the stress test's set-up time.
-    cur = conn.cursor()
-    cur.row_factory = None
-    rows = cur.execute(sql, args).fetchall()
-    df = pd.DataFrame.from_records(rows, columns=cols)
-    if df.empty:
-        return df.astype({"deal": str, "zone": str, "network": str, "daypart": str, "week": "int64",
-                          "spots": "int64"})
-    df = df.astype({"week": "int64", "spots": "int64"})
-    # Same order as ORDER BY deal, week, zone, network, daypart (BINARY collation = code-point order).
-    return df.sort_values(["deal", "week", "zone", "network", "daypart"], kind="stable", ignore_index=True)
+_TEXT_HOLD = ("deal", "zone", "network", "daypart")
+_INT_HOLD = ("week", "spots")
+
+
+_SEP = "\x1f"  # unit separator: never part of a zone, network, daypart or deal name
+
+
+def _holds_columns(conn: sqlite3.Connection, cols: list[str], where: str, args: tuple) -> dict | None:
+    """Text and integer hold columns `cols` as arrays, read in ONE scan as one concatenated string
+    per column (text: (codes, sorted uniques); integers: int64). None when a column is of another
+    type (REAL would lose digits as text) or a text value holds the separator: the caller then
+    reads row by row."""
+    if any(c not in _TEXT_HOLD and c not in _INT_HOLD for c in cols):
+        return None
+    agg = ", ".join(f"group_concat({c}, char(31))" for c in cols)
+    row = conn.execute(f"SELECT count(*), {agg} FROM holds{where}", args).fetchone()
+    n = int(row[0])
+    out = {}
+    for c, blob in zip(cols, row[1:]):
+        parts = blob.split(_SEP) if n else []
+        if len(parts) != n:
+            return None
+        out[c] = (pd.factorize(np.array(parts, dtype=object), sort=True) if c in _TEXT_HOLD
+                  else np.array(parts, dtype=np.int64))
+    return out
+
+
+def _holds_of(conn: sqlite3.Connection, deal: str | None = None, columns: list[str] | None = None) -> pd.DataFrame:
+    """Holds (of one deal, or all) as a DataFrame `deal` + `columns` (default HOLD_COLUMNS), ordered
+    by deal, week, zone, network, daypart."""
+    cols = ["deal"] + list(HOLD_COLUMNS if columns is None else columns)
+    where, args = ("", ()) if deal is None else (" WHERE deal = ?", (deal,))
+    # Columns come back as one string each from a single scan: on a national book (over a
+    # million holds) fetching Python tuples row by row, SQLite's ORDER BY and row-wise frame
+    # construction took most of the stress test's set-up time.
+    data = _holds_columns(conn, cols, where, args)
+    if data is None:  # a name holds the separator: row by row
+        cur = conn.cursor()
+        cur.row_factory = None
+        rows = cur.execute(f"SELECT {', '.join(cols)} FROM holds{where}", args).fetchall()
+        data = {}
+        for c, col in zip(cols, zip(*rows)):
+            data[c] = (pd.factorize(np.asarray(col, dtype=object), sort=True) if c in _TEXT_HOLD
+                       else np.array(col, dtype=np.int64 if c in _INT_HOLD else float))
+    if not data or len(data["deal"][0]) == 0:
+        return _holds_of_empty()[cols]
+    # Same order as ORDER BY deal, week, zone, network, daypart (BINARY collation = code-point
+    # order, which is the order of the sorted uniques' codes).
+    key = {c: (v[0] if c in _TEXT_HOLD else v) for c, v in data.items()}
+    order = np.lexsort([key["daypart"], key["network"], key["zone"], key["week"], key["deal"]]
+                       if all(c in key for c in ("zone", "network", "daypart", "week")) else [key["deal"]])
+    frame = {}
+    for c, v in data.items():
+        if c in _TEXT_HOLD:
+            codes, uniq = v
+            # the dtype `astype(str)` gives (pandas' str dtype, or object on older pandas)
+            frame[c] = pd.Series(np.asarray(uniq, dtype=object)).astype(str).array.take(codes[order])
+        else:
+            frame[c] = v[order]
+    return pd.DataFrame(frame)
 
 
 def list_deals(scenario_or_path: Any, book: str | os.PathLike | None = None) -> list[BookDeal]:
@@ -326,18 +367,29 @@ def get_deal(scenario_or_path: Any, name: str, book: str | os.PathLike | None = 
         return _deal_from_row(row, _holds_of(conn, name).drop(columns="deal"))
 
 
-def read_book(scenario_or_path: Any, book: str | os.PathLike | None = None) -> tuple[list[BookDeal], pd.DataFrame]:
-    """Every committed deal and every hold (DataFrame `deal` + `HOLD_COLUMNS`) from one snapshot."""
+def read_book(scenario_or_path: Any, book: str | os.PathLike | None = None, *,
+              hold_columns: list[str] | None = None) -> tuple[list[BookDeal], pd.DataFrame]:
+    """Every committed deal and every hold (DataFrame `deal` + `hold_columns`, default
+    `HOLD_COLUMNS`) from one snapshot; each deal carries its own holds."""
     with _reader(book_path(scenario_or_path, book)) as conn:
         if conn is None:
-            return [], _holds_of_empty()
+            return [], _holds_of_empty()[["deal"] + list(HOLD_COLUMNS if hold_columns is None else hold_columns)]
         conn.execute("BEGIN")  # one consistent read snapshot
         try:
             rows = conn.execute("SELECT * FROM deals ORDER BY committed_at, name").fetchall()
-            holds = _holds_of(conn)
+            holds = _holds_of(conn, columns=hold_columns)
         finally:
             conn.execute("COMMIT")
-        deals = [_deal_from_row(r, holds[holds["deal"] == r["name"]].drop(columns="deal").reset_index(drop=True))
+        # rows are ordered by deal: each deal's holds are one contiguous slice
+        names = holds["deal"].to_numpy()
+        bounds = {}
+        if len(names):
+            cut = np.flatnonzero(names[1:] != names[:-1]) + 1
+            starts = np.r_[0, cut]
+            ends = np.r_[cut, len(names)]
+            bounds = {names[a]: (a, b) for a, b in zip(starts, ends)}
+        body = holds.drop(columns="deal")
+        deals = [_deal_from_row(r, body.iloc[slice(*bounds.get(r["name"], (0, 0)))].reset_index(drop=True))
                  for r in rows]
         return deals, holds
 

@@ -159,29 +159,51 @@ class BookModel:
                             (self.mean < self.guarantee).astype(float))
 
 
+def _row_lookup(table: pd.DataFrame, rows: pd.DataFrame, keys: Sequence[str]) -> np.ndarray:
+    """Position in `table` of each row of `rows` on the columns `keys` (-1 where absent).
+
+    Keys of `table` are unique. Text columns are coded on one shared vocabulary and combined
+    into a single int64 key, which is much faster than a multi-column merge on text (a national
+    book: 1.1 M holds against a 1.5 M-row forecast)."""
+    combined_t = np.zeros(len(table), dtype=np.int64)
+    combined_r = np.zeros(len(rows), dtype=np.int64)
+    for k in keys:
+        ca, uniq = pd.factorize(table[k])
+        cr, uniq_r = pd.factorize(rows[k])  # code both sides, then match the (few) distinct values
+        cb = np.append(pd.Index(uniq).get_indexer(uniq_r), -1)[cr]
+        size = len(uniq) + 1
+        cb = np.where(cb < 0, size - 1, cb)  # a value the table lacks: a code no table row has
+        combined_t = combined_t * size + ca
+        combined_r = combined_r * size + cb
+    return pd.Index(combined_t).get_indexer(combined_r)
+
+
 def book_units(deals: Sequence[Any], holds: pd.DataFrame, forecast: pd.DataFrame,
                inventory: pd.DataFrame) -> pd.DataFrame:
     """One row per (deal, held unit): holds joined with the forecast row of the deal's demo and
     the inventory's preemption rate. Columns `deal, demo, zone, network, daypart, week, spots,
     mean_impressions, airing_sd, level_sd_network, level_sd_flight, level_sd_week, preempt_rate`."""
     demo_of = {d.name: d.demo for d in deals}
-    h = holds[holds["deal"].isin(list(demo_of))].copy()
-    h["demo"] = h["deal"].map(demo_of)
-    h["week"] = h["week"].astype("int64")
-    fc = forecast[UNIT_KEY + ["demo"] + _FORECAST_COLS].copy()
-    fc["week"] = fc["week"].astype("int64")
-    units = h[["deal", "demo"] + UNIT_KEY + ["spots"]].merge(fc, on=UNIT_KEY + ["demo"], how="left")
-    missing = units["mean_impressions"].isna()
+    h = holds[holds["deal"].isin(list(demo_of))]
+    units = h[["deal"] + UNIT_KEY + ["spots"]].reset_index(drop=True)
+    units.insert(1, "demo", units["deal"].map(demo_of).astype(str))
+    units["week"] = units["week"].astype("int64")
+    fc = forecast[UNIT_KEY + ["demo"] + _FORECAST_COLS]
+    at = _row_lookup(fc, units, UNIT_KEY + ["demo"])
+    missing = at < 0
     if missing.any():
         r = units[missing].iloc[0]
         raise InputError(f"forecast has no row for unit {r.zone}/{r.network}/{r.daypart}/week {r.week} "
                          f"demo {r.demo} held by deal {r.deal!r} ({int(missing.sum())} such holds); "
                          f"re-fit the forecast (pledge forecast fit)")
-    inv = inventory[UNIT_KEY + ["preempt_rate"]].copy()
-    inv["week"] = inv["week"].astype("int64")
-    units = units.merge(inv, on=UNIT_KEY, how="left")
-    units["preempt_rate"] = units["preempt_rate"].fillna(0.0).astype(float)
-    return units.reset_index(drop=True)
+    for c in _FORECAST_COLS:
+        units[c] = fc[c].to_numpy(float)[at]
+    inv = inventory[UNIT_KEY + ["preempt_rate"]]
+    at = _row_lookup(inv, units, UNIT_KEY)
+    rate = inv["preempt_rate"].to_numpy(float)
+    units["preempt_rate"] = np.where(at >= 0, rate[np.maximum(at, 0)], 0.0)
+    units["preempt_rate"] = units["preempt_rate"].fillna(0.0)
+    return units
 
 
 def build_book_model(deals: Sequence[Any], units: pd.DataFrame) -> BookModel:
@@ -574,7 +596,7 @@ def load_book_model(scenario: Any, book: str | os.PathLike | None = None, *, for
     """
     from planner.book import read_book
 
-    deals, holds = read_book(scenario, book)
+    deals, holds = read_book(scenario, book, hold_columns=["zone", "network", "daypart", "week", "spots"])
     if not deals:
         raise InputError(f"{getattr(scenario, 'path', scenario)}: the book has no committed deals "
                          f"(pledge book commit SCENARIO DEAL first)")

@@ -474,3 +474,29 @@ def test_check_of_a_booked_deal_counts_its_own_holds_as_available(tmp_path):
     after = check_deal(scn, "alpha", solver="highs", forecast=fc)
     assert after.deliverable and before.deliverable
     assert after.cost == pytest.approx(before.cost, rel=0.01)
+
+
+def test_fast_hold_read_equals_sql_order_by(tmp_path):
+    """The one-scan columnar read of holds gives exactly what a plain SELECT ... ORDER BY gives
+    (SQLite's BINARY collation order), also when a name holds the separator (row-by-row path)."""
+    path = tmp_path / "book.sqlite"
+    conn = bk.open_book(path)
+    rng = np.random.default_rng(3)
+    deals = ["zeta", "Alpha", "beta\x1fodd"]
+    for d in deals:
+        conn.execute("INSERT INTO deals (name, demo, guarantee, price_cpm, first_week, last_week, committed_at) "
+                     "VALUES (?, 'hh', 1, 1, 1, 2, '2026-01-01')", (d,))
+    rows = {(d, f"z{rng.integers(0, 30)}", rng.choice(["Net-b", "net-a", "Ñet"]), rng.choice(["prime", "day"]),
+             int(rng.integers(1, 14))) for d in deals for _ in range(400)}
+    conn.executemany("INSERT INTO holds (deal, zone, network, daypart, week, spots) VALUES (?, ?, ?, ?, ?, ?)",
+                     [(*r, int(rng.integers(1, 5))) for r in sorted(rows, key=lambda r: rng.random())])
+    cols = ["deal", "zone", "network", "daypart", "week", "spots"]
+    sql = "SELECT " + ", ".join(cols) + " FROM holds {} ORDER BY deal, week, zone, network, daypart"
+    for deal in (None, "zeta", "beta\x1fodd"):
+        where, args = ("", ()) if deal is None else ("WHERE deal = ?", (deal,))
+        ref = pd.DataFrame([tuple(r) for r in conn.execute(sql.format(where), args)], columns=cols)
+        got = bk._holds_of(conn, deal, columns=cols[1:])
+        assert got[cols].astype({c: object for c in cols[:4]}).reset_index(drop=True).equals(
+            ref.astype({c: object for c in cols[:4]}))
+    assert bk._holds_columns(conn, cols, "", ()) is None  # the separator forces the row path
+    conn.close()
