@@ -435,6 +435,9 @@ def main(argv=None) -> int:
                     help="write history for the first N zones only (default: every zone)")
     ap.add_argument("--no-book", action="store_true", help="skip committing the book")
     args = ap.parse_args(argv)
+    if args.no_history and not args.no_book:
+        ap.error("--no-history needs --no-book: committing the book loads the scenario, and a "
+                 "scenario needs its history (the data contract)")
     if args.days < 7 * TRAIL_WEEKS:
         ap.error(f"--days must be at least {7 * TRAIL_WEEKS} (the baseline uses {TRAIL_WEEKS} weeks)")
     out = args.out.resolve()
