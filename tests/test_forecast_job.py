@@ -111,6 +111,13 @@ def test_backtest_json_on_small_scenario(fitted_small, capsys):
     assert s["crps"] > 0 and 0 < s["wape"] < 1
     assert s["coverage"]["0.5"] <= s["coverage"]["0.8"] <= s["coverage"]["0.95"]
     assert s["units"] > 100
+    # --lead-days moves the cut-off: held-out days start that many days after it
+    assert main(["forecast", "backtest", str(dest), "--holdout-weeks", "6", "--lead-days", "7", "--json"]) == 0
+    h = json.loads(capsys.readouterr().out)["holdout"]
+    assert h["lead_gap_days"] == 7 and h["first_day"] == s["holdout"]["first_day"]
+    gap = (pd.Timestamp(h["first_day"]) - pd.Timestamp(h["cutoff_day"])).days
+    assert gap == 8  # the cut-off day is the last training day
+    assert main(["forecast", "backtest", str(dest), "--lead-days", "-1"]) == 2
 
 
 @pytest.mark.slow

@@ -95,6 +95,9 @@ def backtest_cmd(
     scenario: Path = typer.Argument(..., help="Scenario folder."),
     holdout_weeks: int = typer.Option(13, "--holdout-weeks", help="Weeks at the end of the history held out."),
     demo: str = typer.Option(None, "--demo", help="Backtest one demo only."),
+    lead_days: int = typer.Option(None, "--lead-days", min=0,
+                                  help="Days between the cut-off and the first held-out day (default: the real "
+                                       "forecast's lead, history end -> plan week 1)."),
     engine: str = typer.Option("duckdb", "--engine", help="History reduction engine: duckdb or spark."),
     seed: int = typer.Option(0, "--seed", help="Seed of every sample and model."),
     json_out: bool = typer.Option(False, "--json", help="Print one JSON object."),
@@ -106,7 +109,7 @@ def backtest_cmd(
     scn = load_scenario(scenario)
     with _progress("forecast backtest") as cb:
         s = backtest_scenario(scn, holdout_weeks=holdout_weeks, demo=demo, engine=_engine(engine), seed=seed,
-                              progress=cb)
+                              gap_days=lead_days, progress=cb)
     if json_out:
         print_json(s)
         return
