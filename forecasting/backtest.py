@@ -36,6 +36,21 @@ class BacktestResult:
     scored: pd.DataFrame
 
 
+def score_levels(actual, mean, sd) -> dict:
+    """Scores of normal forecasts N(mean, sd^2) of unit-week levels against what happened.
+
+    Parameters
+    ----------
+    actual, mean, sd : arrays of the same shape (impressions per spot).
+
+    Returns
+    -------
+    dict ``crps`` (mean, impressions), ``crps_relative`` (sum CRPS / sum |actual|), ``wape``
+    (fraction), ``coverage`` {"0.5", "0.8", "0.95"} (fractions inside the central intervals).
+    """
+    return _scores(np.asarray(actual, float), np.asarray(mean, float), np.asarray(sd, float))
+
+
 def _scores(y, mu, sd) -> dict:
     return {
         "crps": float(np.mean(crps_gaussian(y, mu, sd))),
@@ -107,7 +122,8 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
     u = np.where(np.isfinite(u), u, 1.0)
     df["size"] = np.log10(np.maximum(model_mean[s, p, w] * fc.universe_s_[s], 1e-9))
     rel = fc.level_.predict(df)
-    rel_sd = np.sqrt(rel["rel_sd_network"] ** 2 + rel["rel_sd_flight"] ** 2 + rel["rel_sd_week"] ** 2).to_numpy()
+    rel_sd = np.sqrt(rel["rel_sd_network"] ** 2 + rel["rel_sd_network_week"] ** 2 + rel["rel_sd_flight"] ** 2
+                     + rel["rel_sd_week"] ** 2).to_numpy()
     df["actual"] = actual[s, p, w] * u
     df["mean"] = model_mean[s, p, w] * u
     df["sd"] = rel_sd * df["mean"]

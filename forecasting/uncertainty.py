@@ -4,12 +4,20 @@ Level error. For each rolling-origin refit (fold j) and each unit-week (zone z, 
 daypart d, demo m, week w) the relative error of the daypart mean is
 ``e = actual / forecast - 1``. It is decomposed as nested random effects
 
-    e = a[n, j] + b[z, n, d, m, j] + c[z, n, d, m, w, j]
+    e = a[n, j] + g[n, w, j] + b[z, n, d, m, j] + c[z, n, d, m, w, j]
 
-(network factor shared by every unit of the network; flight factor shared across the weeks of a
-zone x network x daypart (x demo); unit-week own factor), with variances estimated by the method
-of moments of the nested ANOVA, pooled by daypart x size class (expected impressions) x genre and shrunk
-toward daypart x size class, then toward the daypart.
+(network factor shared by every unit of the network; network-week factor shared by every unit
+of the network in one week, all zones, dayparts and demos; flight factor shared across the
+weeks of a zone x network x daypart (x demo); unit-week own factor), with variances estimated
+by the method of moments of the nested ANOVA, pooled by daypart x size class (expected
+impressions) x genre and shrunk toward daypart x size class, then toward the daypart.
+
+Level and within-flight parts are estimated from different refits. The level parts (a, b, the
+bias and the carry-over) need the real lead time. The within-flight parts (g, c: how weeks of
+a flight differ from each other) need a model that has seen every calendar week: a refit on
+less than a year cannot learn the month-of-year shape and overstates them. They are therefore
+estimated on the refits that trained on at least `season_weeks` weeks (including a short-lead
+refit kept for this), when there are any.
 Units with short history: series truncated on purpose in the folds measure how much larger
 their errors are; the extra variance goes to the flight factor (a poorly known level persists
 through the flight).
@@ -34,7 +42,7 @@ from scipy.stats import norm
 FLIGHT_KEYS = ["fold", "zone", "network", "daypart", "demo"]
 
 #: floors on the relative sds (fractions of the mean) so nothing has zero variance
-FLOOR_SD = {"network": 0.01, "flight": 0.01, "week": 0.02, "airing": 0.05}
+FLOOR_SD = {"network": 0.01, "network_week": 0.005, "flight": 0.01, "week": 0.02, "airing": 0.05}
 
 
 def _group_mean(df: pd.DataFrame, keys, col: str) -> pd.Series:
@@ -47,21 +55,27 @@ class LevelErrorModel:
     Parameters
     ----------
     prior_flights : shrinkage weight (in flights) of a daypart x genre cell toward its daypart.
+    season_weeks : a refit that trained on at least this many weeks has seen every calendar
+        week; the within-flight components come from such refits when there are any.
 
     Attributes
     ----------
     bias_ : dict daypart -> mean relative error (the forecast is multiplied by 1 + bias).
     var_network_ : float, variance of the network factor.
-    var_flight_, var_week_ : DataFrame indexed by (daypart, genre), columns ``flight, week``.
-    var_flight_daypart_, var_week_daypart_ : Series by daypart (fallback for unseen genres).
+    var_network_week_ : float, variance of the network-week factor.
+    var_cells_ : DataFrame indexed by (daypart, size_bin, genre), columns ``flight, week``.
+    var_mid_ : the same by (daypart, size_bin); var_flight_daypart_, var_week_daypart_ : Series
+        by daypart (fallbacks for unseen cells).
     history_ratio_ : DataFrame ``weeks, ratio`` -- error variance of series with that many weeks
         of history over the full-history variance (>= 1, non-increasing in weeks).
     full_weeks_ : typical history length (weeks) of the full-history series in the folds.
-    n_rows_ : number of held-out unit-weeks used.
+    within_source_ : dict, which refits gave the within-flight components.
+    scale_ : quantile scale of every level sd; n_rows_ : number of held-out unit-weeks used.
     """
 
-    def __init__(self, prior_flights: float = 30.0):
+    def __init__(self, prior_flights: float = 30.0, season_weeks: float = 52.0):
         self.prior_flights = prior_flights
+        self.season_weeks = season_weeks
 
     def fit(self, errors: pd.DataFrame) -> "LevelErrorModel":
         """Fit on held-out errors.
@@ -70,19 +84,25 @@ class LevelErrorModel:
         ----------
         errors : one row per held-out unit-week with ``fold, zone, network, genre, daypart, demo,
             week, rel_error`` (actual / forecast - 1), ``truncated`` (bool: history cut on
-            purpose) and ``history_weeks`` (weeks of history the fold's fit had for the series).
+            purpose), ``history_weeks`` (weeks of history the fold's fit had for the series) and
+            optionally ``recent`` (log residual before the origin), ``size`` (log10 expected
+            impressions), ``role`` ("lead": a refit at the real lead time, the default;
+            "season": a short-lead refit used only for the within-flight components) and
+            ``train_weeks`` (weeks of history of the fold's training).
         """
         df = errors[np.isfinite(errors["rel_error"]) & (errors["rel_error"] > -1.0)].copy()
-        if "recent" not in df:
-            df["recent"] = 0.0
-        full = df[~df["truncated"]].copy()
+        for col, default in (("recent", 0.0), ("role", "lead"), ("train_weeks", np.nan)):
+            if col not in df:
+                df[col] = default
+        lead = df[df["role"] == "lead"].copy()
+        full = lead[~lead["truncated"]].copy()
         if len(full) < 10:
             raise ValueError("too few held-out unit-weeks to estimate forecast uncertainty")
         self._fit_recent(full)
-        for frame in (df, full):
+        for frame in (lead, full):
             frame["ratio"] = (1.0 + frame["rel_error"]) / np.exp(self.recent_beta(frame["week"]) * frame["recent"])
         self.bias_ = (full.groupby("daypart")["ratio"].mean() - 1.0).to_dict()
-        for frame in (df, full):
+        for frame in (lead, full):
             b = frame["daypart"].map(self.bias_).astype(float).fillna(0.0)
             frame["e"] = frame["ratio"] / (1.0 + b) - 1.0
         self.n_rows_ = len(full)
@@ -90,93 +110,174 @@ class LevelErrorModel:
             self.size_edges_ = np.quantile(full["size"][np.isfinite(full["size"])], [0.25, 0.5, 0.75])
         else:
             self.size_edges_ = np.array([])
-        for frame in (df, full):
+        for frame in (lead, full):
             frame["size_bin"] = self.size_bin(frame)
 
-        # Within flights: unit-week own factor.
+        flights, net = self._flights(full)
+        var_g = self._network_week_var(full)
+        self._fit_pools(flights, var_g)
+        self.var_network_week_ = var_g
+        self._fit_network(flights, net, full)
+        self._fit_history(lead[lead["truncated"]], full)  # ratios to the unscaled full-history variance
+        k = self._fit_scale(full)
+
+        # Within-flight components from the refits that saw a whole year, when there are any.
+        long = df[~df["truncated"] & (df["train_weeks"] >= self.season_weeks)].copy()
+        self.within_source_ = {"refits": "lead", "unit_weeks": int(len(full)),
+                               "train_weeks": sorted({float(w) for w in full["train_weeks"].round(1)
+                                                      if np.isfinite(w)})}
+        if len(long) >= 10 and long.groupby(FLIGHT_KEYS, observed=True).ngroups >= 10:
+            long["e"] = long["rel_error"]  # within-flight deviations need no level correction
+            long["size_bin"] = self.size_bin(long)
+            self._replace_within(long)
+            self.within_source_ = {"refits": f"trained >= {self.season_weeks:g} weeks",
+                                   "unit_weeks": int(len(long)),
+                                   "train_weeks": sorted({float(w) for w in long["train_weeks"].round(1)})}
+        self._apply_scale(k)
+        return self
+
+    # ------------------------------------------------------------------ components
+    @staticmethod
+    def _flights(full: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
+        """Per flight (fold x zone x network x daypart x demo): weeks W, mean, within sum of squares;
+        per fold x network: mean, rows N, flights M, weeks."""
         full["flight_mean"] = _group_mean(full, FLIGHT_KEYS, "e")
+        full["dev2"] = (full["e"] - full["flight_mean"]) ** 2
         g = full.groupby(FLIGHT_KEYS, sort=False, observed=True)
         flights = g.agg(daypart=("daypart", "first"), genre=("genre", "first"), network=("network", "first"),
-                        size_bin=("size_bin", "first"),
-                        fold=("fold", "first"), W=("e", "size"), mean=("e", "mean"),
-                        ss=("e", lambda x: float(((x - x.mean()) ** 2).sum()))).reset_index(drop=True)
-        # Network x fold means, and each flight's deviation from its network mean.
+                        size_bin=("size_bin", "first"), fold=("fold", "first"), W=("e", "size"),
+                        mean=("e", "mean"), ss=("dev2", "sum")).reset_index(drop=True)
         net = full.groupby(["fold", "network"], observed=True).agg(
-            net_mean=("e", "mean"), N=("e", "size")).reset_index()
+            net_mean=("e", "mean"), N=("e", "size"), weeks=("week", "nunique")).reset_index()
         nflights = flights.groupby(["fold", "network"]).size().rename("M").reset_index()
         net = net.merge(nflights, on=["fold", "network"])
         flights = flights.merge(net, on=["fold", "network"], how="left")
         flights["dev"] = flights["mean"] - flights["net_mean"]
+        return flights, net
 
-        def components(fl: pd.DataFrame) -> tuple[float, float, float]:
-            dof = float((fl["W"] - 1).clip(lower=0).sum())
-            var_w = float(fl["ss"].sum() / dof) if dof > 0 else np.nan
-            m = fl["M"].clip(lower=2).to_numpy(float)
-            corr = m / (m - 1.0)  # the deviation from a mean of M flights loses 1/M of the variance
-            var_f = float(np.mean(fl["dev"].to_numpy() ** 2 * corr) - np.mean(var_w / fl["W"]))
-            return var_w, var_f, float(len(fl))
+    @staticmethod
+    def _network_week_var(full: pd.DataFrame) -> float:
+        """Variance of the network-week factor (method of moments), from `full` with ``e`` and
+        ``flight_mean`` (see `_flights`).
 
-        # Pools: daypart <- daypart x size class <- daypart x size class x genre, each shrunk
-        # toward its parent by `prior_flights` (size: the unit's expected impressions, whose
-        # relative errors shrink as the audience grows).
+        With r = e - flight mean, the mean m of r over the n flights of a network in one week has
+        ``E[m^2] = (1 - 1/W)(var_g + var_c / n)`` and the pooled within-flight variance is
+        ``S1 = var_g + var_c``; solved for var_g.
+        """
+        r = full["e"] - full["flight_mean"]
+        key = [full["fold"], full["network"], full["week"]]
+        cell = pd.DataFrame({"m": r.groupby(key, observed=True).mean(),
+                             "n": r.groupby(key, observed=True).size()}).reset_index()
+        W = full.groupby(FLIGHT_KEYS, observed=True)["e"].transform("size")
+        dof = float((1.0 - 1.0 / W).sum())
+        if dof <= 0 or len(cell) == 0:
+            return FLOOR_SD["network_week"] ** 2
+        s1 = float((r ** 2).sum() / dof)
+        w_typ = float(W.mean())
+        shrink = max(1.0 - 1.0 / w_typ, 1e-6)
+        inv_n = float(np.mean(1.0 / cell["n"]))
+        m2 = float(np.mean(cell["m"] ** 2)) / shrink
+        var_g = (m2 - s1 * inv_n) / max(1.0 - inv_n, 1e-6)
+        return float(min(max(var_g, FLOOR_SD["network_week"] ** 2), s1))
+
+    def _components(self, fl: pd.DataFrame, var_g: float) -> tuple[float, float, float]:
+        """(within-flight variance var_g + var_c, flight variance, flights) of a pool of flights."""
+        dof = float((fl["W"] - 1).clip(lower=0).sum())
+        var_w = float(fl["ss"].sum() / dof) if dof > 0 else np.nan
+        m = fl["M"].clip(lower=2).to_numpy(float)
+        corr = m / (m - 1.0)  # the deviation from a mean of M flights loses 1/M of the variance
+        own = max(var_w - var_g, 0.0) if np.isfinite(var_w) else 0.0  # g is common to the network's flights
+        var_f = float(np.mean(fl["dev"].to_numpy() ** 2 * corr) - np.mean(own / fl["W"]))
+        return var_w, var_f, float(len(fl))
+
+    def _pooled(self, flights: pd.DataFrame, var_g: float):
+        """Shrunk pools daypart <- daypart x size class <- daypart x size class x genre, each shrunk
+        toward its parent by `prior_flights` (size: the unit's expected impressions, whose
+        relative errors shrink as the audience grows). Returns (by_dp, mid, cells) of
+        (within-flight, flight) variances."""
         k0 = self.prior_flights
+        floor_w = FLOOR_SD["week"] ** 2 + var_g
         by_dp = {}
         for dp, fl in flights.groupby("daypart"):
-            var_w, var_f, n = components(fl)
-            by_dp[dp] = (max(var_w, FLOOR_SD["week"] ** 2) if np.isfinite(var_w) else FLOOR_SD["week"] ** 2,
-                         max(var_f, FLOOR_SD["flight"] ** 2))
-        self.var_week_daypart_ = pd.Series({k: v[0] for k, v in by_dp.items()})
-        self.var_flight_daypart_ = pd.Series({k: v[1] for k, v in by_dp.items()})
+            var_w, var_f, n = self._components(fl, var_g)
+            by_dp[dp] = (max(var_w, floor_w) if np.isfinite(var_w) else floor_w, max(var_f, FLOOR_SD["flight"] ** 2))
 
         def shrunk(fl, parent_w, parent_f):
-            var_w, var_f, n = components(fl)
+            var_w, var_f, n = self._components(fl, var_g)
             var_w = parent_w if not np.isfinite(var_w) else (n * var_w + k0 * parent_w) / (n + k0)
             var_f = (n * max(var_f, 0.0) + k0 * parent_f) / (n + k0)
-            return max(var_w, FLOOR_SD["week"] ** 2), max(var_f, FLOOR_SD["flight"] ** 2)
+            return max(var_w, floor_w), max(var_f, FLOOR_SD["flight"] ** 2)
 
-        mid = {}
-        for (dp, sb), fl in flights.groupby(["daypart", "size_bin"]):
-            mid[(dp, sb)] = shrunk(fl, self.var_week_daypart_[dp], self.var_flight_daypart_[dp])
-        rows = []
-        for (dp, sb, genre), fl in flights.groupby(["daypart", "size_bin", "genre"]):
-            vw, vf = shrunk(fl, *mid[(dp, sb)])
-            rows.append({"daypart": dp, "size_bin": sb, "genre": genre, "flight": vf, "week": vw})
-        self.var_mid_ = pd.DataFrame([{"daypart": k[0], "size_bin": k[1], "week": v[0], "flight": v[1]}
+        mid = {(dp, sb): shrunk(fl, *by_dp[dp]) for (dp, sb), fl in flights.groupby(["daypart", "size_bin"])}
+        cells = {key: shrunk(fl, *mid[key[:2]])
+                 for key, fl in flights.groupby(["daypart", "size_bin", "genre"])}
+        return by_dp, mid, cells
+
+    def _fit_pools(self, flights: pd.DataFrame, var_g: float) -> None:
+        """Flight and unit-week variances by pool; the unit-week one is within-flight less var_g."""
+        by_dp, mid, cells = self._pooled(flights, var_g)
+        own = lambda v: max(v - var_g, FLOOR_SD["week"] ** 2)  # noqa: E731
+        self.var_week_daypart_ = pd.Series({k: own(v[0]) for k, v in by_dp.items()})
+        self.var_flight_daypart_ = pd.Series({k: v[1] for k, v in by_dp.items()})
+        self.var_mid_ = pd.DataFrame([{"daypart": k[0], "size_bin": k[1], "week": own(v[0]), "flight": v[1]}
                                       for k, v in mid.items()]).set_index(["daypart", "size_bin"])
-        self.var_cells_ = pd.DataFrame(rows).set_index(["daypart", "size_bin", "genre"])
+        self.var_cells_ = pd.DataFrame([{"daypart": k[0], "size_bin": k[1], "genre": k[2], "week": own(v[0]),
+                                         "flight": v[1]} for k, v in cells.items()]
+                                       ).set_index(["daypart", "size_bin", "genre"])
 
-        # Network factor: mean square of the network x fold means less what flights and weeks add.
+    def _fit_network(self, flights: pd.DataFrame, net: pd.DataFrame, full: pd.DataFrame) -> None:
+        """Network factor: mean square of the network x fold means less what the network-week,
+        flight and unit-week factors add to them."""
         fl_var = flights["daypart"].map(self.var_flight_daypart_).astype(float)
         wk_var = flights["daypart"].map(self.var_week_daypart_).astype(float)
         inner = (fl_var + wk_var / flights["W"]).groupby([flights["fold"], flights["network"]]).mean()
         net = net.set_index(["fold", "network"])
-        noise = inner.reindex(net.index).to_numpy() / net["M"].to_numpy()
+        noise = inner.reindex(net.index).to_numpy() / net["M"].to_numpy() \
+            + self.var_network_week_ / net["weeks"].to_numpy(float)
         self.var_network_ = max(float(np.mean(net["net_mean"].to_numpy() ** 2 - noise)),
                                 FLOOR_SD["network"] ** 2)
 
-        self._fit_history(df[df["truncated"]], full)  # ratios to the unscaled full-history variance
-        self._fit_scale(full)
-        return self
+    def _replace_within(self, long: pd.DataFrame) -> None:
+        """Network-week and unit-week variances from the errors `long` of refits that saw a year."""
+        flights, _ = self._flights(long)
+        var_g = self._network_week_var(long)
+        by_dp, mid, cells = self._pooled(flights, var_g)
+        own = lambda v: max(v - var_g, FLOOR_SD["week"] ** 2)  # noqa: E731
+        self.var_network_week_ = var_g
+        wk_dp = pd.Series({k: own(v[0]) for k, v in by_dp.items()})
+        self.var_week_daypart_ = wk_dp.reindex(self.var_week_daypart_.index).fillna(self.var_week_daypart_)
+        wk_mid = pd.Series({k: own(v[0]) for k, v in mid.items()})
+        wk_cell = pd.Series({k: own(v[0]) for k, v in cells.items()})
+        m = wk_mid.reindex(self.var_mid_.index)
+        fb = pd.Series(self.var_mid_.index.get_level_values(0), index=self.var_mid_.index).map(self.var_week_daypart_)
+        self.var_mid_["week"] = m.fillna(fb).to_numpy(float)
+        c = wk_cell.reindex(self.var_cells_.index)
+        fb = self.var_mid_["week"].reindex(self.var_cells_.index.droplevel(2)).to_numpy(float)
+        self.var_cells_["week"] = np.where(np.isfinite(c.to_numpy(float)), c.to_numpy(float), fb)
 
-    def _fit_scale(self, full: pd.DataFrame) -> None:
+    def _fit_scale(self, full: pd.DataFrame) -> float:
         """One factor k on every level sd so the held-out errors' central 50/80/95% coverage is
-        closest to nominal (least squares over the three levels), on the errors of `full`.
+        closest to nominal (least squares over the three levels), on the errors of `full` with
+        the components fitted on them.
 
         The errors are heavier-tailed than normal (shocks), so sds matched to the variance give
         bands too wide in the centre; matching the quantiles that deals are priced on is what the
         normal model downstream needs. k is estimated from the same held-out errors.
         """
         vf, vw = self._cell_vars(full)
-        z = np.abs(full["e"].to_numpy(float)) / np.sqrt(self.var_network_ + vf + vw)
+        z = np.abs(full["e"].to_numpy(float)) / np.sqrt(self.var_network_ + self.var_network_week_ + vf + vw)
         levels = np.array([0.5, 0.8, 0.95])
         q = norm.ppf(0.5 + levels / 2)
         grid = np.arange(0.5, 2.0001, 0.005)
         zs = np.sort(z)
         cover = np.searchsorted(zs, np.outer(grid, q), side="right") / len(zs)  # (grid, levels)
         loss = ((cover - levels[None, :]) ** 2).sum(axis=1)
-        k = float(grid[int(np.argmin(loss))])
+        return float(grid[int(np.argmin(loss))])
+
+    def _apply_scale(self, k: float) -> None:
         self.scale_ = k
         self.var_network_ *= k * k
+        self.var_network_week_ *= k * k
         self.var_cells_ = self.var_cells_ * (k * k)
         self.var_mid_ = self.var_mid_ * (k * k)
         self.var_flight_daypart_ = self.var_flight_daypart_ * (k * k)
@@ -257,7 +358,7 @@ class LevelErrorModel:
 
     def _total_var(self, units: pd.DataFrame) -> np.ndarray:
         vf, vw = self._cell_vars(units)
-        return self.var_network_ + vf + vw
+        return self.var_network_ + self.var_network_week_ + vf + vw
 
     def history_factor(self, history_weeks) -> np.ndarray:
         """Error-variance multiplier (>= 1) for series with `history_weeks` weeks of history.
@@ -274,7 +375,7 @@ class LevelErrorModel:
         return np.maximum(np.interp(np.log1p(np.maximum(h, 0.0)), np.log1p(weeks), ratio), 1.0)
 
     def predict(self, units: pd.DataFrame) -> pd.DataFrame:
-        """Relative sds of the three level factors for forecast units.
+        """Relative sds of the four level factors for forecast units.
 
         Parameters
         ----------
@@ -282,16 +383,17 @@ class LevelErrorModel:
 
         Returns
         -------
-        DataFrame ``bias, rel_sd_network, rel_sd_flight, rel_sd_week`` (fractions of the mean),
-        aligned with `units`.
+        DataFrame ``bias, rel_sd_network, rel_sd_network_week, rel_sd_flight, rel_sd_week``
+        (fractions of the mean), aligned with `units`.
         """
         dp = units["daypart"].astype(str)
         vf, vw = self._cell_vars(units)
-        total = self.var_network_ + vf + vw
+        total = self.var_network_ + self.var_network_week_ + vf + vw
         extra = (self.history_factor(units["history_weeks"].to_numpy(float)) - 1.0) * total
         return pd.DataFrame({
             "bias": dp.map(self.bias_).astype(float).fillna(0.0).to_numpy(),
             "rel_sd_network": np.full(len(units), np.sqrt(self.var_network_)),
+            "rel_sd_network_week": np.full(len(units), np.sqrt(self.var_network_week_)),
             "rel_sd_flight": np.sqrt(vf + extra),
             "rel_sd_week": np.sqrt(vw),
         }, index=units.index)
@@ -300,6 +402,8 @@ class LevelErrorModel:
         """Plain figures for meta.json."""
         return {
             "rel_sd_network": float(np.sqrt(self.var_network_)),
+            "rel_sd_network_week": float(np.sqrt(self.var_network_week_)),
+            "within_flight_source": self.within_source_,
             "rel_sd_flight_by_daypart": {k: float(np.sqrt(v)) for k, v in self.var_flight_daypart_.items()},
             "rel_sd_week_by_daypart": {k: float(np.sqrt(v)) for k, v in self.var_week_daypart_.items()},
             "bias_by_daypart": {k: float(v) for k, v in self.bias_.items()},

@@ -2,8 +2,9 @@
 
 One bought 30-second spot of unit i (zone x network x daypart x week) delivers
 
-    spot_i = A * (mu_i + a_net_i Z_net[network] + a_flt_i Z_flt[zone, network, daypart]
-                  + a_wk_i Z_wk[i] + airing_sd_i eps),      A ~ Bernoulli(1 - p_i)
+    spot_i = A * (mu_i + a_net_i Z_net[network] + a_nw_i Z_nw[network, week]
+                  + a_flt_i Z_flt[zone, network, daypart] + a_wk_i Z_wk[i] + airing_sd_i eps),
+    A ~ Bernoulli(1 - p_i)
 
 with the Z's and eps iid standard normal (DEVELOPERS.md, "Forecast table"). For whole spots
 x (one count per unit) the delivered total D has
@@ -11,7 +12,8 @@ x (one count per unit) the delivered total D has
     E[D]   = sum_i x_i (1 - p_i) mu_i
     Var[D] = ||A x||^2 + sum_i x_i [(1 - p_i) airing_sd_i^2 + p_i (1 - p_i)(mu_i^2 + level_sd_i^2)]
 
-where A stacks the three level factors (loadings times 1 - p_i). The first part is quadratic
+where A stacks the four level factors (loadings times 1 - p_i). The network-week loading
+(`level_sd_network_week`) is optional: a forecast table without it has none. The first part is quadratic
 in x (shared level errors do not average out), the second linear (per-spot noise and
 preemption do). Everything here works on arrays, one entry per unit row.
 
@@ -33,6 +35,7 @@ UNIT_KEY = ["zone", "network", "daypart", "week"]
 FLIGHT_KEY = ["zone", "network", "daypart"]
 REQUIRED = UNIT_KEY + ["mean_impressions", "airing_sd", "level_sd_network", "level_sd_flight",
                        "level_sd_week", "preempt_rate"]
+OPTIONAL = {"level_sd_network_week": 0.0}
 
 
 @dataclass
@@ -40,9 +43,9 @@ class FactorLoadings:
     """A plan's delivery as a linear function of the shared level factors.
 
     D = mean + sum_f loading_f Z_f + (independent rest with variance `linear_variance`).
-    `network` is indexed by network, `flight` by (zone, network, daypart), `week` by
-    (zone, network, daypart, week); loadings in impressions per unit standard-normal factor.
-    Only factors with a non-zero loading are listed.
+    `network` is indexed by network, `network_week` by (network, week), `flight` by (zone,
+    network, daypart), `week` by (zone, network, daypart, week); loadings in impressions per
+    unit standard-normal factor. Only factors with a non-zero loading are listed.
     """
 
     mean: float
@@ -50,11 +53,13 @@ class FactorLoadings:
     flight: pd.Series
     week: pd.Series
     linear_variance: float
+    network_week: pd.Series | None = None
 
     @property
     def quadratic_variance(self) -> float:
         """Variance from the level factors, impressions^2."""
-        return float((self.network ** 2).sum() + (self.flight ** 2).sum() + (self.week ** 2).sum())
+        nw = 0.0 if self.network_week is None else float((self.network_week ** 2).sum())
+        return float((self.network ** 2).sum() + (self.flight ** 2).sum() + (self.week ** 2).sum()) + nw
 
 
 class DeliveryModel:
@@ -62,11 +67,12 @@ class DeliveryModel:
 
     Build with `DeliveryModel.from_units(units)`; `units` has one row per unit with the
     forecast columns (`mean_impressions`, `airing_sd`, `level_sd_network`, `level_sd_flight`,
-    `level_sd_week`, impressions per spot) and `preempt_rate` (fraction).
+    `level_sd_week`, optionally `level_sd_network_week`, impressions per spot) and
+    `preempt_rate` (fraction).
     """
 
     def __init__(self, mu, airing_sd, w_net, w_flight, w_week, preempt, net_code, flight_code,
-                 networks=None, flights=None, keys=None):
+                 networks=None, flights=None, keys=None, w_nw=None, nw_code=None, network_weeks=None):
         self.mu = np.asarray(mu, dtype=float)
         self.airing_sd = np.asarray(airing_sd, dtype=float)
         self.p = np.asarray(preempt, dtype=float)
@@ -78,13 +84,17 @@ class DeliveryModel:
         self.n = self.mu.size
         self.n_net = int(self.net_code.max()) + 1 if self.n else 0
         self.n_flight = int(self.flight_code.max()) + 1 if self.n else 0
+        self.w_nw_raw = np.zeros(self.n) if w_nw is None else np.asarray(w_nw, dtype=float)
+        self.nw_code = self.net_code.copy() if nw_code is None else np.asarray(nw_code, dtype=np.int64)
+        self.n_nw = int(self.nw_code.max()) + 1 if self.n else 0
         keep = 1.0 - self.p
         # Loadings of one bought spot on each factor, already times the chance it airs.
         self.a_net = self.w_net_raw * keep
         self.a_flight = self.w_flight_raw * keep
         self.a_week = self.w_week_raw * keep
+        self.a_nw = self.w_nw_raw * keep
         self.m = keep * self.mu  # expected impressions of one bought spot
-        level_var = self.w_net_raw ** 2 + self.w_flight_raw ** 2 + self.w_week_raw ** 2
+        level_var = self.w_net_raw ** 2 + self.w_nw_raw ** 2 + self.w_flight_raw ** 2 + self.w_week_raw ** 2
         # Per-spot variance that is linear in x: airing noise plus preemption.
         self.v_lin = keep * self.airing_sd ** 2 + self.p * keep * (self.mu ** 2 + level_var)
         # Per-spot variance if every error were independent per spot (for comparison only).
@@ -92,6 +102,7 @@ class DeliveryModel:
         self.networks = networks
         self.flights = flights
         self.keys = keys
+        self.network_weeks = network_weeks
 
     @classmethod
     def from_units(cls, units: pd.DataFrame) -> "DeliveryModel":
@@ -109,13 +120,20 @@ class DeliveryModel:
             [np.asarray(zu)[uniq // (nn * nd)], np.asarray(networks)[(uniq // nd) % nn], np.asarray(du)[uniq % nd]],
             names=FLIGHT_KEY)
         keys = pd.MultiIndex.from_frame(units[UNIT_KEY])
+        wc, wu = pd.factorize(units["week"], sort=True)
+        uniq_nw, nw_code = np.unique(net_code.astype(np.int64) * max(len(wu), 1) + wc, return_inverse=True)
+        network_weeks = pd.MultiIndex.from_arrays(
+            [np.asarray(networks)[uniq_nw // max(len(wu), 1)], np.asarray(wu)[uniq_nw % max(len(wu), 1)]],
+            names=["network", "week"])
+        w_nw = (units["level_sd_network_week"].to_numpy(float) if "level_sd_network_week" in units
+                else np.zeros(len(units)))
         return cls(
             units["mean_impressions"].to_numpy(float), units["airing_sd"].to_numpy(float),
             units["level_sd_network"].to_numpy(float), units["level_sd_flight"].to_numpy(float),
             units["level_sd_week"].to_numpy(float), units["preempt_rate"].to_numpy(float),
             net_code, flight_code, networks=pd.Index(networks, name="network"),
             flights=flights if len(flights) else None,
-            keys=keys,
+            keys=keys, w_nw=w_nw, nw_code=nw_code, network_weeks=network_weeks,
         )
 
     # -- moments ---------------------------------------------------------------------------
@@ -124,16 +142,18 @@ class DeliveryModel:
         return float(np.dot(self.m, x))
 
     def factor_sums(self, x):
-        """(A x) split by level: network (n_net,), flight (n_flight,), week (n,) impressions."""
+        """(A x) split by level: network (n_net,), flight (n_flight,), week (n,), network-week
+        (n_nw,) impressions."""
         x = np.asarray(x, dtype=float)
         return (np.bincount(self.net_code, self.a_net * x, minlength=self.n_net),
                 np.bincount(self.flight_code, self.a_flight * x, minlength=self.n_flight),
-                self.a_week * x)
+                self.a_week * x,
+                np.bincount(self.nw_code, self.a_nw * x, minlength=self.n_nw))
 
     def quadratic_variance(self, x) -> float:
         """||A x||^2: variance from the shared level errors, impressions^2."""
-        s_net, s_flt, s_wk = self.factor_sums(x)
-        return float(s_net @ s_net + s_flt @ s_flt + s_wk @ s_wk)
+        s_net, s_flt, s_wk, s_nw = self.factor_sums(x)
+        return float(s_net @ s_net + s_flt @ s_flt + s_wk @ s_wk + s_nw @ s_nw)
 
     def linear_variance(self, x) -> float:
         """Variance from per-spot airing noise and preemption (linear in x), impressions^2."""
@@ -153,8 +173,9 @@ class DeliveryModel:
 
     def quadratic_gradient(self, x) -> np.ndarray:
         """A'A x (shape (n,)): half the gradient of ||A x||^2, impressions^2 per spot."""
-        s_net, s_flt, s_wk = self.factor_sums(x)
-        return self.a_net * s_net[self.net_code] + self.a_flight * s_flt[self.flight_code] + self.a_week * s_wk
+        s_net, s_flt, s_wk, s_nw = self.factor_sums(x)
+        return (self.a_net * s_net[self.net_code] + self.a_flight * s_flt[self.flight_code] + self.a_week * s_wk
+                + self.a_nw * s_nw[self.nw_code])
 
     def sd_gradient(self, x, linear_fixed: float | None = None) -> np.ndarray:
         """Gradient of sqrt(||A x||^2 + l0) in x, impressions per spot.
@@ -176,15 +197,17 @@ class DeliveryModel:
 
     def factor_loadings(self, x) -> FactorLoadings:
         """Per-factor aggregated loadings of the plan x (for joint draws across deals)."""
-        s_net, s_flt, s_wk = self.factor_sums(x)
+        s_net, s_flt, s_wk, s_nw = self.factor_sums(x)
         net_index = self.networks if self.networks is not None else pd.RangeIndex(self.n_net)
+        nw_index = self.network_weeks if self.network_weeks is not None else pd.RangeIndex(self.n_nw)
+        nw = pd.Series(s_nw, index=nw_index, name="loading")
         flt_index = self.flights if self.flights is not None else pd.RangeIndex(self.n_flight)
         wk_index = self.keys if self.keys is not None else pd.RangeIndex(self.n)
         net = pd.Series(s_net, index=net_index, name="loading")
         flt = pd.Series(s_flt, index=flt_index, name="loading")
         wk = pd.Series(s_wk, index=wk_index, name="loading")
         return FactorLoadings(self.mean(x), net[net != 0], flt[flt != 0], wk[wk != 0],
-                              self.linear_variance(x))
+                              self.linear_variance(x), nw[nw != 0])
 
     # -- Monte Carlo -----------------------------------------------------------------------
     def sample(self, x, draws: int, rng: np.random.Generator, exact: bool = False,
@@ -205,7 +228,9 @@ class DeliveryModel:
         xa = x[act]
         mu, p, sd_air = self.mu[act], self.p[act], self.airing_sd[act]
         wn, wf, ww = self.w_net_raw[act], self.w_flight_raw[act], self.w_week_raw[act]
+        wg = self.w_nw_raw[act]
         net_u, net_c = np.unique(self.net_code[act], return_inverse=True)
+        nw_u, nw_c = np.unique(self.nw_code[act], return_inverse=True)
         flt_u, flt_c = np.unique(self.flight_code[act], return_inverse=True)
         xi = np.rint(xa).astype(np.int64)
         step = max(1, int(chunk_cells // act.size))
@@ -215,6 +240,8 @@ class DeliveryModel:
             z_flt = rng.standard_normal((k, flt_u.size))
             z_wk = rng.standard_normal((k, act.size))
             level = mu + wn * z_net[:, net_c] + wf * z_flt[:, flt_c] + ww * z_wk  # (k, n_act)
+            if wg.any():
+                level += wg * rng.standard_normal((k, nw_u.size))[:, nw_c]
             if exact:
                 aired = rng.binomial(xi, 1.0 - p, size=(k, act.size))
                 total = (aired * level).sum(axis=1)

@@ -36,6 +36,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from scipy import sparse
 
 from planner.delivery import FLIGHT_KEY, UNIT_KEY, DeliveryModel
 from planner.errors import InputError
@@ -128,11 +129,16 @@ def level_posterior(obs: pd.DataFrame) -> LevelPosterior:
 
     `obs`: posted rows joined with their forecast rows: `zone, network, daypart, week,
     spots_aired, impressions, mean_impressions, airing_sd, level_sd_network, level_sd_flight,
-    level_sd_week` (impressions per spot). Rows with 0 aired spots carry no evidence.
+    level_sd_week` and optionally `level_sd_network_week` (impressions per spot). Rows with 0
+    aired spots carry no evidence. The network-week factors of the posted weeks are integrated
+    out (they are shared by the posted units of a network in one week and say nothing of later
+    weeks): their covariance joins the noise's, inverted by the Woodbury identity (each row
+    loads on one of them, so the inner matrix is diagonal).
 
     References
     ----------
-    Bishop (2006), PRML, eq. 3.50-3.51 (posterior of a linear-Gaussian model).
+    Bishop (2006), PRML, eq. 3.50-3.51 (posterior of a linear-Gaussian model); Woodbury
+    matrix identity (e.g. Golub & Van Loan, Matrix Computations, 4th ed., sec. 2.1.4).
     """
     obs = obs[obs["spots_aired"] > 0].reset_index(drop=True)
     net_c, nets = pd.factorize(obs["network"], sort=True)
@@ -152,9 +158,18 @@ def level_posterior(obs: pd.DataFrame) -> LevelPosterior:
     H[np.arange(J), Nn + flt_c] = obs["level_sd_flight"].to_numpy(float)
     Hw = H / r[:, None]
     precision = np.eye(K) + H.T @ Hw
+    rhs = Hw.T @ resid
+    g = obs["level_sd_network_week"].to_numpy(float) if "level_sd_network_week" in obs else np.zeros(J)
+    if np.any(g > 0):
+        nw_c, nw_u = pd.factorize(pd.MultiIndex.from_frame(obs[["network", "week"]]))
+        Gr = sparse.csr_matrix((g / r, (nw_c, np.arange(J))), shape=(len(nw_u), J))  # G' R^-1
+        A = np.asarray(Gr @ H)  # (n_nw, K)
+        d = 1.0 + np.bincount(nw_c, g * g / r, minlength=len(nw_u))
+        precision -= A.T @ (A / d[:, None])
+        rhs -= A.T @ (np.asarray(Gr @ resid) / d)
     cov = np.linalg.inv(precision)
     cov = (cov + cov.T) / 2
-    mean = cov @ (Hw.T @ resid)
+    mean = cov @ rhs
     return LevelPosterior(pd.Index(nets, name="network"),
                           pd.MultiIndex.from_tuples(list(flts), names=FLIGHT_KEY), mean, cov, J)
 
@@ -192,7 +207,8 @@ def update_forecast(forecast: pd.DataFrame, post: LevelPosterior) -> pd.DataFram
     out["mean_impressions"] = np.maximum(out["mean_impressions"].to_numpy(float) + shift, 0.0)
     out["level_sd_network"] = new_a
     out["level_sd_flight"] = np.sqrt(new_b2)
-    level_sd = np.sqrt(new_a ** 2 + new_b2 + c ** 2)
+    g = out["level_sd_network_week"].to_numpy(float) if "level_sd_network_week" in out else 0.0
+    level_sd = np.sqrt(new_a ** 2 + new_b2 + c ** 2 + g ** 2)
     out["level_sd"] = level_sd
     if "universe" in out.columns and "mean_rating" in out.columns:
         with np.errstate(divide="ignore", invalid="ignore"):

@@ -49,7 +49,8 @@ from planner.errors import InputError
 ALPHA = 0.95
 LIABILITY_BASES = ("refund", "makegood")
 _CHUNK = 100_000
-_FORECAST_COLS = ["mean_impressions", "airing_sd", "level_sd_network", "level_sd_flight", "level_sd_week"]
+_FORECAST_COLS = ["mean_impressions", "airing_sd", "level_sd_network", "level_sd_flight", "level_sd_week",
+                  "level_sd_network_week"]
 
 
 # --------------------------------------------------------------------------- shocks
@@ -104,7 +105,8 @@ def apply_shocks(units: pd.DataFrame, shocks: Sequence[Shock] = (), preempt_mult
         mask = np.ones(len(out), bool) if s.kind == "all" else (out[s.kind].astype(str) == s.name).to_numpy()
         factor = np.where(mask, factor * (1.0 + s.change), factor)
     for c in _FORECAST_COLS:
-        out[c] = out[c].to_numpy(float) * factor
+        if c in out:
+            out[c] = out[c].to_numpy(float) * factor
     if preempt_multiplier != 1.0:
         if preempt_multiplier < 0:
             raise InputError(f"--preempt-multiplier {preempt_multiplier}: must be >= 0")
@@ -182,12 +184,15 @@ def book_units(deals: Sequence[Any], holds: pd.DataFrame, forecast: pd.DataFrame
                inventory: pd.DataFrame) -> pd.DataFrame:
     """One row per (deal, held unit): holds joined with the forecast row of the deal's demo and
     the inventory's preemption rate. Columns `deal, demo, zone, network, daypart, week, spots,
-    mean_impressions, airing_sd, level_sd_network, level_sd_flight, level_sd_week, preempt_rate`."""
+    mean_impressions, airing_sd, level_sd_network, level_sd_flight, level_sd_week,
+    level_sd_network_week, preempt_rate`."""
     demo_of = {d.name: d.demo for d in deals}
     h = holds[holds["deal"].isin(list(demo_of))]
     units = h[["deal"] + UNIT_KEY + ["spots"]].reset_index(drop=True)
     units.insert(1, "demo", units["deal"].map(demo_of).astype(str))
     units["week"] = units["week"].astype("int64")
+    if "level_sd_network_week" not in forecast:  # a forecast table from before the network-week factor
+        forecast = forecast.assign(level_sd_network_week=0.0)
     fc = forecast[UNIT_KEY + ["demo"] + _FORECAST_COLS]
     at = _row_lookup(fc, units, UNIT_KEY + ["demo"])
     missing = at < 0
@@ -211,7 +216,8 @@ def build_book_model(deals: Sequence[Any], units: pd.DataFrame) -> BookModel:
 
     `deals` are objects with `name, guarantee, price_cpm, cost` (e.g. `planner.book.BookDeal`);
     `units` as returned by `book_units` (shocks already applied). One `DeliveryModel` over all
-    rows gives each row's per-spot loadings on the network, flight and unit-week factors and its
+    rows gives each row's per-spot loadings on the network, network-week, flight and unit-week
+    factors and its
     linear variance; times the row's spots and summed per deal and factor, they give the deals'
     loadings. Flight and week factors are keyed by the unit (not the demo), so deals in
     different demos holding the same units share them.
@@ -236,7 +242,8 @@ def build_book_model(deals: Sequence[Any], units: pd.DataFrame) -> BookModel:
     net_load = sparse.csr_matrix((dm.a_net * x, (deal_c, dm.net_code)), shape=(D, len(networks))).toarray()
     week_c = units.groupby(UNIT_KEY, sort=False, observed=True).ngroup().to_numpy()
     other = np.diag(lin)
-    for load, code, n in ((dm.a_flight * x, dm.flight_code, dm.n_flight), (dm.a_week * x, week_c, int(week_c.max()) + 1)):
+    for load, code, n in ((dm.a_flight * x, dm.flight_code, dm.n_flight), (dm.a_week * x, week_c, int(week_c.max()) + 1),
+                          (dm.a_nw * x, dm.nw_code, dm.n_nw)):
         B = sparse.csr_matrix((load, (deal_c, code)), shape=(D, n))  # duplicates are summed
         other = other + (B @ B.T).toarray()
     guarantee = np.array([float(d.guarantee) for d in deals])
@@ -294,6 +301,8 @@ def exact_chunks(model: BookModel, draws: int, rng: np.random.Generator, *, per_
     net_c = pd.Index(model.networks).get_indexer(rows["network"].astype(str))
     flt_c, flt_u = pd.factorize(pd.MultiIndex.from_frame(rows[FLIGHT_KEY].astype(str)))
     wk_c, wk_u = pd.factorize(pd.MultiIndex.from_frame(rows[UNIT_KEY].astype({"week": "int64"})))
+    nw_c, nw_u = pd.factorize(pd.MultiIndex.from_frame(rows[["network", "week"]].astype({"network": str, "week": "int64"})))
+    wg = rows["level_sd_network_week"].to_numpy(float) if "level_sd_network_week" in rows else np.zeros(len(rows))
     deal_c = pd.Index(model.deals).get_indexer(rows["deal"])
     mu = rows["mean_impressions"].to_numpy(float)
     wn, wf, ww = (rows[c].to_numpy(float) for c in ("level_sd_network", "level_sd_flight", "level_sd_week"))
@@ -319,6 +328,8 @@ def exact_chunks(model: BookModel, draws: int, rng: np.random.Generator, *, per_
         z_flt = rng.standard_normal((k, len(flt_u)))
         z_wk = rng.standard_normal((k, len(wk_u)))
         level = mu + wn * z_net[:, net_c] + wf * z_flt[:, flt_c] + ww * z_wk[:, wk_c]  # (k, R)
+        if wg.any():
+            level += wg * rng.standard_normal((k, len(nw_u)))[:, nw_c]
         if per_spot:
             lv = level[:, spot_row]
             aired = rng.random((k, spot_row.size)) >= p[spot_row]

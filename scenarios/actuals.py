@@ -80,3 +80,46 @@ def posted_actuals(scenario, spots: pd.DataFrame, demo: str, *, weeks: Iterable[
         total[rows] = np.bincount(rep, weights=imp, minlength=len(r))
     plan["impressions"] = np.round(total)  # posted impressions are whole people (or homes)
     return plan[ACTUALS_COLUMNS].astype({"week": "int64", "spots_aired": "int64", "impressions": "float64"})
+
+
+def true_unit_week_levels(scenario, demos: Iterable[str] | None = None) -> pd.DataFrame:
+    """The simulated plan weeks' true unit-week levels: what one spot rotated across a daypart's
+    quarter-hours and days delivered on average that week, in the generator's simulated future.
+
+    The quantity the forecast table's `mean_impressions` and `level_sd` describe (the mean of the
+    daypart's quarter-hour-day ratings of the week, times the universe), so a forecast can be
+    scored on the weeks it was made for. Everything is invented.
+
+    Returns a DataFrame zone, network, daypart, week, demo, true_impressions (people or homes per
+    spot), one row per series x daypart x plan week.
+    """
+    from forecasting.dayparts import as_specs, daypart_week_means
+
+    if scenario.history_generator is None:
+        raise ValueError("true_unit_week_levels needs a scenario with a [history_generator] table")
+    spec = spec_from_scenario(scenario)
+    demos = list(demos) if demos is not None else list(spec.demos)
+    specs = as_specs(scenario.dayparts)
+    start = np.datetime64(spec.start, "D")
+    p0 = int((np.datetime64(scenario.week_start(1), "D") - start).astype(np.int64))
+    W = int(scenario.weeks)
+    span = 7 * W + 1  # one day more: a daypart past midnight ends on the next day
+    sim = _Sim(spec)
+    uni = scenario.universes.set_index(["zone", "demo"])["universe"]
+    names = np.array([d.name for d in specs])
+    wd = pd.Timestamp(scenario.week_start(1)).day_of_week  # weekday of the slice's first day
+    frames = []
+    for zi, zone in enumerate(spec.zones):
+        cube = sim.zone(zi)  # (networks, demos, days, 96)
+        if p0 + span > cube.shape[2]:
+            raise ValueError("plan weeks run past the simulated horizon: raise horizon_days")
+        for demo in demos:
+            di = spec.demos.index(demo)
+            vals = cube[:, di, p0:p0 + span]  # (networks, span, 96)
+            mean, _ = daypart_week_means(vals, wd, 7 * np.arange(W), specs)  # (networks, P, W)
+            n, p, w = np.meshgrid(np.arange(len(spec.networks)), np.arange(len(specs)), np.arange(W), indexing="ij")
+            frames.append(pd.DataFrame({
+                "zone": zone, "network": np.asarray(spec.networks)[n.ravel()], "daypart": names[p.ravel()],
+                "week": w.ravel() + 1, "demo": demo,
+                "true_impressions": mean.ravel().astype(float) * float(uni[(zone, demo)])}))
+    return pd.concat(frames, ignore_index=True)

@@ -12,7 +12,7 @@ from planner.errors import InputError
 
 CONTRACT = ["zone", "network", "daypart", "week", "demo", "universe", "mean_rating", "mean_impressions",
             "airing_sd", "level_sd", "level_sd_network", "level_sd_flight", "level_sd_week",
-            "q10_impressions", "q90_impressions", "history_weeks"]
+            "q10_impressions", "q90_impressions", "history_weeks", "level_sd_network_week"]
 
 
 @pytest.fixture(scope="module")
@@ -37,6 +37,7 @@ def test_table_follows_the_contract(fitted_small):
     assert len(t) == len(scn.inventory) * len(scn.demos)
     assert not t[CONTRACT[5:]].isna().any().any()
     assert (t["level_sd_network"] > 0).all() and (t["level_sd_week"] > 0).all()
+    assert (t["level_sd_network_week"] > 0).all()
     # q10/q90 of one spot: mean -+ z(0.90) sd with sd^2 = level^2 + airing^2
     # (z(0.90) = 1.2816, NIST/SEMATECH normal table), q10 floored at zero.
     from scipy.stats import norm

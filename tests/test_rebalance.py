@@ -81,9 +81,12 @@ def test_missing_actuals_file(tmp_path):
 
 # --------------------------------------------------------------------------- the Gaussian update
 
-def test_level_posterior_matches_the_conditional_normal_formula():
+@pytest.mark.parametrize("nw", [0.0, 0.06])
+def test_level_posterior_matches_the_conditional_normal_formula(nw):
     """Precision form vs the textbook conditional of a joint normal (Rasmussen & Williams 2006,
-    eq. A.6): E[z|y] = S_zy S_yy^-1 (y - m), Cov[z|y] = I - S_zy S_yy^-1 S_yz, built explicitly."""
+    eq. A.6): E[z|y] = S_zy S_yy^-1 (y - m), Cov[z|y] = I - S_zy S_yy^-1 S_yz, built explicitly.
+    With a network-week factor (nw > 0) its covariance enters S_yy entry by entry (same network
+    and week), which checks the Woodbury path."""
     rng = np.random.default_rng(4)
     rows = []
     for z in ("z1", "z2"):
@@ -93,7 +96,8 @@ def test_level_posterior_matches_the_conditional_normal_formula():
                     mu = rng.uniform(1000, 5000)
                     rows.append(dict(zone=z, network=n, daypart=d, week=w, spots_aired=int(rng.integers(1, 6)),
                                      mean_impressions=mu, airing_sd=0.3 * mu, level_sd_network=0.1 * mu,
-                                     level_sd_flight=0.07 * mu, level_sd_week=0.05 * mu))
+                                     level_sd_flight=0.07 * mu, level_sd_week=0.05 * mu,
+                                     level_sd_network_week=nw * mu))
     obs = pd.DataFrame(rows)
     obs["impressions"] = obs["spots_aired"] * obs["mean_impressions"] * rng.uniform(0.7, 1.1, len(obs))
     post = rb.level_posterior(obs)
@@ -105,6 +109,10 @@ def test_level_posterior_matches_the_conditional_normal_formula():
         H[j, nets.index(r.network)] = r.level_sd_network
         H[j, len(nets) + flts.index((r.zone, r.network, r.daypart))] = r.level_sd_flight
     R = np.diag(obs.level_sd_week ** 2 + obs.airing_sd ** 2 / obs.spots_aired)
+    g = obs.level_sd_network_week.to_numpy()
+    same = (obs.network.to_numpy()[:, None] == obs.network.to_numpy()[None, :]) & (
+        obs.week.to_numpy()[:, None] == obs.week.to_numpy()[None, :])
+    R = R + np.outer(g, g) * same
     S_yy = H @ H.T + R
     y = obs.impressions / obs.spots_aired - obs.mean_impressions
     mean = H.T @ np.linalg.solve(S_yy, y)

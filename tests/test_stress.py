@@ -23,9 +23,10 @@ UNIT = ["zone", "network", "daypart", "week"]
 
 
 def _rows(deal, networks, *, zones=("z1", "z2"), dayparts=("prime", "day"), weeks=range(1, 5), spots=3,
-          mu=1000.0, air=300.0, net=150.0, flt=100.0, wk=80.0, p=0.0, demo="a"):
+          mu=1000.0, air=300.0, net=150.0, flt=100.0, wk=80.0, p=0.0, demo="a", nw=0.0):
     rows = [dict(deal=deal, demo=demo, zone=z, network=n, daypart=d, week=w, spots=spots, mean_impressions=mu,
-                 airing_sd=air, level_sd_network=net, level_sd_flight=flt, level_sd_week=wk, preempt_rate=p)
+                 airing_sd=air, level_sd_network=net, level_sd_flight=flt, level_sd_week=wk, preempt_rate=p,
+                 level_sd_network_week=nw)
             for z in zones for n in networks for d in dayparts for w in weeks]
     return rows
 
@@ -61,6 +62,10 @@ def test_model_moments_match_the_allocators_delivery_model():
     flights = 2 * 2 * (keep * 100.0 * 4) ** 2  # (zone, daypart) flights of n1, 4 weeks each
     weeks = 2 * 2 * 4 * (keep * 80.0) ** 2
     assert m.covariance[0, 1] == pytest.approx(net_a * net_b + flights + weeks)
+    # a network-week factor adds, per week of n1, (the deal's n1 loading in that week)^2
+    mg = _model([("a", ["n1", "n2"], 0.0), ("b", ["n1", "n3"], 0.0)], p=0.05, nw=60.0)
+    per_week = keep * 60.0 * 2 * 2  # zones x dayparts on n1 in one week
+    assert mg.covariance[0, 1] == pytest.approx(net_a * net_b + flights + weeks + 4 * per_week ** 2)
     # no shared unit: only the network factor links them
     units = pd.DataFrame(_rows("a", ["n1", "n2"], zones=("z1",)) + _rows("b", ["n1"], zones=("z2",)))
     m2 = st.build_book_model([_deal("a", 0), _deal("b", 0)], units)
@@ -113,11 +118,12 @@ def test_var_cvar_on_a_discrete_loss():
     assert var == 0 and cvar == pytest.approx(4.0)  # (20 x 10 + 30 x 0) / 50
 
 
-@pytest.mark.parametrize("method", ["exact", "per_spot"])
-def test_fast_sampler_agrees_with_the_exact_samplers(method):
+@pytest.mark.parametrize("method,nw", [("exact", 0.0), ("per_spot", 0.0), ("exact", 90.0)])
+def test_fast_sampler_agrees_with_the_exact_samplers(method, nw):
     """With preemptions (non-Gaussian per spot) the conditional-normal sampler must agree with
-    drawing every factor, every Bernoulli and every airing (per_spot: the naive sampler)."""
-    m = _model([("a", ["n1", "n2"], -0.8), ("b", ["n1", "n3"], -0.2)], p=0.08, spots=2)
+    drawing every factor, every Bernoulli and every airing (per_spot: the naive sampler); with a
+    network-week factor (nw > 0) the exact sampler draws it per network and week."""
+    m = _model([("a", ["n1", "n2"], -0.8), ("b", ["n1", "n3"], -0.2)], p=0.08, spots=2, nw=nw)
     fast = st.stress_model(m, draws=60_000, seed=11)
     slow = st.stress_model(m, draws=60_000, seed=12, method=method)
     for f, s in zip(fast.deals, slow.deals):

@@ -1,0 +1,60 @@
+"""The demo's fitted forecast scored on the plan weeks it was made for, against the generator's
+simulated future (known truth: the invented generator runs past the end of the history)."""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from forecasting.backtest import score_levels
+
+
+@pytest.fixture(scope="module")
+def scored(demo_fitted):
+    from planner.forecast_job import load_forecast
+    from planner.scenario import load_scenario
+    from scenarios.actuals import true_unit_week_levels
+
+    scn = load_scenario(demo_fitted)
+    table = load_forecast(scn)
+    truth = true_unit_week_levels(scn)
+    m = table.merge(truth, on=["zone", "network", "daypart", "week", "demo"], how="inner", validate="1:1")
+    assert len(m) == len(table)
+    return m
+
+
+def test_plan_week_bands_cover_the_simulated_truth(scored):
+    # Central 50/80/95% intervals of N(mean_impressions, level_sd^2) on 21,840 unit-weeks of
+    # the 13 plan weeks, made 17 weeks ahead by the model the planner uses. The issue's bar:
+    # within 5 points of nominal. (Measured 2026-12-02: about 52/83/96%.)
+    s = score_levels(scored["true_impressions"], scored["mean_impressions"], scored["level_sd"])
+    for level, got in s["coverage"].items():
+        assert abs(got - float(level)) <= 0.05, (level, got)
+    total_bias = scored["true_impressions"].sum() / scored["mean_impressions"].sum() - 1.0
+    assert abs(total_bias) < 0.05
+    assert s["wape"] < 0.15
+
+
+def test_short_histories_get_wider_bands_that_still_cover(scored):
+    # The demo has 3 zone x network series launched 150 days (21 weeks) before the history ends.
+    short = scored[scored["history_weeks"] < 30]
+    assert len(short) > 0
+    rel = (scored["level_sd"] / scored["mean_impressions"])
+    assert rel[short.index].median() > 1.05 * rel[scored["history_weeks"] >= 60].median()
+    inside = np.abs(short["true_impressions"] - short["mean_impressions"]) <= 1.2816 * short["level_sd"]
+    assert inside.mean() >= 0.70  # the 80% band; z(0.90) = 1.2816, NIST/SEMATECH normal table
+
+
+def test_network_week_errors_are_shared_across_zones(scored):
+    # The network-week factor exists because errors of one network in one week move together in
+    # every zone: the mean relative error of a network-week (over its zones, dayparts, demos)
+    # varies far more than independent unit-week errors would allow.
+    e = scored["true_impressions"] / scored["mean_impressions"] - 1.0
+    g = e.groupby([scored["network"], scored["week"]])
+    flight_mean = e.groupby([scored["zone"], scored["network"], scored["daypart"], scored["demo"]]).transform("mean")
+    r = e - flight_mean
+    nw_mean = r.groupby([scored["network"], scored["week"]]).mean()
+    n = g.size().median()
+    assert nw_mean.var() > 3 * r.var() / n
+    rel_nw = (scored["level_sd_network_week"] / scored["mean_impressions"]).median()
+    assert 0.3 * np.sqrt(nw_mean.var()) < rel_nw < 3 * np.sqrt(nw_mean.var())
