@@ -53,6 +53,8 @@ def run_one(name: str, args) -> tuple[list[dict], dict]:
     cmd = [sys.executable, str(script)]
     if name in SCALE:
         cmd += ["--json", "--large", str(args.large)]
+    elif name == "demo-fit":
+        cmd += ["--json"]
     env = dict(os.environ, PYTHONPATH=str(BENCH.parent))
     t0 = time.perf_counter()
     # Own process group, so a timeout stops the benchmark and the step it is running.
@@ -72,7 +74,7 @@ def run_one(name: str, args) -> tuple[list[dict], dict]:
         msg = (stderr.strip().splitlines() or ["no output"])[-1][:100]
         return [M.row(f"{name}: FAILED", "", msg, None, False)], {"stderr": stderr[-3000:]}
     out = json.loads(lines[-1])
-    rows = out["rows"] if name in SCALE else _generic_rows(name, out)
+    rows = out["rows"] if name in SCALE or "rows" in out else _generic_rows(name, out)
     details = out.get("details", out)
     details = dict(details) if isinstance(details, dict) else {"value": details}
     details["bench_wall_seconds"] = wall

@@ -89,17 +89,17 @@ def main() -> None:
 
             scenario = str(copy_demo(Path(tmp) / "demo"))
         fit = M.run_step([Path(__file__), "--step", "fit", "--scenario", scenario])
-        rows = [M.row("forecast fit on the demo, time", "< 120 s", f"{fit['fit_seconds']:.1f} s",
+        rows = [M.row("demo-fit: forecast fit on the demo, time", "< 120 s", f"{fit['fit_seconds']:.1f} s",
                       fit["fit_seconds"] / TARGET_FIT_SECONDS, fit["fit_seconds"] < TARGET_FIT_SECONDS),
-                M.row("forecast fit on the demo, CPU time (all threads)", "-", f"{fit['cpu_seconds']:.1f} s",
+                M.row("  CPU time of the fit (all threads)", "-", f"{fit['cpu_seconds']:.1f} s",
                       None, None),
-                M.row("forecast fit on the demo, peak memory", "-", f"{fit['peak_rss_bytes'] / M.GIB:.2f} GiB",
+                M.row("  peak memory of the fit", "-", f"{fit['peak_rss_bytes'] / M.GIB:.2f} GiB",
                       None, True)]
         result = {"fit": fit}
         pw = fit.get("plan_weeks") or {}
         for lv in ("0.5", "0.8", "0.95") if pw else ():
             c = pw["coverage"][lv]
-            rows.append(M.row(f"plan weeks vs simulated future: coverage of the {float(lv):.0%} interval",
+            rows.append(M.row(f"  plan weeks vs simulated future: coverage of the {float(lv):.0%} interval",
                               "(not a target)", f"{c:.1%}", None, None))
         if not args.skip_backtest:
             bt = M.run_step([Path(__file__), "--step", "backtest", "--scenario", scenario,
@@ -107,14 +107,14 @@ def main() -> None:
             result["backtest"] = bt
             for lv in ("0.5", "0.8", "0.95"):
                 c = bt["coverage"][lv]
-                rows.append(M.row(f"backtest coverage of the {float(lv):.0%} interval", f"{float(lv):.0%} +- 5 pts",
+                rows.append(M.row(f"  backtest coverage of the {float(lv):.0%} interval", f"{float(lv):.0%} +- 5 pts",
                                   f"{c:.1%}", abs(c - float(lv)) / 0.05, abs(c - float(lv)) <= 0.05))
             skill = bt["crps_skill_vs_best_baseline"]
-            rows.append(M.row("backtest CRPS below the better baseline", ">= 15%", f"{skill:.1%}",
+            rows.append(M.row("  backtest CRPS below the better baseline", ">= 15%", f"{skill:.1%}",
                               0.15 / skill if skill > 0 else float("inf"), skill >= 0.15))
         result["rows"] = rows
     if args.json:
-        print(json.dumps(result, indent=2, default=str))
+        print(json.dumps(result, default=str))  # one line: bench/run reads the last JSON line
     else:
         M.print_rows(rows)
 
