@@ -9,8 +9,8 @@
    give their own spreads. When the lead gap is long, one more refit scores the last horizon of
    the history right after its origin: it trains on the most history a refit can have (more
    than a year on a two-year history), and its errors give the within-flight components (how
-   the weeks of a flight differ), which a model that has not seen every calendar week
-   overstates.
+   the weeks of a flight differ), to which a model that has not seen every calendar week adds
+   its seasonal misfit.
 2. The final `ProfileForecaster` on the whole history, predicted for the plan weeks.
 3. Airing noise from the recent history's within-week dispersion (`airing_cv`).
 
