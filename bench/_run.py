@@ -21,10 +21,10 @@ BENCH = Path(__file__).resolve().parent
 SCALE = ["ingest", "fit", "allocate", "stress"]
 SCRIPTS = {"ingest": "bench_ingest.py", "fit": "bench_scale_fit.py", "allocate": "bench_scale_allocate.py",
            "stress": "bench_scale_stress.py", "demo-stress": "bench_stress.py", "demo-generate": "bench_generate.py",
-           "demo-fit": "bench_fit.py", "demo-allocate": "bench_allocate.py"}
+           "demo-fit": "bench_fit.py", "demo-allocate": "bench_allocate.py", "calibration": "bench_calibration.py"}
 
 
-DEFAULT = ["ingest", "stress", "allocate", "fit", "demo-stress", "demo-generate"]
+DEFAULT = ["ingest", "stress", "allocate", "fit", "demo-stress", "demo-generate", "demo-fit", "calibration"]
 
 
 def _generic_rows(name: str, out: dict) -> list[dict]:
@@ -55,6 +55,8 @@ def run_one(name: str, args) -> tuple[list[dict], dict]:
         cmd += ["--json", "--large", str(args.large)]
     elif name == "demo-fit":
         cmd += ["--json"]
+    elif name == "calibration":
+        cmd += ["--json", "--backtest"]
     env = dict(os.environ, PYTHONPATH=str(BENCH.parent))
     t0 = time.perf_counter()
     # Own process group, so a timeout stops the benchmark and the step it is running.
@@ -83,7 +85,8 @@ def run_one(name: str, args) -> tuple[list[dict], dict]:
 
 _PREFIX = {"ingest": "ingest", "stress": "stress", "naive": "stress", "check": "allocate",
            "allocation": "allocate", "forecast": "fit", "demo-stress": "demo-stress",
-           "demo-generate": "demo-generate", "demo-fit": "demo-fit", "demo-allocate": "demo-allocate"}
+           "demo-generate": "demo-generate", "demo-fit": "demo-fit", "demo-allocate": "demo-allocate",
+           "calibration": "calibration"}
 
 
 def previous_results() -> tuple[list[dict], dict]:

@@ -6,11 +6,7 @@
    (origin = plan start - gap - k x horizon; each scores the horizon after the same gap), with a
    share of series truncated on purpose to measure how short histories degrade. Held-out errors
    of unit-week daypart means feed `LevelErrorModel`; the baselines' errors in the same folds
-   give their own spreads. When the lead gap is long, one more refit scores the last horizon of
-   the history right after its origin: it trains on the most history a refit can have (more
-   than a year on a two-year history), and its errors give the within-flight components (how
-   the weeks of a flight differ), to which a model that has not seen every calendar week adds
-   its seasonal misfit.
+   give their own spreads.
 2. The final `ProfileForecaster` on the whole history, predicted for the plan weeks.
 3. Airing noise from the recent history's within-week dispersion (`airing_cv`).
 
@@ -58,7 +54,6 @@ class FoldResult:
     truncated: np.ndarray | None = None  # (S,) bool
     history_weeks: np.ndarray | None = None  # (S,)
     recent: np.ndarray | None = None  # (S, P) log(actual / fitted) over the last weeks before the origin
-    role: str = "lead"  # "lead": at the real lead time; "season": short lead, within-flight parts only
 
 
 def fold_origins(n_days: int, gap: int, horizon: int, n_folds: int, min_train: int) -> list[int]:
@@ -89,8 +84,6 @@ class DaypartForecaster:
     min_train_days : a fold needs at least this many days of training history.
     min_cells : a held-out unit-week counts only with this share of its cells observed.
     recent_weeks : weeks before the origin whose residual feeds the level correction.
-    season_refit : add the short-lead refit for the within-flight components (see the module
-        docstring) when the lead gap is at least 4 weeks and it trains on a year or more.
     model_params : keyword arguments of `ProfileForecaster`.
     random_state : seed of everything.
 
@@ -105,7 +98,7 @@ class DaypartForecaster:
     def __init__(self, n_folds: int = 3, truncate_share: float = 0.3,
                  truncate_weeks: Sequence[int] = (0, 4, 13, 26), airing_weeks: int = 52,
                  min_train_days: int = 182, min_cells: float = 0.5, recent_weeks: int = 8,
-                 season_refit: bool = True, model_params: dict | None = None, random_state: int = 0):
+                 model_params: dict | None = None, random_state: int = 0):
         self.n_folds = n_folds
         self.truncate_share = truncate_share
         self.truncate_weeks = tuple(truncate_weeks)
@@ -113,7 +106,6 @@ class DaypartForecaster:
         self.min_train_days = min_train_days
         self.min_cells = min_cells
         self.recent_weeks = recent_weeks
-        self.season_refit = season_refit
         self.model_params = model_params
         self.random_state = random_state
 
@@ -147,16 +139,14 @@ class DaypartForecaster:
         return np.where((c >= need) & np.isfinite(r), r, 0.0)
 
     def _run_fold(self, cube: ProfileCube, info: pd.DataFrame, dayparts, origin: int, gap: int,
-                  weeks: int, k: int, role: str = "lead") -> FoldResult:
+                  weeks: int, k: int) -> FoldResult:
         rng = np.random.default_rng([self.random_state, 101, k])
         S = cube.n_series
         train = cube.values[:, :origin].copy()
-        # Truncate a share of zone x network pairs (all their demos together); none in the
-        # season refit, which measures only full-history within-flight errors.
+        # Truncate a share of zone x network pairs (all their demos together).
         pair = pd.factorize(info["zone"].astype(str) + "\x1f" + info["network"].astype(str))[0]
         n_pairs = pair.max() + 1
-        share = self.truncate_share if role == "lead" else 0.0
-        chosen = rng.random(n_pairs) < share
+        chosen = rng.random(n_pairs) < self.truncate_share
         lengths = rng.choice(np.asarray(self.truncate_weeks), size=n_pairs)
         truncated = chosen[pair]
         for s in np.nonzero(truncated)[0]:
@@ -182,7 +172,7 @@ class DaypartForecaster:
             "trailing_8w": trailing_mean(cube.values, cube.day0.day_of_week, origin, dayparts, weeks),
         }
         recent = self._recent_residual(model, train, cube.day0, origin, dayparts)
-        return FoldResult(origin, a_mean, counts, f_mean, base, truncated, history_weeks, recent, role)
+        return FoldResult(origin, a_mean, counts, f_mean, base, truncated, history_weeks, recent)
 
     def _errors_frame(self, folds: list[FoldResult], info: pd.DataFrame, dayparts) -> tuple[pd.DataFrame, pd.DataFrame]:
         need = self.min_cells * self._expected_cells(dayparts)[None, :, None]
@@ -197,9 +187,9 @@ class DaypartForecaster:
                 "genre": info["genre"].to_numpy()[s], "demo": info["demo"].to_numpy()[s],
                 "daypart": names[p], "week": w + 1, "rel_error": rel,
                 "truncated": f.truncated[s], "history_weeks": f.history_weeks[s],
-                "recent": f.recent[s, p], "role": f.role, "train_weeks": f.origin / 7.0,
+                "recent": f.recent[s, p],
                 "size": np.log10(np.maximum(f.forecast[s, p, w] * self.universe_s_[s], 1e-9))}))
-            for name, fb in (f.baselines.items() if f.role == "lead" else ()):
+            for name, fb in f.baselines.items():
                 okb = (f.counts >= need) & np.isfinite(f.actual) & np.isfinite(fb) & (fb > 0) & ~f.truncated[:, None, None]
                 s, p, w = np.nonzero(okb)
                 base_rows.append(pd.DataFrame({"baseline": name, "daypart": names[p],
@@ -210,11 +200,9 @@ class DaypartForecaster:
         return errors, base
 
     def _calibration(self, errors: pd.DataFrame) -> dict:
-        """Leave-one-fold-out coverage of the unit-week level bands (full-history units of the
-        refits at the real lead time; each left-out refit is scored by a model fitted on the
-        others, the season refit included)."""
+        """Leave-one-fold-out coverage of the unit-week level bands (full-history units)."""
         out = {}
-        folds = sorted(errors.loc[errors["role"] == "lead", "fold"].unique())
+        folds = sorted(errors["fold"].unique())
         if len(folds) < 2:
             return out
         cover = {lv: [] for lv in (0.5, 0.8, 0.95)}
@@ -235,7 +223,7 @@ class DaypartForecaster:
             if vals:
                 w = np.array([n for _, n in vals], dtype=float)
                 out[str(lv)] = float(np.sum([c for c, _ in vals] * w) / w.sum())
-        full = errors[~errors["truncated"] & (errors["role"] == "lead")]
+        full = errors[~errors["truncated"]]
         rms = full.groupby("fold")["rel_error"].apply(lambda x: float(np.sqrt(np.mean(x**2))))
         return {"leave_one_fold_out_coverage": out,
                 "rms_relative_error_by_fold": {str(self.day0_ + pd.Timedelta(days=self.folds_[int(j)]))[:10]: v
@@ -276,32 +264,25 @@ class DaypartForecaster:
                              f"{need} (training {self.min_train_days} + lead gap {self.gap_days_} + "
                              f"{self.weeks_} held-out weeks)")
         self.folds_ = origins
-        season = T - horizon
-        self.season_origin_ = season if (self.season_refit and self.gap_days_ >= 28 and season >= 364
-                                         and season > origins[0]) else None
         timings = {}
-        runs = [(o, self.gap_days_, "lead") for o in origins]
-        if self.season_origin_ is not None:
-            runs.append((season, 0, "season"))
-        steps = len(runs) + 2
+        steps = len(origins) + 2
         folds = []
-        for k, (o, gap, role) in enumerate(runs):
-            label = f"rolling-origin refit {k + 1}/{len(origins)}" if role == "lead" else "season refit"
-            progress(label, k / steps)
+        for k, o in enumerate(origins):
+            progress(f"rolling-origin refit {k + 1}/{len(origins)}", k / steps)
             t0 = time.perf_counter()
-            folds.append(self._run_fold(cube, self.info_, dayparts, o, gap, self.weeks_, k, role))
-            timings[f"fold_{k + 1}" if role == "lead" else "season_refit"] = time.perf_counter() - t0
+            folds.append(self._run_fold(cube, self.info_, dayparts, o, self.gap_days_, self.weeks_, k))
+            timings[f"fold_{k + 1}"] = time.perf_counter() - t0
         errors, base_errors = self._errors_frame(folds, self.info_, dayparts)
         self.heldout_errors_ = errors
         self.level_ = LevelErrorModel().fit(errors)
         self.calibration_ = self._calibration(errors)
         self.baseline_spread_ = spread_by_daypart(base_errors)
 
-        progress("final fit on the whole history", len(runs) / steps)
+        progress("final fit on the whole history", len(origins) / steps)
         t0 = time.perf_counter()
         self.model_ = self._new_model(0).fit(cube.values, self.info_, cube.day0)
         timings["final_fit"] = time.perf_counter() - t0
-        progress("plan-week forecasts", (len(runs) + 1) / steps)
+        progress("plan-week forecasts", (len(origins) + 1) / steps)
         t0 = time.perf_counter()
         days = np.arange(p0, p0 + horizon + 1)
         pred = self.model_.predict(days).astype(np.float32)
@@ -405,8 +386,6 @@ class DaypartForecaster:
             "folds": len(self.folds_), "fold_origins": [str((self.day0_ + pd.Timedelta(days=o)).date())
                                                         for o in self.folds_],
             "lead_gap_days": int(self.gap_days_),
-            "season_refit_origin": (str((self.day0_ + pd.Timedelta(days=self.season_origin_)).date())
-                                    if self.season_origin_ is not None else None),
             "pca_components": int(self.model_.pca_.components_.shape[0]),
             "pca_explained": float(self.model_.pca_.explained_variance_ratio_.sum()),
             "level_error": self.level_.summary(),

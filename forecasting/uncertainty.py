@@ -11,14 +11,9 @@ of the network in one week, all zones, dayparts and demos; flight factor shared 
 weeks of a zone x network x daypart (x demo); unit-week own factor), with variances estimated
 by the method of moments of the nested ANOVA, pooled by daypart x size class (expected
 impressions) x genre and shrunk toward daypart x size class, then toward the daypart.
-
-Level and within-flight parts are estimated from different refits. The level parts (a, b, the
-bias and the carry-over) need the real lead time. The within-flight parts (g, c: how weeks of
-a flight differ from each other) are measured best on a model that has seen every calendar
-week: a refit on less than a year learns the month-of-year shape poorly and adds that misfit to
-them (on the invented demo about 0.05 of relative sd, against about 0.04 for a 61-week refit).
-They are therefore estimated on the refits that trained on at least `season_weeks` weeks
-(including a short-lead refit kept for this), when there are any.
+The network-week factor is estimated from the network-week means of the within-flight
+deviations (below); without it, errors that move together in every zone of a network in one
+week would count as independent and a deal spread over many zones would look safer than it is.
 Units with short history: series truncated on purpose in the folds measure how much larger
 their errors are; the extra variance goes to the flight factor (a poorly known level persists
 through the flight).
@@ -56,8 +51,6 @@ class LevelErrorModel:
     Parameters
     ----------
     prior_flights : shrinkage weight (in flights) of a daypart x genre cell toward its daypart.
-    season_weeks : a refit that trained on at least this many weeks has seen every calendar
-        week; the within-flight components come from such refits when there are any.
 
     Attributes
     ----------
@@ -70,13 +63,11 @@ class LevelErrorModel:
     history_ratio_ : DataFrame ``weeks, ratio`` -- error variance of series with that many weeks
         of history over the full-history variance (>= 1, non-increasing in weeks).
     full_weeks_ : typical history length (weeks) of the full-history series in the folds.
-    within_source_ : dict, which refits gave the within-flight components.
     scale_ : quantile scale of every level sd; n_rows_ : number of held-out unit-weeks used.
     """
 
-    def __init__(self, prior_flights: float = 30.0, season_weeks: float = 52.0):
+    def __init__(self, prior_flights: float = 30.0):
         self.prior_flights = prior_flights
-        self.season_weeks = season_weeks
 
     def fit(self, errors: pd.DataFrame) -> "LevelErrorModel":
         """Fit on held-out errors.
@@ -86,24 +77,20 @@ class LevelErrorModel:
         errors : one row per held-out unit-week with ``fold, zone, network, genre, daypart, demo,
             week, rel_error`` (actual / forecast - 1), ``truncated`` (bool: history cut on
             purpose), ``history_weeks`` (weeks of history the fold's fit had for the series) and
-            optionally ``recent`` (log residual before the origin), ``size`` (log10 expected
-            impressions), ``role`` ("lead": a refit at the real lead time, the default;
-            "season": a short-lead refit used only for the within-flight components) and
-            ``train_weeks`` (weeks of history of the fold's training).
+            optionally ``recent`` (log residual before the origin) and ``size`` (log10 expected
+            impressions).
         """
         df = errors[np.isfinite(errors["rel_error"]) & (errors["rel_error"] > -1.0)].copy()
-        for col, default in (("recent", 0.0), ("role", "lead"), ("train_weeks", np.nan)):
-            if col not in df:
-                df[col] = default
-        lead = df[df["role"] == "lead"].copy()
-        full = lead[~lead["truncated"]].copy()
+        if "recent" not in df:
+            df["recent"] = 0.0
+        full = df[~df["truncated"]].copy()
         if len(full) < 10:
             raise ValueError("too few held-out unit-weeks to estimate forecast uncertainty")
         self._fit_recent(full)
-        for frame in (lead, full):
+        for frame in (df, full):
             frame["ratio"] = (1.0 + frame["rel_error"]) / np.exp(self.recent_beta(frame["week"]) * frame["recent"])
         self.bias_ = (full.groupby("daypart")["ratio"].mean() - 1.0).to_dict()
-        for frame in (lead, full):
+        for frame in (df, full):
             b = frame["daypart"].map(self.bias_).astype(float).fillna(0.0)
             frame["e"] = frame["ratio"] / (1.0 + b) - 1.0
         self.n_rows_ = len(full)
@@ -111,7 +98,7 @@ class LevelErrorModel:
             self.size_edges_ = np.quantile(full["size"][np.isfinite(full["size"])], [0.25, 0.5, 0.75])
         else:
             self.size_edges_ = np.array([])
-        for frame in (lead, full):
+        for frame in (df, full):
             frame["size_bin"] = self.size_bin(frame)
 
         flights, net = self._flights(full)
@@ -119,22 +106,8 @@ class LevelErrorModel:
         self._fit_pools(flights, var_g)
         self.var_network_week_ = var_g
         self._fit_network(flights, net, full)
-        self._fit_history(lead[lead["truncated"]], full)  # ratios to the unscaled full-history variance
-        k = self._fit_scale(full)
-
-        # Within-flight components from the refits that saw a whole year, when there are any.
-        long = df[~df["truncated"] & (df["train_weeks"] >= self.season_weeks)].copy()
-        self.within_source_ = {"refits": "lead", "unit_weeks": int(len(full)),
-                               "train_weeks": sorted({float(w) for w in full["train_weeks"].round(1)
-                                                      if np.isfinite(w)})}
-        if len(long) >= 10 and long.groupby(FLIGHT_KEYS, observed=True).ngroups >= 10:
-            long["e"] = long["rel_error"]  # within-flight deviations need no level correction
-            long["size_bin"] = self.size_bin(long)
-            self._replace_within(long)
-            self.within_source_ = {"refits": f"trained >= {self.season_weeks:g} weeks",
-                                   "unit_weeks": int(len(long)),
-                                   "train_weeks": sorted({float(w) for w in long["train_weeks"].round(1)})}
-        self._apply_scale(k)
+        self._fit_history(df[df["truncated"]], full)  # ratios to the unscaled full-history variance
+        self._apply_scale(self._fit_scale(full))
         return self
 
     # ------------------------------------------------------------------ components
@@ -237,24 +210,6 @@ class LevelErrorModel:
             + self.var_network_week_ / net["weeks"].to_numpy(float)
         self.var_network_ = max(float(np.mean(net["net_mean"].to_numpy() ** 2 - noise)),
                                 FLOOR_SD["network"] ** 2)
-
-    def _replace_within(self, long: pd.DataFrame) -> None:
-        """Network-week and unit-week variances from the errors `long` of refits that saw a year."""
-        flights, _ = self._flights(long)
-        var_g = self._network_week_var(long)
-        by_dp, mid, cells = self._pooled(flights, var_g)
-        own = lambda v: max(v - var_g, FLOOR_SD["week"] ** 2)  # noqa: E731
-        self.var_network_week_ = var_g
-        wk_dp = pd.Series({k: own(v[0]) for k, v in by_dp.items()})
-        self.var_week_daypart_ = wk_dp.reindex(self.var_week_daypart_.index).fillna(self.var_week_daypart_)
-        wk_mid = pd.Series({k: own(v[0]) for k, v in mid.items()})
-        wk_cell = pd.Series({k: own(v[0]) for k, v in cells.items()})
-        m = wk_mid.reindex(self.var_mid_.index)
-        fb = pd.Series(self.var_mid_.index.get_level_values(0), index=self.var_mid_.index).map(self.var_week_daypart_)
-        self.var_mid_["week"] = m.fillna(fb).to_numpy(float)
-        c = wk_cell.reindex(self.var_cells_.index)
-        fb = self.var_mid_["week"].reindex(self.var_cells_.index.droplevel(2)).to_numpy(float)
-        self.var_cells_["week"] = np.where(np.isfinite(c.to_numpy(float)), c.to_numpy(float), fb)
 
     def _fit_scale(self, full: pd.DataFrame) -> float:
         """One factor k on every level sd so the held-out errors' central 50/80/95% coverage is
@@ -404,7 +359,6 @@ class LevelErrorModel:
         return {
             "rel_sd_network": float(np.sqrt(self.var_network_)),
             "rel_sd_network_week": float(np.sqrt(self.var_network_week_)),
-            "within_flight_source": self.within_source_,
             "rel_sd_flight_by_daypart": {k: float(np.sqrt(v)) for k, v in self.var_flight_daypart_.items()},
             "rel_sd_week_by_daypart": {k: float(np.sqrt(v)) for k, v in self.var_week_daypart_.items()},
             "bias_by_daypart": {k: float(v) for k, v in self.bias_.items()},

@@ -32,7 +32,7 @@ TABLE_FILE = "forecast.parquet"
 MODEL_FILE = "model.pkl"
 META_FILE = "meta.json"
 #: bump when the model or the table changes meaning (old caches are then refitted)
-MODEL_VERSION = "3"  # 3: network-week factor, season refit
+MODEL_VERSION = "3"  # 3: network-week factor
 
 Progress = Callable[[str, float], None]
 

@@ -59,26 +59,6 @@ def test_network_week_component_is_recovered_and_kept_apart():
     assert np.sqrt(m0.var_network_week_) < 0.015
 
 
-def test_within_flight_parts_come_from_refits_that_saw_a_year():
-    # Lead refits trained on 30 weeks have noisier weeks (sd 0.09) than a refit trained on 60
-    # weeks (sd 0.05). The level parts come from the lead refits, the within-flight parts from
-    # the long one; the quantile scale from the lead refits with their own components.
-    lead = _nested_errors(sd_week=0.09, sd_nw=0.05, folds=4, seed=6)
-    lead["role"], lead["train_weeks"] = "lead", 30.0
-    season = _nested_errors(sd_net=0.02, sd_flight=0.02, sd_week=0.05, sd_nw=0.03, folds=1, seed=7)
-    season["fold"], season["role"], season["train_weeks"] = 9, "season", 60.0
-    m = LevelErrorModel().fit(pd.concat([lead, season], ignore_index=True))
-    k = m.scale_
-    assert m.within_source_["train_weeks"] == [60.0]
-    assert np.sqrt(m.var_week_daypart_["day"]) / k == pytest.approx(0.05, rel=0.1)
-    assert np.sqrt(m.var_network_week_) / k == pytest.approx(0.03, rel=0.3)
-    assert np.sqrt(m.var_network_) / k == pytest.approx(0.08, rel=0.3)  # from the lead refits
-    assert np.sqrt(m.var_flight_daypart_["day"]) / k == pytest.approx(0.10, rel=0.1)
-    alone = LevelErrorModel().fit(lead)  # no long refit: everything from the lead refits
-    assert np.sqrt(alone.var_week_daypart_["day"]) / alone.scale_ == pytest.approx(0.09, rel=0.1)
-    assert alone.within_source_["refits"] == "lead"
-
-
 def test_short_history_ratio_from_truncated_series():
     df = _nested_errors(folds=4, seed=1)
     rng = np.random.default_rng(2)

@@ -71,7 +71,6 @@ def fit_cmd(
     fit = meta["fit"]
     out = {"scenario": scn.name, "path": str(res.path), "rows": meta["rows"], "seed": seed,
            "history": meta["history"], "lead_gap_days": fit["lead_gap_days"], "folds": fit["folds"],
-           "season_refit_origin": fit.get("season_refit_origin"),
            "level_error": fit["level_error"], "calibration": fit["calibration"],
            "seconds": meta["seconds"], "caution": CAUTION}
     if json_out:
@@ -80,9 +79,8 @@ def fit_cmd(
     le = fit["level_error"]
     out_console.print(f"forecast written: {res.path} ({meta['rows']:,} unit-week rows)")
     out_console.print(f"history {meta['history']['first_day']} .. {meta['history']['last_day']}, "
-                      f"lead gap {fit['lead_gap_days']} days, {fit['folds']} rolling-origin refits"
-                      + (f" + a season refit from {fit['season_refit_origin']}" if fit.get("season_refit_origin") else "")
-                      + f", {meta['seconds']['total']:.0f} s")
+                      f"lead gap {fit['lead_gap_days']} days, {fit['folds']} rolling-origin refits, "
+                      f"{meta['seconds']['total']:.0f} s")
     out_console.print(f"level error (relative sd): network {le['rel_sd_network']:.3f}; network-week "
                       f"{le.get('rel_sd_network_week', 0.0):.3f}; flight by daypart "
                       + ", ".join(f"{k} {v:.3f}" for k, v in le["rel_sd_flight_by_daypart"].items()))
