@@ -93,8 +93,8 @@ def main() -> None:
         if key not in per_seed[0]:
             continue
         for lv in LEVELS:
-            vals = np.array([(r[key] if key == "plan_weeks" else r[key])["coverage"][lv] for r in per_seed])
-            mean, lo, hi = vals.mean(), vals.min(), vals.max()
+            vals = np.array([r[key]["coverage"][lv] for r in per_seed])
+            mean, lo, hi = float(vals.mean()), float(vals.min()), float(vals.max())
             first = not rows
             rows.append(M.row(("calibration: " if first else "  ") + f"{label}: coverage of the {float(lv):.0%} "
                               f"interval, mean over {len(vals)} seeds (min-max)", f"{float(lv):.0%} +- 5 pts", f"{mean:.1%} ({lo:.1%}-{hi:.1%})",
