@@ -54,20 +54,17 @@ def _seeded_demo(dest: Path, seed: int) -> Path:
 
 
 def run_seed(seed: int, tmp: Path, backtest: bool) -> dict:
-    from forecasting.backtest import score_levels
     from planner.forecast_job import backtest_scenario, fit_forecast
     from planner.scenario import load_scenario
-    from scenarios.actuals import true_unit_week_levels
+    from scenarios.actuals import plan_week_scores
 
     folder = _seeded_demo(tmp / f"demo-{seed}", seed)
     scn = load_scenario(folder)
     t0 = time.perf_counter()
     res = fit_forecast(scn, seed=0)
     fit_s = time.perf_counter() - t0
-    m = res.table.merge(true_unit_week_levels(scn), on=["zone", "network", "daypart", "week", "demo"])
-    out = {"seed": seed, "fit_seconds": fit_s,
-           "plan_weeks": score_levels(m["true_impressions"], m["mean_impressions"], m["level_sd"]),
-           "plan_weeks_bias": float(m["true_impressions"].sum() / m["mean_impressions"].sum() - 1.0)}
+    pw = plan_week_scores(scn, res.table)
+    out = {"seed": seed, "fit_seconds": fit_s, "plan_weeks": pw, "plan_weeks_bias": pw["bias"]}
     if backtest:
         bt = backtest_scenario(scn, seed=0)
         out["backtest"] = {"coverage": bt["coverage"], "crps_skill": bt["crps_skill_vs_best_baseline"],

@@ -46,16 +46,9 @@ def step_fit(args) -> None:
 
 def _plan_week_scores(scn, table) -> dict:
     """Scores of the fitted forecast on the plan weeks against the simulated future."""
-    from forecasting.backtest import score_levels
-    from scenarios.actuals import true_unit_week_levels
+    from scenarios.actuals import plan_week_scores
 
-    if scn.history_generator is None:
-        return {}
-    m = table.merge(true_unit_week_levels(scn), on=["zone", "network", "daypart", "week", "demo"], how="inner")
-    out = score_levels(m["true_impressions"], m["mean_impressions"], m["level_sd"])
-    out["units"] = int(len(m))
-    out["bias"] = float(m["true_impressions"].sum() / m["mean_impressions"].sum() - 1.0)
-    return out
+    return plan_week_scores(scn, table) if scn.history_generator is not None else {}
 
 
 def step_backtest(args) -> None:

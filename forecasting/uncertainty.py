@@ -105,7 +105,7 @@ class LevelErrorModel:
         var_g = self._network_week_var(full)
         self._fit_pools(flights, var_g)
         self.var_network_week_ = var_g
-        self._fit_network(flights, net, full)
+        self._fit_network(flights, net)
         self._fit_history(df[df["truncated"]], full)  # ratios to the unscaled full-history variance
         self._apply_scale(self._fit_scale(full))
         return self
@@ -164,11 +164,11 @@ class LevelErrorModel:
         var_f = float(np.mean(fl["dev"].to_numpy() ** 2 * corr) - np.mean(own / fl["W"]))
         return var_w, var_f, float(len(fl))
 
-    def _pooled(self, flights: pd.DataFrame, var_g: float):
-        """Shrunk pools daypart <- daypart x size class <- daypart x size class x genre, each shrunk
-        toward its parent by `prior_flights` (size: the unit's expected impressions, whose
-        relative errors shrink as the audience grows). Returns (by_dp, mid, cells) of
-        (within-flight, flight) variances."""
+    def _fit_pools(self, flights: pd.DataFrame, var_g: float) -> None:
+        """Flight and unit-week variances by pool: daypart <- daypart x size class <- daypart x
+        size class x genre, each shrunk toward its parent by `prior_flights` (size: the unit's
+        expected impressions, whose relative errors shrink as the audience grows). The unit-week
+        variance is the within-flight one less var_g."""
         k0 = self.prior_flights
         floor_w = FLOOR_SD["week"] ** 2 + var_g
         by_dp = {}
@@ -185,11 +185,6 @@ class LevelErrorModel:
         mid = {(dp, sb): shrunk(fl, *by_dp[dp]) for (dp, sb), fl in flights.groupby(["daypart", "size_bin"])}
         cells = {key: shrunk(fl, *mid[key[:2]])
                  for key, fl in flights.groupby(["daypart", "size_bin", "genre"])}
-        return by_dp, mid, cells
-
-    def _fit_pools(self, flights: pd.DataFrame, var_g: float) -> None:
-        """Flight and unit-week variances by pool; the unit-week one is within-flight less var_g."""
-        by_dp, mid, cells = self._pooled(flights, var_g)
         own = lambda v: max(v - var_g, FLOOR_SD["week"] ** 2)  # noqa: E731
         self.var_week_daypart_ = pd.Series({k: own(v[0]) for k, v in by_dp.items()})
         self.var_flight_daypart_ = pd.Series({k: v[1] for k, v in by_dp.items()})
@@ -199,7 +194,7 @@ class LevelErrorModel:
                                          "flight": v[1]} for k, v in cells.items()]
                                        ).set_index(["daypart", "size_bin", "genre"])
 
-    def _fit_network(self, flights: pd.DataFrame, net: pd.DataFrame, full: pd.DataFrame) -> None:
+    def _fit_network(self, flights: pd.DataFrame, net: pd.DataFrame) -> None:
         """Network factor: mean square of the network x fold means less what the network-week,
         flight and unit-week factors add to them."""
         fl_var = flights["daypart"].map(self.var_flight_daypart_).astype(float)

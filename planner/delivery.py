@@ -35,7 +35,14 @@ UNIT_KEY = ["zone", "network", "daypart", "week"]
 FLIGHT_KEY = ["zone", "network", "daypart"]
 REQUIRED = UNIT_KEY + ["mean_impressions", "airing_sd", "level_sd_network", "level_sd_flight",
                        "level_sd_week", "preempt_rate"]
-OPTIONAL = {"level_sd_network_week": 0.0}
+
+
+def network_week_sd(units: pd.DataFrame) -> np.ndarray:
+    """`level_sd_network_week` of unit rows (impressions per spot); zeros for a forecast table
+    written before that column existed."""
+    if "level_sd_network_week" in units:
+        return units["level_sd_network_week"].to_numpy(float)
+    return np.zeros(len(units))
 
 
 @dataclass
@@ -121,19 +128,17 @@ class DeliveryModel:
             names=FLIGHT_KEY)
         keys = pd.MultiIndex.from_frame(units[UNIT_KEY])
         wc, wu = pd.factorize(units["week"], sort=True)
-        uniq_nw, nw_code = np.unique(net_code.astype(np.int64) * max(len(wu), 1) + wc, return_inverse=True)
+        nw_ = max(len(wu), 1)
+        uniq_nw, nw_code = np.unique(net_code.astype(np.int64) * nw_ + wc, return_inverse=True)
         network_weeks = pd.MultiIndex.from_arrays(
-            [np.asarray(networks)[uniq_nw // max(len(wu), 1)], np.asarray(wu)[uniq_nw % max(len(wu), 1)]],
-            names=["network", "week"])
-        w_nw = (units["level_sd_network_week"].to_numpy(float) if "level_sd_network_week" in units
-                else np.zeros(len(units)))
+            [np.asarray(networks)[uniq_nw // nw_], np.asarray(wu)[uniq_nw % nw_]], names=["network", "week"])
         return cls(
             units["mean_impressions"].to_numpy(float), units["airing_sd"].to_numpy(float),
             units["level_sd_network"].to_numpy(float), units["level_sd_flight"].to_numpy(float),
             units["level_sd_week"].to_numpy(float), units["preempt_rate"].to_numpy(float),
             net_code, flight_code, networks=pd.Index(networks, name="network"),
             flights=flights if len(flights) else None,
-            keys=keys, w_nw=w_nw, nw_code=nw_code, network_weeks=network_weeks,
+            keys=keys, w_nw=network_week_sd(units), nw_code=nw_code, network_weeks=network_weeks,
         )
 
     # -- moments ---------------------------------------------------------------------------

@@ -38,7 +38,7 @@ import numpy as np
 import pandas as pd
 from scipy import sparse
 
-from planner.delivery import FLIGHT_KEY, UNIT_KEY, DeliveryModel
+from planner.delivery import FLIGHT_KEY, UNIT_KEY, DeliveryModel, network_week_sd
 from planner.errors import InputError
 
 ACTUALS_COLUMNS = ["zone", "network", "daypart", "week", "spots_aired", "impressions"]
@@ -159,7 +159,7 @@ def level_posterior(obs: pd.DataFrame) -> LevelPosterior:
     Hw = H / r[:, None]
     precision = np.eye(K) + H.T @ Hw
     rhs = Hw.T @ resid
-    g = obs["level_sd_network_week"].to_numpy(float) if "level_sd_network_week" in obs else np.zeros(J)
+    g = network_week_sd(obs)
     if np.any(g > 0):
         nw_c, nw_u = pd.factorize(pd.MultiIndex.from_frame(obs[["network", "week"]]))
         Gr = sparse.csr_matrix((g / r, (nw_c, np.arange(J))), shape=(len(nw_u), J))  # G' R^-1
@@ -207,7 +207,7 @@ def update_forecast(forecast: pd.DataFrame, post: LevelPosterior) -> pd.DataFram
     out["mean_impressions"] = np.maximum(out["mean_impressions"].to_numpy(float) + shift, 0.0)
     out["level_sd_network"] = new_a
     out["level_sd_flight"] = np.sqrt(new_b2)
-    g = out["level_sd_network_week"].to_numpy(float) if "level_sd_network_week" in out else 0.0
+    g = network_week_sd(out)
     level_sd = np.sqrt(new_a ** 2 + new_b2 + c ** 2 + g ** 2)
     out["level_sd"] = level_sd
     if "universe" in out.columns and "mean_rating" in out.columns:

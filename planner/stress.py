@@ -43,7 +43,7 @@ import pandas as pd
 from scipy import sparse
 from scipy.special import ndtr
 
-from planner.delivery import FLIGHT_KEY, UNIT_KEY, DeliveryModel
+from planner.delivery import FLIGHT_KEY, UNIT_KEY, DeliveryModel, network_week_sd
 from planner.errors import InputError
 
 ALPHA = 0.95
@@ -302,7 +302,7 @@ def exact_chunks(model: BookModel, draws: int, rng: np.random.Generator, *, per_
     flt_c, flt_u = pd.factorize(pd.MultiIndex.from_frame(rows[FLIGHT_KEY].astype(str)))
     wk_c, wk_u = pd.factorize(pd.MultiIndex.from_frame(rows[UNIT_KEY].astype({"week": "int64"})))
     nw_c, nw_u = pd.factorize(pd.MultiIndex.from_frame(rows[["network", "week"]].astype({"network": str, "week": "int64"})))
-    wg = rows["level_sd_network_week"].to_numpy(float) if "level_sd_network_week" in rows else np.zeros(len(rows))
+    wg = network_week_sd(rows)
     deal_c = pd.Index(model.deals).get_indexer(rows["deal"])
     mu = rows["mean_impressions"].to_numpy(float)
     wn, wf, ww = (rows[c].to_numpy(float) for c in ("level_sd_network", "level_sd_flight", "level_sd_week"))
@@ -321,7 +321,7 @@ def exact_chunks(model: BookModel, draws: int, rng: np.random.Generator, *, per_
     else:
         agg = sparse.csr_matrix((np.ones(R), (np.arange(R), deal_c)), shape=(R, D))
         width = R
-    step = max(1, int(chunk_cells // (width + len(flt_u) + len(wk_u))))
+    step = max(1, int(chunk_cells // (width + len(flt_u) + len(wk_u) + len(nw_u))))
     for start in range(0, draws, step):
         k = min(step, draws - start)
         z_net = rng.standard_normal((k, N))

@@ -123,3 +123,16 @@ def true_unit_week_levels(scenario, demos: Iterable[str] | None = None) -> pd.Da
                 "week": w.ravel() + 1, "demo": demo,
                 "true_impressions": mean.ravel().astype(float) * float(uni[(zone, demo)])}))
     return pd.concat(frames, ignore_index=True)
+
+
+def plan_week_scores(scenario, table: pd.DataFrame) -> dict:
+    """Scores of a forecast table's unit-week bands on the plan weeks against the simulated truth
+    (`true_unit_week_levels`): `forecasting.backtest.score_levels` of N(mean_impressions,
+    level_sd^2), plus ``units`` and ``bias`` (sum actual / sum forecast - 1, fraction)."""
+    from forecasting.backtest import score_levels
+
+    m = table.merge(true_unit_week_levels(scenario), on=["zone", "network", "daypart", "week", "demo"], how="inner")
+    out = score_levels(m["true_impressions"], m["mean_impressions"], m["level_sd"])
+    out["units"] = int(len(m))
+    out["bias"] = float(m["true_impressions"].sum() / m["mean_impressions"].sum() - 1.0)
+    return out
