@@ -13,8 +13,8 @@ Probabilistic forecasts, calibration and sharpness, JRSS B 69(2): coverage and P
 """
 from __future__ import annotations
 
+import copy
 from dataclasses import dataclass
-from typing import Sequence
 
 import numpy as np
 import pandas as pd
@@ -61,36 +61,106 @@ def _scores(y, mu, sd) -> dict:
 
 
 def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.DataFrame, *,
-                 holdout_weeks: int = 13, gap_days: int = 0, forecaster: DaypartForecaster | None = None,
+                 holdout_weeks: int = 13, gap_days: int = 0, windows: int = 1,
+                 forecaster: DaypartForecaster | None = None,
                  progress: Progress | None = None) -> BacktestResult:
     """Refit before a cut-off and score the last `holdout_weeks` weeks of the history.
+
+    With ``windows = K > 1`` the K successive, non-overlapping blocks of `holdout_weeks` weeks
+    that end the history are each scored by their own refit (rolling origin: each cut-off sits
+    `gap_days` before its block), and the scores are pooled over every scored unit-week. One
+    13-week block is a single draw of the network-wide shocks; pooling blocks gives the
+    calibration of the method a smaller sampling error.
 
     Parameters
     ----------
     cube, info : the whole history and its series (``zone, network, demo, genre``).
     dayparts : objects with ``name, days, quarter_hours``.
     universes : ``zone, demo, universe``.
-    holdout_weeks : held-out weeks at the end of the history.
-    gap_days : lead gap between the cut-off and the first held-out day (the real forecast's gap).
-    forecaster : an unfitted `DaypartForecaster` (its settings and seed are used).
+    holdout_weeks : held-out weeks per block, the last block ending the history.
+    gap_days : lead gap between a cut-off and the first day of its block (the real forecast's gap).
+    windows : held-out blocks (1 = the last `holdout_weeks` only).
+    forecaster : an unfitted `DaypartForecaster` (its settings and seed are used for every refit).
 
     Returns
     -------
     BacktestResult ; ``summary`` has ``crps, wape, coverage{0.5,0.8,0.95}, by_daypart,
-    baselines{name: {crps, wape, coverage}}, crps_skill_vs_best_baseline, holdout, units``.
+    baselines{name: {crps, wape, coverage}}, crps_skill_vs_best_baseline, holdout, units``,
+    ``windows`` (one entry per block, latest first: ``holdout, units, crps, wape, coverage,
+    baselines, crps_skill_vs_best_baseline``) and ``fit`` (the latest block's refit).
+
+    References
+    ----------
+    Tashman, L. J. (2000). Out-of-sample tests of forecasting accuracy: an analysis and review.
+    Int. J. Forecasting 16(4): rolling-origin evaluation over several origins.
     """
     specs = as_specs(dayparts)
     W = int(holdout_weeks)
+    K = int(windows)
+    if K < 1:
+        raise ValueError(f"windows must be at least 1, got {K}")
     T = cube.n_days
-    h0 = T - 7 * W
-    cut = h0 - int(gap_days)
-    if cut <= 0:
-        raise ValueError(f"history of {T} days is too short for {W} held-out weeks")
-    fc = forecaster or DaypartForecaster()
+    proto = forecaster or DaypartForecaster()
+    frames, per_window, fits = [], [], []
+    for j in range(K):
+        h0 = T - 7 * W * (j + 1)
+        cut = h0 - int(gap_days)
+        if cut <= 0:
+            what = f"{W} held-out weeks" if K == 1 else f"{K} blocks of {W} held-out weeks"
+            raise ValueError(f"history of {T} days is too short for {what} at a lead gap of {int(gap_days)} days")
+        fc = copy.deepcopy(proto)
+        sub = None if progress is None else (
+            lambda m, f, j=j: progress(m if K == 1 else f"block {j + 1}/{K}: {m}", (j + f) / K))
+        df = _score_block(cube, info, specs, universes, fc, h0, cut, W, sub)
+        df["block"] = j + 1
+        frames.append(df)
+        fits.append(fc.summary())
+        entry = {"holdout": _holdout(cube, h0, h0 + 7 * W, cut, W, gap_days), "units": int(len(df))}
+        entry.update(_block_scores(df))
+        per_window.append(entry)
+    df = pd.concat(frames, ignore_index=True)
+    summary = _block_scores(df)
+    summary["pit_histogram"] = pit_histogram(df["actual"], df["mean"], df["sd"]).tolist()
+    summary["by_daypart"] = {
+        dp: _scores(g["actual"], g["mean"], g["sd"]) for dp, g in df.groupby("daypart", sort=False)}
+    if K == 1:
+        summary["holdout"] = per_window[0]["holdout"]
+    else:
+        summary["holdout"] = {
+            "first_day": per_window[-1]["holdout"]["first_day"], "last_day": per_window[0]["holdout"]["last_day"],
+            "weeks": W * K, "blocks": K, "weeks_per_block": W,
+            "cutoff_day": per_window[0]["holdout"]["cutoff_day"], "lead_gap_days": int(gap_days)}
+    summary["units"] = int(len(df))
+    summary["windows"] = per_window
+    summary["fit"] = fits[0]
+    return BacktestResult(summary=summary, scored=df)
+
+
+def _holdout(cube: ProfileCube, h0: int, h1: int, cut: int, W: int, gap_days: int) -> dict:
+    day = lambda i: str((cube.day0 + pd.Timedelta(days=int(i))).date())  # noqa: E731
+    return {"first_day": day(h0), "last_day": day(min(h1, cube.n_days) - 1), "weeks": W,
+            "cutoff_day": day(cut - 1), "lead_gap_days": int(gap_days)}
+
+
+def _block_scores(df: pd.DataFrame) -> dict:
+    """Model and baseline scores of scored unit-weeks, and the model's CRPS skill."""
+    out = _scores(df["actual"], df["mean"], df["sd"])
+    out["baselines"] = {name: _scores(df["actual"], df[f"{name}_mean"], df[f"{name}_sd"]) for name in BASELINE_NAMES}
+    best = min(v["crps"] for v in out["baselines"].values())
+    out["crps_skill_vs_best_baseline"] = float(1.0 - out["crps"] / best) if best > 0 else float("nan")
+    return out
+
+
+BASELINE_NAMES = ("last_year", "trailing_8w")
+
+
+def _score_block(cube: ProfileCube, info: pd.DataFrame, specs, universes: pd.DataFrame,
+                 fc: DaypartForecaster, h0: int, cut: int, W: int, progress) -> pd.DataFrame:
+    """Refit `fc` on days [0, cut) and score the W weeks from day `h0`: one row per unit-week."""
     train = ProfileCube(cube.series, cube.day0, cube.values[:, :cut])
     fc.fit(train, info, specs, cube.day0 + pd.Timedelta(days=h0), W, progress=progress, universes=universes)
 
-    actual_cells = cube.values[:, h0:]
+    actual_cells = cube.values[:, h0:h0 + 7 * W]
     pad = fc.plan_pred_.shape[1] - actual_cells.shape[1]
     if pad > 0:
         actual_cells = np.concatenate(
@@ -127,25 +197,10 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
     df["actual"] = actual[s, p, w] * u
     df["mean"] = model_mean[s, p, w] * u
     df["sd"] = rel_sd * df["mean"]
-    summary = _scores(df["actual"], df["mean"], df["sd"])
-    summary["pit_histogram"] = pit_histogram(df["actual"], df["mean"], df["sd"]).tolist()
-    summary["by_daypart"] = {
-        dp: _scores(g["actual"], g["mean"], g["sd"]) for dp, g in df.groupby("daypart", sort=False)}
-    summary["baselines"] = {}
     for name, b in base.items():
         spread = fc.baseline_spread_.get(name, {})
         bm = b[s, p, w] * u
         bsd = df["daypart"].map(spread).astype(float).fillna(np.nanmean(list(spread.values()) or [0.1])).to_numpy() * bm
         df[f"{name}_mean"] = bm
         df[f"{name}_sd"] = bsd
-        summary["baselines"][name] = _scores(df["actual"], bm, bsd)
-    best = min(v["crps"] for v in summary["baselines"].values())
-    summary["crps_skill_vs_best_baseline"] = float(1.0 - summary["crps"] / best) if best > 0 else float("nan")
-    summary["holdout"] = {
-        "first_day": str((cube.day0 + pd.Timedelta(days=h0)).date()),
-        "last_day": str((cube.day0 + pd.Timedelta(days=T - 1)).date()),
-        "weeks": W, "cutoff_day": str((cube.day0 + pd.Timedelta(days=cut - 1)).date()),
-        "lead_gap_days": int(gap_days)}
-    summary["units"] = int(len(df))
-    summary["fit"] = fc.summary()
-    return BacktestResult(summary=summary, scored=df)
+    return df

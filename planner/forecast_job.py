@@ -206,18 +206,22 @@ def load_model(scenario):
 
 
 def backtest_scenario(scenario, *, holdout_weeks: int = 13, demo: str | None = None, engine: str = "duckdb",
-                      seed: int = 0, gap_days: int | None = None, progress: Progress | None = None) -> dict:
+                      seed: int = 0, gap_days: int | None = None, windows: int = 1,
+                      progress: Progress | None = None) -> dict:
     """Backtest the forecaster on the scenario's history (`forecasting.backtest.run_backtest`).
 
     The held-out weeks are the last `holdout_weeks` of the history; the cut-off sits the real
     forecast's lead gap before them (history end -> plan week 1) unless `gap_days` is given.
-    Returns the JSON-able summary.
+    With `windows` > 1, that many successive blocks of `holdout_weeks` weeks ending the history
+    are each scored by their own refit and the scores pooled. Returns the JSON-able summary.
     """
     from forecasting.backtest import run_backtest
     from forecasting.pipeline import DaypartForecaster
 
     if holdout_weeks < 1:
         raise InputError(f"--holdout-weeks {holdout_weeks}: must be at least 1")
+    if windows < 1:
+        raise InputError(f"--windows {windows}: must be at least 1")
     progress = progress or (lambda m, f: None)
     cube, info = load_history_cube(scenario, demos=[demo] if demo else None, engine=engine, progress=progress)
     if gap_days is None:
@@ -228,7 +232,8 @@ def backtest_scenario(scenario, *, holdout_weeks: int = 13, demo: str | None = N
 
     try:
         res = run_backtest(cube, info, scenario.dayparts, scenario.universes, holdout_weeks=holdout_weeks,
-                           gap_days=gap_days, forecaster=DaypartForecaster(random_state=seed), progress=sub)
+                           gap_days=gap_days, windows=windows, forecaster=DaypartForecaster(random_state=seed),
+                           progress=sub)
     except ValueError as exc:
         raise InputError(f"{Path(scenario.history_path).name}: {exc}") from None
     out = res.summary

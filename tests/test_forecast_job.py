@@ -122,6 +122,42 @@ def test_backtest_json_on_small_scenario(fitted_small, capsys):
 
 
 @pytest.mark.slow
+def test_backtest_pools_successive_blocks(fitted_small, capsys):
+    """--windows K scores K adjacent blocks, each by its own refit (rolling origin, Tashman 2000),
+    and pools them: the pooled coverage and CRPS are the unit-weighted means of the blocks', and
+    the latest block scores exactly as a one-block backtest with the same settings."""
+    dest, scn, first = fitted_small
+    args = ["forecast", "backtest", str(dest), "--holdout-weeks", "4", "--lead-days", "7", "--json"]
+    assert main(args) == 0
+    one = json.loads(capsys.readouterr().out)
+    assert main(args + ["--windows", "2"]) == 0
+    two = json.loads(capsys.readouterr().out)
+    b1, b2 = two["windows"]
+    assert b1["holdout"] == one["holdout"] and b1["units"] == one["units"]
+    assert b1["crps"] == pytest.approx(one["crps"], rel=1e-12)
+    assert b1["coverage"] == one["coverage"]
+    # blocks are adjacent and do not overlap; each cut-off is 7 + 1 days before its block
+    assert (pd.Timestamp(b1["holdout"]["first_day"]) - pd.Timestamp(b2["holdout"]["last_day"])).days == 1
+    for b in (b1, b2):
+        h = b["holdout"]
+        assert (pd.Timestamp(h["last_day"]) - pd.Timestamp(h["first_day"])).days == 27
+        assert (pd.Timestamp(h["first_day"]) - pd.Timestamp(h["cutoff_day"])).days == 8
+    n = np.array([b1["units"], b2["units"]], dtype=float)
+    assert two["units"] == n.sum()
+    for lv in ("0.5", "0.8", "0.95"):
+        assert two["coverage"][lv] == pytest.approx((n * [b1["coverage"][lv], b2["coverage"][lv]]).sum() / n.sum())
+    assert two["crps"] == pytest.approx((n * [b1["crps"], b2["crps"]]).sum() / n.sum())
+    for name in ("last_year", "trailing_8w"):
+        assert two["baselines"][name]["crps"] == pytest.approx(
+            (n * [b1["baselines"][name]["crps"], b2["baselines"][name]["crps"]]).sum() / n.sum())
+    assert two["holdout"]["blocks"] == 2 and two["holdout"]["first_day"] == b2["holdout"]["first_day"]
+    assert main(["forecast", "backtest", str(dest), "--windows", "0"]) == 2
+    assert "--windows" in capsys.readouterr().err
+    assert main(["forecast", "backtest", str(dest), "--windows", "40"]) == 2
+    assert "too short" in capsys.readouterr().err
+
+
+@pytest.mark.slow
 def test_demo_forecast_table(demo_fitted):
     from planner.forecast_job import load_forecast
     from planner.scenario import load_scenario

@@ -99,6 +99,9 @@ def backtest_cmd(
     lead_days: int = typer.Option(None, "--lead-days", min=0,
                                   help="Days between the cut-off and the first held-out day (default: the real "
                                        "forecast's lead, history end -> plan week 1)."),
+    windows: int = typer.Option(1, "--windows",
+                                help="Successive held-out blocks of --holdout-weeks ending the history, each "
+                                     "scored by its own refit; scores are pooled (1 = the last block only)."),
     engine: str = typer.Option("duckdb", "--engine", help="History reduction engine: duckdb or spark."),
     seed: int = typer.Option(0, "--seed", help="Seed of every sample and model."),
     json_out: bool = typer.Option(False, "--json", help="Print one JSON object."),
@@ -110,14 +113,25 @@ def backtest_cmd(
     scn = load_scenario(scenario)
     with _progress("forecast backtest") as cb:
         s = backtest_scenario(scn, holdout_weeks=holdout_weeks, demo=demo, engine=_engine(engine), seed=seed,
-                              gap_days=lead_days, progress=cb)
+                              gap_days=lead_days, windows=windows, progress=cb)
     if json_out:
         print_json(s)
         return
-    h = s["holdout"]
-    out_console.print(f"held out {h['first_day']} .. {h['last_day']} ({h['weeks']} weeks), cut-off "
-                      f"{h['cutoff_day']}, lead gap {h['lead_gap_days']} days; {s['units']:,} unit-weeks scored "
-                      "(unit-week mean impressions of one spot)")
+    if len(s["windows"]) == 1:
+        h = s["holdout"]
+        out_console.print(f"held out {h['first_day']} .. {h['last_day']} ({h['weeks']} weeks), cut-off "
+                          f"{h['cutoff_day']}, lead gap {h['lead_gap_days']} days; {s['units']:,} unit-weeks scored "
+                          "(unit-week mean impressions of one spot)")
+    else:
+        out_console.print(f"{len(s['windows'])} held-out blocks, lead gap {s['holdout']['lead_gap_days']} days, "
+                          f"{s['units']:,} unit-weeks scored in all (unit-week mean impressions of one spot):")
+        for j, wnd in enumerate(s["windows"], start=1):
+            h, cov = wnd["holdout"], wnd["coverage"]
+            out_console.print(f"  block {j}: {h['first_day']} .. {h['last_day']}, cut-off {h['cutoff_day']}; "
+                              f"{wnd['units']:,} unit-weeks; coverage 50/80/95% {cov['0.5']:.1%} / "
+                              f"{cov['0.8']:.1%} / {cov['0.95']:.1%}; CRPS skill "
+                              f"{wnd['crps_skill_vs_best_baseline']:.1%}")
+        out_console.print("pooled over the blocks:")
     head = ["forecast", "CRPS (impr.)", "WAPE", "50%", "80%", "95%"]
     rows = []
 
