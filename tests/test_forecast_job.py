@@ -151,6 +151,10 @@ def test_backtest_pools_successive_blocks(fitted_small, capsys):
         assert two["baselines"][name]["crps"] == pytest.approx(
             (n * [b1["baselines"][name]["crps"], b2["baselines"][name]["crps"]]).sum() / n.sum())
     assert two["holdout"]["blocks"] == 2 and two["holdout"]["first_day"] == b2["holdout"]["first_day"]
+    assert main(args[:-1] + ["--windows", "2"]) == 0  # the table names each block and its cut-off
+    text = capsys.readouterr().out
+    assert "2 held-out blocks" in text and "block 2: " + b2["holdout"]["first_day"] in text
+    assert "pooled over the blocks" in text
     assert main(["forecast", "backtest", str(dest), "--windows", "0"]) == 2
     assert "--windows" in capsys.readouterr().err
     assert main(["forecast", "backtest", str(dest), "--windows", "40"]) == 2
