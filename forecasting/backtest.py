@@ -19,7 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .baselines import last_year, trailing_mean
+from .baselines import BASELINES, last_year, trailing_mean
 from .dayparts import as_specs, daypart_week_means
 from .pipeline import DaypartForecaster, Progress
 from .profiles import ProfileCube
@@ -101,7 +101,7 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
         raise ValueError(f"windows must be at least 1, got {K}")
     T = cube.n_days
     proto = forecaster or DaypartForecaster()
-    frames, per_window, fits = [], [], []
+    frames, per_window = [], []
     for j in range(K):
         h0 = T - 7 * W * (j + 1)
         cut = h0 - int(gap_days)
@@ -114,8 +114,9 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
         df = _score_block(cube, info, specs, universes, fc, h0, cut, W, sub)
         df["block"] = j + 1
         frames.append(df)
-        fits.append(fc.summary())
-        entry = {"holdout": _holdout(cube, h0, h0 + 7 * W, cut, W, gap_days), "units": int(len(df))}
+        if j == 0:
+            latest_fit = fc.summary()
+        entry = {"holdout": _holdout(cube, h0, cut, W, gap_days), "units": int(len(df))}
         entry.update(_block_scores(df))
         per_window.append(entry)
     df = pd.concat(frames, ignore_index=True)
@@ -132,26 +133,24 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
             "cutoff_day": per_window[0]["holdout"]["cutoff_day"], "lead_gap_days": int(gap_days)}
     summary["units"] = int(len(df))
     summary["windows"] = per_window
-    summary["fit"] = fits[0]
+    summary["fit"] = latest_fit
     return BacktestResult(summary=summary, scored=df)
 
 
-def _holdout(cube: ProfileCube, h0: int, h1: int, cut: int, W: int, gap_days: int) -> dict:
+def _holdout(cube: ProfileCube, h0: int, cut: int, W: int, gap_days: int) -> dict:
+    """Dates of one held-out block of W weeks from day `h0`, refit on days before `cut`."""
     day = lambda i: str((cube.day0 + pd.Timedelta(days=int(i))).date())  # noqa: E731
-    return {"first_day": day(h0), "last_day": day(min(h1, cube.n_days) - 1), "weeks": W,
+    return {"first_day": day(h0), "last_day": day(h0 + 7 * W - 1), "weeks": W,
             "cutoff_day": day(cut - 1), "lead_gap_days": int(gap_days)}
 
 
 def _block_scores(df: pd.DataFrame) -> dict:
     """Model and baseline scores of scored unit-weeks, and the model's CRPS skill."""
     out = _scores(df["actual"], df["mean"], df["sd"])
-    out["baselines"] = {name: _scores(df["actual"], df[f"{name}_mean"], df[f"{name}_sd"]) for name in BASELINE_NAMES}
+    out["baselines"] = {name: _scores(df["actual"], df[f"{name}_mean"], df[f"{name}_sd"]) for name in BASELINES}
     best = min(v["crps"] for v in out["baselines"].values())
     out["crps_skill_vs_best_baseline"] = float(1.0 - out["crps"] / best) if best > 0 else float("nan")
     return out
-
-
-BASELINE_NAMES = ("last_year", "trailing_8w")
 
 
 def _score_block(cube: ProfileCube, info: pd.DataFrame, specs, universes: pd.DataFrame,
