@@ -46,7 +46,8 @@ def score_levels(actual, mean, sd) -> dict:
     Returns
     -------
     dict ``crps`` (mean, impressions), ``crps_relative`` (sum CRPS / sum |actual|), ``wape``
-    (fraction), ``coverage`` {"0.5", "0.8", "0.95"} (fractions inside the central intervals).
+    (fraction), ``bias`` (sum actual / sum mean - 1, fraction), ``coverage`` {"0.5", "0.8",
+    "0.95"} (fractions inside the central intervals).
     """
     return _scores(np.asarray(actual, float), np.asarray(mean, float), np.asarray(sd, float))
 
@@ -56,6 +57,7 @@ def _scores(y, mu, sd) -> dict:
         "crps": float(np.mean(crps_gaussian(y, mu, sd))),
         "crps_relative": float(np.sum(crps_gaussian(y, mu, sd)) / max(np.sum(np.abs(y)), 1e-300)),
         "wape": wape(y, mu),
+        "bias": float(np.sum(y) / np.sum(mu) - 1.0) if np.sum(mu) > 0 else float("nan"),
         "coverage": {str(lv): coverage(y, mu, sd, lv) for lv in LEVELS},
     }
 

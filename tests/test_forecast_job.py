@@ -110,6 +110,8 @@ def test_backtest_json_on_small_scenario(fitted_small, capsys):
     for b in s["baselines"].values():
         assert b["crps"] > 0 and 0 < b["wape"] < 1
     assert s["crps"] > 0 and 0 < s["wape"] < 1
+    # bias = sum actual / sum forecast - 1, so |bias| <= WAPE x (1 + bias) (triangle inequality)
+    assert abs(s["bias"]) <= s["wape"] * (1 + s["bias"]) + 1e-12
     assert s["coverage"]["0.5"] <= s["coverage"]["0.8"] <= s["coverage"]["0.95"]
     assert s["units"] > 100
     # --lead-days moves the cut-off: held-out days start that many days after it

@@ -132,12 +132,12 @@ def backtest_cmd(
                               f"{cov['0.8']:.1%} / {cov['0.95']:.1%}; CRPS skill "
                               f"{wnd['crps_skill_vs_best_baseline']:.1%}")
         out_console.print("pooled over the blocks:")
-    head = ["forecast", "CRPS (impr.)", "WAPE", "50%", "80%", "95%"]
+    head = ["forecast", "CRPS (impr.)", "WAPE", "bias", "50%", "80%", "95%"]
     rows = []
 
     def row(name: str, sc: dict) -> None:
         cov = sc["coverage"]
-        rows.append([name, f"{sc['crps']:,.0f}", f"{sc['wape']:.1%}", f"{cov['0.5']:.1%}", f"{cov['0.8']:.1%}",
+        rows.append([name, f"{sc['crps']:,.0f}", f"{sc['wape']:.1%}", f"{sc['bias']:+.1%}", f"{cov['0.5']:.1%}", f"{cov['0.8']:.1%}",
                      f"{cov['0.95']:.1%}"])
 
     row("model", s)
