@@ -24,6 +24,8 @@ SCRIPTS = {"ingest": "bench_ingest.py", "fit": "bench_scale_fit.py", "allocate":
            "demo-fit": "bench_fit.py", "demo-allocate": "bench_allocate.py", "calibration": "bench_calibration.py"}
 
 
+#: the demo's own history and fourteen more generator seeds (same structure, other shocks)
+CALIBRATION_SEEDS = "20261129," + ",".join(str(i) for i in range(1, 15))
 DEFAULT = ["ingest", "stress", "allocate", "fit", "demo-stress", "demo-generate", "demo-fit", "calibration"]
 
 
@@ -56,7 +58,7 @@ def run_one(name: str, args) -> tuple[list[dict], dict]:
     elif name == "demo-fit":
         cmd += ["--json"]
     elif name == "calibration":
-        cmd += ["--json", "--backtest"]
+        cmd += ["--json", "--backtest", "--blocks", "2", "--seeds", CALIBRATION_SEEDS]
     env = dict(os.environ, PYTHONPATH=str(BENCH.parent))
     t0 = time.perf_counter()
     # Own process group, so a timeout stops the benchmark and the step it is running.

@@ -8,13 +8,16 @@ shocks, episodes and noise) and, per seed, scores
 
 - the fitted forecast on its 13 plan weeks against the generator's simulated future (the
   forecast the planner uses; `scenarios.actuals.true_unit_week_levels`), and
-- optionally (`--backtest`) the backtest at the real lead (`pledge forecast backtest`),
+- optionally (`--backtest`) the backtest at the real lead (`pledge forecast backtest`; with
+  `--blocks K`, its K successive 13-week blocks, each scored by its own refit),
 
 then pools them. Expected coverage over seeds is what "calibrated" means; each seed's figure
-shows the spread. Invented data throughout.
+shows the spread. For the backtest it also counts the single blocks whose coverage is within 5
+points of nominal at all three levels, and those whose CRPS is at least 15% below the better
+baseline: how often one block, the issue's test, passes by itself. Invented data throughout.
 
 Usage:
-    python bench/bench_calibration.py [--seeds 20261129,1,2,3,4] [--backtest] [--json]
+    python bench/bench_calibration.py [--seeds 20261129,1,2,3,4] [--backtest [--blocks 2]] [--json]
 """
 from __future__ import annotations
 
@@ -53,7 +56,7 @@ def _seeded_demo(dest: Path, seed: int) -> Path:
     return dest
 
 
-def run_seed(seed: int, tmp: Path, backtest: bool) -> dict:
+def run_seed(seed: int, tmp: Path, backtest: bool, blocks: int = 1) -> dict:
     from planner.forecast_job import backtest_scenario, fit_forecast
     from planner.scenario import load_scenario
     from scenarios.actuals import plan_week_scores
@@ -66,16 +69,43 @@ def run_seed(seed: int, tmp: Path, backtest: bool) -> dict:
     pw = plan_week_scores(scn, res.table)
     out = {"seed": seed, "fit_seconds": fit_s, "plan_weeks": pw, "plan_weeks_bias": pw["bias"]}
     if backtest:
-        bt = backtest_scenario(scn, seed=0)
+        bt = backtest_scenario(scn, seed=0, windows=blocks)
         out["backtest"] = {"coverage": bt["coverage"], "crps_skill": bt["crps_skill_vs_best_baseline"],
-                           "crps": bt["crps"], "baseline_coverage": {k: v["coverage"] for k, v in bt["baselines"].items()}}
+                           "crps": bt["crps"], "baseline_coverage": {k: v["coverage"] for k, v in bt["baselines"].items()},
+                           "blocks": [{"holdout": w["holdout"], "coverage": w["coverage"],
+                                       "crps_skill": w["crps_skill_vs_best_baseline"],
+                                       "bias": w["bias"]} for w in bt["windows"]]}
     return out
+
+
+def _block_rows(per_seed: list[dict]) -> list[dict]:
+    """Rows on the single backtest blocks of every seed: mean coverage, how many blocks pass the
+    issue's tests by themselves (coverage within 5 points at 50/80/95%; CRPS skill >= 15%)."""
+    blocks = [b for r in per_seed for b in r["backtest"]["blocks"]]
+    n = len(blocks)
+    cov = np.array([[b["coverage"][lv] for lv in LEVELS] for b in blocks])
+    skill = np.array([b["crps_skill"] for b in blocks])
+    bias = np.array([b["bias"] for b in blocks])
+    within = np.all(np.abs(cov - np.array([float(lv) for lv in LEVELS])) <= 0.05, axis=1)
+    rows = [M.row(f"  backtest, single blocks ({n}): coverage 50 / 80 / 95%, mean", "",
+                  " / ".join(f"{c:.1%}" for c in cov.mean(axis=0)), None, None),
+            M.row("  backtest, single blocks: share within 5 points at all three levels", "",
+                  f"{within.mean():.0%} ({int(within.sum())} of {n})", None, None),
+            M.row("  backtest, single blocks: CRPS skill vs the better baseline, mean (min-max)", ">= 15%",
+                  f"{skill.mean():.1%} ({skill.min():.1%} to {skill.max():.1%})", 0.15 / max(skill.mean(), 1e-9)
+                  if skill.mean() > 0 else None, bool(skill.mean() >= 0.15)),
+            M.row("  backtest, single blocks: share with CRPS skill >= 15%", "",
+                  f"{np.mean(skill >= 0.15):.0%} ({int(np.sum(skill >= 0.15))} of {n})", None, None),
+            M.row("  backtest, single blocks: total bias (actual / forecast - 1), mean (min-max)", "",
+                  f"{bias.mean():+.1%} ({bias.min():+.1%} to {bias.max():+.1%})", None, None)]
+    return rows
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--seeds", default="20261129,1,2,3,4", help="comma list of generator seeds (the demo's first)")
     ap.add_argument("--backtest", action="store_true", help="also run the backtest per seed")
+    ap.add_argument("--blocks", type=int, default=1, help="with --backtest: successive 13-week blocks per seed")
     ap.add_argument("--json", action="store_true")
     args = ap.parse_args()
     seeds = [int(s) for s in args.seeds.split(",") if s.strip()]
@@ -83,10 +113,12 @@ def main() -> None:
     per_seed = []
     with tempfile.TemporaryDirectory(prefix="pledge-bench-cal-", dir="/tmp") as tmp:
         for seed in seeds:
-            per_seed.append(run_seed(seed, Path(tmp), args.backtest))
+            per_seed.append(run_seed(seed, Path(tmp), args.backtest, args.blocks))
             print(json.dumps({"progress": per_seed[-1]}), file=sys.stderr, flush=True)
     rows = []
-    for key, label in (("plan_weeks", "plan weeks vs simulated future"), ("backtest", "backtest")):
+    nblocks = len(per_seed[0].get("backtest", {}).get("blocks", [])) or 1
+    backtest_label = "backtest" if nblocks == 1 else f"backtest pooled over {nblocks} blocks"
+    for key, label in (("plan_weeks", "plan weeks vs simulated future"), ("backtest", backtest_label)):
         if key not in per_seed[0]:
             continue
         for lv in LEVELS:
@@ -96,6 +128,8 @@ def main() -> None:
             rows.append(M.row(("calibration: " if first else "  ") + f"{label}: coverage of the {float(lv):.0%} "
                               f"interval, mean over {len(vals)} seeds (min-max)", f"{float(lv):.0%} +- 5 pts", f"{mean:.1%} ({lo:.1%}-{hi:.1%})",
                               abs(mean - float(lv)) / 0.05, abs(mean - float(lv)) <= 0.05))
+    if "backtest" in per_seed[0]:
+        rows += _block_rows(per_seed)
     bias = np.array([r["plan_weeks_bias"] for r in per_seed])
     rows.append(M.row(f"  plan weeks: total bias (actual / forecast - 1), mean over {len(bias)} seeds (min-max)", "",
                       f"{bias.mean():+.1%} ({bias.min():+.1%} to {bias.max():+.1%})", None, None))
