@@ -114,7 +114,7 @@ def write_static(out: Path, *, zones: int, networks: int, days: int, demos: list
         out / "universes.csv", index=False)
     lines = [
         "# Invented large scenario for the scale benchmarks (bench/generate_large.py).",
-        f'name = "national-large"',
+        'name = "national-large"',
         f"first_week = {first_week.isoformat()}",
         f"weeks = {weeks}",
         'currency = "USD"',

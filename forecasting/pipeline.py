@@ -26,12 +26,12 @@ import numpy as np
 import pandas as pd
 from scipy.stats import norm
 
-from .baselines import BASELINES, last_year, spread_by_daypart, trailing_mean
+from .baselines import last_year, spread_by_daypart, trailing_mean
 from .dayparts import DaypartSpec, as_specs, daypart_week_means, daypart_week_sums
 from .models import ProfileForecaster
 from .profiles import ProfileCube
 from .scoring import coverage
-from .uncertainty import FLOOR_SD, LevelErrorModel, airing_cv
+from .uncertainty import LevelErrorModel, airing_cv
 
 Progress = Callable[[str, float], None]
 

@@ -574,7 +574,6 @@ def commit_deal(scenario: Any, deal_name: str, book: str | os.PathLike | None = 
         plan = planner(scenario, deal_name, held=_held_from(conn), **plan_kwargs)
         if not _plan_is_deliverable(plan):
             return CommitResult(deal_name, False, str(path), reason=_plan_reason(plan), plan=plan)
-        replanned = False
         try:
             result = _check_and_hold(conn, path, scenario, deal, plan, planner, plan_kwargs)
         except _NotDeliverable as exc:

@@ -3,12 +3,10 @@ Monte Carlo of the error model, the NIST/SEMATECH normal table, and trade worked
 from __future__ import annotations
 
 import numpy as np
-import pandas as pd
 import pytest
 from scipy.optimize import linprog
 
 from planner import allocate as al
-from planner.delivery import DeliveryModel
 from test_delivery import dense_covariance, synthetic_units
 
 WEEKS = (1, 2, 3, 4)

@@ -3,7 +3,6 @@ simulated future (known truth: the invented generator runs past the end of the h
 from __future__ import annotations
 
 import numpy as np
-import pandas as pd
 import pytest
 
 from forecasting.backtest import score_levels

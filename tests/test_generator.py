@@ -10,8 +10,7 @@ import pyarrow.parquet as pq
 import pytest
 
 from scenarios.build import DEMO_DEALS, capacity, deal_units, unit_truth
-from scenarios.generate import (QH, demo_path, generate_history, make_spec, make_small_scenario, simulate_truth,
-                                spec_from_scenario)
+from scenarios.generate import (QH, demo_path, generate_history, make_spec, make_small_scenario, simulate_truth)
 
 ZONES = ["big-zone", "small-zone"]
 NETWORKS = ["news-net", "kids-net", "sports-net"]

@@ -7,7 +7,6 @@ from __future__ import annotations
 import os
 import shutil
 
-import pandas as pd
 import pandas.testing as pdt
 import pyarrow as pa
 import pyarrow.parquet as pq

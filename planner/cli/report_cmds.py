@@ -73,7 +73,7 @@ def report_cmd(
     for name in deal or ():
         if name not in scn.deals:
             raise InputError(f"{scenario}: no deal named {name!r} in deals/ (known: {', '.join(sorted(scn.deals))})")
-    with progress("building the report") as advance:
+    with progress("building the report"):
         data = build_report(scn, deals=deal or None, draws=draws, seed=seed, solver=solver, book=book,
                             stage=lambda text: info(f"  {text}"))
         path = write_report(data, out)
