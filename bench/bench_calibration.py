@@ -14,7 +14,10 @@ shocks, episodes and noise) and, per seed, scores
 then pools them. Expected coverage over seeds is what "calibrated" means; each seed's figure
 shows the spread. For the backtest it also counts the single blocks whose coverage is within 5
 points of nominal at all three levels, and those whose CRPS is at least 15% below the better
-baseline: how often one block, the issue's test, passes by itself. Invented data throughout.
+baseline: how often one block, the issue's test, passes by itself, beside how often a calibrated
+forecast would pass it (drawn from the forecast's own correlated error law), and the share of
+blocks whose coverage falls inside the 5-95% range such a forecast would show on that block
+(90% if the error law, correlation included, is right). Invented data throughout.
 
 Usage:
     python bench/bench_calibration.py [--seeds 20261129,1,2,3,4] [--backtest [--blocks 2]] [--json]
@@ -74,7 +77,8 @@ def run_seed(seed: int, tmp: Path, backtest: bool, blocks: int = 1) -> dict:
                            "crps": bt["crps"], "baseline_coverage": {k: v["coverage"] for k, v in bt["baselines"].items()},
                            "blocks": [{"holdout": w["holdout"], "coverage": w["coverage"],
                                        "crps_skill": w["crps_skill_vs_best_baseline"],
-                                       "bias": w["bias"]} for w in bt["windows"]]}
+                                       "bias": w["bias"],
+                                       "coverage_if_calibrated": w["coverage_if_calibrated"]} for w in bt["windows"]]}
     return out
 
 
@@ -87,10 +91,22 @@ def _block_rows(per_seed: list[dict]) -> list[dict]:
     skill = np.array([b["crps_skill"] for b in blocks])
     bias = np.array([b["bias"] for b in blocks])
     within = np.all(np.abs(cov - np.array([float(lv) for lv in LEVELS])) <= 0.05, axis=1)
+    # each block's own 5-95% range of the coverage a calibrated forecast would show there
+    low = np.array([[b["coverage_if_calibrated"]["levels"][lv]["low"] for lv in LEVELS] for b in blocks])
+    high = np.array([[b["coverage_if_calibrated"]["levels"][lv]["high"] for lv in LEVELS] for b in blocks])
+    inside = (cov >= low) & (cov <= high)
+    below = cov < low
+    expected_within = np.array([b["coverage_if_calibrated"]["share_within"] for b in blocks])
     rows = [M.row(f"  backtest, single blocks ({n}): coverage 50 / 80 / 95%, mean", "",
                   " / ".join(f"{c:.1%}" for c in cov.mean(axis=0)), None, None),
             M.row("  backtest, single blocks: share within 5 points at all three levels", "",
                   f"{within.mean():.0%} ({int(within.sum())} of {n})", None, None),
+            M.row("  backtest, single blocks: the same expected of a calibrated forecast (its own error law)", "",
+                  f"{expected_within.mean():.0%}", None, None),
+            M.row("  backtest, single blocks: share inside the block's calibrated 5-95% range, 50 / 80 / 95%",
+                  "90% each", " / ".join(f"{c:.0%}" for c in inside.mean(axis=0)), None, None),
+            M.row("  backtest, single blocks: share below that range (bands too narrow), 50 / 80 / 95%",
+                  "5% each", " / ".join(f"{c:.0%}" for c in below.mean(axis=0)), None, None),
             M.row("  backtest, single blocks: CRPS skill vs the better baseline, mean (min-max)", ">= 15%",
                   f"{skill.mean():.1%} ({skill.min():.1%} to {skill.max():.1%})", 0.15 / max(skill.mean(), 1e-9)
                   if skill.mean() > 0 else None, bool(skill.mean() >= 0.15)),

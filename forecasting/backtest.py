@@ -23,9 +23,16 @@ from .baselines import BASELINES, last_year, trailing_mean
 from .dayparts import as_specs, daypart_week_means
 from .pipeline import DaypartForecaster, Progress
 from .profiles import ProfileCube
-from .scoring import coverage, crps_gaussian, pit_histogram, wape
+from .scoring import coverage, coverage_if_calibrated, crps_gaussian, pit_histogram, wape
 
 LEVELS = (0.5, 0.8, 0.95)
+#: relative sd components of the level error and the rows that share each factor (None: own)
+COMPONENTS = (("rel_sd_network", ["block", "network"]),
+              ("rel_sd_network_week", ["block", "network", "week"]),
+              ("rel_sd_flight", ["block", "zone", "network", "daypart", "demo"]),
+              ("rel_sd_week", None))
+#: Monte Carlo draws (and seed) of the coverage a calibrated forecast would show
+CALIBRATED_DRAWS, CALIBRATED_SEED = 500, 0
 
 
 @dataclass
@@ -88,8 +95,10 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
     -------
     BacktestResult ; ``summary`` has ``crps, wape, coverage{0.5,0.8,0.95}, by_daypart,
     baselines{name: {crps, wape, coverage}}, crps_skill_vs_best_baseline, holdout, units``,
-    ``windows`` (one entry per block, latest first: ``holdout, units, crps, wape, coverage,
-    baselines, crps_skill_vs_best_baseline``) and ``fit`` (the latest block's refit).
+    ``coverage_if_calibrated`` (`coverage_range_if_calibrated`),
+    ``windows`` (one entry per block, latest first: ``holdout, units, crps, wape, bias, coverage,
+    coverage_if_calibrated, baselines, crps_skill_vs_best_baseline``) and ``fit`` (the latest
+    block's refit).
 
     References
     ----------
@@ -103,6 +112,7 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
         raise ValueError(f"windows must be at least 1, got {K}")
     T = cube.n_days
     proto = forecaster or DaypartForecaster()
+    seed = int(getattr(proto, "random_state", None) or CALIBRATED_SEED)
     frames, per_window = [], []
     for j in range(K):
         h0 = T - 7 * W * (j + 1)
@@ -119,10 +129,10 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
         if j == 0:
             latest_fit = fc.summary()
         entry = {"holdout": _holdout(cube, h0, cut, W, gap_days), "units": int(len(df))}
-        entry.update(_block_scores(df))
+        entry.update(_block_scores(df, seed))
         per_window.append(entry)
     df = pd.concat(frames, ignore_index=True)
-    summary = _block_scores(df)
+    summary = _block_scores(df, seed)
     summary["pit_histogram"] = pit_histogram(df["actual"], df["mean"], df["sd"]).tolist()
     summary["by_daypart"] = {
         dp: _scores(g["actual"], g["mean"], g["sd"]) for dp, g in df.groupby("daypart", sort=False)}
@@ -146,9 +156,61 @@ def _holdout(cube: ProfileCube, h0: int, cut: int, W: int, gap_days: int) -> dic
             "cutoff_day": day(cut - 1), "lead_gap_days": int(gap_days)}
 
 
-def _block_scores(df: pd.DataFrame) -> dict:
-    """Model and baseline scores of scored unit-weeks, and the model's CRPS skill."""
+def coverage_range_if_calibrated(scored: pd.DataFrame, observed: dict | None = None,
+                                 draws: int = CALIBRATED_DRAWS, seed: int = CALIBRATED_SEED,
+                                 tolerance: float = 0.05) -> dict:
+    """What coverage one backtest can show when the forecast's error law is exactly right.
+
+    The level error of each scored unit-week is drawn from the forecast's own variance
+    components, with the factors shared as the model says (network by block; network-week;
+    flight of a zone x network x daypart x demo; own), and the share inside each central
+    interval is counted. A 13-week block holds a few dozen network draws, so its coverage
+    swings well beyond the binomial spread of independent hits.
+
+    Parameters
+    ----------
+    scored : ``BacktestResult.scored`` (columns ``block, zone, network, daypart, demo, week`` and
+        the four ``rel_sd_*`` components, fractions of the mean).
+    observed : {"0.5": .., ...} the coverage measured on these rows (fractions), optional.
+    draws, seed : Monte Carlo draws and seed.
+    tolerance : distance from nominal (fraction) for ``share_within``.
+
+    Returns
+    -------
+    dict ``levels``: level -> ``{"low", "high"}`` (5% and 95% quantiles of the simulated
+    coverage, fractions) and, with `observed`, ``share_as_far`` (share of draws at least as far
+    from the nominal level as the observed coverage: a two-sided Monte Carlo p-value);
+    ``share_within``: share of draws within `tolerance` of nominal at every level at once (how
+    often a calibrated forecast would pass such a target on these rows); ``tolerance``, ``draws``.
+
+    References
+    ----------
+    Christoffersen, P. F. (1998). Evaluating interval forecasts. International Economic Review
+    39(4), 841-862 (coverage tests of interval forecasts); the Monte Carlo test of Barnard (1963)
+    / Hope (1968), with the null law simulated from the fitted components.
+    """
+    comps = []
+    for col, keys in COMPONENTS:
+        group = None if keys is None else scored.groupby(keys, sort=False, observed=True).ngroup().to_numpy()
+        comps.append((scored[col].to_numpy(float), group))
+    sim = coverage_if_calibrated(comps, LEVELS, draws=draws, seed=seed)
+    levels = {}
+    for i, lv in enumerate(LEVELS):
+        entry = {"low": float(np.quantile(sim[:, i], 0.05)), "high": float(np.quantile(sim[:, i], 0.95))}
+        if observed is not None:
+            far = np.abs(sim[:, i] - lv) >= abs(observed[str(lv)] - lv) - 1e-12
+            entry["share_as_far"] = float(np.mean(far))
+        levels[str(lv)] = entry
+    within = np.all(np.abs(sim - np.asarray(LEVELS)) <= tolerance + 1e-12, axis=1)
+    return {"levels": levels, "share_within": float(np.mean(within)), "tolerance": float(tolerance),
+            "draws": int(draws)}
+
+
+def _block_scores(df: pd.DataFrame, seed: int = CALIBRATED_SEED) -> dict:
+    """Model and baseline scores of scored unit-weeks, the model's CRPS skill, and the coverage
+    range a calibrated forecast would show on them."""
     out = _scores(df["actual"], df["mean"], df["sd"])
+    out["coverage_if_calibrated"] = coverage_range_if_calibrated(df, out["coverage"], seed=seed)
     out["baselines"] = {name: _scores(df["actual"], df[f"{name}_mean"], df[f"{name}_sd"]) for name in BASELINES}
     best = min(v["crps"] for v in out["baselines"].values())
     out["crps_skill_vs_best_baseline"] = float(1.0 - out["crps"] / best) if best > 0 else float("nan")
@@ -195,6 +257,8 @@ def _score_block(cube: ProfileCube, info: pd.DataFrame, specs, universes: pd.Dat
     rel = fc.level_.predict(df)
     rel_sd = np.sqrt(rel["rel_sd_network"] ** 2 + rel["rel_sd_network_week"] ** 2 + rel["rel_sd_flight"] ** 2
                      + rel["rel_sd_week"] ** 2).to_numpy()
+    for col, _ in COMPONENTS:
+        df[col] = rel[col].to_numpy(float)
     df["actual"] = actual[s, p, w] * u
     df["mean"] = model_mean[s, p, w] * u
     df["sd"] = rel_sd * df["mean"]

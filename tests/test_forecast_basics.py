@@ -8,8 +8,8 @@ import pytest
 from forecasting.cyclic import calendar_features, clock_features
 from forecasting.dayparts import DaypartSpec, daypart_week_means, daypart_week_sums
 from forecasting.profiles import ProfileCube, ProfilePCA
-from forecasting.scoring import (central_interval, coverage, crps_gaussian, crps_sample, pit,
-                                 pit_histogram, wape)
+from forecasting.scoring import (central_interval, coverage, coverage_if_calibrated, crps_gaussian, crps_sample,
+                                 pit, pit_histogram, wape)
 from forecasting.transform import C_RATING, expected_rating, from_log, to_log
 
 
@@ -63,6 +63,37 @@ def test_wape_coverage_pit():
     h = pit_histogram(y, 2.0, 3.0)
     assert np.all(np.abs(h - 0.1) < 0.01)
     assert pit(2.0, 2.0, 3.0)[()] == pytest.approx(0.5)
+
+
+
+def test_coverage_if_calibrated_is_binomial_for_independent_hits_and_per_group_when_shared():
+    """Christoffersen (1998): a calibrated interval's hits are Bernoulli(level), so with
+    independent errors the coverage of n observations is Binomial(n, level) / n; when a factor is
+    shared by every observation of a group, the group's observations hit or miss together and
+    the coverage of G equal groups is Binomial(G, level) / G. Quantiles from scipy.stats.binom."""
+    from scipy.stats import binom
+
+    rng = np.random.default_rng(5)
+    n, draws = 400, 4000
+    sd = rng.uniform(0.05, 0.3, n)  # unequal sds: the interval scales with each one
+    sim = coverage_if_calibrated([(sd, None)], (0.5, 0.8, 0.95), draws=draws, seed=1)
+    for i, lv in enumerate((0.5, 0.8, 0.95)):
+        assert sim[:, i].mean() == pytest.approx(lv, abs=0.003)
+        for q in (0.05, 0.95):
+            assert np.quantile(sim[:, i], q) == pytest.approx(binom.ppf(q, n, lv) / n, abs=1.5 / n)
+    # one shared factor per group of 40, nothing else: 10 independent group draws
+    groups = np.repeat(np.arange(10), 40)
+    sim = coverage_if_calibrated([(sd, groups)], (0.5, 0.8), draws=draws, seed=2)
+    for i, lv in enumerate((0.5, 0.8)):
+        vals, counts = np.unique(np.round(sim[:, i] * 10).astype(int), return_counts=True)
+        expected = binom.pmf(vals, 10, lv)
+        np.testing.assert_allclose(counts / draws, expected, atol=0.02)
+    # a shared factor widens the spread beyond the binomial one, and the same seed repeats it
+    mixed = [(np.full(n, 0.1), groups), (np.full(n, 0.1), None)]
+    a = coverage_if_calibrated(mixed, (0.5,), draws=2000, seed=3)
+    np.testing.assert_array_equal(a, coverage_if_calibrated(mixed, (0.5,), draws=2000, seed=3))
+    assert a[:, 0].mean() == pytest.approx(0.5, abs=0.01)
+    assert a[:, 0].std() > 2 * np.sqrt(0.25 / n)
 
 
 # ------------------------------------------------------------------ transform and clock
@@ -171,3 +202,37 @@ def test_cube_keeps_gaps_missing():
     assert np.isnan(cube.values[0, 0, 10])
     assert cube.values[1, 2, 5] == pytest.approx(vals[1, 2, 5], rel=1e-6)
     assert cube.history_days().tolist() == [4, 5]
+
+
+def test_backtest_calibrated_range_shares_each_factor_as_the_level_model_does():
+    """Each component's factor is shared by the rows its key names (network: per block, all
+    zones, dayparts, demos, weeks; network-week; flight: zone x network x daypart x demo). With a
+    single non-zero component the coverage is Binomial(G, level) / G over its G groups
+    (Christoffersen 1998; probabilities from scipy.stats.binom)."""
+    from scipy.stats import binom
+
+    from forecasting.backtest import COMPONENTS, coverage_range_if_calibrated
+
+    idx = pd.MultiIndex.from_product([[1, 2], ["n1"], ["z1", "z2", "z3"], ["day", "prime"], ["a"], [1, 2, 3, 4]],
+                                     names=["block", "network", "zone", "daypart", "demo", "week"])
+    base = idx.to_frame(index=False)
+    groups = {"rel_sd_network": 2, "rel_sd_network_week": 8, "rel_sd_flight": 12, "rel_sd_week": len(base)}
+    for col, g in groups.items():
+        frame = base.assign(**{c: (0.1 if c == col else 0.0) for c, _ in COMPONENTS})
+        draws = 3000
+        res = coverage_range_if_calibrated(frame, {"0.5": 0.5, "0.8": 0.8, "0.95": 0.95}, draws=draws, seed=4)
+        lo, hi = res["levels"]["0.8"]["low"], res["levels"]["0.8"]["high"]
+        assert lo == pytest.approx(binom.ppf(0.05, g, 0.8) / g, abs=1.01 / g)
+        assert hi == pytest.approx(binom.ppf(0.95, g, 0.8) / g, abs=1.01 / g)
+        assert res["levels"]["0.5"]["share_as_far"] == 1.0  # the nominal itself is never "far"
+    # share within 5 points at every level: with the network factor alone (2 groups) a draw's
+    # coverage is 0, 1/2 or 1 at each level, so it is within 5 points of 50% only at 1/2, and of
+    # 80% or 95% never
+    frame = base.assign(**{c: (0.1 if c == "rel_sd_network" else 0.0) for c, _ in COMPONENTS})
+    assert coverage_range_if_calibrated(frame, draws=500)["share_within"] == 0.0
+    # 192 independent rows: the 50% level alone is within 5 points with the binomial probability
+    # (0.83; its sd is 3.6 points); all three levels at once cannot be more likely
+    frame = base.assign(**{c: (0.1 if c == "rel_sd_week" else 0.0) for c, _ in COMPONENTS})
+    within = coverage_range_if_calibrated(frame, draws=3000)["share_within"]
+    p50 = binom.cdf(np.floor(0.55 * 192), 192, 0.5) - binom.cdf(np.ceil(0.45 * 192) - 1, 192, 0.5)
+    assert within <= p50 + 0.02

@@ -114,6 +114,11 @@ def test_backtest_json_on_small_scenario(fitted_small, capsys):
     assert abs(s["bias"]) <= s["wape"] * (1 + s["bias"]) + 1e-12
     assert s["coverage"]["0.5"] <= s["coverage"]["0.8"] <= s["coverage"]["0.95"]
     assert s["units"] > 100
+    # the 5-95% range of coverage a calibrated forecast shows on these rows holds the nominal level
+    cal = s["coverage_if_calibrated"]
+    for lv, r in cal["levels"].items():
+        assert 0 <= r["low"] <= float(lv) <= r["high"] <= 1 and 0 <= r["share_as_far"] <= 1
+    assert 0 <= cal["share_within"] <= 1 and cal["tolerance"] == 0.05
     # --lead-days moves the cut-off: held-out days start that many days after it
     assert main(["forecast", "backtest", str(dest), "--holdout-weeks", "6", "--lead-days", "7", "--json"]) == 0
     h = json.loads(capsys.readouterr().out)["holdout"]
@@ -156,7 +161,10 @@ def test_backtest_pools_successive_blocks(fitted_small, capsys):
     assert main(args[:-1] + ["--windows", "2"]) == 0  # the table names each block and its cut-off
     text = capsys.readouterr().out
     assert "2 held-out blocks" in text and "block 2: " + b2["holdout"]["first_day"] in text
-    assert "pooled over the blocks" in text
+    assert "pooled over the blocks" in text and "a calibrated forecast would show" in text
+    # two blocks are two independent draws of every network's factor: a narrower pooled range
+    width = lambda sc: sc["coverage_if_calibrated"]["levels"]["0.8"]["high"] - sc["coverage_if_calibrated"]["levels"]["0.8"]["low"]  # noqa: E731
+    assert width(two) < max(width(b1), width(b2))
     assert main(["forecast", "backtest", str(dest), "--windows", "0"]) == 2
     assert "--windows" in capsys.readouterr().err
     assert main(["forecast", "backtest", str(dest), "--windows", "40"]) == 2

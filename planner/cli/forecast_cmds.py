@@ -129,7 +129,7 @@ def backtest_cmd(
             h, cov = wnd["holdout"], wnd["coverage"]
             out_console.print(f"  block {j}: {h['first_day']} .. {h['last_day']}, cut-off {h['cutoff_day']}; "
                               f"{wnd['units']:,} unit-weeks; coverage 50/80/95% {cov['0.5']:.1%} / "
-                              f"{cov['0.8']:.1%} / {cov['0.95']:.1%}; CRPS skill "
+                              f"{cov['0.8']:.1%} / {cov['0.95']:.1%} (calibrated: {_ranges(wnd)}); CRPS skill "
                               f"{wnd['crps_skill_vs_best_baseline']:.1%}")
         out_console.print("pooled over the blocks:")
     head = ["forecast", "CRPS (impr.)", "WAPE", "bias", "50%", "80%", "95%"]
@@ -147,7 +147,17 @@ def backtest_cmd(
         row(f"model, {dp}", sc)
     _print_aligned(head, rows)
     out_console.print(f"CRPS skill against the better baseline: {s['crps_skill_vs_best_baseline']:.1%}")
+    cal = s["coverage_if_calibrated"]
+    far = " / ".join(f"{v['share_as_far']:.0%}" for v in cal["levels"].values())
+    out_console.print(f"coverage 50/80/95% a calibrated forecast would show on these unit-weeks (90% of draws of "
+                      f"its own correlated errors): {_ranges(s)}; as far from nominal as measured in {far} of draws; "
+                      f"within {cal['tolerance']:.0%} of nominal at all three levels in {cal['share_within']:.0%}")
     out_console.print(s["caution"])
+
+
+def _ranges(scores: dict) -> str:
+    """'41-59% / 72-87% / 91-98%': the 5-95% ranges of `coverage_if_calibrated`."""
+    return " / ".join(f"{v['low']:.0%}-{v['high']:.0%}" for v in scores["coverage_if_calibrated"]["levels"].values())
 
 
 @forecast_app.command("show")
