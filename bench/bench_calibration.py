@@ -97,6 +97,8 @@ def _block_rows(per_seed: list[dict]) -> list[dict]:
     inside = (cov >= low) & (cov <= high)
     below = cov < low
     expected_within = np.array([b["coverage_if_calibrated"]["share_within"] for b in blocks])
+    bias_sd = np.array([b["coverage_if_calibrated"]["bias_sd"] for b in blocks])
+    bias_z = bias / bias_sd
     rows = [M.row(f"  backtest, single blocks ({n}): coverage 50 / 80 / 95%, mean", "",
                   " / ".join(f"{c:.1%}" for c in cov.mean(axis=0)), None, None),
             M.row("  backtest, single blocks: share within 5 points at all three levels", "",
@@ -107,6 +109,12 @@ def _block_rows(per_seed: list[dict]) -> list[dict]:
                   "90% each", " / ".join(f"{c:.0%}" for c in inside.mean(axis=0)), None, None),
             M.row("  backtest, single blocks: share below that range (bands too narrow), 50 / 80 / 95%",
                   "5% each", " / ".join(f"{c:.0%}" for c in below.mean(axis=0)), None, None),
+            M.row("  backtest, single blocks: sd of the total bias by the forecast's own law, mean (min-max)", "",
+                  f"{bias_sd.mean():.1%} ({bias_sd.min():.1%} to {bias_sd.max():.1%})", None, None),
+            M.row("  backtest, single blocks: total bias in those sds, RMS (1 if the law is right)", "about 1",
+                  f"{np.sqrt(np.mean(bias_z ** 2)):.2f}", None, None),
+            M.row("  backtest, single blocks: share with |bias| beyond 1.645 of those sds", "10%",
+                  f"{np.mean(np.abs(bias_z) > 1.645):.0%} ({int(np.sum(np.abs(bias_z) > 1.645))} of {n})", None, None),
             M.row("  backtest, single blocks: CRPS skill vs the better baseline, mean (min-max)", ">= 15%",
                   f"{skill.mean():.1%} ({skill.min():.1%} to {skill.max():.1%})", 0.15 / max(skill.mean(), 1e-9)
                   if skill.mean() > 0 else None, bool(skill.mean() >= 0.15)),

@@ -158,7 +158,7 @@ def _holdout(cube: ProfileCube, h0: int, cut: int, W: int, gap_days: int) -> dic
 
 def coverage_range_if_calibrated(scored: pd.DataFrame, observed: dict | None = None,
                                  draws: int = CALIBRATED_DRAWS, seed: int = CALIBRATED_SEED,
-                                 tolerance: float = 0.05) -> dict:
+                                 tolerance: float = 0.05, observed_bias: float | None = None) -> dict:
     """What coverage one backtest can show when the forecast's error law is exactly right.
 
     The level error of each scored unit-week is drawn from the forecast's own variance
@@ -174,6 +174,7 @@ def coverage_range_if_calibrated(scored: pd.DataFrame, observed: dict | None = N
     observed : {"0.5": .., ...} the coverage measured on these rows (fractions), optional.
     draws, seed : Monte Carlo draws and seed.
     tolerance : distance from nominal (fraction) for ``share_within``.
+    observed_bias : the measured total bias (sum actual / sum forecast - 1), optional.
 
     Returns
     -------
@@ -181,7 +182,11 @@ def coverage_range_if_calibrated(scored: pd.DataFrame, observed: dict | None = N
     coverage, fractions) and, with `observed`, ``share_as_far`` (share of draws at least as far
     from the nominal level as the observed coverage: a two-sided Monte Carlo p-value);
     ``share_within``: share of draws within `tolerance` of nominal at every level at once (how
-    often a calibrated forecast would pass such a target on these rows); ``tolerance``, ``draws``.
+    often a calibrated forecast would pass such a target on these rows); ``tolerance``, ``draws``;
+    ``bias_sd``: the sd of the total bias under the same law (exact: the bias is
+    ``sum_i mean_i e_i / sum_i mean_i``, so its variance is the sum over components and groups of
+    the squared mean-weighted sds of each group), and with `observed_bias`, ``bias_z`` (the
+    measured bias in those sds: N(0, 1) under the law, approximately).
 
     References
     ----------
@@ -202,15 +207,23 @@ def coverage_range_if_calibrated(scored: pd.DataFrame, observed: dict | None = N
             entry["share_as_far"] = float(np.mean(far))
         levels[str(lv)] = entry
     within = np.all(np.abs(sim - np.asarray(LEVELS)) <= tolerance + 1e-12, axis=1)
-    return {"levels": levels, "share_within": float(np.mean(within)), "tolerance": float(tolerance),
-            "draws": int(draws)}
+    weight = scored["mean"].to_numpy(float)
+    weight = weight / weight.sum()
+    var = sum(float(np.sum(np.bincount(g, weights=weight * sd) ** 2)) if g is not None else float(np.sum((weight * sd) ** 2))
+              for sd, g in comps)
+    out = {"levels": levels, "share_within": float(np.mean(within)), "tolerance": float(tolerance),
+           "draws": int(draws), "bias_sd": float(np.sqrt(var))}
+    if observed_bias is not None:
+        out["bias_z"] = float(observed_bias / np.sqrt(var)) if var > 0 else float("nan")
+    return out
 
 
 def _block_scores(df: pd.DataFrame, seed: int = CALIBRATED_SEED) -> dict:
     """Model and baseline scores of scored unit-weeks, the model's CRPS skill, and the coverage
     range a calibrated forecast would show on them."""
     out = _scores(df["actual"], df["mean"], df["sd"])
-    out["coverage_if_calibrated"] = coverage_range_if_calibrated(df, out["coverage"], seed=seed)
+    out["coverage_if_calibrated"] = coverage_range_if_calibrated(df, out["coverage"], seed=seed,
+                                                                 observed_bias=out["bias"])
     out["baselines"] = {name: _scores(df["actual"], df[f"{name}_mean"], df[f"{name}_sd"]) for name in BASELINES}
     best = min(v["crps"] for v in out["baselines"].values())
     out["crps_skill_vs_best_baseline"] = float(1.0 - out["crps"] / best) if best > 0 else float("nan")

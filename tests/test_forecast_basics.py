@@ -215,7 +215,7 @@ def test_backtest_calibrated_range_shares_each_factor_as_the_level_model_does():
 
     idx = pd.MultiIndex.from_product([[1, 2], ["n1"], ["z1", "z2", "z3"], ["day", "prime"], ["a"], [1, 2, 3, 4]],
                                      names=["block", "network", "zone", "daypart", "demo", "week"])
-    base = idx.to_frame(index=False)
+    base = idx.to_frame(index=False).assign(mean=1.0)
     groups = {"rel_sd_network": 2, "rel_sd_network_week": 8, "rel_sd_flight": 12, "rel_sd_week": len(base)}
     for col, g in groups.items():
         frame = base.assign(**{c: (0.1 if c == col else 0.0) for c, _ in COMPONENTS})
@@ -225,6 +225,8 @@ def test_backtest_calibrated_range_shares_each_factor_as_the_level_model_does():
         assert lo == pytest.approx(binom.ppf(0.05, g, 0.8) / g, abs=1.01 / g)
         assert hi == pytest.approx(binom.ppf(0.95, g, 0.8) / g, abs=1.01 / g)
         assert res["levels"]["0.5"]["share_as_far"] == 1.0  # the nominal itself is never "far"
+        # equal means: the total bias averages G independent factors of sd 0.1 (Bienaymé)
+        assert res["bias_sd"] == pytest.approx(0.1 / np.sqrt(g), rel=1e-12)
     # share within 5 points at every level: with the network factor alone (2 groups) a draw's
     # coverage is 0, 1/2 or 1 at each level, so it is within 5 points of 50% only at 1/2, and of
     # 80% or 95% never
@@ -236,3 +238,17 @@ def test_backtest_calibrated_range_shares_each_factor_as_the_level_model_does():
     within = coverage_range_if_calibrated(frame, draws=3000)["share_within"]
     p50 = binom.cdf(np.floor(0.55 * 192), 192, 0.5) - binom.cdf(np.ceil(0.45 * 192) - 1, 192, 0.5)
     assert within <= p50 + 0.02
+    # unequal means and all four components: the exact bias sd against a direct simulation of
+    # sum_i mean_i e_i / sum_i mean_i with each factor shared by its groups
+    rng = np.random.default_rng(8)
+    frame = base.assign(mean=rng.uniform(1, 50, len(base)), rel_sd_network=0.08, rel_sd_network_week=0.05,
+                        rel_sd_flight=rng.uniform(0.02, 0.1, len(base)), rel_sd_week=0.1)
+    res = coverage_range_if_calibrated(frame, observed_bias=-0.03)
+    w = frame["mean"].to_numpy() / frame["mean"].sum()
+    draws = np.zeros(20_000)
+    for col, keys in COMPONENTS:
+        g = np.arange(len(frame)) if keys is None else frame.groupby(keys).ngroup().to_numpy()
+        z = rng.standard_normal((20_000, g.max() + 1))[:, g]
+        draws += (z * (w * frame[col].to_numpy())).sum(axis=1)
+    assert res["bias_sd"] == pytest.approx(draws.std(), rel=0.02)
+    assert res["bias_z"] == pytest.approx(-0.03 / res["bias_sd"])
