@@ -151,7 +151,7 @@ def backtest_cmd(
     far = " / ".join(f"{v['share_as_far']:.0%}" for v in cal["levels"].values())
     out_console.print(f"coverage 50/80/95% a calibrated forecast would show on these unit-weeks (90% of draws of "
                       f"its own correlated errors): {_ranges(s)}; as far from nominal as measured in {far} of draws; "
-                      f"within {cal['tolerance']:.0%} of nominal at all three levels in {cal['share_within']:.0%}; "
+                      f"within {cal['tolerance'] * 100:g} points of nominal at all three levels in {cal['share_within']:.0%}; "
                       f"its total bias would have an sd of {cal['bias_sd']:.1%} (measured {s['bias']:+.1%}, "
                       f"{cal['bias_z']:+.1f} sd)")
     out_console.print(s["caution"])
