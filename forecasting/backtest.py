@@ -24,12 +24,14 @@ from .dayparts import as_specs, daypart_week_means
 from .pipeline import DaypartForecaster, Progress
 from .profiles import ProfileCube
 from .scoring import coverage, coverage_if_calibrated, crps_gaussian, pit_histogram, wape
+from .uncertainty import FLIGHT_KEYS
 
 LEVELS = (0.5, 0.8, 0.95)
-#: relative sd components of the level error and the rows that share each factor (None: own)
+#: relative sd components of the level error and the rows that share each factor (None: own),
+#: as `LevelErrorModel` nests them, with the backtest block in the place of its refit (fold)
 COMPONENTS = (("rel_sd_network", ["block", "network"]),
               ("rel_sd_network_week", ["block", "network", "week"]),
-              ("rel_sd_flight", ["block", "zone", "network", "daypart", "demo"]),
+              ("rel_sd_flight", ["block"] + [k for k in FLIGHT_KEYS if k != "fold"]),
               ("rel_sd_week", None))
 #: Monte Carlo draws (and seed) of the coverage a calibrated forecast would show
 CALIBRATED_DRAWS, CALIBRATED_SEED = 500, 0
@@ -132,7 +134,10 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
         entry.update(_block_scores(df, seed))
         per_window.append(entry)
     df = pd.concat(frames, ignore_index=True)
-    summary = _block_scores(df, seed)
+    if K == 1:  # the pooled scores are the one block's
+        summary = {k: v for k, v in per_window[0].items() if k not in ("holdout", "units")}
+    else:
+        summary = _block_scores(df, seed)
     summary["pit_histogram"] = pit_histogram(df["actual"], df["mean"], df["sd"]).tolist()
     summary["by_daypart"] = {
         dp: _scores(g["actual"], g["mean"], g["sd"]) for dp, g in df.groupby("daypart", sort=False)}
@@ -209,8 +214,10 @@ def coverage_range_if_calibrated(scored: pd.DataFrame, observed: dict | None = N
     within = np.all(np.abs(sim - np.asarray(LEVELS)) <= tolerance + 1e-12, axis=1)
     weight = scored["mean"].to_numpy(float)
     weight = weight / weight.sum()
-    var = sum(float(np.sum(np.bincount(g, weights=weight * sd) ** 2)) if g is not None else float(np.sum((weight * sd) ** 2))
-              for sd, g in comps)
+    var = 0.0
+    for sd, group in comps:  # each group's factor moves the total by its summed weighted sd
+        per_factor = weight * sd if group is None else np.bincount(group, weights=weight * sd)
+        var += float(np.sum(per_factor ** 2))
     out = {"levels": levels, "share_within": float(np.mean(within)), "tolerance": float(tolerance),
            "draws": int(draws), "bias_sd": float(np.sqrt(var))}
     if observed_bias is not None:
@@ -268,10 +275,9 @@ def _score_block(cube: ProfileCube, info: pd.DataFrame, specs, universes: pd.Dat
     u = np.where(np.isfinite(u), u, 1.0)
     df["size"] = np.log10(np.maximum(model_mean[s, p, w] * fc.universe_s_[s], 1e-9))
     rel = fc.level_.predict(df)
-    rel_sd = np.sqrt(rel["rel_sd_network"] ** 2 + rel["rel_sd_network_week"] ** 2 + rel["rel_sd_flight"] ** 2
-                     + rel["rel_sd_week"] ** 2).to_numpy()
     for col, _ in COMPONENTS:
         df[col] = rel[col].to_numpy(float)
+    rel_sd = np.sqrt(sum(df[col].to_numpy() ** 2 for col, _ in COMPONENTS))
     df["actual"] = actual[s, p, w] * u
     df["mean"] = model_mean[s, p, w] * u
     df["sd"] = rel_sd * df["mean"]
