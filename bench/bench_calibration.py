@@ -70,7 +70,9 @@ def run_seed(seed: int, tmp: Path, backtest: bool, blocks: int = 1) -> dict:
     res = fit_forecast(scn, seed=0)
     fit_s = time.perf_counter() - t0
     pw = plan_week_scores(scn, res.table)
-    out = {"seed": seed, "fit_seconds": fit_s, "plan_weeks": pw, "plan_weeks_bias": pw["bias"]}
+    cal = res.meta["fit"]["calibration"]
+    out = {"seed": seed, "fit_seconds": fit_s, "plan_weeks": pw, "plan_weeks_bias": pw["bias"],
+           "fit_total_check": {k: cal[k] for k in ("total_z_rms", "total_z_p", "total_excess_sd")}}
     if backtest:
         bt = backtest_scenario(scn, seed=0, windows=blocks)
         out["backtest"] = {"coverage": bt["coverage"], "crps_skill": bt["crps_skill_vs_best_baseline"],
@@ -157,6 +159,19 @@ def main() -> None:
     bias = np.array([r["plan_weeks_bias"] for r in per_seed])
     rows.append(M.row(f"  plan weeks: total bias (actual / forecast - 1), mean over {len(bias)} seeds (min-max)", "",
                       f"{bias.mean():+.1%} ({bias.min():+.1%} to {bias.max():+.1%})", None, None))
+    z = np.array([r["plan_weeks"]["bias_z"] for r in per_seed])
+    law = np.array([r["plan_weeks"]["bias_sd"] for r in per_seed])
+    rows.append(M.row("  plan weeks: sd of the total bias by the forecast's own law, mean; measured bias in those "
+                      "sds, RMS", "about 1", f"{law.mean():.1%}; {np.sqrt(np.mean(z ** 2)):.2f}", None, None))
+    chk = [r["fit_total_check"] for r in per_seed]
+    flagged = sum(c["total_z_p"] < 0.05 for c in chk)
+    excess = np.array([c["total_excess_sd"] for c in chk])
+    rows.append(M.row("  fit's leave-one-refit-out check of the totals: seeds flagged (chi-square p < 5%)", "",
+                      f"{flagged} of {len(chk)}; RMS z {np.mean([c['total_z_rms'] for c in chk]):.2f} mean", None, None))
+    rows.append(M.row("  fit's estimate of a shift shared by all units (sd), mean (min-max); the plan-week total "
+                      "bias beyond the law, sqrt(mean(bias^2 - law^2))", "",
+                      f"{excess.mean():.1%} ({excess.min():.1%}-{excess.max():.1%}); "
+                      f"{np.sqrt(max(np.mean(bias ** 2 - law ** 2), 0.0)):.1%}", None, None))
     result = {"seeds": seeds, "per_seed": per_seed, "rows": rows, "seconds": time.perf_counter() - t0}
     if args.json:
         print(json.dumps(result, default=str))

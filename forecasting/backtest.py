@@ -23,16 +23,13 @@ from .baselines import BASELINES, last_year, trailing_mean
 from .dayparts import as_specs, daypart_week_means
 from .pipeline import DaypartForecaster, Progress
 from .profiles import ProfileCube
-from .scoring import coverage, coverage_if_calibrated, crps_gaussian, pit_histogram, wape
-from .uncertainty import FLIGHT_KEYS
+from .scoring import coverage, coverage_if_calibrated, crps_gaussian, pit_histogram, total_bias_sd, wape
+from .uncertainty import COMPONENT_KEYS
 
 LEVELS = (0.5, 0.8, 0.95)
 #: relative sd components of the level error and the rows that share each factor (None: own),
 #: as `LevelErrorModel` nests them, with the backtest block in the place of its refit (fold)
-COMPONENTS = (("rel_sd_network", ["block", "network"]),
-              ("rel_sd_network_week", ["block", "network", "week"]),
-              ("rel_sd_flight", ["block"] + [k for k in FLIGHT_KEYS if k != "fold"]),
-              ("rel_sd_week", None))
+COMPONENTS = tuple((col, None if keys is None else ["block"] + keys) for col, keys in COMPONENT_KEYS)
 #: Monte Carlo draws (and seed) of the coverage a calibrated forecast would show
 CALIBRATED_DRAWS, CALIBRATED_SEED = 500, 0
 
@@ -212,16 +209,11 @@ def coverage_range_if_calibrated(scored: pd.DataFrame, observed: dict | None = N
             entry["share_as_far"] = float(np.mean(far))
         levels[str(lv)] = entry
     within = np.all(np.abs(sim - np.asarray(LEVELS)) <= tolerance + 1e-12, axis=1)
-    weight = scored["mean"].to_numpy(float)
-    weight = weight / weight.sum()
-    var = 0.0
-    for sd, group in comps:  # each group's factor moves the total by its summed weighted sd
-        per_factor = weight * sd if group is None else np.bincount(group, weights=weight * sd)
-        var += float(np.sum(per_factor ** 2))
+    bias_sd = total_bias_sd(scored["mean"].to_numpy(float), comps)
     out = {"levels": levels, "share_within": float(np.mean(within)), "tolerance": float(tolerance),
-           "draws": int(draws), "bias_sd": float(np.sqrt(var))}
+           "draws": int(draws), "bias_sd": bias_sd}
     if observed_bias is not None:
-        out["bias_z"] = float(observed_bias / np.sqrt(var)) if var > 0 else float("nan")
+        out["bias_z"] = float(observed_bias / bias_sd) if bias_sd > 0 else float("nan")
     return out
 
 

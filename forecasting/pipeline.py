@@ -24,14 +24,14 @@ from typing import Callable, Sequence
 
 import numpy as np
 import pandas as pd
-from scipy.stats import norm
+from scipy.stats import chi2, norm
 
 from .baselines import last_year, spread_by_daypart, trailing_mean
 from .dayparts import DaypartSpec, as_specs, daypart_week_means, daypart_week_sums
 from .models import ProfileForecaster
 from .profiles import ProfileCube
-from .scoring import coverage
-from .uncertainty import LevelErrorModel, airing_cv
+from .scoring import coverage, total_bias_sd
+from .uncertainty import COMPONENT_KEYS, LevelErrorModel, airing_cv
 
 Progress = Callable[[str, float], None]
 
@@ -200,12 +200,25 @@ class DaypartForecaster:
         return errors, base
 
     def _calibration(self, errors: pd.DataFrame) -> dict:
-        """Leave-one-fold-out coverage of the unit-week level bands (full-history units)."""
+        """Leave-one-refit-out checks of the error law on the full-history units of each refit.
+
+        For each refit j the level model is fitted on the other refits' errors, then on refit j:
+        the coverage of the unit-week level bands, and the relative miss of the refit's total
+        (sum actual / sum corrected forecast - 1, forecast-impression weighted) beside the sd the
+        law gives that total (`forecasting.scoring.total_bias_sd`, the factors shared as the model
+        says, widened by the error of a bias correction estimated from the other refits). Totals missing by many of those sds mean errors shared by all units (the whole
+        market at once) that the law leaves out; ``total_z_p`` is the chi-square test of that
+        (sum of z^2 over the refits, as many degrees of freedom as refits) and
+        ``total_excess_sd`` the sd of such a shared shift by the method of moments,
+        ``sqrt(max(mean(bias^2 - bias_sd^2) / (1 + 1 / (refits - 1)), 0))`` (fraction; rough
+        with few refits).
+        """
         out = {}
         folds = sorted(errors["fold"].unique())
         if len(folds) < 2:
             return out
         cover = {lv: [] for lv in (0.5, 0.8, 0.95)}
+        totals = {}
         for j in folds:
             try:
                 lm = LevelErrorModel().fit(errors[errors["fold"] != j])
@@ -213,21 +226,44 @@ class DaypartForecaster:
                 continue
             held = errors[(errors["fold"] == j) & ~errors["truncated"]]
             sd = lm.predict(held)
-            tot = np.sqrt(sd["rel_sd_network"] ** 2 + sd["rel_sd_network_week"] ** 2 + sd["rel_sd_flight"] ** 2
-                          + sd["rel_sd_week"] ** 2)
+            tot = np.sqrt(sum(sd[col] ** 2 for col, _ in COMPONENT_KEYS))
             # actual over the corrected forecast (carry-over of the recent residual, bias)
-            ratio = (1.0 + held["rel_error"]) / lm.mean_factor(held)
+            factor = lm.mean_factor(held)
+            ratio = (1.0 + held["rel_error"]) / factor
             for lv in cover:
                 cover[lv].append((coverage(ratio, 1.0, tot, lv), len(held)))
+            weight = np.power(10.0, held["size"].to_numpy(float)) * factor  # corrected forecast impressions
+            comps = [(sd[col].to_numpy(float),
+                      None if keys is None else held.groupby(keys, sort=False, observed=True).ngroup().to_numpy())
+                     for col, keys in COMPONENT_KEYS]
+            bias = float(np.sum(weight * ratio) / np.sum(weight) - 1.0)
+            # the bias correction comes from the other refits' errors: their mean total miss adds
+            # about law^2 / (refits - 1) to this refit's (approximately: equal laws by refit)
+            law = total_bias_sd(weight, comps) * np.sqrt(1.0 + 1.0 / (len(folds) - 1))
+            totals[self._fold_date(j)] = {"bias": bias, "bias_sd": law, "z": bias / law if law > 0 else float("nan")}
         for lv, vals in cover.items():
             if vals:
                 w = np.array([n for _, n in vals], dtype=float)
                 out[str(lv)] = float(np.sum([c for c, _ in vals] * w) / w.sum())
         full = errors[~errors["truncated"]]
         rms = full.groupby("fold")["rel_error"].apply(lambda x: float(np.sqrt(np.mean(x**2))))
+        z = np.array([t["z"] for t in totals.values()], dtype=float)
+        # a shared shift s_j enters refit j's miss as s_j less the mean of the others' (the bias
+        # correction): variance var_s (1 + 1 / (refits - 1))
+        excess = (np.mean([t["bias"] ** 2 - t["bias_sd"] ** 2 for t in totals.values()]) / (1.0 + 1.0 / (len(folds) - 1))
+                  if totals else np.nan)
         return {"leave_one_fold_out_coverage": out,
-                "rms_relative_error_by_fold": {str(self.day0_ + pd.Timedelta(days=self.folds_[int(j)]))[:10]: v
-                                               for j, v in rms.items()}}
+                "rms_relative_error_by_fold": {self._fold_date(j): v for j, v in rms.items()},
+                "leave_one_fold_out_total": totals,
+                "total_z_rms": float(np.sqrt(np.mean(z ** 2))) if z.size else float("nan"),
+                # under the law the z's are about independent N(0, 1): sum z^2 ~ chi-square(refits)
+                "total_z_p": float(chi2.sf(np.sum(z ** 2), z.size)) if z.size else float("nan"),
+                # method of moments: E[bias^2] = law^2 + var(shift shared by every unit of a refit)
+                "total_excess_sd": float(np.sqrt(max(excess, 0.0))) if np.isfinite(excess) else float("nan")}
+
+    def _fold_date(self, j) -> str:
+        """Origin date (YYYY-MM-DD) of refit `j`."""
+        return str(self.day0_ + pd.Timedelta(days=self.folds_[int(j)]))[:10]
 
     # ------------------------------------------------------------------ fit
     def fit(self, cube: ProfileCube, info: pd.DataFrame, dayparts, plan_start, weeks: int,

@@ -133,3 +133,35 @@ def coverage_if_calibrated(components, levels=(0.5, 0.8, 0.95), draws: int = 500
                 err += sd * rng.standard_normal((m, int(g.max()) + 1 if n else 0))[:, g]
         out[start:start + m] = np.mean(np.abs(err)[None] <= half, axis=2).T
     return out
+
+
+def total_bias_sd(weight, components) -> float:
+    """Standard deviation of the relative error of a weighted total under a factor error law.
+
+    The total's relative error is ``sum_i w_i e_i / sum_i w_i`` with
+    ``e_i = sum_k sd_k[i] Z_k[group_k[i]]`` (independent standard normal factors, as in
+    `coverage_if_calibrated`), so its variance is exactly the sum over components and groups of
+    the squared weighted sd of each group.
+
+    Parameters
+    ----------
+    weight : (n,) non-negative weights of the observations (e.g. forecast impressions).
+    components : sequence of ``(sd, group)`` pairs as in `coverage_if_calibrated` (sd as
+        fractions of each observation's mean).
+
+    Returns
+    -------
+    float, the sd of the total's relative error (fraction).
+
+    References
+    ----------
+    Bienaymé formula: the variance of a sum of independent terms is the sum of their variances.
+    """
+    w = np.asarray(weight, dtype=float)
+    w = w / w.sum()
+    var = 0.0
+    for sd, group in components:  # each group's factor moves the total by its summed weighted sd
+        sd = np.asarray(sd, dtype=float)
+        per_factor = w * sd if group is None else np.bincount(np.asarray(group, dtype=np.int64), weights=w * sd)
+        var += float(np.sum(per_factor ** 2))
+    return float(np.sqrt(var))

@@ -36,6 +36,12 @@ import pandas as pd
 from scipy.stats import norm
 
 FLIGHT_KEYS = ["fold", "zone", "network", "daypart", "demo"]
+#: the four relative-sd columns of `LevelErrorModel.predict` and the keys of the unit-weeks that
+#: share each factor within one refit (None: each unit-week alone)
+COMPONENT_KEYS = (("rel_sd_network", ["network"]),
+                  ("rel_sd_network_week", ["network", "week"]),
+                  ("rel_sd_flight", [k for k in FLIGHT_KEYS if k != "fold"]),
+                  ("rel_sd_week", None))
 
 #: floors on the relative sds (fractions of the mean) so nothing has zero variance
 FLOOR_SD = {"network": 0.01, "network_week": 0.005, "flight": 0.01, "week": 0.02, "airing": 0.05}

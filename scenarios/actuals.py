@@ -128,11 +128,24 @@ def true_unit_week_levels(scenario, demos: Iterable[str] | None = None) -> pd.Da
 def plan_week_scores(scenario, table: pd.DataFrame) -> dict:
     """Scores of a forecast table's unit-week bands on the plan weeks against the simulated truth
     (`true_unit_week_levels`): `forecasting.backtest.score_levels` of N(mean_impressions,
-    level_sd^2), plus ``units`` and ``bias`` (sum actual / sum forecast - 1, fraction)."""
+    level_sd^2), plus ``units``, ``bias`` (sum actual / sum forecast - 1, fraction), ``bias_sd``
+    (the sd the table's error law gives that total: `forecasting.scoring.total_bias_sd` with
+    each level factor shared as the table's columns say) and ``bias_z`` (bias / bias_sd)."""
     from forecasting.backtest import score_levels
+    from forecasting.scoring import total_bias_sd
 
     m = table.merge(true_unit_week_levels(scenario), on=["zone", "network", "daypart", "week", "demo"], how="inner")
     out = score_levels(m["true_impressions"], m["mean_impressions"], m["level_sd"])
     out["units"] = int(len(m))
     out["bias"] = float(m["true_impressions"].sum() / m["mean_impressions"].sum() - 1.0)
+    mu = m["mean_impressions"].to_numpy(float)
+    comps = [(m[col].to_numpy(float) / mu, None if keys is None else m.groupby(keys, sort=False).ngroup().to_numpy())
+             for col, keys in _TABLE_FACTORS]
+    out["bias_sd"] = total_bias_sd(mu, comps)
+    out["bias_z"] = out["bias"] / out["bias_sd"]
     return out
+
+
+#: the forecast table's level-sd columns and the unit keys that share each factor (None: own)
+_TABLE_FACTORS = (("level_sd_network", ["network"]), ("level_sd_network_week", ["network", "week"]),
+                  ("level_sd_flight", ["zone", "network", "daypart", "demo"]), ("level_sd_week", None))

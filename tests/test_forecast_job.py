@@ -53,7 +53,15 @@ def test_table_follows_the_contract(fitted_small):
     assert by["prime"] > by["overnight"]
     meta = json.loads((dest / "forecast" / "meta.json").read_text())
     assert meta["key"]["seed"] == 0 and meta["fit"]["folds"] >= 1
-    assert set(meta["fit"]["calibration"]["leave_one_fold_out_coverage"]) == {"0.5", "0.8", "0.95"}
+    cal = meta["fit"]["calibration"]
+    assert set(cal["leave_one_fold_out_coverage"]) == {"0.5", "0.8", "0.95"}
+    # one total check per refit, keyed by its origin date, the z its bias over its law sd
+    assert set(cal["leave_one_fold_out_total"]) == set(meta["fit"]["fold_origins"])
+    for t in cal["leave_one_fold_out_total"].values():
+        assert t["bias_sd"] > 0 and t["z"] == pytest.approx(t["bias"] / t["bias_sd"])
+    z = np.array([t["z"] for t in cal["leave_one_fold_out_total"].values()])
+    assert cal["total_z_rms"] == pytest.approx(np.sqrt(np.mean(z ** 2)))
+    assert 0.0 <= cal["total_z_p"] <= 1.0
 
 
 def test_cache_reused_and_key_tracks_inputs(fitted_small):
@@ -185,3 +193,16 @@ def test_demo_forecast_table(demo_fitted):
     short = t["history_weeks"] < 30
     assert short.any()
     assert rel[short].median() > rel[~short].median()
+
+
+def test_cli_fit_text_reports_the_refit_totals(small_scenario, scenario_copy, capsys):
+    dest = scenario_copy(small_scenario)
+    assert main(["forecast", "fit", str(dest)]) == 0
+    out = " ".join(capsys.readouterr().out.split())  # undo the console's line wrapping
+    cal = json.loads((dest / "forecast" / "meta.json").read_text())["fit"]["calibration"]
+    assert "held-out total of each refit" in out
+    for day, t in cal["leave_one_fold_out_total"].items():
+        assert f"{day} {t['bias']:+.1%} ({t['bias_sd']:.1%})" in out
+    assert ("caution: the refits' totals missed" in out) == (cal["total_z_p"] < 0.05)
+    if cal["total_z_p"] < 0.05 and cal["total_excess_sd"] > 0:
+        assert f"--shock all:-{cal['total_excess_sd']:.3f}" in out

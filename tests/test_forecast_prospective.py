@@ -59,3 +59,22 @@ def test_network_week_errors_are_shared_across_zones(scored):
     assert nw_mean.var() > 3 * r.var() / n
     rel_nw = (scored["level_sd_network_week"] / scored["mean_impressions"]).median()
     assert 0.3 * np.sqrt(nw_mean.var()) < rel_nw < 3 * np.sqrt(nw_mean.var())
+
+
+def test_plan_week_total_bias_sd_follows_the_table_factors(demo_fitted, scored):
+    from planner.forecast_job import load_forecast
+    from planner.scenario import load_scenario
+    from scenarios.actuals import plan_week_scores
+
+    scn = load_scenario(demo_fitted)
+    s = plan_week_scores(scn, load_forecast(scn))
+    assert s["bias_z"] == pytest.approx(s["bias"] / s["bias_sd"])
+    mu = scored["mean_impressions"].to_numpy()
+    w = mu / mu.sum()
+    # Bienaymé: with every factor of its own unit the total's sd would be sqrt(sum w^2 sd^2); the
+    # network factor alone, shared by all units of a network, gives sqrt(sum_n (sum_i w_i sd_i)^2)
+    alone = np.sqrt(np.sum((w * scored["level_sd"].to_numpy() / mu) ** 2))
+    by_net = (w * scored["level_sd_network"].to_numpy() / mu)
+    network_only = np.sqrt(np.sum(np.bincount(scored.groupby("network").ngroup().to_numpy(), weights=by_net) ** 2))
+    assert s["bias_sd"] > network_only > alone
+    assert s["bias_sd"] < np.sum(w * scored["level_sd"].to_numpy() / mu)  # below full correlation

@@ -81,3 +81,45 @@ def test_airing_cv_known_dispersion():
     counts = np.full(sums.shape, 200.0)
     cv = airing_cv(sums, sq, counts, np.array([0, 0, 1]))
     np.testing.assert_allclose(cv, 0.2, rtol=0.03)
+
+
+def _refit_check(df):
+    from forecasting.pipeline import DaypartForecaster
+
+    fc = DaypartForecaster()
+    fc.day0_ = pd.Timestamp("2025-01-06")
+    fc.folds_ = [400 - 28 * j for j in range(df["fold"].nunique())]
+    return fc._calibration(df.assign(size=2.0, recent=0.0))
+
+
+def test_refit_totals_agree_with_the_law_when_errors_follow_it():
+    # Errors drawn from the nested law itself: each refit's total misses by about N(0, law sd),
+    # so over 4 histories x 8 refits the RMS of the z's is 1 within its sampling error (about
+    # 1/sqrt(2 x 32) = 0.125; bounds at ~2 of those) and sum z^2 is about chi-square(8)
+    # (scipy.stats.chi2) for each history.
+    z, p = [], []
+    for seed in (11, 13, 15, 17):
+        cal = _refit_check(_nested_errors(folds=8, sd_nw=0.03, seed=seed))
+        totals = cal["leave_one_fold_out_total"]
+        assert len(totals) == 8 and all(t["bias_sd"] > 0 for t in totals.values())
+        z += [t["z"] for t in totals.values()]
+        p.append(cal["total_z_p"])
+    assert 0.75 < np.sqrt(np.mean(np.square(z))) < 1.25
+    assert min(p) > 0.05
+    assert cal["total_excess_sd"] < 0.02  # no shared shift beyond the law
+
+
+def test_refit_totals_flag_an_error_shared_by_the_whole_market():
+    # The same law plus a shift of every unit of a refit (sd 8%): the totals miss by far more
+    # than the law's sd (about 0.08 / 0.03 = 2.7 of them) and the chi-square test rejects it.
+    df = _nested_errors(folds=8, sd_nw=0.03, seed=11)
+    shift = np.random.default_rng(3).normal(0.0, 0.08, 8)
+    cal = _refit_check(df.assign(rel_error=df["rel_error"] + shift[df["fold"]]))
+    assert cal["total_z_rms"] > 2.0
+    assert cal["total_z_p"] < 0.01
+    # and the method-of-moments sd of that shift recovers the drawn shifts' spread (8 draws, so
+    # to about 25%)
+    assert cal["total_excess_sd"] == pytest.approx(np.std(shift), rel=0.25)
+    # the sd the law gives a refit's total is the exact weighted sum over its factors
+    t = next(iter(cal["leave_one_fold_out_total"].values()))
+    assert 0.005 < t["bias_sd"] < 0.05

@@ -88,6 +88,22 @@ def fit_cmd(
     if cal:
         out_console.print("held-out coverage of level bands: "
                           + ", ".join(f"{float(k):.0%} -> {v:.1%}" for k, v in cal.items()))
+    totals = fit["calibration"].get("leave_one_fold_out_total", {})
+    if totals:
+        cal_fit = fit["calibration"]
+        out_console.print("held-out total of each refit, actual / forecast - 1 (sd by the error law): "
+                          + ", ".join(f"{d} {t['bias']:+.1%} ({t['bias_sd']:.1%})" for d, t in totals.items())
+                          + f"; RMS in those sds {cal_fit['total_z_rms']:.2f} (about 1 if the law is right, "
+                          f"chi-square p = {cal_fit['total_z_p']:.2f})")
+        if cal_fit["total_z_p"] < 0.05:
+            excess = cal_fit["total_excess_sd"]
+            hint = (f" The misses suggest a shift shared by all units with an sd of about {excess:.1%} (a rough "
+                    f"figure from {len(totals)} refits); `pledge stress {scenario} --shock all:-{excess:.3f}` "
+                    "shows what one such shift does to the book." if excess > 0 else "")
+            out_console.print("[yellow]caution: the refits' totals missed by more than the error law allows, so "
+                              "errors shared by all units are larger than the bands assume; a deal spread over "
+                              "many networks is riskier than its chance of delivery shows (README, Cautions)."
+                              f"{hint}[/yellow]")
     out_console.print(CAUTION)
 
 
