@@ -203,15 +203,8 @@ class DaypartForecaster:
         """Leave-one-refit-out checks of the error law on the full-history units of each refit.
 
         For each refit j the level model is fitted on the other refits' errors, then on refit j:
-        the coverage of the unit-week level bands, and the relative miss of the refit's total
-        (sum actual / sum corrected forecast - 1, forecast-impression weighted) beside the sd the
-        law gives that total (`forecasting.scoring.total_bias_sd`, the factors shared as the model
-        says, widened by the error of a bias correction estimated from the other refits). Totals missing by many of those sds mean errors shared by all units (the whole
-        market at once) that the law leaves out; ``total_z_p`` is the chi-square test of that
-        (sum of z^2 over the refits, as many degrees of freedom as refits) and
-        ``total_excess_sd`` the sd of such a shared shift by the method of moments,
-        ``sqrt(max(mean(bias^2 - bias_sd^2) / (1 + 1 / (refits - 1)), 0))`` (fraction; rough
-        with few refits).
+        the coverage of the unit-week level bands, and the miss of the refit's total against the
+        sd the law gives it (`_total_miss`, summed up by `_total_check`).
         """
         out = {}
         folds = sorted(errors["fold"].unique())
@@ -232,34 +225,59 @@ class DaypartForecaster:
             ratio = (1.0 + held["rel_error"]) / factor
             for lv in cover:
                 cover[lv].append((coverage(ratio, 1.0, tot, lv), len(held)))
-            weight = np.power(10.0, held["size"].to_numpy(float)) * factor  # corrected forecast impressions
-            comps = [(sd[col].to_numpy(float),
-                      None if keys is None else held.groupby(keys, sort=False, observed=True).ngroup().to_numpy())
-                     for col, keys in COMPONENT_KEYS]
-            bias = float(np.sum(weight * ratio) / np.sum(weight) - 1.0)
-            # the bias correction comes from the other refits' errors: their mean total miss adds
-            # about law^2 / (refits - 1) to this refit's (approximately: equal laws by refit)
-            law = total_bias_sd(weight, comps) * np.sqrt(1.0 + 1.0 / (len(folds) - 1))
-            totals[self._fold_date(j)] = {"bias": bias, "bias_sd": law, "z": bias / law if law > 0 else float("nan")}
+            totals[self._fold_date(j)] = self._total_miss(held, sd, factor, len(folds))
         for lv, vals in cover.items():
             if vals:
                 w = np.array([n for _, n in vals], dtype=float)
                 out[str(lv)] = float(np.sum([c for c, _ in vals] * w) / w.sum())
         full = errors[~errors["truncated"]]
         rms = full.groupby("fold")["rel_error"].apply(lambda x: float(np.sqrt(np.mean(x**2))))
-        z = np.array([t["z"] for t in totals.values()], dtype=float)
-        # a shared shift s_j enters refit j's miss as s_j less the mean of the others' (the bias
-        # correction): variance var_s (1 + 1 / (refits - 1))
-        excess = (np.mean([t["bias"] ** 2 - t["bias_sd"] ** 2 for t in totals.values()]) / (1.0 + 1.0 / (len(folds) - 1))
-                  if totals else np.nan)
         return {"leave_one_fold_out_coverage": out,
                 "rms_relative_error_by_fold": {self._fold_date(j): v for j, v in rms.items()},
-                "leave_one_fold_out_total": totals,
-                "total_z_rms": float(np.sqrt(np.mean(z ** 2))) if z.size else float("nan"),
-                # under the law the z's are about independent N(0, 1): sum z^2 ~ chi-square(refits)
-                "total_z_p": float(chi2.sf(np.sum(z ** 2), z.size)) if z.size else float("nan"),
-                # method of moments: E[bias^2] = law^2 + var(shift shared by every unit of a refit)
-                "total_excess_sd": float(np.sqrt(max(excess, 0.0))) if np.isfinite(excess) else float("nan")}
+                "leave_one_fold_out_total": totals, **self._total_check(totals, len(folds))}
+
+    @staticmethod
+    def _total_miss(held: pd.DataFrame, sd: pd.DataFrame, factor: np.ndarray, n_refits: int) -> dict:
+        """A held-out refit's total miss and the sd its error law gives it.
+
+        ``bias`` = sum actual / sum corrected forecast - 1 over the refit's unit-weeks (forecast
+        impressions as weights, `factor` the mean correction of the level model fitted on the
+        other refits); ``bias_sd`` the exact sd of that total under the law
+        (`forecasting.scoring.total_bias_sd`, each factor shared as the model says) times
+        sqrt(1 + 1 / (n_refits - 1)), for the bias correction estimated from the other refits
+        (approximately: equal laws by refit); ``z`` = bias / bias_sd (fractions).
+        """
+        raw = np.power(10.0, held["size"].to_numpy(float))  # the refit's forecast impressions
+        weight = raw * factor
+        actual = raw * (1.0 + held["rel_error"].to_numpy(float))
+        comps = [(sd[col].to_numpy(float),
+                  None if keys is None else held.groupby(keys, sort=False, observed=True).ngroup().to_numpy())
+                 for col, keys in COMPONENT_KEYS]
+        bias = float(actual.sum() / weight.sum() - 1.0)
+        law = total_bias_sd(weight, comps) * np.sqrt(1.0 + 1.0 / (n_refits - 1))
+        return {"bias": bias, "bias_sd": law, "z": bias / law if law > 0 else float("nan")}
+
+    @staticmethod
+    def _total_check(totals: dict, n_refits: int) -> dict:
+        """Summary of the refits' total misses (`_total_miss` by refit).
+
+        ``total_z_rms``; ``total_z_p``: chi-square test of sum z^2 (about independent N(0, 1)
+        under the law, one degree of freedom per refit); ``total_excess_sd``: the sd of a shift
+        shared by every unit of a refit, by the method of moments, E[bias^2] = bias_sd^2 +
+        var_shift (1 + 1 / (n_refits - 1)) (the shift less the other refits' mean, as the bias
+        correction takes it); NaN without refits.
+
+        References
+        ----------
+        Pearson's chi-square test of a sum of squared standard normal deviates.
+        """
+        if not totals:
+            return {"total_z_rms": float("nan"), "total_z_p": float("nan"), "total_excess_sd": float("nan")}
+        z = np.array([t["z"] for t in totals.values()], dtype=float)
+        excess = np.mean([t["bias"] ** 2 - t["bias_sd"] ** 2 for t in totals.values()]) / (1.0 + 1.0 / (n_refits - 1))
+        return {"total_z_rms": float(np.sqrt(np.mean(z ** 2))),
+                "total_z_p": float(chi2.sf(np.sum(z ** 2), z.size)),
+                "total_excess_sd": float(np.sqrt(max(excess, 0.0)))}
 
     def _fold_date(self, j) -> str:
         """Origin date (YYYY-MM-DD) of refit `j`."""

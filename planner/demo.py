@@ -42,6 +42,7 @@ class DemoResult:
     seconds: dict[str, float] = field(default_factory=dict)
     draws: int = DEFAULT_DRAWS
     seed: int = DEFAULT_SEED
+    warnings: list[str] = field(default_factory=list)  # cautions about this forecast (the report's)
 
     def as_dict(self) -> dict:
         return {
@@ -50,6 +51,7 @@ class DemoResult:
             "reused_forecast": self.reused_forecast, "checks": self.checks, "committed": self.committed,
             "not_committed": self.not_committed, "released_before_rerun": self.released,
             "stress": self.stress, "draws": self.draws, "seed": self.seed, "seconds": self.seconds,
+            "warnings": self.warnings,
         }
 
 
@@ -210,7 +212,7 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
                         reused_folder=reused_folder, reused_forecast=reused_forecast, checks=checks,
                         committed=committed, not_committed=not_committed, released=released,
                         stress=stress.as_dict() if stress is not None else None, seconds=seconds,
-                        draws=draws, seed=seed)
+                        draws=draws, seed=seed, warnings=list(data.warnings))
     from planner.atomic import write_text_atomic
     import json
 

@@ -188,6 +188,33 @@ def ensure_forecast(scenario, *, demo: str | None = None, engine: str = "duckdb"
     return fit_forecast(scenario, demo=demo, engine=engine, seed=seed, progress=progress)
 
 
+def shared_error_caution(meta: dict | None, scenario_path) -> str | None:
+    """The caution a fit's own check of its refit totals calls for, or None.
+
+    `meta` is a forecast's ``meta.json`` (see `ensure_forecast`); the caution is due when the
+    chi-square test of the refits' total misses against the error law rejects at 5%
+    (``fit.calibration.total_z_p``), and names the stress shock of one shift of the estimated
+    sd (``total_excess_sd``).
+    """
+    cal = ((meta or {}).get("fit") or {}).get("calibration") or {}
+    p = cal.get("total_z_p")
+    if p is None or not p < 0.05:
+        return None
+    excess = float(cal.get("total_excess_sd") or 0.0)
+    n = len(cal.get("leave_one_fold_out_total") or {})
+    hint = (f" The misses suggest a shift shared by all units with an sd of about {excess:.1%} (a rough "
+            f"figure from {n} refits); `pledge stress {scenario_path} --shock all:-{excess:.3f}` shows what "
+            "one such shift does to the book." if excess > 0 else "")
+    return ("The forecast's refits missed their totals by more than its error law allows (chi-square "
+            f"p = {p:.3f}), so errors shared by all units are larger than the bands assume; a deal spread "
+            "over many networks is riskier than its chance of delivery shows (README, Cautions)." + hint)
+
+
+def forecast_meta(scenario) -> dict | None:
+    """The cached forecast's ``meta.json`` as a dict, None when there is none."""
+    return _read_meta(forecast_dir(scenario))
+
+
 def load_forecast(scenario) -> pd.DataFrame:
     """The cached forecast table; InputError when the scenario has none."""
     folder = forecast_dir(scenario)

@@ -113,6 +113,7 @@ class ReportData:
     seed: int | None = None
     notes: list[str] = field(default_factory=list)
     versions: dict[str, str] = field(default_factory=dict)
+    warnings: list[str] = field(default_factory=list)  # cautions about these inputs in particular
 
 
 # --------------------------------------------------------------------------------------------
@@ -438,6 +439,13 @@ def _cautions() -> str:
             + "".join(f"<li>{_esc(c)}</li>" for c in CAUTIONS) + "</ul></div>")
 
 
+def _warnings(data: ReportData) -> str:
+    if not data.warnings:
+        return ""
+    return ('<div class="caution" data-section="warnings"><b>This forecast in particular</b><ul>'
+            + "".join(f"<li>{_esc(w)}</li>" for w in data.warnings) + "</ul></div>")
+
+
 def render_report(data: ReportData) -> str:
     """Render the report as one self-contained HTML document (str)."""
     versions = data.versions or package_versions()
@@ -458,6 +466,7 @@ def render_report(data: ReportData) -> str:
 <div class="sub">{len(data.deals)} deal(s) \u00b7 currency {_esc(data.currency)} \u00b7 impressions are in each deal's demo \u00b7 made by pledge {_esc(versions.get("pledge", ""))}</div></header>
 <main>
 {_cautions()}
+{_warnings(data)}
 {notes}
 <h2>Deals at a glance</h2>
 {_summary_table(data)}
@@ -736,7 +745,11 @@ def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str
     notes = [(check_note or "Every deal is checked against the avails not held by the book; a deal in the "
               "book is checked against the other deals' holds (its own set aside).")
              + f" Impressions are in each deal's demo; money in {scenario.currency}."]
+    from planner.forecast_job import forecast_meta, shared_error_caution
+
+    caution = shared_error_caution(forecast_meta(scenario), scenario.path)
     return ReportData(
         scenario_name=scenario.name, scenario_path=str(scenario.path), currency=scenario.currency,
         deals=sections, book=book_part, forecasts=bands, dayparts=[d.name for d in scenario.dayparts],
-        seed=stress.seed if stress is not None else seed, notes=notes, versions=package_versions())
+        seed=stress.seed if stress is not None else seed, notes=notes, versions=package_versions(),
+        warnings=[caution] if caution else [])

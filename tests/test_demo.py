@@ -69,6 +69,13 @@ def test_demo_outputs_exist_and_agree(demo_run):
         assert st["book"][key] == pytest.approx(out["stress"]["book"][key], rel=1e-9, abs=1e-6)
     summary = json.loads((folder / "demo-summary.json").read_text())
     assert summary["committed"] == out["committed"]
+    # The forecast's own check of its refit totals reaches the demo's output and its report.
+    from planner.forecast_job import forecast_meta, shared_error_caution
+    from planner.scenario import load_scenario
+
+    caution = shared_error_caution(forecast_meta(load_scenario(folder)), folder)
+    assert out["warnings"] == ([caution] if caution else [])
+    assert ('data-section="warnings"' in report.read_text(encoding="utf-8")) == bool(caution)
 
 
 @pytest.mark.slow

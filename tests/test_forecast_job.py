@@ -203,6 +203,22 @@ def test_cli_fit_text_reports_the_refit_totals(small_scenario, scenario_copy, ca
     assert "held-out total of each refit" in out
     for day, t in cal["leave_one_fold_out_total"].items():
         assert f"{day} {t['bias']:+.1%} ({t['bias_sd']:.1%})" in out
-    assert ("caution: the refits' totals missed" in out) == (cal["total_z_p"] < 0.05)
+    assert ("caution: The forecast's refits missed their totals" in out) == (cal["total_z_p"] < 0.05)
     if cal["total_z_p"] < 0.05 and cal["total_excess_sd"] > 0:
         assert f"--shock all:-{cal['total_excess_sd']:.3f}" in out
+
+
+def test_shared_error_caution_follows_the_chi_square_test():
+    from planner.forecast_job import shared_error_caution
+
+    def meta(p, excess):
+        return {"fit": {"calibration": {"total_z_p": p, "total_excess_sd": excess,
+                                        "leave_one_fold_out_total": {"a": {}, "b": {}, "c": {}}}}}
+
+    assert shared_error_caution(None, "s") is None
+    assert shared_error_caution({"fit": {"calibration": {}}}, "s") is None  # a fit from before the check
+    assert shared_error_caution(meta(0.20, 0.02), "s") is None
+    text = shared_error_caution(meta(0.003, 0.062), "demo")
+    assert "p = 0.003" in text and "6.2%" in text and "3 refits" in text
+    assert "`pledge stress demo --shock all:-0.062`" in text
+    assert "--shock" not in shared_error_caution(meta(0.01, 0.0), "demo")

@@ -5,6 +5,7 @@ browser test is skipped, unless PLEDGE_REQUIRE_BROWSER=1 (set by CI), when it fa
 """
 from __future__ import annotations
 
+import html
 import json
 import os
 import re
@@ -257,3 +258,28 @@ def test_report_bad_input_exits_2(small_scenario, tmp_path):
     r = pledge("report", tmp_path / "missing", "--out", tmp_path / "r.html")
     assert r.returncode == 2 and "not a scenario folder" in r.stderr
     assert not (tmp_path / "r.html").exists()
+
+
+def test_report_carries_the_forecasts_own_caution(booked_report):
+    # The report repeats the caution of the fit's refit-total check exactly when the check calls
+    # for it (planner.forecast_job.shared_error_caution on the cached meta.json).
+    from planner.forecast_job import forecast_meta, shared_error_caution
+    from planner.scenario import load_scenario
+
+    folder, out, _, _ = booked_report
+    scn = load_scenario(folder)
+    caution = shared_error_caution(forecast_meta(scn), scn.path)
+    text = out.read_text(encoding="utf-8")
+    assert ('data-section="warnings"' in text) == (caution is not None)
+    if caution:
+        assert html.escape(caution) in text
+
+
+def test_report_renders_warnings_escaped():
+    from planner.report import ReportData, render_report
+
+    page = render_report(ReportData(scenario_name="x", scenario_path="/x", currency="USD", deals=[],
+                                    warnings=["refits missed <by> 8%"]))
+    assert 'data-section="warnings"' in page and "refits missed &lt;by&gt; 8%" in page
+    assert 'data-section="warnings"' not in render_report(ReportData(scenario_name="x", scenario_path="/x",
+                                                                     currency="USD", deals=[]))

@@ -277,6 +277,11 @@ def test_cli_commit_stress_rebalance_end_to_end(small_scenario, scenario_copy, m
     assert d["draws"] == 20000 and d["seed"] == 4 and len(d["shocks"]) == 2 and d["preempt_multiplier"] == 2
     assert {"deal", "probability_of_shortfall", "expected_shortfall", "expected_liability"} <= set(d["deals"][0])
     assert {"expected_liability", "var95", "cvar95"} <= set(d["book"])
+    # the forecast's own caution on errors shared by all units, when its refit check calls for it
+    from planner.forecast_job import forecast_meta, shared_error_caution
+
+    caution = shared_error_caution(forecast_meta(scn), folder)
+    assert d["warnings"] == ([caution] if caution else [])
     code, out2, _ = _cli(capsys, "stress", folder, "--draws", 20000, "--seed", 4, "--json",
                          "--shock", f"network={scn.network_names[0]}:-0.15", "--shock", "all:-0.05",
                          "--preempt-multiplier", 2)

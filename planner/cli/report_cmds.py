@@ -84,7 +84,7 @@ def report_cmd(
                     "book": None if data.book is None else {
                         "deals": list(data.book.deals), "expected_liability": data.book.expected_liability,
                         "var95": data.book.var95, "cvar95": data.book.cvar95, "draws": data.book.draws},
-                    "caution": CAUTION})
+                    "warnings": data.warnings, "caution": CAUTION})
         return
     out_console.print(_verdict_table(checks, scn.currency, {d.name for d in data.deals if d.in_book}))
     if data.book is not None:
@@ -92,6 +92,8 @@ def report_cmd(
         out_console.print(f"book: {len(b.deals)} deal(s), expected liability {money(b.expected_liability, scn.currency)}, "
                           f"VaR95 {money(b.var95, scn.currency)}, CVaR95 {money(b.cvar95, scn.currency)} "
                           f"({count(b.draws)} draws, seed {b.seed})")
+    for w in data.warnings:
+        out_console.print(f"[yellow]caution: {w}[/yellow]")
     out_console.print(f"report written to [bold]{path}[/]")
     out_console.print(CAUTION, style="dim")
 
@@ -136,5 +138,7 @@ def demo_cmd(
         out_console.print(f"book of {len(result.committed)} deal(s): expected make-good liability "
                           f"{money(b['expected_liability'], cur)}, VaR95 {money(b['var95'], cur)}, "
                           f"CVaR95 {money(b['cvar95'], cur)} ({count(result.draws)} draws, seed {result.seed})")
+    for w in result.warnings:
+        out_console.print(f"[yellow]caution: {w}[/yellow]")
     out_console.print(f"report: [bold]{result.report}[/]   (done in {elapsed:,.0f} s)")
     out_console.print(CAUTION, style="dim")

@@ -47,8 +47,11 @@ def stress_cmd(
     with progress(f"stress: {draws:,} draws", total=draws) as advance:
         r = stress_book(scn, book, draws=draws, seed=seed, shocks=shocks, preempt_multiplier=preempt_multiplier,
                         liability=liability, method=method, keep_draws=False, advance=advance)
+    from planner.forecast_job import forecast_meta, shared_error_caution
+
+    caution = shared_error_caution(forecast_meta(scn), scenario)
     if as_json:
-        print_json(r.as_dict())
+        print_json({**r.as_dict(), "warnings": [caution] if caution else []})
         return
     cur = r.currency
     out_console.print(f"[bold]Book stress[/]: {r.draws:,} draws, seed {r.seed}, {r.method} sampler, "
@@ -81,4 +84,6 @@ def stress_cmd(
         j = r.joint
         out_console.print(f"  most correlated pair {j['deals'][0]} / {j['deals'][1]} (corr {j['correlation']:.2f}): "
                           f"both short {j['probability_both_short']:.2%} vs {j['product_if_independent']:.2%} if independent")
+    if caution:
+        out_console.print(f"[yellow]caution: {caution}[/yellow]")
     out_console.print(CAUTION, style="dim")
