@@ -79,6 +79,11 @@ def test_default_confidence_is_stated(scn, fc):
     r = deals.check_deal(scn, "small-tight", forecast=fc, held=None, solver="highs")
     assert r.default_confidence_used and r.confidence == 0.95
     assert any("default confidence" in c for c in r.cautions)
+    # the forecast's own caution on errors shared by all units, exactly when its check calls for it
+    from planner.forecast_job import forecast_meta, shared_error_caution
+
+    shared = shared_error_caution(forecast_meta(scn), scn.path)
+    assert (shared in r.cautions) if shared else not any("refits missed" in c for c in r.cautions)
 
 
 def test_too_big_deal_is_an_answer(scn, fc):
