@@ -303,6 +303,7 @@ def test_cli_commit_stress_rebalance_end_to_end(small_scenario, scenario_copy, m
     r = json.loads(out)
     assert r["aired_weeks"] == [1, 2, 3] and r["posted_vs_forecast"] == pytest.approx(-0.2)
     assert r["deliverable"] and r["probability_after"] >= 0.95 - 1e-6 and r["committed"]
+    assert r["shared_error_caution"] == caution  # the same caution as the stress test's
     code, out, _ = _cli(capsys, "rebalance", folder, "small-comfortable", "--actuals", path, "--solver", "highs")
     assert code == 0 and "chance of delivery" in out
     path.write_text("zone,network,daypart,week,spots_aired,impressions\nx,y,z,1,1,1\n")

@@ -205,8 +205,11 @@ def rebalance_cmd(
     scn = _load(scenario)
     with progress(f"rebalancing {deal}"):
         r = rebalance_deal(scn, deal, actuals, book, commit=commit, solver=solver)
+    from planner.forecast_job import forecast_meta, shared_error_caution
+
+    shared = shared_error_caution(forecast_meta(scn), scenario)
     if as_json:
-        print_json({**r.as_dict(), "caution": CAUTION})
+        print_json({**r.as_dict(), "shared_error_caution": shared, "caution": CAUTION})
         return
     cur = scn.currency
     out_console.print(f"[bold]{deal}[/]: weeks aired {r.aired_weeks[0] if r.aired_weeks else '-'}-"
@@ -230,4 +233,6 @@ def rebalance_cmd(
         out_console.print("  book not updated (no deliverable re-plan)")
     for w in r.warnings:
         info(f"warning: {w}")
+    if shared:
+        out_console.print(f"[yellow]caution: {shared}[/yellow]")
     out_console.print(CAUTION, style="dim")
