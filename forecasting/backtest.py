@@ -24,7 +24,7 @@ from .dayparts import as_specs, daypart_week_means
 from .pipeline import DaypartForecaster, Progress
 from .profiles import ProfileCube
 from .scoring import coverage, coverage_if_calibrated, crps_gaussian, pit_histogram, total_bias_sd, wape
-from .uncertainty import COMPONENT_KEYS
+from .uncertainty import COMPONENT_KEYS, factor_components
 
 LEVELS = (0.5, 0.8, 0.95)
 #: relative sd components of the level error and the rows that share each factor (None: own),
@@ -196,10 +196,7 @@ def coverage_range_if_calibrated(scored: pd.DataFrame, observed: dict | None = N
     39(4), 841-862 (coverage tests of interval forecasts); the Monte Carlo test of Barnard (1963)
     / Hope (1968), with the null law simulated from the fitted components.
     """
-    comps = []
-    for col, keys in COMPONENTS:
-        group = None if keys is None else scored.groupby(keys, sort=False, observed=True).ngroup().to_numpy()
-        comps.append((scored[col].to_numpy(float), group))
+    comps = factor_components(scored, COMPONENTS)
     sim = coverage_if_calibrated(comps, LEVELS, draws=draws, seed=seed)
     levels = {}
     for i, lv in enumerate(LEVELS):

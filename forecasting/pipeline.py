@@ -31,7 +31,7 @@ from .dayparts import DaypartSpec, as_specs, daypart_week_means, daypart_week_su
 from .models import ProfileForecaster
 from .profiles import ProfileCube
 from .scoring import coverage, total_bias_sd
-from .uncertainty import COMPONENT_KEYS, LevelErrorModel, airing_cv
+from .uncertainty import COMPONENT_KEYS, LevelErrorModel, airing_cv, factor_components
 
 Progress = Callable[[str, float], None]
 
@@ -250,9 +250,7 @@ class DaypartForecaster:
         raw = np.power(10.0, held["size"].to_numpy(float))  # the refit's forecast impressions
         weight = raw * factor
         actual = raw * (1.0 + held["rel_error"].to_numpy(float))
-        comps = [(sd[col].to_numpy(float),
-                  None if keys is None else held.groupby(keys, sort=False, observed=True).ngroup().to_numpy())
-                 for col, keys in COMPONENT_KEYS]
+        comps = factor_components(held.assign(**{col: sd[col] for col, _ in COMPONENT_KEYS}))
         bias = float(actual.sum() / weight.sum() - 1.0)
         law = total_bias_sd(weight, comps) * np.sqrt(1.0 + 1.0 / (n_refits - 1))
         return {"bias": bias, "bias_sd": law, "z": bias / law if law > 0 else float("nan")}

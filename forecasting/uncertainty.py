@@ -43,6 +43,19 @@ COMPONENT_KEYS = (("rel_sd_network", ["network"]),
                   ("rel_sd_flight", [k for k in FLIGHT_KEYS if k != "fold"]),
                   ("rel_sd_week", None))
 
+
+
+def factor_components(rows: pd.DataFrame, spec=COMPONENT_KEYS, divide_by=None) -> list:
+    """``(sd, group)`` pairs of `rows` for `forecasting.scoring.coverage_if_calibrated` and
+    `forecasting.scoring.total_bias_sd`: per ``(column, keys)`` of `spec`, the column's sds
+    (divided by `divide_by`, shape (n,), when given: absolute sds to fractions) and the integer
+    code of each row's group under `keys` (None: each row its own factor)."""
+    scale = 1.0 if divide_by is None else np.asarray(divide_by, dtype=float)
+    return [(rows[col].to_numpy(float) / scale,
+             None if keys is None else rows.groupby(keys, sort=False, observed=True).ngroup().to_numpy())
+            for col, keys in spec]
+
+
 #: floors on the relative sds (fractions of the mean) so nothing has zero variance
 FLOOR_SD = {"network": 0.01, "network_week": 0.005, "flight": 0.01, "week": 0.02, "airing": 0.05}
 

@@ -266,9 +266,9 @@ def _cautions(run: DealRun) -> list[str]:
                    f"{100 * run.deal.confidence:.0f}% was used.")
     if run.fitted_now:
         out.append("The forecast was missing or stale and was fitted first.")
-    from planner.forecast_job import forecast_meta, shared_error_caution
+    from planner.forecast_job import forecast_caution
 
-    shared = shared_error_caution(forecast_meta(run.scenario), run.scenario.path)
+    shared = forecast_caution(run.scenario)
     if shared:
         out.append(shared)
     return out

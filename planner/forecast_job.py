@@ -215,6 +215,12 @@ def forecast_meta(scenario) -> dict | None:
     return _read_meta(forecast_dir(scenario))
 
 
+def forecast_caution(scenario, scenario_path=None) -> str | None:
+    """`shared_error_caution` of the scenario's cached forecast (the stress command naming
+    `scenario_path`, default the scenario's path), None when there is no forecast or no caution."""
+    return shared_error_caution(forecast_meta(scenario), scenario.path if scenario_path is None else scenario_path)
+
+
 def load_forecast(scenario) -> pd.DataFrame:
     """The cached forecast table; InputError when the scenario has none."""
     folder = forecast_dir(scenario)

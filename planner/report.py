@@ -745,9 +745,9 @@ def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str
     notes = [(check_note or "Every deal is checked against the avails not held by the book; a deal in the "
               "book is checked against the other deals' holds (its own set aside).")
              + f" Impressions are in each deal's demo; money in {scenario.currency}."]
-    from planner.forecast_job import forecast_meta, shared_error_caution
+    from planner.forecast_job import forecast_caution
 
-    caution = shared_error_caution(forecast_meta(scenario), scenario.path)
+    caution = forecast_caution(scenario)
     return ReportData(
         scenario_name=scenario.name, scenario_path=str(scenario.path), currency=scenario.currency,
         deals=sections, book=book_part, forecasts=bands, dayparts=[d.name for d in scenario.dayparts],

@@ -133,19 +133,14 @@ def plan_week_scores(scenario, table: pd.DataFrame) -> dict:
     each level factor shared as the table's columns say) and ``bias_z`` (bias / bias_sd)."""
     from forecasting.backtest import score_levels
     from forecasting.scoring import total_bias_sd
+    from forecasting.uncertainty import COMPONENT_KEYS, factor_components
 
     m = table.merge(true_unit_week_levels(scenario), on=["zone", "network", "daypart", "week", "demo"], how="inner")
     out = score_levels(m["true_impressions"], m["mean_impressions"], m["level_sd"])
     out["units"] = int(len(m))
-    out["bias"] = float(m["true_impressions"].sum() / m["mean_impressions"].sum() - 1.0)
     mu = m["mean_impressions"].to_numpy(float)
-    comps = [(m[col].to_numpy(float) / mu, None if keys is None else m.groupby(keys, sort=False).ngroup().to_numpy())
-             for col, keys in _TABLE_FACTORS]
-    out["bias_sd"] = total_bias_sd(mu, comps)
+    # the table's level_sd_* columns are the level model's rel_sd_* components times the mean
+    spec = [(col.replace("rel_sd_", "level_sd_"), keys) for col, keys in COMPONENT_KEYS]
+    out["bias_sd"] = total_bias_sd(mu, factor_components(m, spec, divide_by=mu))
     out["bias_z"] = out["bias"] / out["bias_sd"]
     return out
-
-
-#: the forecast table's level-sd columns and the unit keys that share each factor (None: own)
-_TABLE_FACTORS = (("level_sd_network", ["network"]), ("level_sd_network_week", ["network", "week"]),
-                  ("level_sd_flight", ["zone", "network", "daypart", "demo"]), ("level_sd_week", None))

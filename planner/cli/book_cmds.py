@@ -205,9 +205,9 @@ def rebalance_cmd(
     scn = _load(scenario)
     with progress(f"rebalancing {deal}"):
         r = rebalance_deal(scn, deal, actuals, book, commit=commit, solver=solver)
-    from planner.forecast_job import forecast_meta, shared_error_caution
+    from planner.forecast_job import forecast_caution
 
-    shared = shared_error_caution(forecast_meta(scn), scenario)
+    shared = forecast_caution(scn, scenario)
     if as_json:
         print_json({**r.as_dict(), "shared_error_caution": shared, "caution": CAUTION})
         return

@@ -47,9 +47,9 @@ def stress_cmd(
     with progress(f"stress: {draws:,} draws", total=draws) as advance:
         r = stress_book(scn, book, draws=draws, seed=seed, shocks=shocks, preempt_multiplier=preempt_multiplier,
                         liability=liability, method=method, keep_draws=False, advance=advance)
-    from planner.forecast_job import forecast_meta, shared_error_caution
+    from planner.forecast_job import forecast_caution
 
-    caution = shared_error_caution(forecast_meta(scn), scenario)
+    caution = forecast_caution(scn, scenario)
     if as_json:
         print_json({**r.as_dict(), "warnings": [caution] if caution else []})
         return
