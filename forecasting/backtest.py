@@ -172,7 +172,7 @@ def coverage_range_if_calibrated(scored: pd.DataFrame, observed: dict | None = N
     Parameters
     ----------
     scored : ``BacktestResult.scored`` (columns ``block, zone, network, daypart, demo, week`` and
-        the four ``rel_sd_*`` components, fractions of the mean).
+        the ``rel_sd_*`` components of `forecasting.uncertainty.COMPONENT_KEYS`, fractions of the mean).
     observed : {"0.5": .., ...} the coverage measured on these rows (fractions), optional.
     draws, seed : Monte Carlo draws and seed.
     tolerance : distance from nominal (fraction) for ``share_within``.

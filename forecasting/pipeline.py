@@ -243,16 +243,20 @@ class DaypartForecaster:
         ``bias`` = sum actual / sum corrected forecast - 1 over the refit's unit-weeks (forecast
         impressions as weights, `factor` the mean correction of the level model fitted on the
         other refits); ``bias_sd`` the exact sd of that total under the law
-        (`forecasting.scoring.total_bias_sd`, each factor shared as the model says) times
-        sqrt(1 + 1 / (n_refits - 1)), for the bias correction estimated from the other refits
-        (approximately: equal laws by refit); ``z`` = bias / bias_sd (fractions).
+        (`forecasting.scoring.total_bias_sd`, each factor shared as the model says), its part
+        from the factors other than the common one times sqrt(1 + 1 / (n_refits - 1)), for the
+        bias correction estimated from the other refits (approximately: equal laws by refit; the
+        common factor's sd already holds that part, see `forecasting.uncertainty`); ``z`` =
+        bias / bias_sd (fractions).
         """
         raw = np.power(10.0, held["size"].to_numpy(float))  # the refit's forecast impressions
         weight = raw * factor
         actual = raw * (1.0 + held["rel_error"].to_numpy(float))
         comps = factor_components(held.assign(**{col: sd[col] for col, _ in COMPONENT_KEYS}))
         bias = float(actual.sum() / weight.sum() - 1.0)
-        law = total_bias_sd(weight, comps) * np.sqrt(1.0 + 1.0 / (n_refits - 1))
+        common = total_bias_sd(weight, comps[:1])  # the COMPONENT_KEYS' first: the common factor
+        rest2 = total_bias_sd(weight, comps[1:]) ** 2
+        law = float(np.sqrt(common ** 2 + rest2 * (1.0 + 1.0 / (n_refits - 1))))
         return {"bias": bias, "bias_sd": law, "z": bias / law if law > 0 else float("nan")}
 
     @staticmethod
@@ -387,7 +391,7 @@ class DaypartForecaster:
         -------
         DataFrame with ``zone, network, daypart, week, demo, universe, mean_rating,
         mean_impressions, airing_sd, level_sd, level_sd_network, level_sd_flight, level_sd_week,
-        q10_impressions, q90_impressions, history_weeks, level_sd_network_week``.
+        q10_impressions, q90_impressions, history_weeks, level_sd_network_week, level_sd_common``.
         """
         info = self.info_
         S, P, W = self.plan_mean_.shape
@@ -416,8 +420,8 @@ class DaypartForecaster:
         t["level_sd_network_week"] = sd["rel_sd_network_week"].to_numpy() * mu
         t["level_sd_flight"] = sd["rel_sd_flight"].to_numpy() * mu
         t["level_sd_week"] = sd["rel_sd_week"].to_numpy() * mu
-        t["level_sd"] = np.sqrt(t["level_sd_network"] ** 2 + t["level_sd_network_week"] ** 2
-                                + t["level_sd_flight"] ** 2 + t["level_sd_week"] ** 2)
+        t["level_sd_common"] = sd["rel_sd_common"].to_numpy() * mu
+        t["level_sd"] = np.sqrt(sum(t[col.replace("rel_sd_", "level_sd_")] ** 2 for col, _ in COMPONENT_KEYS))
         spot_sd = np.sqrt(t["level_sd"] ** 2 + t["airing_sd"] ** 2)
         t["q10_impressions"] = np.maximum(mu - Z90 * spot_sd, 0.0)
         t["q90_impressions"] = mu + Z90 * spot_sd
@@ -429,7 +433,7 @@ class DaypartForecaster:
             t = t.merge(keys, on=["zone", "network", "daypart", "week"], how="inner")
         cols = ["zone", "network", "daypart", "week", "demo", "universe", "mean_rating", "mean_impressions",
                 "airing_sd", "level_sd", "level_sd_network", "level_sd_flight", "level_sd_week",
-                "q10_impressions", "q90_impressions", "history_weeks", "level_sd_network_week"]
+                "q10_impressions", "q90_impressions", "history_weeks", "level_sd_network_week", "level_sd_common"]
         return t[cols].sort_values(["zone", "network", "daypart", "week", "demo"]).reset_index(drop=True)
 
     def summary(self) -> dict:

@@ -4,13 +4,19 @@ Level error. For each rolling-origin refit (fold j) and each unit-week (zone z, 
 daypart d, demo m, week w) the relative error of the daypart mean is
 ``e = actual / forecast - 1``. It is decomposed as nested random effects
 
-    e = a[n, j] + g[n, w, j] + b[z, n, d, m, j] + c[z, n, d, m, w, j]
+    e = s[j] + a[n, j] + g[n, w, j] + b[z, n, d, m, j] + c[z, n, d, m, w, j]
 
-(network factor shared by every unit of the network; network-week factor shared by every unit
+(common factor shared by every unit of the forecast, all networks, zones, dayparts, demos and
+weeks; network factor shared by every unit of the network; network-week factor shared by every unit
 of the network in one week, all zones, dayparts and demos; flight factor shared across the
 weeks of a zone x network x daypart (x demo); unit-week own factor), with variances estimated
 by the method of moments of the nested ANOVA, pooled by daypart x size class (expected
 impressions) x genre and shrunk toward daypart x size class, then toward the daypart.
+The common factor is carved out of the network factor by the method of moments on the refits'
+means over networks: without it, a deal spread over many networks would look safer than it is,
+as if the networks' errors averaged out. The bias correction (the mean error of the refits) takes
+out the refits' mean shift, so the in-sample errors hold (1 - 1/J) of its variance (J refits) and
+a forecast's error (1 + 1/J) of it (the shift plus the error of its J-refit mean).
 The network-week factor is estimated from the network-week means of the within-flight
 deviations (below); without it, errors that move together in every zone of a network in one
 week would count as independent and a deal spread over many zones would look safer than it is.
@@ -38,7 +44,8 @@ from scipy.stats import norm
 FLIGHT_KEYS = ["fold", "zone", "network", "daypart", "demo"]
 #: the four relative-sd columns of `LevelErrorModel.predict` and the keys of the unit-weeks that
 #: share each factor within one refit (None: each unit-week alone)
-COMPONENT_KEYS = (("rel_sd_network", ["network"]),
+COMPONENT_KEYS = (("rel_sd_common", []),
+                  ("rel_sd_network", ["network"]),
                   ("rel_sd_network_week", ["network", "week"]),
                   ("rel_sd_flight", [k for k in FLIGHT_KEYS if k != "fold"]),
                   ("rel_sd_week", None))
@@ -49,11 +56,17 @@ def factor_components(rows: pd.DataFrame, spec=COMPONENT_KEYS, divide_by=None) -
     """``(sd, group)`` pairs of `rows` for `forecasting.scoring.coverage_if_calibrated` and
     `forecasting.scoring.total_bias_sd`: per ``(column, keys)`` of `spec`, the column's sds
     (divided by `divide_by`, shape (n,), when given: absolute sds to fractions) and the integer
-    code of each row's group under `keys` (None: each row its own factor)."""
+    code of each row's group under `keys` (None: each row its own factor; []: one factor for all)."""
     scale = 1.0 if divide_by is None else np.asarray(divide_by, dtype=float)
-    return [(rows[col].to_numpy(float) / scale,
-             None if keys is None else rows.groupby(keys, sort=False, observed=True).ngroup().to_numpy())
-            for col, keys in spec]
+
+    def group(keys):
+        if keys is None:
+            return None
+        if not keys:
+            return np.zeros(len(rows), dtype=np.int64)
+        return rows.groupby(keys, sort=False, observed=True).ngroup().to_numpy()
+
+    return [(rows[col].to_numpy(float) / scale, group(keys)) for col, keys in spec]
 
 
 #: floors on the relative sds (fractions of the mean) so nothing has zero variance
@@ -74,6 +87,9 @@ class LevelErrorModel:
     Attributes
     ----------
     bias_ : dict daypart -> mean relative error (the forecast is multiplied by 1 + bias).
+    var_common_ : float, variance of the common factor in a forecast (the shift and the error of
+        its mean over the refits); var_common_heldout_ : the part of it the bias-corrected
+        held-out errors hold.
     var_network_ : float, variance of the network factor.
     var_network_week_ : float, variance of the network-week factor.
     var_cells_ : DataFrame indexed by (daypart, size_bin, genre), columns ``flight, week``.
@@ -125,6 +141,7 @@ class LevelErrorModel:
         self._fit_pools(flights, var_g)
         self.var_network_week_ = var_g
         self._fit_network(flights, net)
+        self._fit_common(net, df["fold"].nunique())
         self._fit_history(df[df["truncated"]], full)  # ratios to the unscaled full-history variance
         self._apply_scale(self._fit_scale(full))
         return self
@@ -222,8 +239,35 @@ class LevelErrorModel:
         net = net.set_index(["fold", "network"])
         noise = inner.reindex(net.index).to_numpy() / net["M"].to_numpy() \
             + self.var_network_week_ / net["weeks"].to_numpy(float)
+        self._network_noise = pd.Series(noise, index=net.index)
         self.var_network_ = max(float(np.mean(net["net_mean"].to_numpy() ** 2 - noise)),
                                 FLOOR_SD["network"] ** 2)
+
+    def _fit_common(self, net: pd.DataFrame, n_refits: int) -> None:
+        """Carve the common factor out of the network factor (method of moments).
+
+        With the refit x network means ``u[j, n]`` and what the inner factors add to their mean
+        squares ``v[j, n]`` (`_fit_network`), the network mean square is
+        ``A = mean(u^2 - v) = c var_s + var_a`` and the mean square of the refits' means over their
+        N networks is ``B = mean_j(mean_n(u)^2 - mean_n(v) / N) = c var_s + var_a / N``, with
+        ``c = 1 - 1/J`` (the bias correction took out the refits' mean shift); solved for the
+        common variance var_s and the network variance var_a. Without two refits and two networks
+        the two are not separable and the common factor is zero.
+        """
+        net = net.set_index(["fold", "network"]).assign(v=self._network_noise)
+        self.var_common_ = self.var_common_heldout_ = 0.0
+        per = net.groupby(level="fold").agg(u=("net_mean", "mean"), v=("v", "mean"), N=("net_mean", "size"))
+        n_harm = float(len(per) / np.sum(1.0 / per["N"]))
+        if n_refits < 2 or n_harm < 2:
+            return
+        c = 1.0 - 1.0 / n_refits
+        A = float(np.mean(net["net_mean"] ** 2 - net["v"]))
+        B = float(np.mean(per["u"] ** 2 - per["v"] / per["N"]))
+        var_a = max((A - B) / (1.0 - 1.0 / n_harm), FLOOR_SD["network"] ** 2)
+        var_s = max((B - var_a / n_harm) / c, 0.0)
+        self.var_network_ = var_a
+        self.var_common_heldout_ = c * var_s
+        self.var_common_ = (1.0 + 1.0 / n_refits) * var_s
 
     def _fit_scale(self, full: pd.DataFrame) -> float:
         """One factor k on every level sd so the held-out errors' central 50/80/95% coverage is
@@ -235,7 +279,8 @@ class LevelErrorModel:
         normal model downstream needs. k is estimated from the same held-out errors.
         """
         vf, vw = self._cell_vars(full)
-        z = np.abs(full["e"].to_numpy(float)) / np.sqrt(self.var_network_ + self.var_network_week_ + vf + vw)
+        z = np.abs(full["e"].to_numpy(float)) / np.sqrt(self.var_common_heldout_ + self.var_network_
+                                                        + self.var_network_week_ + vf + vw)
         levels = np.array([0.5, 0.8, 0.95])
         q = norm.ppf(0.5 + levels / 2)
         grid = np.arange(0.5, 2.0001, 0.005)
@@ -246,6 +291,8 @@ class LevelErrorModel:
 
     def _apply_scale(self, k: float) -> None:
         self.scale_ = k
+        self.var_common_ *= k * k
+        self.var_common_heldout_ *= k * k
         self.var_network_ *= k * k
         self.var_network_week_ *= k * k
         self.var_cells_ = self.var_cells_ * (k * k)
@@ -328,7 +375,7 @@ class LevelErrorModel:
 
     def _total_var(self, units: pd.DataFrame) -> np.ndarray:
         vf, vw = self._cell_vars(units)
-        return self.var_network_ + self.var_network_week_ + vf + vw
+        return self.var_common_heldout_ + self.var_network_ + self.var_network_week_ + vf + vw
 
     def history_factor(self, history_weeks) -> np.ndarray:
         """Error-variance multiplier (>= 1) for series with `history_weeks` weeks of history.
@@ -345,7 +392,7 @@ class LevelErrorModel:
         return np.maximum(np.interp(np.log1p(np.maximum(h, 0.0)), np.log1p(weeks), ratio), 1.0)
 
     def predict(self, units: pd.DataFrame) -> pd.DataFrame:
-        """Relative sds of the four level factors for forecast units.
+        """Relative sds of the five level factors for forecast units.
 
         Parameters
         ----------
@@ -353,15 +400,16 @@ class LevelErrorModel:
 
         Returns
         -------
-        DataFrame ``bias, rel_sd_network, rel_sd_network_week, rel_sd_flight, rel_sd_week``
-        (fractions of the mean), aligned with `units`.
+        DataFrame ``bias, rel_sd_common, rel_sd_network, rel_sd_network_week, rel_sd_flight,
+        rel_sd_week`` (fractions of the mean), aligned with `units`.
         """
         dp = units["daypart"].astype(str)
         vf, vw = self._cell_vars(units)
-        total = self.var_network_ + self.var_network_week_ + vf + vw
+        total = self.var_common_heldout_ + self.var_network_ + self.var_network_week_ + vf + vw
         extra = (self.history_factor(units["history_weeks"].to_numpy(float)) - 1.0) * total
         return pd.DataFrame({
             "bias": dp.map(self.bias_).astype(float).fillna(0.0).to_numpy(),
+            "rel_sd_common": np.full(len(units), np.sqrt(self.var_common_)),
             "rel_sd_network": np.full(len(units), np.sqrt(self.var_network_)),
             "rel_sd_network_week": np.full(len(units), np.sqrt(self.var_network_week_)),
             "rel_sd_flight": np.sqrt(vf + extra),
@@ -371,6 +419,7 @@ class LevelErrorModel:
     def summary(self) -> dict:
         """Plain figures for meta.json."""
         return {
+            "rel_sd_common": float(np.sqrt(self.var_common_)),
             "rel_sd_network": float(np.sqrt(self.var_network_)),
             "rel_sd_network_week": float(np.sqrt(self.var_network_week_)),
             "rel_sd_flight_by_daypart": {k: float(np.sqrt(v)) for k, v in self.var_flight_daypart_.items()},

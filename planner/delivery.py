@@ -2,7 +2,7 @@
 
 One bought 30-second spot of unit i (zone x network x daypart x week) delivers
 
-    spot_i = A * (mu_i + a_net_i Z_net[network] + a_nw_i Z_nw[network, week]
+    spot_i = A * (mu_i + a_com_i Z_com + a_net_i Z_net[network] + a_nw_i Z_nw[network, week]
                   + a_flt_i Z_flt[zone, network, daypart] + a_wk_i Z_wk[i] + airing_sd_i eps),
     A ~ Bernoulli(1 - p_i)
 
@@ -12,8 +12,9 @@ x (one count per unit) the delivered total D has
     E[D]   = sum_i x_i (1 - p_i) mu_i
     Var[D] = ||A x||^2 + sum_i x_i [(1 - p_i) airing_sd_i^2 + p_i (1 - p_i)(mu_i^2 + level_sd_i^2)]
 
-where A stacks the four level factors (loadings times 1 - p_i). The network-week loading
-(`level_sd_network_week`) is optional: a forecast table without it has none. The first part is quadratic
+where A stacks the five level factors (loadings times 1 - p_i); Z_com is one factor shared by
+every unit. The network-week and common loadings (`level_sd_network_week`, `level_sd_common`)
+are optional: a forecast table without them has none. The first part is quadratic
 in x (shared level errors do not average out), the second linear (per-spot noise and
 preemption do). Everything here works on arrays, one entry per unit row.
 
@@ -37,12 +38,26 @@ REQUIRED = UNIT_KEY + ["mean_impressions", "airing_sd", "level_sd_network", "lev
                        "level_sd_week", "preempt_rate"]
 
 
-def network_week_sd(units: pd.DataFrame) -> np.ndarray:
-    """`level_sd_network_week` of unit rows (impressions per spot); zeros for a forecast table
-    written before that column existed."""
-    if "level_sd_network_week" in units:
-        return units["level_sd_network_week"].to_numpy(float)
+#: level-sd columns a forecast table may lack (written before they existed): read as zeros
+OPTIONAL_LEVEL_COLS = ["level_sd_network_week", "level_sd_common"]
+
+
+def optional_sd(units: pd.DataFrame, column: str) -> np.ndarray:
+    """Column `column` (one of OPTIONAL_LEVEL_COLS) of unit rows, impressions per spot; zeros
+    when the forecast table was written before it existed."""
+    if column in units:
+        return units[column].to_numpy(float)
     return np.zeros(len(units))
+
+
+def network_week_sd(units: pd.DataFrame) -> np.ndarray:
+    """`level_sd_network_week` of unit rows (impressions per spot); zeros if absent."""
+    return optional_sd(units, "level_sd_network_week")
+
+
+def common_sd(units: pd.DataFrame) -> np.ndarray:
+    """`level_sd_common` of unit rows (impressions per spot); zeros if absent."""
+    return optional_sd(units, "level_sd_common")
 
 
 @dataclass
@@ -52,7 +67,8 @@ class FactorLoadings:
     D = mean + sum_f loading_f Z_f + (independent rest with variance `linear_variance`).
     `network` is indexed by network, `network_week` by (network, week), `flight` by (zone,
     network, daypart), `week` by (zone, network, daypart, week); loadings in impressions per
-    unit standard-normal factor. Only factors with a non-zero loading are listed.
+    unit standard-normal factor. Only factors with a non-zero loading are listed; `common` is
+    the loading on the one factor shared by every unit.
     """
 
     mean: float
@@ -61,12 +77,14 @@ class FactorLoadings:
     week: pd.Series
     linear_variance: float
     network_week: pd.Series | None = None
+    common: float = 0.0
 
     @property
     def quadratic_variance(self) -> float:
         """Variance from the level factors, impressions^2."""
         nw = 0.0 if self.network_week is None else float((self.network_week ** 2).sum())
-        return float((self.network ** 2).sum() + (self.flight ** 2).sum() + (self.week ** 2).sum()) + nw
+        return (float((self.network ** 2).sum() + (self.flight ** 2).sum() + (self.week ** 2).sum()) + nw
+                + self.common ** 2)
 
 
 class DeliveryModel:
@@ -74,12 +92,14 @@ class DeliveryModel:
 
     Build with `DeliveryModel.from_units(units)`; `units` has one row per unit with the
     forecast columns (`mean_impressions`, `airing_sd`, `level_sd_network`, `level_sd_flight`,
-    `level_sd_week`, optionally `level_sd_network_week`, impressions per spot) and
+    `level_sd_week`, optionally `level_sd_network_week` and `level_sd_common`, impressions per
+    spot) and
     `preempt_rate` (fraction).
     """
 
     def __init__(self, mu, airing_sd, w_net, w_flight, w_week, preempt, net_code, flight_code,
-                 networks=None, flights=None, keys=None, w_nw=None, nw_code=None, network_weeks=None):
+                 networks=None, flights=None, keys=None, w_nw=None, nw_code=None, network_weeks=None,
+                 w_common=None):
         self.mu = np.asarray(mu, dtype=float)
         self.airing_sd = np.asarray(airing_sd, dtype=float)
         self.p = np.asarray(preempt, dtype=float)
@@ -94,14 +114,17 @@ class DeliveryModel:
         self.w_nw_raw = np.zeros(self.n) if w_nw is None else np.asarray(w_nw, dtype=float)
         self.nw_code = self.net_code.copy() if nw_code is None else np.asarray(nw_code, dtype=np.int64)
         self.n_nw = int(self.nw_code.max()) + 1 if self.n else 0
+        self.w_common_raw = np.zeros(self.n) if w_common is None else np.asarray(w_common, dtype=float)
         keep = 1.0 - self.p
         # Loadings of one bought spot on each factor, already times the chance it airs.
         self.a_net = self.w_net_raw * keep
         self.a_flight = self.w_flight_raw * keep
         self.a_week = self.w_week_raw * keep
         self.a_nw = self.w_nw_raw * keep
+        self.a_common = self.w_common_raw * keep
         self.m = keep * self.mu  # expected impressions of one bought spot
-        level_var = self.w_net_raw ** 2 + self.w_nw_raw ** 2 + self.w_flight_raw ** 2 + self.w_week_raw ** 2
+        level_var = (self.w_common_raw ** 2 + self.w_net_raw ** 2 + self.w_nw_raw ** 2 + self.w_flight_raw ** 2
+                     + self.w_week_raw ** 2)
         # Per-spot variance that is linear in x: airing noise plus preemption.
         self.v_lin = keep * self.airing_sd ** 2 + self.p * keep * (self.mu ** 2 + level_var)
         # Per-spot variance if every error were independent per spot (for comparison only).
@@ -139,6 +162,7 @@ class DeliveryModel:
             net_code, flight_code, networks=pd.Index(networks, name="network"),
             flights=flights if len(flights) else None,
             keys=keys, w_nw=network_week_sd(units), nw_code=nw_code, network_weeks=network_weeks,
+            w_common=common_sd(units),
         )
 
     # -- moments ---------------------------------------------------------------------------
@@ -148,17 +172,17 @@ class DeliveryModel:
 
     def factor_sums(self, x):
         """(A x) split by level: network (n_net,), flight (n_flight,), week (n,), network-week
-        (n_nw,) impressions."""
+        (n_nw,), common (1,) impressions."""
         x = np.asarray(x, dtype=float)
         return (np.bincount(self.net_code, self.a_net * x, minlength=self.n_net),
                 np.bincount(self.flight_code, self.a_flight * x, minlength=self.n_flight),
                 self.a_week * x,
-                np.bincount(self.nw_code, self.a_nw * x, minlength=self.n_nw))
+                np.bincount(self.nw_code, self.a_nw * x, minlength=self.n_nw),
+                np.array([np.dot(self.a_common, x)]))
 
     def quadratic_variance(self, x) -> float:
         """||A x||^2: variance from the shared level errors, impressions^2."""
-        s_net, s_flt, s_wk, s_nw = self.factor_sums(x)
-        return float(s_net @ s_net + s_flt @ s_flt + s_wk @ s_wk + s_nw @ s_nw)
+        return float(sum(s @ s for s in self.factor_sums(x)))
 
     def linear_variance(self, x) -> float:
         """Variance from per-spot airing noise and preemption (linear in x), impressions^2."""
@@ -178,9 +202,9 @@ class DeliveryModel:
 
     def quadratic_gradient(self, x) -> np.ndarray:
         """A'A x (shape (n,)): half the gradient of ||A x||^2, impressions^2 per spot."""
-        s_net, s_flt, s_wk, s_nw = self.factor_sums(x)
+        s_net, s_flt, s_wk, s_nw, s_com = self.factor_sums(x)
         return (self.a_net * s_net[self.net_code] + self.a_flight * s_flt[self.flight_code] + self.a_week * s_wk
-                + self.a_nw * s_nw[self.nw_code])
+                + self.a_nw * s_nw[self.nw_code] + self.a_common * s_com[0])
 
     def sd_gradient(self, x, linear_fixed: float | None = None) -> np.ndarray:
         """Gradient of sqrt(||A x||^2 + l0) in x, impressions per spot.
@@ -202,7 +226,7 @@ class DeliveryModel:
 
     def factor_loadings(self, x) -> FactorLoadings:
         """Per-factor aggregated loadings of the plan x (for joint draws across deals)."""
-        s_net, s_flt, s_wk, s_nw = self.factor_sums(x)
+        s_net, s_flt, s_wk, s_nw, s_com = self.factor_sums(x)
         net_index = self.networks if self.networks is not None else pd.RangeIndex(self.n_net)
         nw_index = self.network_weeks if self.network_weeks is not None else pd.RangeIndex(self.n_nw)
         nw = pd.Series(s_nw, index=nw_index, name="loading")
@@ -212,7 +236,7 @@ class DeliveryModel:
         flt = pd.Series(s_flt, index=flt_index, name="loading")
         wk = pd.Series(s_wk, index=wk_index, name="loading")
         return FactorLoadings(self.mean(x), net[net != 0], flt[flt != 0], wk[wk != 0],
-                              self.linear_variance(x), nw[nw != 0])
+                              self.linear_variance(x), nw[nw != 0], float(s_com[0]))
 
     # -- Monte Carlo -----------------------------------------------------------------------
     def sample(self, x, draws: int, rng: np.random.Generator, exact: bool = False,
@@ -233,7 +257,7 @@ class DeliveryModel:
         xa = x[act]
         mu, p, sd_air = self.mu[act], self.p[act], self.airing_sd[act]
         wn, wf, ww = self.w_net_raw[act], self.w_flight_raw[act], self.w_week_raw[act]
-        wg = self.w_nw_raw[act]
+        wg, wc = self.w_nw_raw[act], self.w_common_raw[act]
         net_u, net_c = np.unique(self.net_code[act], return_inverse=True)
         nw_u, nw_c = np.unique(self.nw_code[act], return_inverse=True)
         flt_u, flt_c = np.unique(self.flight_code[act], return_inverse=True)
@@ -247,6 +271,8 @@ class DeliveryModel:
             level = mu + wn * z_net[:, net_c] + wf * z_flt[:, flt_c] + ww * z_wk  # (k, n_act)
             if wg.any():
                 level += wg * rng.standard_normal((k, nw_u.size))[:, nw_c]
+            if wc.any():
+                level += wc * rng.standard_normal((k, 1))
             if exact:
                 aired = rng.binomial(xi, 1.0 - p, size=(k, act.size))
                 total = (aired * level).sum(axis=1)

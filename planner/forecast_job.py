@@ -32,7 +32,7 @@ TABLE_FILE = "forecast.parquet"
 MODEL_FILE = "model.pkl"
 META_FILE = "meta.json"
 #: bump when the model or the table changes meaning (old caches are then refitted)
-MODEL_VERSION = "3"  # 3: network-week factor
+MODEL_VERSION = "4"  # 3: network-week factor; 4: common factor
 
 Progress = Callable[[str, float], None]
 
@@ -196,18 +196,22 @@ def shared_error_caution(meta: dict | None, scenario_path) -> str | None:
     (``fit.calibration.total_z_p``), and names the stress shock of one shift of the estimated
     sd (``total_excess_sd``).
     """
-    cal = ((meta or {}).get("fit") or {}).get("calibration") or {}
+    fit = (meta or {}).get("fit") or {}
+    cal = fit.get("calibration") or {}
     p = cal.get("total_z_p")
     if p is None or not p < 0.05:
         return None
     excess = float(cal.get("total_excess_sd") or 0.0)
+    common = float((fit.get("level_error") or {}).get("rel_sd_common") or 0.0)
     n = len(cal.get("leave_one_fold_out_total") or {})
-    hint = (f" The misses suggest a shift shared by all units with an sd of about {excess:.1%} (a rough "
-            f"figure from {n} refits); `pledge stress {scenario_path} --shock all:-{excess:.3f}` shows what "
-            "one such shift does to the book." if excess > 0 else "")
+    held = (f", even with the shift shared by all units that the law holds (sd {common:.1%})" if common > 0 else "")
+    hint = (f" The misses suggest a further shift shared by all units with an sd of about {excess:.1%} (a "
+            f"rough figure from {n} refits); `pledge stress {scenario_path} --shock all:-{excess:.3f}` shows "
+            "what one such shift does to the book." if excess > 0 else "")
     return ("The forecast's refits missed their totals by more than its error law allows (chi-square "
-            f"p = {p:.3f}), so errors shared by all units are larger than the bands assume; a deal spread "
-            "over many networks is riskier than its chance of delivery shows (README, Cautions)." + hint)
+            f"p = {p:.3f}{held}), so errors shared by all units may be larger than the bands assume; a deal "
+            "spread over many networks may be riskier than its chance of delivery shows (README, Cautions)."
+            + hint)
 
 
 def forecast_meta(scenario) -> dict | None:

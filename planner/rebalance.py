@@ -1,19 +1,23 @@
 """Mid-flight rebalancing: update the forecast from posted actuals and re-plan the remaining weeks.
 
 Evidence. A posted unit-week (k aired spots, y impressions in the deal's demo) says, per aired
-spot, y / k = mu_i + a_i Z_net[network] + b_i Z_flight[zone, network, daypart] + e, with
+spot, y / k = mu_i + u_i Z_com + a_i Z_net[network] + b_i Z_flight[zone, network, daypart] + e, with
 e ~ N(0, c_i^2 + s_i^2 / k) (the unit-week's own factor and the airing noise averaged over k
-spots; loadings a, b, c and airing sd s from the forecast table). With the level factors' prior
+spots; loadings u, a, b, c and airing sd s from the forecast table; Z_com is the factor shared
+by every unit). With the level factors' prior
 N(0, I) this is a linear-Gaussian model, so their posterior is Gaussian (a conditional, or
 shrinkage, update: the evidence is weighed against the forecast's prior uncertainty):
 
     precision  P = I + H' R^-1 H,   mean  m = P^-1 H' R^-1 (y - mu),   covariance  V = P^-1.
 
-The remaining weeks' forecast rows then get mean mu_i + a_i m_net + b_i m_flight, network
-loading a_i sqrt(V_nn) and flight loading sqrt(b_i^2 V_ff + 2 a_i b_i V_nf) (keeping each unit's
-posterior level variance exact; when the flight part is negative the unit's network loading
-absorbs it; cross-unit posterior correlations beyond the shared factors are approximated). Units that posted move, and so, through the network factor, do units of the same
-network in other zones and dayparts that did not post. The unit-week factors of future weeks are
+The remaining weeks' forecast rows then get mean mu_i + u_i m_com + a_i m_net + b_i m_flight,
+common loading u_i sqrt(V_cc), network loading sqrt(a_i^2 V_nn + 2 a_i u_i V_nc) and flight
+loading sqrt(b_i^2 V_ff + 2 a_i b_i V_nf + 2 b_i u_i V_fc) (keeping each unit's posterior level
+variance exact; a negative flight part is absorbed by the unit's network loading, a negative
+network part by its common loading; cross-unit posterior correlations beyond the shared factors
+are approximated). Units that posted move, and so, through the network factor, do units of the
+same network in other zones and dayparts that did not post, and through the common factor every
+unit a little. The unit-week factors of future weeks are
 independent of the past and keep their prior.
 
 Re-plan. Aired weeks are fixed and their posted impressions counted; the remaining weeks are
@@ -38,7 +42,7 @@ import numpy as np
 import pandas as pd
 from scipy import sparse
 
-from planner.delivery import FLIGHT_KEY, UNIT_KEY, DeliveryModel, network_week_sd
+from planner.delivery import FLIGHT_KEY, UNIT_KEY, DeliveryModel, common_sd, network_week_sd
 from planner.errors import InputError
 
 ACTUALS_COLUMNS = ["zone", "network", "daypart", "week", "spots_aired", "impressions"]
@@ -112,16 +116,18 @@ def read_actuals(path: str | os.PathLike, scenario: Any = None, deal: Any = None
 
 @dataclass
 class LevelPosterior:
-    """Posterior of the network and flight level factors (standard-normal prior).
+    """Posterior of the network, flight and common level factors (standard-normal prior).
 
     `networks` (Index) and `flights` (MultiIndex zone,network,daypart) order the factor vector
-    [networks..., flights...]; `mean` (K,) and `cov` (K, K) dimensionless (factor units)."""
+    [networks..., flights..., common] (the common factor last, when `common`); `mean` (K,) and
+    `cov` (K, K) dimensionless (factor units)."""
 
     networks: pd.Index
     flights: pd.MultiIndex
     mean: np.ndarray
     cov: np.ndarray
     observations: int
+    common: bool = False
 
 
 def level_posterior(obs: pd.DataFrame) -> LevelPosterior:
@@ -129,7 +135,8 @@ def level_posterior(obs: pd.DataFrame) -> LevelPosterior:
 
     `obs`: posted rows joined with their forecast rows: `zone, network, daypart, week,
     spots_aired, impressions, mean_impressions, airing_sd, level_sd_network, level_sd_flight,
-    level_sd_week` and optionally `level_sd_network_week` (impressions per spot). Rows with 0
+    level_sd_week` and optionally `level_sd_network_week`, `level_sd_common` (impressions per
+    spot). Rows with 0
     aired spots carry no evidence. The network-week factors of the posted weeks are integrated
     out (they are shared by the posted units of a network in one week and say nothing of later
     weeks): their covariance joins the noise's, inverted by the Woodbury identity (each row
@@ -144,7 +151,9 @@ def level_posterior(obs: pd.DataFrame) -> LevelPosterior:
     net_c, nets = pd.factorize(obs["network"], sort=True)
     flt_c, flts = pd.factorize(pd.MultiIndex.from_frame(obs[FLIGHT_KEY]), sort=True)
     J, Nn, Nf = len(obs), len(nets), len(flts)
-    K = Nn + Nf
+    u = common_sd(obs)
+    has_common = bool(np.any(u > 0))
+    K = Nn + Nf + int(has_common)
     if J == 0:
         return LevelPosterior(pd.Index([], name="network"),
                               pd.MultiIndex.from_tuples([], names=FLIGHT_KEY), np.zeros(0), np.zeros((0, 0)), 0)
@@ -156,6 +165,8 @@ def level_posterior(obs: pd.DataFrame) -> LevelPosterior:
     H = np.zeros((J, K))
     H[np.arange(J), net_c] = obs["level_sd_network"].to_numpy(float)
     H[np.arange(J), Nn + flt_c] = obs["level_sd_flight"].to_numpy(float)
+    if has_common:
+        H[:, K - 1] = u
     Hw = H / r[:, None]
     precision = np.eye(K) + H.T @ Hw
     rhs = Hw.T @ resid
@@ -171,14 +182,15 @@ def level_posterior(obs: pd.DataFrame) -> LevelPosterior:
     cov = (cov + cov.T) / 2
     mean = cov @ rhs
     return LevelPosterior(pd.Index(nets, name="network"),
-                          pd.MultiIndex.from_tuples(list(flts), names=FLIGHT_KEY), mean, cov, J)
+                          pd.MultiIndex.from_tuples(list(flts), names=FLIGHT_KEY), mean, cov, J, has_common)
 
 
 def update_forecast(forecast: pd.DataFrame, post: LevelPosterior) -> pd.DataFrame:
     """Forecast rows with the level factors' posterior folded in (module docstring).
 
-    Changes `mean_impressions`, `level_sd_network`, `level_sd_flight`, `level_sd`, `mean_rating`
-    and the normal-approximation `q10_impressions`/`q90_impressions`; impressions per spot.
+    Changes `mean_impressions`, `level_sd_common`, `level_sd_network`, `level_sd_flight`,
+    `level_sd`, `mean_rating` and the normal-approximation `q10_impressions`/`q90_impressions`;
+    impressions per spot.
     """
     out = forecast.copy()
     Nn = len(post.networks)
@@ -188,6 +200,7 @@ def update_forecast(forecast: pd.DataFrame, post: LevelPosterior) -> pd.DataFram
     a = out["level_sd_network"].to_numpy(float)
     b = out["level_sd_flight"].to_numpy(float)
     c = out["level_sd_week"].to_numpy(float)
+    u = common_sd(out)
     m = post.mean
     V = post.cov
     hn, hf = ni >= 0, fi >= 0
@@ -197,18 +210,27 @@ def update_forecast(forecast: pd.DataFrame, post: LevelPosterior) -> pd.DataFram
     vnn = np.where(hn, V[nidx, nidx] if Nn else 1.0, 1.0)
     vff = np.where(hf, V[gi, gi] if len(m) else 1.0, 1.0)
     vnf = np.where(hn & hf, V[nidx, gi] if len(m) else 0.0, 0.0)
-    # Keep each unit's posterior level variance a^2 Vnn + b^2 Vff + 2ab Vnf exact: the flight part
-    # takes b^2 Vff + 2ab Vnf; when that is negative (evidence pins the sum, not its parts) the
-    # network loading of the unit absorbs it.
-    flt_part = b * b * vff + 2 * a * b * vnf
-    total = np.maximum(a * a * vnn + flt_part, 0.0)
-    new_b2 = np.maximum(flt_part, 0.0)
-    new_a = np.sqrt(np.where(flt_part < 0, total, a * a * vnn))
+    vcc, vnc, vfc = 1.0, 0.0, 0.0
+    if post.common:
+        shift = shift + u * m[-1]
+        vcc = V[-1, -1]
+        vnc = np.where(hn, V[nidx, -1] if Nn else 0.0, 0.0)
+        vfc = np.where(hf, V[gi, -1], 0.0)
+    # Keep each unit's posterior level variance exact: the flight part takes b^2 Vff + 2ab Vnf
+    # + 2bu Vfc, the network part a^2 Vnn + 2au Vnc, the common part u^2 Vcc; a negative part
+    # (evidence pins the sum, not its parts) is absorbed by the next one (flight -> network ->
+    # common).
+    flt_part = b * b * vff + 2 * a * b * vnf + 2 * b * u * vfc
+    net_part = a * a * vnn + 2 * a * u * vnc + np.minimum(flt_part, 0.0)
+    com_part = np.maximum(u * u * vcc + np.minimum(net_part, 0.0), 0.0)
+    new_b2, new_a2 = np.maximum(flt_part, 0.0), np.maximum(net_part, 0.0)
     out["mean_impressions"] = np.maximum(out["mean_impressions"].to_numpy(float) + shift, 0.0)
-    out["level_sd_network"] = new_a
+    out["level_sd_network"] = np.sqrt(new_a2)
     out["level_sd_flight"] = np.sqrt(new_b2)
+    if "level_sd_common" in out:
+        out["level_sd_common"] = np.sqrt(com_part)
     g = network_week_sd(out)
-    level_sd = np.sqrt(new_a ** 2 + new_b2 + c ** 2 + g ** 2)
+    level_sd = np.sqrt(new_a2 + new_b2 + com_part + c ** 2 + g ** 2)
     out["level_sd"] = level_sd
     if "universe" in out.columns and "mean_rating" in out.columns:
         with np.errstate(divide="ignore", invalid="ignore"):

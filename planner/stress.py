@@ -2,9 +2,10 @@
 
 Every committed deal is drawn at once from the allocator's own uncertainty model
 (`planner.delivery.DeliveryModel`, the forecast table's error model): the network level factor
-is shared by every deal buying that network, the flight and unit-week level factors by every
-deal holding the same units, and airing noise and preemption are per spot. Deals sharing
-networks therefore fall short together.
+is shared by every deal buying that network, the common factor by every deal, the flight and
+unit-week level factors by every deal holding the same units, and airing noise and preemption
+are per spot. Deals sharing networks therefore fall short together, and all deals a little
+together.
 
 Fast sampler (the default). Conditional on the level factors, a deal's delivery is a sum of
 many independent per-spot terms (preemption Bernoulli, airing noise), drawn as one normal with
@@ -12,9 +13,10 @@ the model's linear variance (central limit theorem; the linear variance is the c
 variance averaged over the factors, so the total variance is exactly the allocator's, by the law
 of total variance, and only the factors' second-order effect on the per-spot spread is dropped). The network factors
 (few) are drawn explicitly, so the tail can be attributed to networks; the flight and unit-week
-factors touch deals only through the units they hold, so their joint contribution to the D
-deals, together with the per-spot part, is a D-variate normal with covariance
-`B_f B_f' + B_w B_w' + diag(linear)` drawn through a square-root factor. The cost per draw is
+factors touch deals only through the units they hold (and the network-week and common factors
+through the deals' summed loadings), so their joint contribution to the D deals, together with
+the per-spot part, is a D-variate normal with covariance `B_f B_f' + B_w B_w' + B_g B_g' + b_c
+b_c' + diag(linear)` drawn through a square-root factor. The cost per draw is
 O(networks + deals), independent of the number of spots.
 
 Exact sampler (`method="exact"`, validation and benchmark): every factor drawn explicitly, then
@@ -43,14 +45,14 @@ import pandas as pd
 from scipy import sparse
 from scipy.special import ndtr
 
-from planner.delivery import FLIGHT_KEY, UNIT_KEY, DeliveryModel, network_week_sd
+from planner.delivery import FLIGHT_KEY, OPTIONAL_LEVEL_COLS, UNIT_KEY, DeliveryModel, common_sd, network_week_sd
 from planner.errors import InputError
 
 ALPHA = 0.95
 LIABILITY_BASES = ("refund", "makegood")
 _CHUNK = 100_000
 _FORECAST_COLS = ["mean_impressions", "airing_sd", "level_sd_network", "level_sd_flight", "level_sd_week",
-                  "level_sd_network_week"]
+                  *OPTIONAL_LEVEL_COLS]
 
 
 # --------------------------------------------------------------------------- shocks
@@ -185,14 +187,15 @@ def book_units(deals: Sequence[Any], holds: pd.DataFrame, forecast: pd.DataFrame
     """One row per (deal, held unit): holds joined with the forecast row of the deal's demo and
     the inventory's preemption rate. Columns `deal, demo, zone, network, daypart, week, spots,
     mean_impressions, airing_sd, level_sd_network, level_sd_flight, level_sd_week,
-    level_sd_network_week, preempt_rate`."""
+    level_sd_network_week, level_sd_common, preempt_rate`."""
     demo_of = {d.name: d.demo for d in deals}
     h = holds[holds["deal"].isin(list(demo_of))]
     units = h[["deal"] + UNIT_KEY + ["spots"]].reset_index(drop=True)
     units.insert(1, "demo", units["deal"].map(demo_of).astype(str))
     units["week"] = units["week"].astype("int64")
-    if "level_sd_network_week" not in forecast:  # a forecast table from before the network-week factor
-        forecast = forecast.assign(level_sd_network_week=0.0)
+    absent = {c: 0.0 for c in OPTIONAL_LEVEL_COLS if c not in forecast}  # a table from before them
+    if absent:
+        forecast = forecast.assign(**absent)
     fc = forecast[UNIT_KEY + ["demo"] + _FORECAST_COLS]
     at = _row_lookup(fc, units, UNIT_KEY + ["demo"])
     missing = at < 0
@@ -216,8 +219,8 @@ def build_book_model(deals: Sequence[Any], units: pd.DataFrame) -> BookModel:
 
     `deals` are objects with `name, guarantee, price_cpm, cost` (e.g. `planner.book.BookDeal`);
     `units` as returned by `book_units` (shocks already applied). One `DeliveryModel` over all
-    rows gives each row's per-spot loadings on the network, network-week, flight and unit-week
-    factors and its
+    rows gives each row's per-spot loadings on the common, network, network-week, flight and
+    unit-week factors and its
     linear variance; times the row's spots and summed per deal and factor, they give the deals'
     loadings. Flight and week factors are keyed by the unit (not the demo), so deals in
     different demos holding the same units share them.
@@ -243,7 +246,7 @@ def build_book_model(deals: Sequence[Any], units: pd.DataFrame) -> BookModel:
     week_c = units.groupby(UNIT_KEY, sort=False, observed=True).ngroup().to_numpy()
     other = np.diag(lin)
     for load, code, n in ((dm.a_flight * x, dm.flight_code, dm.n_flight), (dm.a_week * x, week_c, int(week_c.max()) + 1),
-                          (dm.a_nw * x, dm.nw_code, dm.n_nw)):
+                          (dm.a_nw * x, dm.nw_code, dm.n_nw), (dm.a_common * x, np.zeros(len(x), np.int64), 1)):
         B = sparse.csr_matrix((load, (deal_c, code)), shape=(D, n))  # duplicates are summed
         other = other + (B @ B.T).toarray()
     guarantee = np.array([float(d.guarantee) for d in deals])
@@ -302,7 +305,7 @@ def exact_chunks(model: BookModel, draws: int, rng: np.random.Generator, *, per_
     flt_c, flt_u = pd.factorize(pd.MultiIndex.from_frame(rows[FLIGHT_KEY].astype(str)))
     wk_c, wk_u = pd.factorize(pd.MultiIndex.from_frame(rows[UNIT_KEY].astype({"week": "int64"})))
     nw_c, nw_u = pd.factorize(pd.MultiIndex.from_frame(rows[["network", "week"]].astype({"network": str, "week": "int64"})))
-    wg = network_week_sd(rows)
+    wg, wc = network_week_sd(rows), common_sd(rows)
     deal_c = pd.Index(model.deals).get_indexer(rows["deal"])
     mu = rows["mean_impressions"].to_numpy(float)
     wn, wf, ww = (rows[c].to_numpy(float) for c in ("level_sd_network", "level_sd_flight", "level_sd_week"))
@@ -330,6 +333,8 @@ def exact_chunks(model: BookModel, draws: int, rng: np.random.Generator, *, per_
         level = mu + wn * z_net[:, net_c] + wf * z_flt[:, flt_c] + ww * z_wk[:, wk_c]  # (k, R)
         if wg.any():
             level += wg * rng.standard_normal((k, len(nw_u)))[:, nw_c]
+        if wc.any():
+            level += wc * rng.standard_normal((k, 1))
         if per_spot:
             lv = level[:, spot_row]
             aired = rng.random((k, spot_row.size)) >= p[spot_row]

@@ -335,7 +335,7 @@ DEMO_DEALS = [
              1, 13, 0.15, 1.6, "comfortably deliverable",
              mix={"max_network_share": 0.3, "daypart_min_share": {"prime": 0.2},
                   "daypart_max_share": {"overnight": 0.05}, "weekly_tolerance": 0.25}),
-    DealSpec("corvella-motors.toml", "corvella-launch", "Corvella Motors (invented)", "hh", 3, 8, 0.8, 1.35,
+    DealSpec("corvella-motors.toml", "corvella-launch", "Corvella Motors (invented)", "hh", 3, 8, 0.73, 1.35,
              "tight (most of the allowed avails, thin margin)", risk="",
              mix={"max_network_share": 0.25, "daypart_min_share": {"prime": 0.4, "prime_access": 0.15},
                   "exclude_networks": ["marbleberry-kids"], "weekly_tolerance": 0.2}),

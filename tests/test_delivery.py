@@ -115,6 +115,36 @@ def test_network_week_factor_matches_dense_covariance_and_monte_carlo():
         assert d.std() == pytest.approx(dm.sd(x), rel=0.03)
 
 
+def test_common_factor_matches_dense_covariance_and_monte_carlo():
+    """A factor shared by every unit (all zones, networks, dayparts and weeks): the quadratic
+    variance equals x'Sx with S built entry by entry (S gains the outer product of the common
+    loadings), and Monte Carlo draws (exact and conditional) reproduce the mean and sd."""
+    u = synthetic_units(seed=10, preempt=0.05)
+    u["level_sd_network_week"] = 0.03 * u["mean_impressions"]
+    u["level_sd_common"] = 0.06 * u["mean_impressions"]
+    dm = DeliveryModel.from_units(u)
+    x = np.random.default_rng(5).integers(0, 4, len(u)).astype(float)
+    keep = 1 - u["preempt_rate"].to_numpy()
+    g = u["level_sd_network_week"].to_numpy() * keep
+    c = u["level_sd_common"].to_numpy() * keep
+    same = (u["network"].to_numpy()[:, None] == u["network"].to_numpy()[None, :]) & (
+        u["week"].to_numpy()[:, None] == u["week"].to_numpy()[None, :])
+    S = dense_covariance(u) + np.outer(g, g) * same + np.outer(c, c)
+    assert dm.quadratic_variance(x) == pytest.approx(float(x @ S @ x), rel=1e-12)
+    assert np.allclose(dm.quadratic_gradient(x), S @ x, rtol=1e-10)
+    fl = dm.factor_loadings(x)
+    assert fl.common == pytest.approx(float(c @ x))
+    assert fl.quadratic_variance == pytest.approx(dm.quadratic_variance(x), rel=1e-12)
+    # the per-spot preemption variance counts the common level variance too
+    without = DeliveryModel.from_units(u.drop(columns="level_sd_common"))
+    assert dm.linear_variance(x) > without.linear_variance(x)
+    rng = np.random.default_rng(9)
+    for exact in (True, False):
+        d = dm.sample(x, 40_000, rng, exact=exact)
+        assert abs(d.mean() - dm.mean(x)) < 4 * dm.sd(x) / np.sqrt(40_000)
+        assert d.std() == pytest.approx(dm.sd(x), rel=0.03)
+
+
 def test_probability_uses_normal_quantiles():
     # z values from the NIST/SEMATECH e-Handbook normal table: z(0.95) = 1.6449, z(0.99) = 2.3263.
     u = synthetic_units(seed=6)

@@ -205,8 +205,9 @@ def test_cube_keeps_gaps_missing():
 
 
 def test_backtest_calibrated_range_shares_each_factor_as_the_level_model_does():
-    """Each component's factor is shared by the rows its key names (network: per block, all
-    zones, dayparts, demos, weeks; network-week; flight: zone x network x daypart x demo). With a
+    """Each component's factor is shared by the rows its key names (common: per block, every row;
+    network: per block, all zones, dayparts, demos, weeks; network-week; flight: zone x network x
+    daypart x demo). With a
     single non-zero component the coverage is Binomial(G, level) / G over its G groups
     (Christoffersen 1998; probabilities from scipy.stats.binom)."""
     from scipy.stats import binom
@@ -216,7 +217,8 @@ def test_backtest_calibrated_range_shares_each_factor_as_the_level_model_does():
     idx = pd.MultiIndex.from_product([[1, 2], ["n1"], ["z1", "z2", "z3"], ["day", "prime"], ["a"], [1, 2, 3, 4]],
                                      names=["block", "network", "zone", "daypart", "demo", "week"])
     base = idx.to_frame(index=False).assign(mean=1.0)
-    groups = {"rel_sd_network": 2, "rel_sd_network_week": 8, "rel_sd_flight": 12, "rel_sd_week": len(base)}
+    groups = {"rel_sd_common": 2, "rel_sd_network": 2, "rel_sd_network_week": 8, "rel_sd_flight": 12,
+              "rel_sd_week": len(base)}
     for col, g in groups.items():
         frame = base.assign(**{c: (0.1 if c == col else 0.0) for c, _ in COMPONENTS})
         draws = 3000
@@ -238,10 +240,11 @@ def test_backtest_calibrated_range_shares_each_factor_as_the_level_model_does():
     within = coverage_range_if_calibrated(frame, draws=3000)["share_within"]
     p50 = binom.cdf(np.floor(0.55 * 192), 192, 0.5) - binom.cdf(np.ceil(0.45 * 192) - 1, 192, 0.5)
     assert within <= p50 + 0.02
-    # unequal means and all four components: the exact bias sd against a direct simulation of
+    # unequal means and all five components: the exact bias sd against a direct simulation of
     # sum_i mean_i e_i / sum_i mean_i with each factor shared by its groups
     rng = np.random.default_rng(8)
-    frame = base.assign(mean=rng.uniform(1, 50, len(base)), rel_sd_network=0.08, rel_sd_network_week=0.05,
+    frame = base.assign(mean=rng.uniform(1, 50, len(base)), rel_sd_common=0.04, rel_sd_network=0.08,
+                        rel_sd_network_week=0.05,
                         rel_sd_flight=rng.uniform(0.02, 0.1, len(base)), rel_sd_week=0.1)
     res = coverage_range_if_calibrated(frame, observed_bias=-0.03)
     w = frame["mean"].to_numpy() / frame["mean"].sum()

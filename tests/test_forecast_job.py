@@ -12,7 +12,7 @@ from planner.errors import InputError
 
 CONTRACT = ["zone", "network", "daypart", "week", "demo", "universe", "mean_rating", "mean_impressions",
             "airing_sd", "level_sd", "level_sd_network", "level_sd_flight", "level_sd_week",
-            "q10_impressions", "q90_impressions", "history_weeks", "level_sd_network_week"]
+            "q10_impressions", "q90_impressions", "history_weeks", "level_sd_network_week", "level_sd_common"]
 
 
 @pytest.fixture(scope="module")
@@ -37,7 +37,9 @@ def test_table_follows_the_contract(fitted_small):
     assert len(t) == len(scn.inventory) * len(scn.demos)
     assert not t[CONTRACT[5:]].isna().any().any()
     assert (t["level_sd_network"] > 0).all() and (t["level_sd_week"] > 0).all()
-    assert (t["level_sd_network_week"] > 0).all()
+    assert (t["level_sd_network_week"] > 0).all() and (t["level_sd_common"] >= 0).all()
+    # the common factor is one relative sd for every unit (a fraction of each unit's mean)
+    assert (t["level_sd_common"] / t["mean_impressions"]).std() < 1e-9
     # q10/q90 of one spot: mean -+ z(0.90) sd with sd^2 = level^2 + airing^2
     # (z(0.90) = 1.2816, NIST/SEMATECH normal table), q10 floored at zero.
     from scipy.stats import norm
@@ -219,6 +221,10 @@ def test_shared_error_caution_follows_the_chi_square_test():
     assert shared_error_caution({"fit": {"calibration": {}}}, "s") is None  # a fit from before the check
     assert shared_error_caution(meta(0.20, 0.02), "s") is None
     text = shared_error_caution(meta(0.003, 0.062), "demo")
-    assert "p = 0.003" in text and "6.2%" in text and "3 refits" in text
+    assert "p = 0.003)" in text and "6.2%" in text and "3 refits" in text
+    held = meta(0.003, 0.02)
+    held["fit"]["level_error"] = {"rel_sd_common": 0.065}
+    assert "p = 0.003, even with the shift shared by all units that the law holds (sd 6.5%)" in (
+        shared_error_caution(held, "demo"))
     assert "`pledge stress demo --shock all:-0.062`" in text
     assert "--shock" not in shared_error_caution(meta(0.01, 0.0), "demo")

@@ -107,7 +107,7 @@ def test_recovers_known_mean_and_airing_spread(static_fit):
     assert (table["q90_impressions"] > table["mean_impressions"]).all()
     np.testing.assert_allclose(table["mean_impressions"], table["mean_rating"] * table["universe"])
     np.testing.assert_allclose(table["level_sd"] ** 2, table["level_sd_network"] ** 2
-                               + table["level_sd_network_week"] ** 2
+                               + table["level_sd_network_week"] ** 2 + table["level_sd_common"] ** 2
                                + table["level_sd_flight"] ** 2 + table["level_sd_week"] ** 2, rtol=1e-9)
 
 

@@ -81,12 +81,13 @@ def test_missing_actuals_file(tmp_path):
 
 # --------------------------------------------------------------------------- the Gaussian update
 
-@pytest.mark.parametrize("nw", [0.0, 0.06])
-def test_level_posterior_matches_the_conditional_normal_formula(nw):
+@pytest.mark.parametrize("nw,com", [(0.0, 0.0), (0.06, 0.0), (0.06, 0.05)])
+def test_level_posterior_matches_the_conditional_normal_formula(nw, com):
     """Precision form vs the textbook conditional of a joint normal (Rasmussen & Williams 2006,
     eq. A.6): E[z|y] = S_zy S_yy^-1 (y - m), Cov[z|y] = I - S_zy S_yy^-1 S_yz, built explicitly.
     With a network-week factor (nw > 0) its covariance enters S_yy entry by entry (same network
-    and week), which checks the Woodbury path."""
+    and week), which checks the Woodbury path; with a common factor (com > 0) it is one more
+    column of H, loaded by every row."""
     rng = np.random.default_rng(4)
     rows = []
     for z in ("z1", "z2"):
@@ -97,17 +98,20 @@ def test_level_posterior_matches_the_conditional_normal_formula(nw):
                     rows.append(dict(zone=z, network=n, daypart=d, week=w, spots_aired=int(rng.integers(1, 6)),
                                      mean_impressions=mu, airing_sd=0.3 * mu, level_sd_network=0.1 * mu,
                                      level_sd_flight=0.07 * mu, level_sd_week=0.05 * mu,
-                                     level_sd_network_week=nw * mu))
+                                     level_sd_network_week=nw * mu, level_sd_common=com * mu))
     obs = pd.DataFrame(rows)
     obs["impressions"] = obs["spots_aired"] * obs["mean_impressions"] * rng.uniform(0.7, 1.1, len(obs))
     post = rb.level_posterior(obs)
     # explicit joint covariance of factors z = [networks, flights] and per-spot averages y
     nets = list(post.networks)
     flts = list(post.flights)
-    H = np.zeros((len(obs), len(nets) + len(flts)))
+    H = np.zeros((len(obs), len(nets) + len(flts) + int(com > 0)))
     for j, r in obs.iterrows():
         H[j, nets.index(r.network)] = r.level_sd_network
         H[j, len(nets) + flts.index((r.zone, r.network, r.daypart))] = r.level_sd_flight
+        if com > 0:
+            H[j, -1] = r.level_sd_common
+    assert post.common == (com > 0)
     R = np.diag(obs.level_sd_week ** 2 + obs.airing_sd ** 2 / obs.spots_aired)
     g = obs.level_sd_network_week.to_numpy()
     same = (obs.network.to_numpy()[:, None] == obs.network.to_numpy()[None, :]) & (
@@ -146,6 +150,47 @@ def test_update_moves_unposted_units_of_the_same_network():
     v = post.cov
     exact = 100 ** 2 * v[0, 0] + 60 ** 2 * v[1, 1] + 2 * 100 * 60 * v[0, 1] + 40 ** 2
     assert later.loc[("z1", "n1"), "level_sd"] ** 2 == pytest.approx(exact)
+
+
+def test_common_factor_moves_every_unit_and_keeps_level_variances_exact():
+    """With a factor shared by every unit, evidence from one network moves the other network a
+    little (through the common factor), and every unit's posterior level variance is the exact
+    quadratic form h' V h of its loadings h on [network, flight, common] (plus its own week
+    factor), however the parts are split among the table's columns."""
+    rows = []
+    for z in ("z1", "z2"):
+        for n in ("n1", "n2"):
+            for w in range(1, 9):
+                rows.append(dict(zone=z, network=n, daypart="prime", week=w, demo="a", mean_impressions=1000.0,
+                                 airing_sd=300.0, level_sd_network=80.0, level_sd_flight=60.0, level_sd_week=40.0,
+                                 level_sd_common=60.0, level_sd=np.sqrt(80 ** 2 + 60 ** 2 + 40 ** 2 + 60 ** 2)))
+    fc = pd.DataFrame(rows)
+    posted = fc[(fc.network == "n1") & (fc.week <= 4)].copy()
+    posted["spots_aired"] = 10
+    posted["impressions"] = 0.8 * 10 * posted["mean_impressions"]
+    post = rb.level_posterior(posted)
+    assert post.common and post.mean[-1] < 0
+    up = rb.update_forecast(fc, post)
+    later = up[up.week == 6].set_index(["zone", "network"])
+    assert later.loc[("z1", "n1"), "mean_impressions"] < later.loc[("z1", "n2"), "mean_impressions"] < 1000.0
+    assert later.loc[("z1", "n2"), "level_sd_common"] < 60.0  # the common factor is better known
+    V = post.cov
+    nets, flts = list(post.networks), list(post.flights)
+    for (z, n), r in later.iterrows():
+        h = np.zeros(len(V))
+        h[-1] = 60.0
+        prior = 0.0
+        if n in nets:
+            h[nets.index(n)] = 80.0
+        else:
+            prior += 80.0 ** 2
+        if (z, n, "prime") in flts:
+            h[len(nets) + flts.index((z, n, "prime"))] = 60.0
+        else:
+            prior += 60.0 ** 2
+        assert r["level_sd"] ** 2 == pytest.approx(h @ V @ h + prior + 40.0 ** 2)
+        assert r["level_sd"] ** 2 == pytest.approx(r["level_sd_network"] ** 2 + r["level_sd_flight"] ** 2
+                                                   + r["level_sd_common"] ** 2 + 40.0 ** 2)
 
 
 # --------------------------------------------------------------------------- the re-plan

@@ -23,10 +23,10 @@ UNIT = ["zone", "network", "daypart", "week"]
 
 
 def _rows(deal, networks, *, zones=("z1", "z2"), dayparts=("prime", "day"), weeks=range(1, 5), spots=3,
-          mu=1000.0, air=300.0, net=150.0, flt=100.0, wk=80.0, p=0.0, demo="a", nw=0.0):
+          mu=1000.0, air=300.0, net=150.0, flt=100.0, wk=80.0, p=0.0, demo="a", nw=0.0, com=0.0):
     rows = [dict(deal=deal, demo=demo, zone=z, network=n, daypart=d, week=w, spots=spots, mean_impressions=mu,
                  airing_sd=air, level_sd_network=net, level_sd_flight=flt, level_sd_week=wk, preempt_rate=p,
-                 level_sd_network_week=nw)
+                 level_sd_network_week=nw, level_sd_common=com)
             for z in zones for n in networks for d in dayparts for w in weeks]
     return rows
 
@@ -66,6 +66,10 @@ def test_model_moments_match_the_allocators_delivery_model():
     mg = _model([("a", ["n1", "n2"], 0.0), ("b", ["n1", "n3"], 0.0)], p=0.05, nw=60.0)
     per_week = keep * 60.0 * 2 * 2  # zones x dayparts on n1 in one week
     assert mg.covariance[0, 1] == pytest.approx(net_a * net_b + flights + weeks + 4 * per_week ** 2)
+    # a common factor adds the product of the two deals' whole common loadings
+    mc = _model([("a", ["n1", "n2"], 0.0), ("b", ["n1", "n3"], 0.0)], p=0.05, com=50.0)
+    whole = keep * 50.0 * 2 * 2 * 2 * 4  # zones x networks x dayparts x weeks
+    assert mc.covariance[0, 1] == pytest.approx(net_a * net_b + flights + weeks + whole ** 2)
     # no shared unit: only the network factor links them
     units = pd.DataFrame(_rows("a", ["n1", "n2"], zones=("z1",)) + _rows("b", ["n1"], zones=("z2",)))
     m2 = st.build_book_model([_deal("a", 0), _deal("b", 0)], units)
@@ -118,12 +122,14 @@ def test_var_cvar_on_a_discrete_loss():
     assert var == 0 and cvar == pytest.approx(4.0)  # (20 x 10 + 30 x 0) / 50
 
 
-@pytest.mark.parametrize("method,nw", [("exact", 0.0), ("per_spot", 0.0), ("exact", 90.0)])
-def test_fast_sampler_agrees_with_the_exact_samplers(method, nw):
+@pytest.mark.parametrize("method,nw,com", [("exact", 0.0, 0.0), ("per_spot", 0.0, 0.0), ("exact", 90.0, 0.0),
+                                           ("exact", 0.0, 60.0)])
+def test_fast_sampler_agrees_with_the_exact_samplers(method, nw, com):
     """With preemptions (non-Gaussian per spot) the conditional-normal sampler must agree with
     drawing every factor, every Bernoulli and every airing (per_spot: the naive sampler); with a
-    network-week factor (nw > 0) the exact sampler draws it per network and week."""
-    m = _model([("a", ["n1", "n2"], -0.8), ("b", ["n1", "n3"], -0.2)], p=0.08, spots=2, nw=nw)
+    network-week factor (nw > 0) the exact sampler draws it per network and week, with a common
+    factor (com > 0) once per draw for every deal."""
+    m = _model([("a", ["n1", "n2"], -0.8), ("b", ["n1", "n3"], -0.2)], p=0.08, spots=2, nw=nw, com=com)
     fast = st.stress_model(m, draws=60_000, seed=11)
     slow = st.stress_model(m, draws=60_000, seed=12, method=method)
     for f, s in zip(fast.deals, slow.deals):

@@ -83,7 +83,8 @@ def fit_cmd(
     out_console.print(f"history {meta['history']['first_day']} .. {meta['history']['last_day']}, "
                       f"lead gap {fit['lead_gap_days']} days, {fit['folds']} rolling-origin refits, "
                       f"{meta['seconds']['total']:.0f} s")
-    out_console.print(f"level error (relative sd): network {le['rel_sd_network']:.3f}; network-week "
+    out_console.print(f"level error (relative sd): common to all units {le.get('rel_sd_common', 0.0):.3f}; "
+                      f"network {le['rel_sd_network']:.3f}; network-week "
                       f"{le.get('rel_sd_network_week', 0.0):.3f}; flight by daypart "
                       + ", ".join(f"{k} {v:.3f}" for k, v in le["rel_sd_flight_by_daypart"].items()))
     cal = fit["calibration"].get("leave_one_fold_out_coverage", {})
