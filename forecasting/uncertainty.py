@@ -140,8 +140,7 @@ class LevelErrorModel:
         var_g = self._network_week_var(full)
         self._fit_pools(flights, var_g)
         self.var_network_week_ = var_g
-        self._fit_network(flights, net)
-        self._fit_common(net, df["fold"].nunique())
+        self._fit_common(self._fit_network(flights, net))
         self._fit_history(df[df["truncated"]], full)  # ratios to the unscaled full-history variance
         self._apply_scale(self._fit_scale(full))
         return self
@@ -230,34 +229,35 @@ class LevelErrorModel:
                                          "flight": v[1]} for k, v in cells.items()]
                                        ).set_index(["daypart", "size_bin", "genre"])
 
-    def _fit_network(self, flights: pd.DataFrame, net: pd.DataFrame) -> None:
+    def _fit_network(self, flights: pd.DataFrame, net: pd.DataFrame) -> pd.DataFrame:
         """Network factor: mean square of the network x fold means less what the network-week,
-        flight and unit-week factors add to them."""
+        flight and unit-week factors add to them. Returns `net` indexed by (fold, network) with
+        that addition as column ``v``."""
         fl_var = flights["daypart"].map(self.var_flight_daypart_).astype(float)
         wk_var = flights["daypart"].map(self.var_week_daypart_).astype(float)
         inner = (fl_var + wk_var / flights["W"]).groupby([flights["fold"], flights["network"]]).mean()
         net = net.set_index(["fold", "network"])
         noise = inner.reindex(net.index).to_numpy() / net["M"].to_numpy() \
             + self.var_network_week_ / net["weeks"].to_numpy(float)
-        self._network_noise = pd.Series(noise, index=net.index)
         self.var_network_ = max(float(np.mean(net["net_mean"].to_numpy() ** 2 - noise)),
                                 FLOOR_SD["network"] ** 2)
+        return net.assign(v=noise)
 
-    def _fit_common(self, net: pd.DataFrame, n_refits: int) -> None:
+    def _fit_common(self, net: pd.DataFrame) -> None:
         """Carve the common factor out of the network factor (method of moments).
 
-        With the refit x network means ``u[j, n]`` and what the inner factors add to their mean
-        squares ``v[j, n]`` (`_fit_network`), the network mean square is
-        ``A = mean(u^2 - v) = c var_s + var_a`` and the mean square of the refits' means over their
+        With the refit x network means ``u[j, n]`` (column ``net_mean`` of `net`) and what the
+        inner factors add to their mean squares ``v[j, n]`` (`_fit_network`), the network mean
+        square is ``A = mean(u^2 - v) = c var_s + var_a`` and the mean square of the refits' means over their
         N networks is ``B = mean_j(mean_n(u)^2 - mean_n(v) / N) = c var_s + var_a / N``, with
-        ``c = 1 - 1/J`` (the bias correction took out the refits' mean shift); solved for the
+        ``c = 1 - 1/J`` (J refits; the bias correction took out their mean shift); solved for the
         common variance var_s and the network variance var_a. Without two refits and two networks
         the two are not separable and the common factor is zero.
         """
-        net = net.set_index(["fold", "network"]).assign(v=self._network_noise)
         self.var_common_ = self.var_common_heldout_ = 0.0
         per = net.groupby(level="fold").agg(u=("net_mean", "mean"), v=("v", "mean"), N=("net_mean", "size"))
-        n_harm = float(len(per) / np.sum(1.0 / per["N"]))
+        n_refits = len(per)
+        n_harm = float(n_refits / np.sum(1.0 / per["N"]))
         if n_refits < 2 or n_harm < 2:
             return
         c = 1.0 - 1.0 / n_refits
