@@ -416,12 +416,10 @@ class DaypartForecaster:
         sd = self.level_.predict(t)
         t["mean_impressions"] = mu
         t["airing_sd"] = t["cv"].to_numpy() * mu
-        t["level_sd_network"] = sd["rel_sd_network"].to_numpy() * mu
-        t["level_sd_network_week"] = sd["rel_sd_network_week"].to_numpy() * mu
-        t["level_sd_flight"] = sd["rel_sd_flight"].to_numpy() * mu
-        t["level_sd_week"] = sd["rel_sd_week"].to_numpy() * mu
-        t["level_sd_common"] = sd["rel_sd_common"].to_numpy() * mu
-        t["level_sd"] = np.sqrt(sum(t[col.replace("rel_sd_", "level_sd_")] ** 2 for col, _ in COMPONENT_KEYS))
+        level_cols = [col.replace("rel_sd_", "level_sd_") for col, _ in COMPONENT_KEYS]
+        for col, level_col in zip((c for c, _ in COMPONENT_KEYS), level_cols):
+            t[level_col] = sd[col].to_numpy() * mu
+        t["level_sd"] = np.sqrt(sum(t[c] ** 2 for c in level_cols))
         spot_sd = np.sqrt(t["level_sd"] ** 2 + t["airing_sd"] ** 2)
         t["q10_impressions"] = np.maximum(mu - Z90 * spot_sd, 0.0)
         t["q90_impressions"] = mu + Z90 * spot_sd

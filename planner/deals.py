@@ -283,8 +283,7 @@ def _spots_frame(run: DealRun) -> pd.DataFrame:
     u = prob.units
     sel = x > 0
     xs = x[sel]
-    sd_line = np.sqrt(xs ** 2 * (dm.a_common[sel] ** 2 + dm.a_net[sel] ** 2 + dm.a_nw[sel] ** 2
-                                  + dm.a_flight[sel] ** 2 + dm.a_week[sel] ** 2) + xs * dm.v_lin[sel])
+    sd_line = np.sqrt((xs * (1.0 - dm.p[sel])) ** 2 * dm.level_var[sel] + xs * dm.v_lin[sel])
     out = u.loc[sel, UNIT_KEY].reset_index(drop=True)
     out["spots"] = xs.astype("int64")
     out["rate"] = u.loc[sel, "rate"].to_numpy(float)

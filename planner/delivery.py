@@ -123,12 +123,20 @@ class DeliveryModel:
         self.a_nw = self.w_nw_raw * keep
         self.a_common = self.w_common_raw * keep
         self.m = keep * self.mu  # expected impressions of one bought spot
-        level_var = (self.w_common_raw ** 2 + self.w_net_raw ** 2 + self.w_nw_raw ** 2 + self.w_flight_raw ** 2
-                     + self.w_week_raw ** 2)
+        #: (name, loading of one bought spot, factor code per unit or None for one factor per
+        #: unit, number of factors): every level factor, in one place
+        self.factors = [("network", self.a_net, self.net_code, self.n_net),
+                        ("flight", self.a_flight, self.flight_code, self.n_flight),
+                        ("week", self.a_week, None, self.n),
+                        ("network_week", self.a_nw, self.nw_code, self.n_nw),
+                        ("common", self.a_common, np.zeros(self.n, dtype=np.int64), 1)]
+        #: level variance of one aired spot (sum of its squared raw loadings), impressions^2
+        self.level_var = (self.w_common_raw ** 2 + self.w_net_raw ** 2 + self.w_nw_raw ** 2
+                          + self.w_flight_raw ** 2 + self.w_week_raw ** 2)
         # Per-spot variance that is linear in x: airing noise plus preemption.
-        self.v_lin = keep * self.airing_sd ** 2 + self.p * keep * (self.mu ** 2 + level_var)
+        self.v_lin = keep * self.airing_sd ** 2 + self.p * keep * (self.mu ** 2 + self.level_var)
         # Per-spot variance if every error were independent per spot (for comparison only).
-        self.v_indep = keep * (level_var + self.airing_sd ** 2) + self.p * keep * self.mu ** 2
+        self.v_indep = keep * (self.level_var + self.airing_sd ** 2) + self.p * keep * self.mu ** 2
         self.networks = networks
         self.flights = flights
         self.keys = keys
@@ -174,11 +182,8 @@ class DeliveryModel:
         """(A x) split by level: network (n_net,), flight (n_flight,), week (n,), network-week
         (n_nw,), common (1,) impressions."""
         x = np.asarray(x, dtype=float)
-        return (np.bincount(self.net_code, self.a_net * x, minlength=self.n_net),
-                np.bincount(self.flight_code, self.a_flight * x, minlength=self.n_flight),
-                self.a_week * x,
-                np.bincount(self.nw_code, self.a_nw * x, minlength=self.n_nw),
-                np.array([np.dot(self.a_common, x)]))
+        return tuple(a * x if code is None else np.bincount(code, a * x, minlength=n)
+                     for _, a, code, n in self.factors)
 
     def quadratic_variance(self, x) -> float:
         """||A x||^2: variance from the shared level errors, impressions^2."""
@@ -202,9 +207,8 @@ class DeliveryModel:
 
     def quadratic_gradient(self, x) -> np.ndarray:
         """A'A x (shape (n,)): half the gradient of ||A x||^2, impressions^2 per spot."""
-        s_net, s_flt, s_wk, s_nw, s_com = self.factor_sums(x)
-        return (self.a_net * s_net[self.net_code] + self.a_flight * s_flt[self.flight_code] + self.a_week * s_wk
-                + self.a_nw * s_nw[self.nw_code] + self.a_common * s_com[0])
+        return sum(a * (s if code is None else s[code])
+                   for (_, a, code, _), s in zip(self.factors, self.factor_sums(x)))
 
     def sd_gradient(self, x, linear_fixed: float | None = None) -> np.ndarray:
         """Gradient of sqrt(||A x||^2 + l0) in x, impressions per spot.

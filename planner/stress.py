@@ -245,9 +245,12 @@ def build_book_model(deals: Sequence[Any], units: pd.DataFrame) -> BookModel:
     net_load = sparse.csr_matrix((dm.a_net * x, (deal_c, dm.net_code)), shape=(D, len(networks))).toarray()
     week_c = units.groupby(UNIT_KEY, sort=False, observed=True).ngroup().to_numpy()
     other = np.diag(lin)
-    for load, code, n in ((dm.a_flight * x, dm.flight_code, dm.n_flight), (dm.a_week * x, week_c, int(week_c.max()) + 1),
-                          (dm.a_nw * x, dm.nw_code, dm.n_nw), (dm.a_common * x, np.zeros(len(x), np.int64), 1)):
-        B = sparse.csr_matrix((load, (deal_c, code)), shape=(D, n))  # duplicates are summed
+    for name, a, code, n in dm.factors:
+        if name == "network":  # drawn explicitly (net_load)
+            continue
+        if name == "week":  # keyed by the unit, shared by deals holding it (a row is a deal x unit)
+            code, n = week_c, int(week_c.max()) + 1
+        B = sparse.csr_matrix((a * x, (deal_c, code)), shape=(D, n))  # duplicates are summed
         other = other + (B @ B.T).toarray()
     guarantee = np.array([float(d.guarantee) for d in deals])
     price = np.array([float(d.price_cpm) for d in deals])
