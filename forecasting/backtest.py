@@ -23,7 +23,8 @@ from .baselines import BASELINES, last_year, trailing_mean
 from .dayparts import as_specs, daypart_week_means
 from .pipeline import DaypartForecaster, Progress
 from .profiles import ProfileCube
-from .scoring import coverage, coverage_if_calibrated, crps_gaussian, pit_histogram, total_bias_sd, wape
+from .scoring import (coverage, coverage_if_calibrated, crps_gaussian, measured_factor_sds, pit_histogram,
+                      total_bias_sd, wape)
 from .uncertainty import COMPONENT_KEYS, factor_components
 
 LEVELS = (0.5, 0.8, 0.95)
@@ -94,10 +95,12 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
     -------
     BacktestResult ; ``summary`` has ``crps, wape, coverage{0.5,0.8,0.95}, by_daypart,
     baselines{name: {crps, wape, coverage}}, crps_skill_vs_best_baseline, holdout, units``,
-    ``coverage_if_calibrated`` (`coverage_range_if_calibrated`),
-    ``windows`` (one entry per block, latest first: ``holdout, units, crps, wape, bias, coverage,
-    coverage_if_calibrated, baselines, crps_skill_vs_best_baseline``) and ``fit`` (the latest
-    block's refit).
+    ``coverage_if_calibrated`` (`coverage_range_if_calibrated`), ``factor_sd``
+    (`factor_sd_measured_and_law`),
+    ``windows`` (one entry per block, latest first: ``holdout, units, law_estimated_on`` (first and
+    last held-out day of each of the block's own refits), ``crps, wape, bias, coverage,
+    coverage_if_calibrated, factor_sd, baselines, crps_skill_vs_best_baseline``) and ``fit`` (the
+    latest block's refit).
 
     References
     ----------
@@ -127,12 +130,13 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
         frames.append(df)
         if j == 0:
             latest_fit = fc.summary()
-        entry = {"holdout": _holdout(cube, h0, cut, W, gap_days), "units": int(len(df))}
+        entry = {"holdout": _holdout(cube, h0, cut, W, gap_days), "units": int(len(df)),
+                 "law_estimated_on": fc.fold_scored_days()}
         entry.update(_block_scores(df, seed))
         per_window.append(entry)
     df = pd.concat(frames, ignore_index=True)
     if K == 1:  # the pooled scores are the one block's
-        summary = {k: v for k, v in per_window[0].items() if k not in ("holdout", "units")}
+        summary = {k: v for k, v in per_window[0].items() if k not in ("holdout", "units", "law_estimated_on")}
     else:
         summary = _block_scores(df, seed)
     summary["pit_histogram"] = pit_histogram(df["actual"], df["mean"], df["sd"]).tolist()
@@ -223,7 +227,41 @@ def _block_scores(df: pd.DataFrame, seed: int = CALIBRATED_SEED) -> dict:
     out["baselines"] = {name: _scores(df["actual"], df[f"{name}_mean"], df[f"{name}_sd"]) for name in BASELINES}
     best = min(v["crps"] for v in out["baselines"].values())
     out["crps_skill_vs_best_baseline"] = float(1.0 - out["crps"] / best) if best > 0 else float("nan")
+    out["factor_sd"] = factor_sd_measured_and_law(df)
     return out
+
+
+#: level factors of `forecasting.scoring.measured_factor_sds` -> the law's relative-sd column
+FACTOR_COLUMNS = {"common": "rel_sd_common", "network": "rel_sd_network", "network_week": "rel_sd_network_week",
+                  "flight": "rel_sd_flight", "week": "rel_sd_week"}
+
+
+def factor_sd_measured_and_law(scored: pd.DataFrame) -> dict:
+    """Each level factor's sd as measured in the scored unit-weeks and as the forecast's law has it.
+
+    A coverage far from nominal in one block comes either from the unit-level factors (flight,
+    own week: many draws per block, so a miss there is a miss of the law) or from the network-level
+    ones (a few dozen draws per block, so a calm or a turbulent block moves them a lot); this
+    tells which.
+
+    Returns
+    -------
+    dict factor -> ``{"measured", "law"}`` (fractions of the mean): measured by
+    `forecasting.scoring.measured_factor_sds` on ``actual / mean - 1`` (networks and weeks taken
+    per block, each block's mean error taken out), the law's as the root mean square of its
+    ``rel_sd_*`` column; ``common`` has no measured value (one draw per block: see the block's
+    ``bias_z``).
+    """
+    block = scored["block"] if "block" in scored else pd.Series(0, index=scored.index)
+    e = scored["actual"] / scored["mean"] - 1.0
+    e = e - e.groupby(block).transform("mean")  # a shift of the whole block is not a network factor
+    key = block.astype(str) + "\x1f"
+    measured = measured_factor_sds(
+        e.to_numpy(float), key + scored["network"].astype(str), key + scored["week"].astype(str),
+        scored["zone"].astype(str) + "\x1f" + scored["daypart"].astype(str) + "\x1f" + scored["demo"].astype(str))
+    return {name: {"measured": measured.get(name),
+                   "law": float(np.sqrt(np.mean(scored[col].to_numpy(float) ** 2)))}
+            for name, col in FACTOR_COLUMNS.items()}
 
 
 def _score_block(cube: ProfileCube, info: pd.DataFrame, specs, universes: pd.DataFrame,

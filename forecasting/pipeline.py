@@ -281,6 +281,12 @@ class DaypartForecaster:
                 "total_z_p": float(chi2.sf(np.sum(z ** 2), z.size)),
                 "total_excess_sd": float(np.sqrt(max(excess, 0.0)))}
 
+    def fold_scored_days(self) -> list[list[str]]:
+        """First and last held-out day (YYYY-MM-DD) of each refit, latest first: the weeks whose
+        errors the level error law was estimated on."""
+        day = lambda i: str((self.day0_ + pd.Timedelta(days=int(i))).date())  # noqa: E731
+        return [[day(o + self.gap_days_), day(o + self.gap_days_ + 7 * self.weeks_ - 1)] for o in self.folds_]
+
     def _fold_date(self, j) -> str:
         """Origin date (YYYY-MM-DD) of refit `j`."""
         return str(self.day0_ + pd.Timedelta(days=self.folds_[int(j)]))[:10]
@@ -439,6 +445,7 @@ class DaypartForecaster:
         return {
             "folds": len(self.folds_), "fold_origins": [str((self.day0_ + pd.Timedelta(days=o)).date())
                                                         for o in self.folds_],
+            "fold_scored_days": self.fold_scored_days(),
             "lead_gap_days": int(self.gap_days_),
             "pca_components": int(self.model_.pca_.components_.shape[0]),
             "pca_explained": float(self.model_.pca_.explained_variance_ratio_.sum()),

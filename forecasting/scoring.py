@@ -8,6 +8,7 @@ estimation. JASA 102(477), 359-378 (CRPS, its Gaussian closed form and the energ
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 from scipy.stats import norm
 
 
@@ -165,3 +166,66 @@ def total_bias_sd(weight, components) -> float:
         per_factor = w * sd if group is None else np.bincount(np.asarray(group, dtype=np.int64), weights=w * sd)
         var += float(np.sum(per_factor ** 2))
     return float(np.sqrt(var))
+
+
+def measured_factor_sds(rel_error, network, week, unit) -> dict:
+    """Standard deviations of the level-error factors measured in one set of scored unit-weeks.
+
+    The relative errors are taken as ``e = a[n] + g[n, w] + b[n, u] + c[n, u, w]`` (network;
+    network-week, shared by all units of the network in one week; flight, shared by the weeks of
+    one unit; own), with the week and unit factors crossed within each network, and each variance
+    is estimated by the method of moments of that two-way layout without replication, pooled over
+    networks (expected mean squares of the balanced layout; a few missing unit-weeks bias them
+    little). A shift shared by every row cannot be told from a bias in one block, so it is not
+    estimated here: the network sd is measured around the mean of the networks.
+
+    Parameters
+    ----------
+    rel_error : (n,) relative errors ``actual / forecast - 1`` (fractions).
+    network, week, unit : (n,) labels of each row's network (one per block when several blocks
+        are pooled), week and unit within the network (zone x daypart x demo).
+
+    Returns
+    -------
+    dict ``network, network_week, flight, week`` -> sd (fraction; a negative moment estimate is
+    reported as 0).
+
+    References
+    ----------
+    Searle, S. R., Casella, G. & McCulloch, C. E. (1992). Variance Components. Wiley, ch. 4
+    (ANOVA estimators: the two-way crossed classification without interaction replicates, nested
+    in a one-way classification).
+    """
+    df = pd.DataFrame({"e": np.asarray(rel_error, dtype=float), "n": pd.factorize(np.asarray(network))[0],
+                       "w": pd.factorize(np.asarray(week))[0], "u": pd.factorize(np.asarray(unit))[0]})
+    by_n = df.groupby("n")["e"]
+    m_n = by_n.transform("mean")
+    m_nw = df.groupby(["n", "w"])["e"].transform("mean")
+    m_nu = df.groupby(["n", "u"])["e"].transform("mean")
+    U = df.groupby("n")["u"].nunique()
+    W = df.groupby("n")["w"].nunique()
+    # own: interaction residual, E[sum r^2] = (U - 1)(W - 1) var_c per network
+    r = df["e"] - m_nw - m_nu + m_n
+    dof_c = float(((U - 1) * (W - 1)).sum())
+    var_c = float(np.sum(r.to_numpy() ** 2) / dof_c) if dof_c > 0 else 0.0
+    # week means: E[sum_w (m_nw - m_n)^2] = (W - 1)(var_g + var_c / U)
+    d_w = (m_nw - m_n).groupby([df["n"], df["w"]]).first()
+    ss_w = d_w.pow(2).groupby(level=0).sum()
+    dof_w = float((W - 1).sum())
+    var_g = float((ss_w.sum() - ((W - 1) * var_c / U).sum()) / dof_w) if dof_w > 0 else 0.0
+    # unit means: E[sum_u (m_nu - m_n)^2] = (U - 1)(var_b + var_c / W)
+    d_u = (m_nu - m_n).groupby([df["n"], df["u"]]).first()
+    ss_u = d_u.pow(2).groupby(level=0).sum()
+    dof_u = float((U - 1).sum())
+    var_b = float((ss_u.sum() - ((U - 1) * var_c / W).sum()) / dof_u) if dof_u > 0 else 0.0
+    var_g, var_b = max(var_g, 0.0), max(var_b, 0.0)
+    # network means around their mean: E = (N - 1)/N sum_n (var_a + var_g/W + var_b/U + var_c/(UW)) / N
+    means = by_n.mean()
+    N = len(means)
+    if N > 1:
+        inner = var_g / W + var_b / U + var_c / (U * W)
+        var_a = float(np.sum((means - means.mean()) ** 2) / (N - 1) - inner.mean())
+    else:
+        var_a = 0.0
+    return {name: float(np.sqrt(max(v, 0.0))) for name, v in
+            (("network", var_a), ("network_week", var_g), ("flight", var_b), ("week", var_c))}

@@ -144,3 +144,39 @@ def plan_week_scores(scenario, table: pd.DataFrame) -> dict:
     out["bias_sd"] = total_bias_sd(mu, factor_components(m, spec, divide_by=mu))
     out["bias_z"] = out["bias"] / out["bias_sd"]
     return out
+
+
+def true_network_shock_week_sd(scenario, first_days: Iterable, weeks: int = 13) -> list[float]:
+    """How turbulent the generator's network shocks were in each window of `weeks` weeks.
+
+    Per window: the sd, over networks and weeks, of each network's weekly mean shock (log
+    multiplier, the drift and the episodes shared by a network in every zone; seasonality, trend
+    and day-of-week left out) around its mean over the window. It is the truth behind the
+    network-week factor a backtest block measures (`forecasting.backtest.factor_sd_measured_and_law`),
+    so a block can be told calm or turbulent against the windows its error law was estimated on.
+    Invented data only.
+
+    Parameters
+    ----------
+    scenario : a scenario with a [history_generator] table.
+    first_days : first day of each window (dates or ISO strings).
+    weeks : window length (weeks).
+
+    Returns
+    -------
+    list of sds (log units, about fractions), one per window.
+    """
+    if scenario.history_generator is None:
+        raise ValueError("true_network_shock_week_sd needs a scenario with a [history_generator] table")
+    spec = spec_from_scenario(scenario)
+    sim = _Sim(spec)
+    start = np.datetime64(spec.start, "D")
+    out = []
+    for first in first_days:
+        i0 = int((np.datetime64(pd.Timestamp(first).date(), "D") - start).astype(np.int64))
+        x = sim.net_shock[:, i0:i0 + 7 * int(weeks)]
+        if i0 < 0 or x.shape[1] < 7 * int(weeks):
+            raise ValueError(f"window from {first} is outside the simulated span")
+        weekly = x.reshape(x.shape[0], int(weeks), 7).mean(axis=2)
+        out.append(float((weekly - weekly.mean(axis=1, keepdims=True)).std()))
+    return out

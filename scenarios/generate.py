@@ -237,6 +237,7 @@ class _Sim:
                 shape = (1 / (1 + np.exp(-(t - s0) / ramp))) * (1 / (1 + np.exp((t - s0 - length) / ramp)))
                 shock[j] += amp * shape
         self.log_net_day = np.log(peaks)[:, None] + season + net_trend + dow_eff + shock  # (net, days)
+        self.net_shock = shock  # (net, days), log multipliers: the drift and episodes alone
         self.years = years
 
     def zone(self, zi: int) -> np.ndarray:

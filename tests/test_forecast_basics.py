@@ -9,6 +9,7 @@ from forecasting.cyclic import calendar_features, clock_features
 from forecasting.dayparts import DaypartSpec, daypart_week_means, daypart_week_sums
 from forecasting.profiles import ProfileCube, ProfilePCA
 from forecasting.scoring import (central_interval, coverage, coverage_if_calibrated, crps_gaussian, crps_sample,
+                                measured_factor_sds,
                                  pit, pit_histogram, wape)
 from forecasting.transform import C_RATING, expected_rating, from_log, to_log
 
@@ -94,6 +95,61 @@ def test_coverage_if_calibrated_is_binomial_for_independent_hits_and_per_group_w
     np.testing.assert_array_equal(a, coverage_if_calibrated(mixed, (0.5,), draws=2000, seed=3))
     assert a[:, 0].mean() == pytest.approx(0.5, abs=0.01)
     assert a[:, 0].std() > 2 * np.sqrt(0.25 / n)
+
+
+def _nested_errors(rng, sds, n_net=60, n_unit=84, n_week=13):
+    """Relative errors e[n, u, w] = a[n] + g[n, w] + b[n, u] + c[n, u, w] with the given sds."""
+    a, g, b, c = sds
+    e = (a * rng.standard_normal((n_net, 1, 1)) + g * rng.standard_normal((n_net, 1, n_week))
+         + b * rng.standard_normal((n_net, n_unit, 1)) + c * rng.standard_normal((n_net, n_unit, n_week)))
+    n, u, w = np.meshgrid(np.arange(n_net), np.arange(n_unit), np.arange(n_week), indexing="ij")
+    return e, n.ravel(), u.ravel(), w.ravel()
+
+
+def test_measured_factor_sds_equal_the_textbook_mean_squares_on_a_balanced_layout():
+    """Searle, Casella & McCulloch (1992), ch. 4: in the two-way crossed layout without
+    replication, E[MS_residual] = var_c, E[MS_week] = var_c + U var_g, E[MS_unit] = var_c + W var_b;
+    the network means (one-way layout on top) have variance var_a + var_g/W + var_b/U + var_c/(UW).
+    The estimates are computed here from the balanced array's mean squares (the textbook form),
+    and must equal the grouped computation exactly."""
+    rng = np.random.default_rng(11)
+    e, n, u, w = _nested_errors(rng, (0.1, 0.05, 0.04, 0.07), n_net=8, n_unit=20, n_week=13)
+    N, U, W = e.shape
+    m_n = e.mean(axis=(1, 2), keepdims=True)
+    m_nw = e.mean(axis=1, keepdims=True)
+    m_nu = e.mean(axis=2, keepdims=True)
+    ms_res = np.sum((e - m_nw - m_nu + m_n) ** 2) / (N * (U - 1) * (W - 1))
+    ms_week = U * np.sum((m_nw - m_n) ** 2) / (N * (W - 1))
+    ms_unit = W * np.sum((m_nu - m_n) ** 2) / (N * (U - 1))
+    var_a = np.var(m_n.ravel(), ddof=1) - ((ms_week - ms_res) / U / W + (ms_unit - ms_res) / W / U + ms_res / (U * W))
+    expected = {"network": np.sqrt(var_a), "network_week": np.sqrt((ms_week - ms_res) / U),
+                "flight": np.sqrt((ms_unit - ms_res) / W), "week": np.sqrt(ms_res)}
+    got = measured_factor_sds(e.ravel(), n, w, u)
+    for k, v in expected.items():
+        assert got[k] == pytest.approx(v, rel=1e-9), k
+
+
+def test_measured_factor_sds_recover_known_factor_sds():
+    """Simulated nested errors with known sds: 60 networks x 84 units x 13 weeks (about 5% of
+    the network draws' sampling error in the network sd, less for the others), then with 10% of
+    the unit-weeks dropped at random (the balanced expected mean squares still hold closely).
+    A shift added to every row is not a factor of one block and changes nothing."""
+    rng = np.random.default_rng(12)
+    true = {"network": 0.10, "network_week": 0.05, "flight": 0.04, "week": 0.07}
+    e, n, u, w = _nested_errors(rng, tuple(true.values()))
+    got = measured_factor_sds(e.ravel(), n, w, u)
+    for k, v in true.items():
+        assert got[k] == pytest.approx(v, rel=0.25 if k == "network" else 0.06), k
+    shifted = measured_factor_sds(e.ravel() + 0.3, n, w, u)
+    for k in true:
+        assert shifted[k] == pytest.approx(got[k], rel=1e-9)
+    keep = rng.random(e.size) > 0.1
+    dropped = measured_factor_sds(e.ravel()[keep], n[keep], w[keep], u[keep])
+    for k, v in true.items():
+        assert dropped[k] == pytest.approx(v, rel=0.25 if k == "network" else 0.08), k
+    # no network-week factor at all: its estimate is near zero, not the own factor's size
+    e0, n0, u0, w0 = _nested_errors(rng, (0.1, 0.0, 0.04, 0.07))
+    assert measured_factor_sds(e0.ravel(), n0, w0, u0)["network_week"] < 0.012
 
 
 # ------------------------------------------------------------------ transform and clock
@@ -202,6 +258,33 @@ def test_cube_keeps_gaps_missing():
     assert np.isnan(cube.values[0, 0, 10])
     assert cube.values[1, 2, 5] == pytest.approx(vals[1, 2, 5], rel=1e-6)
     assert cube.history_days().tolist() == [4, 5]
+
+
+def test_backtest_factor_sd_takes_each_block_apart_and_gives_the_law_as_rms():
+    """Two blocks of simulated nested errors (30 networks x 24 units x 13 weeks each, known
+    sds), the second shifted by 20% as a whole: the measured sds are those of one pooled layout
+    with the shift removed (a block's shift is the common factor, one draw per block), and the
+    law's are the root mean squares of the rel_sd columns."""
+    from forecasting.backtest import factor_sd_measured_and_law
+
+    rng = np.random.default_rng(21)
+    frames = []
+    for block, shift in ((1, 0.0), (2, 0.2)):
+        e, n, u, w = _nested_errors(rng, (0.1, 0.05, 0.04, 0.07), n_net=30, n_unit=24)
+        frames.append(pd.DataFrame({
+            "block": block, "network": n, "week": w + 1, "zone": u % 6, "daypart": u // 6, "demo": "hh",
+            "mean": 1000.0, "actual": 1000.0 * (1.0 + shift) * (1.0 + e.ravel())}))
+    scored = pd.concat(frames, ignore_index=True)
+    for col, v in (("rel_sd_common", 0.02), ("rel_sd_network", 0.1), ("rel_sd_network_week", 0.05),
+                   ("rel_sd_flight", 0.04)):
+        scored[col] = v
+    scored["rel_sd_week"] = np.where(scored["block"] == 1, 0.06, 0.08)
+    res = factor_sd_measured_and_law(scored)
+    assert res["common"]["measured"] is None and res["common"]["law"] == pytest.approx(0.02)
+    assert res["week"]["law"] == pytest.approx(np.sqrt((0.06 ** 2 + 0.08 ** 2) / 2))
+    # the shifted block's errors are (1.2)(1 + e) - 1 around its mean: its factors scale by 1.2
+    for k, v in (("network", 0.1), ("network_week", 0.05), ("flight", 0.04), ("week", 0.07)):
+        assert res[k]["measured"] == pytest.approx(v * np.sqrt((1 + 1.2 ** 2) / 2), rel=0.25 if k == "network" else 0.08), k
 
 
 def test_backtest_calibrated_range_shares_each_factor_as_the_level_model_does():

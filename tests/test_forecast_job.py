@@ -129,6 +129,10 @@ def test_backtest_json_on_small_scenario(fitted_small, capsys):
     for lv, r in cal["levels"].items():
         assert 0 <= r["low"] <= float(lv) <= r["high"] <= 1 and 0 <= r["share_as_far"] <= 1
     assert 0 <= cal["share_within"] <= 1 and cal["tolerance"] == 0.05
+    # each factor's sd as measured in the block and as the law has it (the common one: law only)
+    fs = s["factor_sd"]
+    assert set(fs) == {"common", "network", "network_week", "flight", "week"} and fs["common"]["measured"] is None
+    assert all(v["law"] >= 0 for v in fs.values()) and fs["week"]["measured"] > 0 and fs["week"]["law"] > 0
     # --lead-days moves the cut-off: held-out days start that many days after it
     assert main(["forecast", "backtest", str(dest), "--holdout-weeks", "6", "--lead-days", "7", "--json"]) == 0
     h = json.loads(capsys.readouterr().out)["holdout"]

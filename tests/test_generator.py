@@ -289,3 +289,20 @@ def test_posted_actuals_follow_the_simulated_future(small_scenario):
     assert act["impressions"].sum() == pytest.approx(expected, rel=0.05)
     again = posted_actuals(sc, plan, "hh", weeks=[1, 2], seed=1)
     pd.testing.assert_frame_equal(act, again)
+
+
+def test_true_network_shock_week_sd_per_window(small_scenario):
+    """The generator's network shocks in a window (invented data): one sd per window, of the
+    size the generator draws (AR(1) drift of sd 0.06 plus episodes of sd 0.18), and an error for
+    a window outside the simulated span."""
+    from planner.scenario import load_scenario
+    from scenarios.actuals import true_network_shock_week_sd
+
+    sc = load_scenario(small_scenario)
+    start = pd.Timestamp(sc.history_generator["start"])
+    firsts = [start + pd.Timedelta(days=d) for d in (0, 91, 182)]
+    sds = true_network_shock_week_sd(sc, firsts)
+    assert len(sds) == 3 and all(0.0 < v < 0.3 for v in sds)
+    assert true_network_shock_week_sd(sc, firsts[:1], weeks=4)[0] > 0
+    with pytest.raises(ValueError, match="outside the simulated span"):
+        true_network_shock_week_sd(sc, [start - pd.Timedelta(days=7)])

@@ -134,6 +134,7 @@ def backtest_cmd(
         out_console.print(f"held out {h['first_day']} .. {h['last_day']} ({h['weeks']} weeks), cut-off "
                           f"{h['cutoff_day']}, lead gap {h['lead_gap_days']} days; {s['units']:,} unit-weeks scored "
                           "(unit-week mean impressions of one spot)")
+        out_console.print(f"the bands' error law was estimated on its refits' held-out weeks {_law_windows(s['windows'][0])}")
     else:
         out_console.print(f"{len(s['windows'])} held-out blocks, lead gap {s['holdout']['lead_gap_days']} days, "
                           f"{s['units']:,} unit-weeks scored in all (unit-week mean impressions of one spot):")
@@ -142,7 +143,8 @@ def backtest_cmd(
             out_console.print(f"  block {j}: {h['first_day']} .. {h['last_day']}, cut-off {h['cutoff_day']}; "
                               f"{wnd['units']:,} unit-weeks; coverage 50/80/95% {cov['0.5']:.1%} / "
                               f"{cov['0.8']:.1%} / {cov['0.95']:.1%} (calibrated: {_ranges(wnd)}); CRPS skill "
-                              f"{wnd['crps_skill_vs_best_baseline']:.1%}")
+                              f"{wnd['crps_skill_vs_best_baseline']:.1%}; error law estimated on "
+                              f"{_law_windows(wnd)}")
         out_console.print("pooled over the blocks:")
     head = ["forecast", "CRPS (impr.)", "WAPE", "bias", "50%", "80%", "95%"]
     rows = []
@@ -166,7 +168,24 @@ def backtest_cmd(
                       f"within {cal['tolerance'] * 100:g} points of nominal at all three levels in {cal['share_within']:.0%}; "
                       f"its total bias would have an sd of {cal['bias_sd']:.1%} (measured {s['bias']:+.1%}, "
                       f"{cal['bias_z']:+.1f} sd)")
+    out_console.print(f"sd of each level factor in these unit-weeks, measured (the law's): {_factor_sds(s)}")
     out_console.print(s["caution"])
+
+
+#: printed names of the level factors of the backtest's ``factor_sd``
+FACTOR_LABELS = {"network": "network", "network_week": "network-week", "flight": "flight", "week": "own unit-week"}
+
+
+def _factor_sds(scores: dict) -> str:
+    """'network 9.5% (10.8%), ...; common: the law's 0.0%, one draw per block (see the bias)'."""
+    fs = scores["factor_sd"]
+    parts = [f"{label} {fs[k]['measured']:.1%} ({fs[k]['law']:.1%})" for k, label in FACTOR_LABELS.items()]
+    return ", ".join(parts) + f"; shared by all units: the law's {fs['common']['law']:.1%}, one draw per block (see the bias)"
+
+
+def _law_windows(window: dict) -> str:
+    """'2026-02-01 .. 2026-05-02, ...': the held-out weeks of a block's refits."""
+    return ", ".join(f"{a} .. {b}" for a, b in window["law_estimated_on"])
 
 
 def _ranges(scores: dict) -> str:
