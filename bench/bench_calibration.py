@@ -74,13 +74,22 @@ def run_seed(seed: int, tmp: Path, backtest: bool, blocks: int = 1) -> dict:
     out = {"seed": seed, "fit_seconds": fit_s, "plan_weeks": pw, "plan_weeks_bias": pw["bias"],
            "fit_total_check": {k: cal[k] for k in ("total_z_rms", "total_z_p", "total_excess_sd")}}
     if backtest:
+        from scenarios.actuals import true_network_shock_week_sd
+
         bt = backtest_scenario(scn, seed=0, windows=blocks)
         out["backtest"] = {"coverage": bt["coverage"], "crps_skill": bt["crps_skill_vs_best_baseline"],
                            "crps": bt["crps"], "baseline_coverage": {k: v["coverage"] for k, v in bt["baselines"].items()},
                            "blocks": [{"holdout": w["holdout"], "coverage": w["coverage"],
                                        "crps_skill": w["crps_skill_vs_best_baseline"],
                                        "bias": w["bias"],
-                                       "coverage_if_calibrated": w["coverage_if_calibrated"]} for w in bt["windows"]]}
+                                       "coverage_if_calibrated": w["coverage_if_calibrated"],
+                                       "factor_sd": w["factor_sd"], "law_estimated_on": w["law_estimated_on"],
+                                       # the generator's network shocks in the block and in its law's windows
+                                       "true_shock_week_sd": {
+                                           "block": true_network_shock_week_sd(scn, [w["holdout"]["first_day"]])[0],
+                                           "law_windows": true_network_shock_week_sd(
+                                               scn, [a for a, _ in w["law_estimated_on"]])}}
+                                      for w in bt["windows"]]}
     return out
 
 
@@ -124,6 +133,27 @@ def _block_rows(per_seed: list[dict]) -> list[dict]:
                   f"{np.mean(skill >= 0.15):.0%} ({int(np.sum(skill >= 0.15))} of {n})", None, None),
             M.row("  backtest, single blocks: total bias (actual / forecast - 1), mean (min-max)", "",
                   f"{bias.mean():+.1%} ({bias.min():+.1%} to {bias.max():+.1%})", None, None)]
+    rows += _factor_rows(blocks, cov)
+    return rows
+
+
+def _factor_rows(blocks: list[dict], cov: np.ndarray) -> list[dict]:
+    """Rows on each factor's sd measured in the single blocks against the law's, and on how calm
+    the generator's network shocks were in each block against the windows its law came from."""
+    ratio = {k: np.array([b["factor_sd"][k]["measured"] / b["factor_sd"][k]["law"] for b in blocks])
+             for k in ("network", "network_week", "flight", "week")}
+    rows = [M.row("  backtest, single blocks: factor sd measured in the block / the law's, mean (min-max): "
+                  + ", ".join(ratio), "about 1",
+                  "; ".join(f"{r.mean():.2f} ({r.min():.2f}-{r.max():.2f})" for r in ratio.values()), None, None)]
+    calm = np.array([b["true_shock_week_sd"]["block"] / np.mean(b["true_shock_week_sd"]["law_windows"])
+                     for b in blocks])
+    excess50 = cov[:, 0] - 0.5
+    rows.append(M.row("  backtest, single blocks: the generator's network-shock week sd in the block / in its law's "
+                      "windows, mean (min-max); correlation with the measured / law network-week ratio; with the "
+                      "50% coverage minus 50%", "",
+                      f"{calm.mean():.2f} ({calm.min():.2f}-{calm.max():.2f}); "
+                      f"{np.corrcoef(calm, ratio['network_week'])[0, 1]:+.2f}; {np.corrcoef(calm, excess50)[0, 1]:+.2f}",
+                      None, None))
     return rows
 
 
