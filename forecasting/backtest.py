@@ -231,9 +231,9 @@ def _block_scores(df: pd.DataFrame, seed: int = CALIBRATED_SEED) -> dict:
     return out
 
 
-#: level factors of `forecasting.scoring.measured_factor_sds` -> the law's relative-sd column
-FACTOR_COLUMNS = {"common": "rel_sd_common", "network": "rel_sd_network", "network_week": "rel_sd_network_week",
-                  "flight": "rel_sd_flight", "week": "rel_sd_week"}
+#: level factors (the names of `forecasting.scoring.measured_factor_sds`, and "common") -> the law's
+#: relative-sd column
+FACTOR_COLUMNS = {col.removeprefix("rel_sd_"): col for col, _ in COMPONENT_KEYS}
 
 
 def factor_sd_measured_and_law(scored: pd.DataFrame) -> dict:
