@@ -18,6 +18,7 @@ when neither `history.parquet` nor `history.csv` exists; `scenario.history_path`
 """
 from __future__ import annotations
 
+import difflib
 import hashlib
 import math
 import re
@@ -37,6 +38,9 @@ DAY_NAMES = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
 QUARTER_HOURS = 96
 _IDENT = re.compile(r"^[a-z][a-z0-9_\-]*$")
 _CLOCK = re.compile(r"^(\d{1,2}):(\d{2})$")
+#: the keys of a deal file (data contract, deals/NAME.toml); anything else is refused
+DEAL_KEYS = ("name", "advertiser", "demo", "impressions", "first_week", "last_week", "price_cpm", "confidence",
+             "pad", "mix")
 MIX_KEYS = ("max_network_share", "daypart_min_share", "daypart_max_share", "exclude_networks",
             "exclude_zones", "weekly_tolerance", "max_spots_per_unit")
 HISTORY_COLUMNS = ("zone", "network", "demo", "date", "quarter_hour", "rating")
@@ -422,10 +426,22 @@ def _parse_generator(raw: Any, problems: _Problems) -> dict | None:
 
 # ----------------------------------------------------------------------------- deals
 
+def _unknown_keys(f: str, raw: dict, known: Sequence[str], problems: _Problems, table: str = "") -> None:
+    """One problem per key of `raw` not in `known` (a misspelt optional key would otherwise be
+    silently ignored and its default used), with the closest known key as a hint."""
+    where = f"{table} " if table else ""
+    for k in raw:
+        if k not in known:
+            near = difflib.get_close_matches(str(k), known, n=1, cutoff=0.6)
+            hint = f"did you mean {near[0]!r}? " if near else ""
+            problems.add(f"{f}: {where}unknown key {k!r} ({hint}known: {', '.join(known)})")
+
+
 def _parse_deal(path: Path, raw: dict, *, weeks: int, demos: Sequence[str], zones: Sequence[str],
                 networks: Sequence[str], dayparts: Sequence[str], problems: _Problems) -> Deal | None:
     f = f"deals/{path.name}"
     start = len(problems.items)
+    _unknown_keys(f, raw, DEAL_KEYS, problems)
     for k in ("name", "advertiser", "demo", "impressions", "first_week", "last_week", "price_cpm"):
         if k not in raw:
             problems.add(f"{f}: missing key {k!r}")
@@ -471,9 +487,7 @@ def _parse_mix(f: str, raw: Any, *, zones, networks, dayparts, problems: _Proble
     if not isinstance(raw, dict):
         problems.add(f"{f}: [mix] must be a table")
         return Mix()
-    unknown = [k for k in raw if k not in MIX_KEYS]
-    for k in unknown:
-        problems.add(f"{f}: [mix] unknown key {k!r} (known: {', '.join(MIX_KEYS)})")
+    _unknown_keys(f, raw, MIX_KEYS, problems, "[mix]")
     mix = Mix()
     v = raw.get("max_network_share")
     if v is not None:
@@ -532,10 +546,12 @@ def _parse_mix(f: str, raw: Any, *, zones, networks, dayparts, problems: _Proble
 
 # ----------------------------------------------------------------------------- the loader
 
-def load_scenario(path: str | Path, *, generate: bool = True) -> Scenario:
+def load_scenario(path: str | Path, *, generate: bool = True, allow_empty_inventory: bool = False) -> Scenario:
     """Load and validate the scenario folder at `path` (all files except the history rows).
 
     With `generate` (default) a missing history is generated from `[history_generator]`.
+    `allow_empty_inventory` accepts an inventory.csv with no rows (the demo builder's placeholder,
+    written before the real inventory is computed); otherwise it is a problem.
     Raises `ScenarioError` naming the file, row or key and what is wrong.
     """
     folder = Path(path)
@@ -543,6 +559,8 @@ def load_scenario(path: str | Path, *, generate: bool = True) -> Scenario:
         raise ScenarioError(f"{folder}: not a scenario folder (no such directory)")
     problems = _Problems()
     f = "scenario.toml"
+    if not (folder / f).is_file():
+        raise ScenarioError(f"{folder}: not a scenario folder ({f} is missing)")
     cfg = _read_toml(folder / f, f)
 
     name = cfg.get("name", folder.name)
@@ -662,6 +680,8 @@ def load_scenario(path: str | Path, *, generate: bool = True) -> Scenario:
     else:
         pr = pd.Series(float(preempt), index=inv.index)
     _duplicates(inv, inv_file, ["zone", "network", "daypart", "week"], problems)
+    if inv.empty and not allow_empty_inventory:
+        problems.add(f"{inv_file}: no rows (nothing can be bought)")
     problems.raise_if_any()
     inventory = pd.DataFrame({
         "zone": inv["zone"].astype(str), "network": inv["network"].astype(str),

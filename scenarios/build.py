@@ -262,7 +262,7 @@ def finish_scenario(dest: Path, deal_specs: list[DealSpec], *, seed: int, genera
     deals_dir = dest / "deals"
     if deals_dir.exists():
         shutil.rmtree(deals_dir)
-    sc = load_scenario(dest, generate=False)
+    sc = load_scenario(dest, generate=False, allow_empty_inventory=True)
     truth = unit_truth(sc)
     inv = make_inventory(truth, sc, seed)
     inv.to_csv(dest / "inventory.csv", index=False)
