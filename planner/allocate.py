@@ -1083,8 +1083,8 @@ def diagnose(prob: AllocationProblem, steps: int = 5) -> list[str]:
         loose = Rules(confidence=0.5 + 1e-9) if r.confidence is not None else Rules(pad=0.0)
         mg = max_guarantee(replace(prob, rules=loose))
         if mg.value < G * (1 - 1e-6):
-            out.append(f"avails: even with no mix rules and no risk margin the spots left deliver at most "
-                       f"{mg.value:,.0f} expected impressions, short of {G:,.0f}")
+            out.append(f"avails: even with no share or pacing rule and no risk margin the spots left that the "
+                       f"deal may buy deliver at most {mg.value:,.0f} expected impressions, short of {G:,.0f}")
             out.extend(exhausted_avails(prob, mg.x))
         else:
             out.append("no single rule blocks it: several rules together limit the plan")

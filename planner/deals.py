@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import inspect
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Callable
 
 import numpy as np
@@ -35,6 +35,8 @@ class DealRun:
     allocation: al.Allocation
     fitted_now: bool
     held_spots: int
+    units: pd.DataFrame | None = None    # the deal's demo and weeks, before its exclusions and spot cap
+    held: pd.DataFrame | None = None     # other deals' holds the avails were reduced by
 
 
 @dataclass
@@ -249,7 +251,33 @@ def run_deal(scenario, deal_name: str, *, solver: str = "cbc", held=None, book=N
     prob = al.make_problem(scope, deal.impressions if guarantee is None else guarantee, rules_of(deal), deal.weeks)
     alloc = al.allocate(prob, solver=solver, gap=gap, time_limit=time_limit)
     n_held = int(held_df["spots"].sum()) if held_df is not None and len(held_df) else 0
-    return DealRun(scenario, deal, prob, alloc, fitted, n_held)
+    return DealRun(scenario, deal, prob, alloc, fitted, n_held, units=units, held=held_df)
+
+
+def scope_diagnosis(run: DealRun) -> list[str]:
+    """What the deal's exclusions and per-unit spot cap cost, when the spots they leave fall short.
+
+    They decide which spots the deal may buy, not how the plan mixes them, so `al.diagnose`
+    (which relaxes the plan's rules) keeps them. Here: the largest guarantee with no share or
+    pacing rule and no risk margin, inside them and without them (LP relaxations, impressions).
+    Returns one line, or none when the deal has neither or the spots inside them suffice.
+    """
+    mix, prob = run.deal.mix, run.problem
+    named = ([f"exclude_zones {', '.join(mix.exclude_zones)}"] if mix.exclude_zones else []) \
+        + ([f"exclude_networks {', '.join(mix.exclude_networks)}"] if mix.exclude_networks else []) \
+        + ([f"max_spots_per_unit {mix.max_spots_per_unit}"] if mix.max_spots_per_unit else [])
+    if run.units is None or not named:
+        return []
+    loose = al.Rules(confidence=0.5 + 1e-9) if prob.rules.confidence is not None else al.Rules(pad=0.0)
+    inside = al.max_guarantee(replace(prob, rules=loose)).value
+    if inside >= prob.guarantee * (1 - 1e-6):
+        return []
+    scope = al.candidate_units(run.units, weeks=run.deal.weeks, held=run.held)
+    without = al.max_guarantee(al.make_problem(scope, prob.guarantee, loose, run.deal.weeks)).value
+    verdict = "enough" if without >= prob.guarantee * (1 - 1e-6) else "still short"
+    return [f"exclusions and spot cap ({'; '.join(named)}): with no share or pacing rule and no risk margin "
+            f"the spots they leave deliver at most {inside:,.0f} expected impressions; without them "
+            f"{without:,.0f} ({verdict} for {prob.guarantee:,.0f})"]
 
 
 def _risk_text(deal) -> str:
@@ -365,7 +393,7 @@ def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
         binding = []
         reason = a.status
     else:
-        binding = al.diagnose(prob) if explain else []
+        binding = al.diagnose(prob) + scope_diagnosis(run) if explain else []
         reason = "no plan meets the guarantee under the deal's rules and risk margin"
         if binding:
             reason += " (" + "; ".join(binding[:3]) + ")"
@@ -440,7 +468,7 @@ def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=a
     else:
         binding = [f"largest deliverable guarantee at these rules: {max_g:,.0f} impressions "
                    f"({100 * max_g / deal.impressions:.0f}% of the {deal.impressions:,.0f} asked)"]
-        binding += al.diagnose(prob)
+        binding += al.diagnose(prob) + scope_diagnosis(run)
     cpm = al.cpm_needed(a.cost, deal.impressions, target_margin) if (a.feasible and target_margin is not None) else None
     fr = None
     if with_frontier:

@@ -133,8 +133,16 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
     `stage(description)` is a context manager factory shown around each stage (the CLI passes
     its progress display); `say(text)` receives one-line notes. Returns a `DemoResult`.
     """
+    from planner.allocate import SOLVERS
     from planner.scenario import load_scenario
 
+    # Every option is checked before the folder or its book is touched.
+    if solver not in SOLVERS:
+        raise InputError(f"--solver {solver!r}: choose one of {', '.join(SOLVERS)}")
+    if int(draws) < 2:
+        raise InputError(f"--draws {draws}: need at least 2 draws")
+    if int(seed) < 0:
+        raise InputError(f"--seed {seed}: must be a whole number >= 0")
     stage = stage or _null_stage
     say = say or (lambda text: None)
     seconds: dict[str, float] = {}

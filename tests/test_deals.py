@@ -140,6 +140,28 @@ def _with_deal(scn, **changes):
     return s
 
 
+def test_diagnosis_names_what_the_exclusions_cost(scn, fc):
+    """A deal short only because of its excluded zones is told so, with both totals.
+
+    Independent reference: with no share or pacing rule and no risk margin (pad 0) the largest
+    guarantee is the expected delivery of every spot left, sum of avails x (1 - preemption) x mean
+    impressions per spot, over the deal's weeks and the zones it may buy (a plain sum, no solver).
+    """
+    deal = scn.deals["small-comfortable"]
+    units = deals.deal_units(scn, fc, deal)
+    units = units[units["week"].isin(deal.weeks)]
+    expected = units["avails"] * (1 - units["preempt_rate"]) * units["mean_impressions"]
+    keep_zone = sorted(units["zone"].unique())[0]
+    inside = float(expected[units["zone"] == keep_zone].sum())
+    everything = float(expected.sum())
+    s = _with_deal(scn, impressions=(inside + everything) / 2, confidence=None, pad=0.0, mix=type(deal.mix)(),
+                   mix_exclude_zones=[z for z in units["zone"].unique() if z != keep_zone])
+    r = deals.check_deal(s, "x", forecast=fc, held=None, solver="highs")
+    assert not r.deliverable
+    line = next(b for b in r.binding if b.startswith("exclusions and spot cap"))
+    assert f"at most {inside:,.0f} expected impressions; without them {everything:,.0f} (enough" in line
+
+
 @pytest.mark.parametrize("changes, words", [
     (dict(impressions=0.0), "must be positive"),
     (dict(impressions=-5.0), "must be positive"),
@@ -216,6 +238,23 @@ def test_cli_bad_input_exit_2(small_scenario, cli_forecast, capsys, tmp_path):
                  "--split-by", "network"]) == 2
     err = capsys.readouterr().err
     assert "unknown deal" in err and "Traceback" not in err
+
+
+def test_cli_usage_errors_are_one_line_exit_2(small_scenario, capsys, tmp_path):
+    """Option errors (Typer's own parsing and the --book check) name the option in one line, exit 2.
+    A mistyped --book would otherwise read as an empty book and give an optimistic answer."""
+    missing = tmp_path / "no-such-book.sqlite"
+    for argv in (["check", str(small_scenario), "small-comfortable", "--book", str(missing)],
+                 ["stress", str(small_scenario), "--book", str(missing)],
+                 ["stress", str(small_scenario), "--seed", "-1"],
+                 ["stress", str(small_scenario), "--draws", "many"],
+                 ["check", str(small_scenario), "small-comfortable", "--no-such-option"]):
+        capsys.readouterr()
+        assert main(argv) == 2, argv
+        err = capsys.readouterr().err.strip()
+        assert err.startswith("error: pledge ") and "\n" not in err and "Traceback" not in err, err
+    assert "--book" in err or "--no-such-option" in err
+    assert not missing.exists()
 
 
 def test_cli_infeasible_is_exit_0(small_scenario, cli_forecast, capsys):

@@ -109,6 +109,26 @@ def test_demo_rerun_gives_the_same_numbers(demo_run):
         assert again["stress"]["book"]["cvar95"] == pytest.approx(first["stress"]["book"]["cvar95"], rel=0.1)
 
 
+@pytest.mark.slow
+@pytest.mark.parametrize("bad", [["--solver", "foo"], ["--draws", "1"]])
+def test_demo_bad_option_leaves_the_book_alone(demo_run, bad):
+    """Options are checked before the demo releases its deals from the book for a re-run."""
+    folder, first, _ = demo_run
+    r = pledge("demo", "--out", folder, *bad)
+    assert r.returncode == 2 and "Traceback" not in r.stderr
+    assert "released" not in r.stderr
+    listed = pledge("book", "list", folder, "--json")
+    assert listed.returncode == 0, listed.stderr
+    assert sorted(d["name"] for d in json.loads(listed.stdout)["deals"]) == sorted(first["committed"])
+
+
+def test_demo_rejects_a_negative_seed_in_one_line(tmp_path):
+    r = pledge("demo", "--out", tmp_path / "d", "--seed", "-1")
+    assert r.returncode == 2
+    assert r.stderr.strip().count("\n") == 0 and "--seed" in r.stderr and "Traceback" not in r.stderr
+    assert not (tmp_path / "d").exists()
+
+
 def test_demo_refuses_a_folder_that_is_not_a_demo(tmp_path):
     folder = tmp_path / "mine"
     folder.mkdir()

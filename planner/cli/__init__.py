@@ -13,6 +13,10 @@ from planner.errors import InputError
 
 from .common import err_console, set_quiet
 
+# Typer's parse errors derive from click's ClickException (click's own, or the copy newer Typer
+# versions carry inside themselves): found by name so that both work.
+_CLICK_EXCEPTION = next(c for c in typer.BadParameter.__mro__ if c.__name__ == "ClickException")
+
 app = typer.Typer(
     name="pledge",
     help="Forecast daypart audiences and plan risk-aware airtime buys for guaranteed deals.",
@@ -45,10 +49,22 @@ _register()
 def main(argv: list[str] | None = None) -> int:
     """Console entry point. Returns (and exits with) the documented status code."""
     try:
-        app(args=argv, prog_name="pledge")  # standalone: usage errors exit 2 on their own
-        code = 0
+        rv = app(args=argv, prog_name="pledge", standalone_mode=False)
+        code = rv if isinstance(rv, int) else 0  # --help and friends return their exit code
     except SystemExit as exc:
         code = exc.code if isinstance(exc.code, int) else (0 if exc.code is None else 1)
+    except _CLICK_EXCEPTION as exc:
+        ctx = getattr(exc, "ctx", None)
+        if type(exc).__name__ == "NoArgsIsHelpError" and ctx is not None:  # `pledge` or a group alone
+            err_console.print(ctx.get_help(), markup=False, highlight=False)
+        else:  # a bad option or argument: one line
+            where = ctx.command_path if ctx is not None else "pledge"
+            err_console.print(f"error: {where}: {exc.format_message()} (see {where} --help)",
+                              markup=False, highlight=False, soft_wrap=True)
+        code = exc.exit_code
+    except typer.Abort:
+        err_console.print("aborted")
+        code = 1
     except InputError as exc:
         err_console.print(f"error: {exc}", markup=False, highlight=False, soft_wrap=True)
         code = 2

@@ -12,7 +12,7 @@ import typer
 from rich.table import Table
 
 from planner.cli import app
-from planner.cli.common import count, info, money, out_console, print_json, progress
+from planner.cli.common import book_option, count, info, money, out_console, print_json, progress
 from planner.errors import InputError
 
 book_app = typer.Typer(help="The book of sold deals: commit, list, show, release, check.", no_args_is_help=True)
@@ -21,7 +21,7 @@ app.add_typer(book_app, name="book")
 CAUTION = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
            "under-delivery. Review a plan with the people accountable for the money before committing.")
 
-_BOOK_OPT = typer.Option(None, "--book", help="Book file (default: SCENARIO/book.sqlite).")
+_BOOK_OPT = book_option()
 _JSON_OPT = typer.Option(False, "--json", help="Print one JSON object on stdout.")
 
 
@@ -66,7 +66,7 @@ def _f(value, fmt="{:,.0f}", none="-"):
 def commit_cmd(
     scenario: Path = typer.Argument(..., help="Scenario folder."),
     deal: str = typer.Argument(..., help="Deal name (deals/NAME.toml)."),
-    book: Optional[Path] = _BOOK_OPT,
+    book: Optional[Path] = book_option(must_exist=False),
     solver: str = typer.Option("cbc", "--solver", help="cbc or highs."),
     as_json: bool = _JSON_OPT,
 ) -> None:

@@ -6,9 +6,11 @@ import json
 import math
 import sys
 from dataclasses import asdict, is_dataclass
+from pathlib import Path
 from typing import Any, Iterator
 
 import numpy as np
+import typer
 from rich.console import Console
 from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
@@ -90,3 +92,16 @@ def money(value: float, currency: str = "USD") -> str:
 def count(value: float) -> str:
     """Format a large count with grouping: '12,345,678'."""
     return f"{value:,.0f}"
+
+
+def existing_book(value: Path | None) -> Path | None:
+    """Typer callback of a `--book` option that reads a book: a book file named there must exist
+    (a mistyped path would otherwise read as an empty book and give an optimistic answer)."""
+    if value is not None and not Path(value).is_file():
+        raise typer.BadParameter(f"{value}: no book file there (a book is created by pledge book commit)")
+    return value
+
+
+def book_option(help_text: str = "Book file (default: SCENARIO/book.sqlite).", *, must_exist: bool = True):
+    """The `--book` option; `must_exist` for every command but the one that creates a book."""
+    return typer.Option(None, "--book", help=help_text, callback=existing_book if must_exist else None)

@@ -12,13 +12,12 @@ import typer
 from rich.table import Table
 
 from planner.cli import app
-from planner.cli.common import count, info, money, out_console, print_json, progress
+from planner.cli.common import book_option, count, info, money, out_console, print_json, progress
 from planner.errors import InputError
 
 _JSON_OPT = typer.Option(False, "--json", help="Print one JSON object on stdout.")
 _SOLVER_OPT = typer.Option("cbc", "--solver", help="Integer solver: cbc (shipped with pulp) or highs.")
-_BOOK_OPT = typer.Option(None, "--book", help="Book of committed deals whose spots are held "
-                                              "(default: SCENARIO/book.sqlite if it exists).")
+_BOOK_OPT = book_option("Book of committed deals whose spots are held (default: SCENARIO/book.sqlite if it exists).")
 PLAN_COLUMNS = ["zone", "network", "daypart", "week", "spots", "rate", "cost", "expected_impressions",
                 "preempt_rate", "sd_impressions"]
 

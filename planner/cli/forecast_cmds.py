@@ -57,7 +57,7 @@ def fit_cmd(
     scenario: Path = typer.Argument(..., help="Scenario folder."),
     demo: str = typer.Option(None, "--demo", help="Fit one demo only (default: all demos)."),
     engine: str = typer.Option("duckdb", "--engine", help="History reduction engine: duckdb or spark."),
-    seed: int = typer.Option(0, "--seed", help="Seed of every sample and model."),
+    seed: int = typer.Option(0, "--seed", min=0, help="Seed of every sample and model."),
     json_out: bool = typer.Option(False, "--json", help="Print one JSON object."),
 ) -> None:
     """Fit the forecast on the history and write <scenario>/forecast/ (table, model, meta)."""
@@ -86,7 +86,9 @@ def fit_cmd(
     out_console.print(f"level error (relative sd): common to all units {le.get('rel_sd_common', 0.0):.3f}; "
                       f"network {le['rel_sd_network']:.3f}; network-week "
                       f"{le.get('rel_sd_network_week', 0.0):.3f}; flight by daypart "
-                      + ", ".join(f"{k} {v:.3f}" for k, v in le["rel_sd_flight_by_daypart"].items()))
+                      + ", ".join(f"{k} {v:.3f}" for k, v in le["rel_sd_flight_by_daypart"].items())
+                      + "; unit-week by daypart "
+                      + ", ".join(f"{k} {v:.3f}" for k, v in le["rel_sd_week_by_daypart"].items()))
     cal = fit["calibration"].get("leave_one_fold_out_coverage", {})
     if cal:
         out_console.print("held-out coverage of level bands: "
@@ -115,7 +117,7 @@ def backtest_cmd(
                                 help="Successive held-out blocks of --holdout-weeks ending the history, each "
                                      "scored by its own refit; scores are pooled (1 = the last block only)."),
     engine: str = typer.Option("duckdb", "--engine", help="History reduction engine: duckdb or spark."),
-    seed: int = typer.Option(0, "--seed", help="Seed of every sample and model."),
+    seed: int = typer.Option(0, "--seed", min=0, help="Seed of every sample and model."),
     json_out: bool = typer.Option(False, "--json", help="Print one JSON object."),
 ) -> None:
     """Refit before a cut-off and score the held-out weeks (CRPS, WAPE, coverage) against baselines."""

@@ -9,7 +9,7 @@ from rich import box
 from rich.table import Table
 
 from planner.cli import app
-from planner.cli.common import count, info, money, out_console, print_json, progress
+from planner.cli.common import book_option, count, info, money, out_console, print_json, progress
 from planner.errors import InputError
 
 CAUTION = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
@@ -52,9 +52,9 @@ def report_cmd(
     out: Path = typer.Option(..., "--out", help="HTML file to write (self-contained, opens from disk)."),
     deal: Optional[List[str]] = typer.Option(None, "--deal", help="Deal to include (repeatable; default: every deal)."),
     draws: int = typer.Option(20_000, "--draws", help="Monte Carlo draws for the book's stress test."),
-    seed: int = typer.Option(0, "--seed", help="Random seed of the stress test."),
+    seed: int = typer.Option(0, "--seed", min=0, help="Random seed of the stress test."),
     solver: str = typer.Option("cbc", "--solver", help="cbc or highs."),
-    book: Optional[Path] = typer.Option(None, "--book", help="Book file (default: SCENARIO/book.sqlite)."),
+    book: Optional[Path] = book_option(),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object on stdout."),
 ) -> None:
     """Write one HTML report: verdicts, frontier, pacing, where the money goes, stress, forecast bands."""
@@ -102,7 +102,7 @@ def report_cmd(
 def demo_cmd(
     out: Path = typer.Option(Path("pledge-demo"), "--out", help="Working folder for the demo (created, or reused if it is one)."),
     draws: int = typer.Option(20_000, "--draws", help="Monte Carlo draws for the book's stress test."),
-    seed: int = typer.Option(0, "--seed", help="Random seed of the stress test."),
+    seed: int = typer.Option(0, "--seed", min=0, help="Random seed of the stress test."),
     solver: str = typer.Option("cbc", "--solver", help="cbc or highs."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object on stdout."),
 ) -> None:
@@ -112,8 +112,6 @@ def demo_cmd(
 
     from planner.demo import run_demo
 
-    if draws < 2:
-        raise InputError(f"--draws {draws}: need at least 2 draws")
     t0 = time.perf_counter()
 
     @contextlib.contextmanager
@@ -135,7 +133,8 @@ def demo_cmd(
         out_console.print(f"  {name}: not committed ({why})")
     if result.stress:
         b = result.stress["book"]
-        out_console.print(f"book of {len(result.committed)} deal(s): expected make-good liability "
+        basis = result.stress.get("liability_basis", "refund")
+        out_console.print(f"book of {len(result.committed)} deal(s): expected liability ({basis} basis) "
                           f"{money(b['expected_liability'], cur)}, VaR95 {money(b['var95'], cur)}, "
                           f"CVaR95 {money(b['cvar95'], cur)} ({count(result.draws)} draws, seed {result.seed})")
     for w in result.warnings:

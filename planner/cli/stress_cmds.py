@@ -9,7 +9,7 @@ from rich.table import Table
 
 from planner.cli import app
 from planner.cli.book_cmds import print_table, short
-from planner.cli.common import count, money, out_console, print_json, progress
+from planner.cli.common import book_option, count, money, out_console, print_json, progress
 from planner.errors import InputError
 
 
@@ -17,14 +17,14 @@ from planner.errors import InputError
 def stress_cmd(
     scenario: Path = typer.Argument(..., help="Scenario folder."),
     draws: int = typer.Option(100_000, "--draws", help="Monte Carlo draws."),
-    seed: int = typer.Option(0, "--seed", help="Random seed (same seed, same numbers)."),
+    seed: int = typer.Option(0, "--seed", min=0, help="Random seed (same seed, same numbers)."),
     shock: Optional[List[str]] = typer.Option(
         None, "--shock", help="network=NAME:-0.15, daypart=NAME:-0.10, zone=NAME:-0.1 or all:-0.05 (repeatable)."),
     preempt_multiplier: float = typer.Option(1.0, "--preempt-multiplier", help="Scale every preemption rate."),
     liability: str = typer.Option("refund", "--liability",
                                   help="refund: shortfall x price CPM / 1000; makegood: shortfall x plan cost per impression."),
     method: str = typer.Option("fast", "--method", help="fast (conditional normal), exact or per_spot (naive)."),
-    book: Optional[Path] = typer.Option(None, "--book", help="Book file (default: SCENARIO/book.sqlite)."),
+    book: Optional[Path] = book_option(),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object on stdout."),
 ) -> None:
     """Stress every committed deal at once: shortfall chances, liability, VaR95, CVaR95."""
