@@ -2,7 +2,9 @@
 
 A committed deal holds whole spots of sellable units (zone x network x daypart x week); every
 later check or plan sees the inventory's avails less the spots held. The book lives in
-`<scenario>/book.sqlite` unless another path is given.
+`<scenario>/book.sqlite` unless another path is given. A committed mid-flight rebalance also
+stores the posted actuals it used (`postings`), so the stress test can value the deal's remaining
+weeks on the same updated forecast.
 
 Safety properties (what the design rests on):
 
@@ -38,6 +40,7 @@ BOOK_FILENAME = "book.sqlite"
 UNIT_KEY = ["zone", "network", "daypart", "week"]
 HELD_COLUMNS = UNIT_KEY + ["spots"]
 HOLD_COLUMNS = UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "sd"]
+POSTING_COLUMNS = UNIT_KEY + ["spots_aired", "impressions"]
 
 # Test hook: seconds to sleep inside the commit transaction, after the holds are written and
 # before COMMIT (lets a test kill a process in the middle of a commit).
@@ -91,6 +94,20 @@ _MIGRATIONS: list[tuple[int, list[str]]] = [
             detail_json TEXT
         )""",
         "ALTER TABLE deals ADD COLUMN scenario_name TEXT",
+    ]),
+    (3, [
+        # The posted actuals a committed rebalance used (the evidence behind its forecast update),
+        # one row per posted unit-week; the stress test folds them into the deal's forecast rows.
+        """CREATE TABLE postings (
+            deal TEXT NOT NULL REFERENCES deals(name) ON DELETE CASCADE,
+            zone TEXT NOT NULL,
+            network TEXT NOT NULL,
+            daypart TEXT NOT NULL,
+            week INTEGER NOT NULL,
+            spots_aired INTEGER NOT NULL CHECK (spots_aired >= 0),
+            impressions REAL NOT NULL CHECK (impressions >= 0),
+            PRIMARY KEY (deal, zone, network, daypart, week)
+        )""",
     ]),
 ]
 SCHEMA_VERSION = _MIGRATIONS[-1][0]
@@ -258,6 +275,9 @@ class BookDeal:
     spots: int | None
     summary: dict = field(default_factory=dict)
     holds: pd.DataFrame | None = None
+    # posted actuals stored by a committed rebalance (DataFrame `POSTING_COLUMNS`; empty when
+    # none are stored; None when not read)
+    postings: pd.DataFrame | None = None
 
     @property
     def revenue(self) -> float:
@@ -276,14 +296,16 @@ class BookDeal:
         return out
 
 
-def _deal_from_row(row: sqlite3.Row, holds: pd.DataFrame | None = None) -> BookDeal:
+def _deal_from_row(row: sqlite3.Row, holds: pd.DataFrame | None = None,
+                   postings: pd.DataFrame | None = None) -> BookDeal:
     d = dict(row)
     return BookDeal(
         name=d["name"], advertiser=d["advertiser"], demo=d["demo"], guarantee=d["guarantee"],
         price_cpm=d["price_cpm"], confidence=d["confidence"], pad=d["pad"],
         first_week=d["first_week"], last_week=d["last_week"], committed_at=d["committed_at"],
         expected_impressions=d["expected_impressions"], sd=d["sd"], probability=d["probability"],
-        cost=d["cost"], spots=d["spots"], summary=json.loads(d["summary_json"] or "{}"), holds=holds)
+        cost=d["cost"], spots=d["spots"], summary=json.loads(d["summary_json"] or "{}"), holds=holds,
+        postings=postings)
 
 
 _TEXT_HOLD = ("deal", "zone", "network", "daypart")
@@ -364,7 +386,8 @@ def get_deal(scenario_or_path: Any, name: str, book: str | os.PathLike | None = 
         row = None if conn is None else conn.execute("SELECT * FROM deals WHERE name = ?", (name,)).fetchone()
         if row is None:
             raise InputError(f"{path}: deal {name!r} is not in the book")
-        return _deal_from_row(row, _holds_of(conn, name).drop(columns="deal"))
+        return _deal_from_row(row, _holds_of(conn, name).drop(columns="deal"),
+                              _postings_of(conn, name).drop(columns="deal"))
 
 
 def read_book(scenario_or_path: Any, book: str | os.PathLike | None = None, *,
@@ -378,6 +401,7 @@ def read_book(scenario_or_path: Any, book: str | os.PathLike | None = None, *,
         try:
             rows = conn.execute("SELECT * FROM deals ORDER BY committed_at, name").fetchall()
             holds = _holds_of(conn, columns=hold_columns)
+            posted = _postings_of(conn)
         finally:
             conn.execute("COMMIT")
         # rows are ordered by deal: each deal's holds are one contiguous slice
@@ -389,9 +413,43 @@ def read_book(scenario_or_path: Any, book: str | os.PathLike | None = None, *,
             ends = np.r_[cut, len(names)]
             bounds = {names[a]: (a, b) for a, b in zip(starts, ends)}
         body = holds.drop(columns="deal")
-        deals = [_deal_from_row(r, body.iloc[slice(*bounds.get(r["name"], (0, 0)))].reset_index(drop=True))
+        by_deal = {name: part.drop(columns="deal").reset_index(drop=True)
+                   for name, part in posted.groupby("deal", sort=False)}
+        empty = posted.iloc[:0].drop(columns="deal")
+        deals = [_deal_from_row(r, body.iloc[slice(*bounds.get(r["name"], (0, 0)))].reset_index(drop=True),
+                                by_deal.get(r["name"], empty))
                  for r in rows]
         return deals, holds
+
+
+def _postings_of(conn: sqlite3.Connection, deal: str | None = None) -> pd.DataFrame:
+    """Stored postings (of one deal, or all) as a DataFrame `deal` + `POSTING_COLUMNS`
+    (week, spots_aired int64; impressions float), ordered by deal, week, zone, network, daypart."""
+    where, args = ("", ()) if deal is None else (" WHERE deal = ?", (deal,))
+    rows = conn.execute(f"SELECT deal, {', '.join(POSTING_COLUMNS)} FROM postings{where} "
+                        f"ORDER BY deal, week, zone, network, daypart", args).fetchall()
+    if not rows:
+        return _empty_postings()
+    df = pd.DataFrame([tuple(r) for r in rows], columns=["deal"] + POSTING_COLUMNS)
+    return df.astype(_POSTING_TYPES)
+
+
+_POSTING_TYPES = {"deal": str, "zone": str, "network": str, "daypart": str, "week": "int64",
+                  "spots_aired": "int64", "impressions": float}
+
+
+def _empty_postings() -> pd.DataFrame:
+    return pd.DataFrame({c: [] for c in ["deal"] + POSTING_COLUMNS}).astype(_POSTING_TYPES)
+
+
+def read_postings(scenario_or_path: Any, book: str | os.PathLike | None = None, *,
+                  deal: str | None = None) -> pd.DataFrame:
+    """Posted actuals stored by committed rebalances: DataFrame `deal, zone, network, daypart,
+    week, spots_aired, impressions` (whole aired spots; impressions in the deal's demo), one row
+    per posted unit-week, of one deal (`deal`) or of every deal; empty when there are none or no
+    book. A deal's postings are the ones its latest committed rebalance used."""
+    with _reader(book_path(scenario_or_path, book)) as conn:
+        return _empty_postings() if conn is None else _postings_of(conn, deal)
 
 
 def _holds_of_empty() -> pd.DataFrame:
@@ -616,7 +674,10 @@ def _check_and_hold(conn, path, scenario, deal, plan, planner, plan_kwargs) -> C
 
 
 def release_deal(scenario_or_path: Any, name: str, book: str | os.PathLike | None = None) -> BookDeal:
-    """Remove a committed deal and free its holds (one transaction); returns what was removed."""
+    """Remove a committed deal and free its holds (one transaction); returns what was removed.
+
+    Its stored postings go with it (`ON DELETE CASCADE`; foreign keys are on in `_connect`).
+    """
     path = book_path(scenario_or_path, book)
     if not path.exists():
         raise InputError(f"{path}: deal {name!r} is not in the book (no book here)")
@@ -626,7 +687,8 @@ def release_deal(scenario_or_path: Any, name: str, book: str | os.PathLike | Non
             row = conn.execute("SELECT * FROM deals WHERE name = ?", (name,)).fetchone()
             if row is None:
                 raise InputError(f"{path}: deal {name!r} is not in the book")
-            removed = _deal_from_row(row, _holds_of(conn, name).drop(columns="deal"))
+            removed = _deal_from_row(row, _holds_of(conn, name).drop(columns="deal"),
+                                     _postings_of(conn, name).drop(columns="deal"))
             conn.execute("DELETE FROM holds WHERE deal = ?", (name,))
             conn.execute("DELETE FROM deals WHERE name = ?", (name,))
             _log(conn, name, "release", {"spots": removed.spots})
@@ -635,14 +697,39 @@ def release_deal(scenario_or_path: Any, name: str, book: str | os.PathLike | Non
         conn.close()
 
 
+def _posting_rows(name: str, postings: pd.DataFrame, path: Path) -> list[tuple]:
+    """Rows to insert into `postings` for deal `name` from a DataFrame `POSTING_COLUMNS`
+    (whole aired spots >= 0, impressions >= 0, one row per unit-week); InputError otherwise."""
+    missing = [c for c in POSTING_COLUMNS if c not in postings.columns]
+    if missing:
+        raise InputError(f"{path}: postings for {name!r} lack column(s) {', '.join(missing)}")
+    try:
+        p = postings[POSTING_COLUMNS].astype({"week": "int64", "spots_aired": "int64", "impressions": float})
+    except (ValueError, TypeError) as exc:
+        raise InputError(f"{path}: postings for {name!r} are not whole weeks, whole spots and numbers ({exc})") from exc
+    bad = (p["spots_aired"] < 0) | ~np.isfinite(p["impressions"]) | (p["impressions"] < 0)
+    if bad.any():
+        raise InputError(f"{path}: postings for {name!r} hold negative or non-finite figures")
+    if p.duplicated(UNIT_KEY).any():
+        raise InputError(f"{path}: postings for {name!r} repeat a unit-week")
+    text = [p[c].astype(str).tolist() for c in ("zone", "network", "daypart")]
+    return list(zip([name] * len(p), *text, p["week"].tolist(), p["spots_aired"].tolist(),
+                    p["impressions"].tolist()))
+
+
 def replace_holds(scenario: Any, name: str, spots: pd.DataFrame, summary: dict,
-                  book: str | os.PathLike | None = None, *, action: str = "rebalance") -> None:
+                  book: str | os.PathLike | None = None, *, action: str = "rebalance",
+                  postings: pd.DataFrame | None = None) -> None:
     """Replace a committed deal's holds by `spots` (HOLD_COLUMNS) in one checked transaction.
 
-    Raises InputError if the deal is not in the book, or if the new holds with everyone else's
-    would exceed a unit's avails (another desk took them meanwhile: re-run).
+    `postings` (DataFrame `POSTING_COLUMNS`: posted unit-weeks, whole aired spots, impressions in
+    the deal's demo), when given, replaces the deal's stored postings in the same transaction
+    (a rebalance stores the evidence its forecast update used). Raises InputError if the deal
+    is not in the book, if the new holds with everyone else's would exceed a unit's avails
+    (another desk took them meanwhile: re-run), or if the postings are malformed.
     """
     path = book_path(scenario, book)
+    posting_rows = None if postings is None else _posting_rows(name, postings, path)
     conn = open_book(path)
     try:
         with write_transaction(conn):
@@ -665,6 +752,11 @@ def replace_holds(scenario: Any, name: str, spots: pd.DataFrame, summary: dict,
                 [(name, r.zone, r.network, r.daypart, int(r.week), int(r.spots), _opt(r.rate),
                   _opt(r.cost), _opt(r.expected_impressions), _opt(r.sd))
                  for r in spots.itertuples(index=False)])
+            if posting_rows is not None:
+                conn.execute("DELETE FROM postings WHERE deal = ?", (name,))
+                conn.executemany(
+                    f"""INSERT INTO postings (deal, {', '.join(POSTING_COLUMNS)})
+                           VALUES (?, ?, ?, ?, ?, ?, ?)""", posting_rows)
             old = json.loads(row["summary_json"] or "{}")
             new = {**old, **summary, "spots": int(spots["spots"].sum())}
             conn.execute(

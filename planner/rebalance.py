@@ -244,6 +244,44 @@ def update_forecast(forecast: pd.DataFrame, post: LevelPosterior) -> pd.DataFram
     return out
 
 
+@dataclass
+class FoldedActuals:
+    """Posted actuals folded into a forecast (impressions per spot in the forecast columns).
+
+    `observed`: the postings joined with their forecast rows (one row per posting, the forecast
+    columns NaN where the unit-week has no forecast row); `unmatched`: boolean array (postings,)
+    of postings without a forecast row (no evidence); `posterior`: the level factors' posterior;
+    `forecast`: the rows asked for with the posterior folded in (`update_forecast`)."""
+
+    observed: pd.DataFrame
+    unmatched: np.ndarray
+    posterior: LevelPosterior
+    forecast: pd.DataFrame
+
+
+def fold_actuals(forecast: pd.DataFrame, actuals: pd.DataFrame, demo: str, *,
+                 rows: pd.DataFrame | None = None) -> FoldedActuals:
+    """Update forecast rows from posted actuals of one deal: the posterior of the level factors
+    given the postings (`level_posterior` on the postings joined with the forecast rows of the
+    deal's `demo`), folded into `rows` (default: every row of `forecast`) by `update_forecast`.
+
+    `actuals`: DataFrame `zone, network, daypart, week, spots_aired, impressions` (whole aired
+    spots; impressions in `demo`). `rows`: forecast-like rows (the level-sd columns, keyed by
+    zone, network, daypart) to update; each row's update depends only on its own columns and
+    the posterior, so updating a subset gives the same values as updating the whole table and
+    taking the subset. The one step shared by `rebalance_deal` and the stress test
+    (`planner.stress.load_book_model`), so both value a rebalanced deal on the same forecast.
+    """
+    fc_demo = forecast[forecast["demo"] == demo].copy()
+    fc_demo["week"] = fc_demo["week"].astype("int64")
+    acts = actuals[ACTUALS_COLUMNS].astype({"week": "int64"})
+    obs = acts.merge(fc_demo, on=UNIT_KEY, how="left")
+    unmatched = obs["mean_impressions"].isna().to_numpy()
+    post = level_posterior(obs[~unmatched])
+    updated = update_forecast(forecast if rows is None else rows, post)
+    return FoldedActuals(observed=obs, unmatched=unmatched, posterior=post, forecast=updated)
+
+
 # --------------------------------------------------------------------------- planning helpers
 
 def replan(scenario: Any, deal: Any, *, guarantee: float, first_week: int, forecast: pd.DataFrame,
@@ -332,7 +370,9 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
     `actuals`: a CSV path (validated by `read_actuals`) or an already-valid DataFrame. Aired weeks
     are first_week .. the last posted week; their posted impressions count toward the guarantee.
     With `commit=True` and a deliverable re-plan, the deal's holds in the remaining weeks are
-    replaced by the re-plan in one checked transaction (aired weeks' holds are kept).
+    replaced by the re-plan in one checked transaction (aired weeks' holds are kept), and the
+    posted actuals used are stored with them (the book's `postings`), so the stress test values
+    the remaining holds on the same updated forecast (`fold_actuals`).
     """
     from planner.book import get_deal, held_spots, replace_holds
 
@@ -346,15 +386,11 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
 
         forecast = ensure_forecast(scenario).table
     warnings: list[str] = []
-    fc_demo = forecast[forecast["demo"] == deal.demo].copy()
-    fc_demo["week"] = fc_demo["week"].astype("int64")
-    obs = acts.merge(fc_demo, on=UNIT_KEY, how="left")
-    no_fc = obs["mean_impressions"].isna()
+    folded = fold_actuals(forecast, acts, deal.demo)
+    obs, no_fc, post, updated = folded.observed, folded.unmatched, folded.posterior, folded.forecast
     if no_fc.any():
         warnings.append(f"{int(no_fc.sum())} posted unit-week(s) have no forecast row; counted as delivered, "
                         f"not used as evidence")
-    post = level_posterior(obs[~no_fc])
-    updated = update_forecast(forecast, post)
 
     last_aired = int(acts["week"].max()) if len(acts) else deal.first_week - 1
     aired = list(range(deal.first_week, last_aired + 1))
@@ -408,7 +444,9 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
         replace_holds(scenario, deal_name, new_holds, {
             "expected_impressions": delivered + exp_rem, "sd": sd_rem, "probability": p_after,
             "cost": float(keep["cost"].fillna(0).sum()) + new_cost,
-            "rebalanced_after_week": last_aired, "delivered": delivered}, book)
+            "rebalanced_after_week": last_aired, "delivered": delivered,
+            "posted_unit_weeks": int(len(acts))}, book,
+            postings=acts[ACTUALS_COLUMNS])
         committed = True
     return RebalanceResult(
         deal=deal_name, guarantee=float(deal.impressions), confidence_label=label, aired_weeks=aired,

@@ -23,6 +23,10 @@ Exact sampler (`method="exact"`, validation and benchmark): every factor drawn e
 per hold row the aired spots K ~ Binomial(x, 1 - p) and the airing noise sqrt(K) sd N(0, 1), or
 with `method="per_spot"` one Bernoulli and one noise draw per bought spot (the naive sampler).
 
+Mid-flight deals. A deal rebalanced with `--commit` counts its posted impressions as delivered
+and draws only its remaining holds, valued on the forecast updated from the postings the book
+stored with the rebalance (the same posterior update as `planner.rebalance`; `fold_rebalanced`).
+
 Liability per deal: `refund` = shortfall x price CPM / 1000; `makegood` = shortfall x the plan's
 cost per expected impression. Book risk: expected liability, VaR and CVaR at 95%.
 
@@ -139,6 +143,7 @@ class BookModel:
     cost_per_impression: np.ndarray
     rows: pd.DataFrame | None = None
     fixed: np.ndarray | None = None  # impressions already delivered and posted (rebalanced deals)
+    warnings: list[str] = field(default_factory=list)  # cautions about this book's figures
 
     @property
     def revenue(self) -> np.ndarray:
@@ -427,6 +432,7 @@ class StressResult:
     networks: list[dict]
     joint: dict
     deal_names: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)  # cautions about this book's figures
     delivery: np.ndarray | None = field(default=None, repr=False)
     liability: np.ndarray | None = field(default=None, repr=False)
     book_liability: np.ndarray | None = field(default=None, repr=False)
@@ -440,7 +446,7 @@ class StressResult:
             "liability_basis": self.liability_basis, "alpha": self.alpha, "shocks": self.shocks,
             "preempt_multiplier": self.preempt_multiplier, "currency": self.currency,
             "deals": [asdict(d) for d in self.deals], "book": self.book, "networks": self.networks,
-            "joint": self.joint,
+            "joint": self.joint, "warnings": list(self.warnings),
             "caution": CAUTION,
         }
 
@@ -581,7 +587,7 @@ def run_stress(model: BookModel, chunks, draws: int, *, seed: int, method: str, 
         draws=n, seed=seed, method=method, liability_basis=liability_basis, alpha=alpha,
         shocks=[s.label() for s in shocks], preempt_multiplier=preempt_multiplier, currency=currency,
         deals=deals, book=book, networks=networks, joint=joint, deal_names=list(model.deals),
-        delivery=delivery, liability=liability, book_liability=book_liab)
+        warnings=list(model.warnings), delivery=delivery, liability=liability, book_liability=book_liab)
 
 
 def stress_model(model: BookModel, *, draws: int = 100_000, seed: int = 0, method: str = "fast",
@@ -606,12 +612,69 @@ def stress_model(model: BookModel, *, draws: int = 100_000, seed: int = 0, metho
                       keep_draws=keep_draws, advance=advance)
 
 
+def stale_rebalance_caution(deal: str, after_week: int) -> str:
+    """The caution for a deal rebalanced before the book stored postings (one sentence)."""
+    return (f"deal {deal!r} was rebalanced after week {after_week} by a pledge that did not store its posted "
+            f"actuals: its remaining weeks are valued at the forecast before its posted actuals (the "
+            f"rebalance valued them on the forecast updated from them); re-run `pledge rebalance SCENARIO "
+            f"{deal} --actuals FILE --commit` to store them.")
+
+
+def fold_rebalanced(deals: Sequence[Any], units: pd.DataFrame,
+                    forecast: pd.DataFrame) -> tuple[pd.DataFrame, list[str]]:
+    """Value rebalanced deals' holds on the forecast their rebalance used.
+
+    `deals`: `planner.book.BookDeal`s (with `.summary`, `.demo`, `.postings`); `units`: rows as
+    returned by `book_units` (one per deal x held unit, impressions per spot). For each deal whose
+    summary has `rebalanced_after_week` and whose stored postings are not empty, its rows' forecast
+    columns are replaced by the posterior update from those postings
+    (`planner.rebalance.fold_actuals`, the very step `rebalance_deal` takes: `level_posterior` on
+    the postings joined with the demo's forecast rows, then `update_forecast`). Returns (units,
+    cautions): a caution per rebalanced deal without stored postings (a book written before they
+    were stored; its rows keep the prior forecast).
+
+    Approximation: the posterior is applied to the rebalanced deal's own rows only. Other deals
+    holding the same networks or units keep the prior forecast, so their means do not move with
+    the evidence, and the covariance between a rebalanced deal and the others is built from its
+    posterior loadings and their prior ones on shared standard-normal factors (the posterior
+    correlation between factors, and any evidence from other deals' postings, is left out). Each
+    rebalanced deal's own mean and variance are exactly its rebalance's (on the same forecast
+    table, before shocks). Cost: one demo filter of `forecast` per rebalanced deal.
+    """
+    from planner.rebalance import fold_actuals
+
+    cautions: list[str] = []
+    out = None
+    for d in deals:
+        summary = getattr(d, "summary", None) or {}
+        after = summary.get("rebalanced_after_week")
+        if after is None:
+            continue
+        posted = getattr(d, "postings", None)
+        if posted is None or posted.empty:
+            if summary.get("posted_unit_weeks", None) != 0:  # a rebalance on no postings has no evidence
+                cautions.append(stale_rebalance_caution(d.name, int(after)))
+            continue
+        mask = (units["deal"] == d.name).to_numpy()
+        if not mask.any():
+            continue
+        new = fold_actuals(forecast, posted, d.demo, rows=units.loc[mask]).forecast
+        out = units.copy() if out is None else out
+        for c in _FORECAST_COLS:
+            out.loc[mask, c] = new[c].to_numpy(float)
+    return (units if out is None else out), cautions
+
+
 def load_book_model(scenario: Any, book: str | os.PathLike | None = None, *, forecast: pd.DataFrame | None = None,
                     shocks: Sequence[str | Shock] = (), preempt_multiplier: float = 1.0):
     """Read the book and the forecast and build the (shocked) `BookModel`. Returns (model, shocks).
 
     A deal rebalanced with `--commit` counts its posted impressions as delivered (`fixed`) and
-    only its holds after the last posted week as uncertain.
+    only its holds after the last posted week as uncertain; those holds are valued on the
+    forecast updated from its stored postings, as the rebalance valued them
+    (`fold_rebalanced`, which says what is approximated). A rebalanced deal without stored
+    postings (a book from before they were stored) keeps the prior forecast, and
+    `model.warnings` says so.
     """
     from planner.book import read_book
 
@@ -637,11 +700,13 @@ def load_book_model(scenario: Any, book: str | os.PathLike | None = None, *, for
         if after is not None:
             units = units[~((units["deal"] == d.name) & (units["week"] <= int(after)))]
             fixed[j] = float(d.summary.get("delivered") or 0.0)
-    units = apply_shocks(units.reset_index(drop=True), parsed, preempt_multiplier)
+    units, cautions = fold_rebalanced(deals, units.reset_index(drop=True), forecast)
+    units = apply_shocks(units, parsed, preempt_multiplier)
     model = build_book_model(deals, units)
     if fixed.any():
         model.mean = model.mean + fixed
         model.fixed = fixed
+    model.warnings = cautions
     return model, parsed
 
 

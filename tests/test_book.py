@@ -155,7 +155,7 @@ def test_new_book_has_current_schema_and_wal(tmp_path):
     versions = [r[0] for r in conn.execute("SELECT version FROM schema_version ORDER BY version")]
     assert versions == [v for v, _ in bk._MIGRATIONS] and versions[-1] == bk.SCHEMA_VERSION
     tables = {r[0] for r in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")}
-    assert {"deals", "holds", "events", "schema_version"} <= tables
+    assert {"deals", "holds", "events", "postings", "schema_version"} <= tables
     conn.close()
 
 
@@ -178,6 +178,47 @@ def test_version_1_book_is_upgraded_on_open_and_keeps_its_deals(tmp_path):
     assert bk._schema_version(conn) == bk.SCHEMA_VERSION
     assert "scenario_name" in [r[1] for r in conn.execute("PRAGMA table_info(deals)")]
     conn.close()
+
+
+def test_version_2_book_gains_the_postings_table_with_cascade(tmp_path):
+    path = tmp_path / "v2.sqlite"
+    conn = sqlite3.connect(path)
+    conn.execute("CREATE TABLE schema_version (version INTEGER NOT NULL, applied_at TEXT NOT NULL)")
+    for version, statements in bk._MIGRATIONS[:2]:
+        for sql in statements:
+            conn.execute(sql)
+        conn.execute("INSERT INTO schema_version VALUES (?, 'then')", (version,))
+    conn.execute("INSERT INTO deals (name, demo, guarantee, price_cpm, first_week, last_week, committed_at, spots) "
+                 "VALUES ('old', 'a25-54', 1e6, 20, 1, 4, 'then', 3)")
+    conn.commit()
+    conn.close()
+    assert bk.read_postings(tmp_path, path).empty  # reading upgrades it
+    conn = bk.open_book(path)
+    assert bk._schema_version(conn) == 3
+    fks = conn.execute("PRAGMA foreign_key_list(postings)").fetchall()
+    assert [(r["table"], r["from"], r["to"], r["on_delete"]) for r in fks] == [("deals", "deal", "name", "CASCADE")]
+    conn.close()
+    assert [d.name for d in bk.list_deals(tmp_path, path)] == ["old"]
+
+
+def test_replace_holds_stores_postings_and_refuses_bad_ones(tmp_path):
+    scn, _ = make_synthetic(tmp_path / "s")
+    bk.commit_deal(scn, "alpha", planner=greedy_planner(3))
+    holds = bk.get_deal(scn, "alpha").holds
+    posted = holds[UNIT].assign(spots_aired=holds["spots"], impressions=1000.0 * holds["spots"])
+    bad = posted.assign(impressions=-1.0)
+    with pytest.raises(InputError, match="negative"):
+        bk.replace_holds(scn, "alpha", holds, {"note": "x"}, postings=bad)
+    with pytest.raises(InputError, match="lack column"):
+        bk.replace_holds(scn, "alpha", holds, {"note": "x"}, postings=posted.drop(columns="impressions"))
+    assert bk.read_postings(scn).empty and bk.events(scn)["action"].tolist() == ["commit"]
+    bk.replace_holds(scn, "alpha", holds, {"note": "x"}, postings=posted)
+    got = bk.get_deal(scn, "alpha").postings
+    assert got["spots_aired"].sum() == holds["spots"].sum() and got["impressions"].sum() == 1000.0 * holds["spots"].sum()
+    bk.replace_holds(scn, "alpha", holds, {"note": "x"}, postings=posted.iloc[:1])  # replaced, not added
+    assert len(bk.read_postings(scn, deal="alpha")) == 1
+    bk.replace_holds(scn, "alpha", holds, {"note": "x"})  # no postings given: kept
+    assert len(bk.read_postings(scn, deal="alpha")) == 1
 
 
 def test_newer_schema_is_refused(tmp_path):

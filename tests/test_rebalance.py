@@ -2,6 +2,7 @@
 conditional-normal formula, and the re-plan after actuals 20% under forecast."""
 from __future__ import annotations
 
+import json
 import sys
 from pathlib import Path
 
@@ -302,3 +303,164 @@ def test_update_from_simulated_postings_moves_the_forecast_toward_the_truth(demo
     actual = float(f["impressions"].sum())
     assert abs(post - actual) < abs(prior - actual)
     assert r.deliverable or r.unmet > 0
+
+
+# --------------------------------------------------------------------------- the evidence in the book
+
+def _with_optional_factors(fc):
+    """The synthetic forecast with a common and a network-week level factor (both optional columns),
+    level_sd kept consistent; invented magnitudes."""
+    fc = fc.copy()
+    mu = fc["mean_impressions"]
+    fc["level_sd_common"] = 0.05 * mu
+    fc["level_sd_network_week"] = 0.03 * mu
+    fc["level_sd"] = np.sqrt(0.08 ** 2 + 0.06 ** 2 + 0.04 ** 2 + 0.05 ** 2 + 0.03 ** 2) * mu
+    return fc
+
+
+def _committed_on(tmp_path, fc_transform=None, **kw):
+    scn, fc = make_synthetic(tmp_path / "s", **kw)
+    if fc_transform is not None:
+        fc = fc_transform(fc)
+    planner = rb.plan_for_commit(fc, solver="highs")
+    for name in scn.deals:
+        assert bk.commit_deal(scn, name, planner=planner).committed, name
+    return scn, fc
+
+
+@pytest.mark.parametrize("optional", [False, True])
+def test_stress_values_a_rebalanced_deal_on_the_rebalances_updated_forecast(tmp_path, optional):
+    """QA finding: after `rebalance --commit`, the stress valued the new remaining holds on the
+    forecast from before the actuals. Now the book stores the postings and the stress folds them
+    in with the same posterior step (`fold_actuals`), so the stress model's mean and sd of the
+    deal are the rebalance's own: delivered + expected_remaining and sd_remaining. These are the
+    same `DeliveryModel` on the same rows (same forecast, holds, preemption rates), so they agree
+    to floating-point rounding (rel 1e-9); the Monte Carlo figures agree within their error."""
+    from planner import stress as st
+    from planner.delivery import DeliveryModel
+
+    scn, fc = _committed_on(tmp_path, _with_optional_factors if optional else None,
+                            deals=[("alpha", 0.20, 0.95, 22.0), ("beta", 0.2, 0.9, 18.0)])
+    holds = bk.get_deal(scn, "alpha").holds
+    acts = _actuals_from_holds(holds, fc, range(1, 5), 0.8)
+    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
+    assert r.committed and r.posted_vs_forecast == pytest.approx(-0.2)
+    assert r.posterior.common == optional
+    stored = bk.read_postings(scn, deal="alpha")
+    pd.testing.assert_frame_equal(
+        stored.drop(columns="deal").reset_index(drop=True),
+        acts.astype({"week": "int64"}).sort_values(["week"] + UNIT[:3]).reset_index(drop=True)[stored.columns[1:]],
+        check_dtype=False)
+    assert bk.get_deal(scn, "alpha").summary["posted_unit_weeks"] == len(acts)
+
+    model, _ = st.load_book_model(scn, forecast=fc)
+    assert model.warnings == []
+    j, k = model.deals.index("alpha"), model.deals.index("beta")
+    # exact: the same model of the same rows (the bug gave the prior forecast's higher mean here)
+    assert model.mean[j] == pytest.approx(r.delivered + r.expected_remaining, rel=1e-9)
+    assert np.sqrt(model.variance[j]) == pytest.approx(r.sd_remaining, rel=1e-9)
+    booked = bk.get_deal(scn, "alpha")
+    assert model.mean[j] == pytest.approx(booked.expected_impressions, rel=1e-9)
+    # the other deal keeps the prior forecast (the documented approximation)
+    beta = bk.get_deal(scn, "beta")
+    u = beta.holds[UNIT + ["spots"]].merge(fc[fc.demo == "a25-54"], on=UNIT).merge(
+        scn.inventory[UNIT + ["preempt_rate"]], on=UNIT)
+    assert model.mean[k] == pytest.approx(DeliveryModel.from_units(u).mean(u["spots"].to_numpy(float)), rel=1e-9)
+
+    n = 50_000
+    res = st.stress_model(model, draws=n, seed=3)
+    d = res.deals[j]
+    # Monte Carlo: the mean of n draws is within 4 standard errors (sd / sqrt(n)) of the model mean
+    assert abs(d.expected_delivery - (r.delivered + r.expected_remaining)) < 4 * r.sd_remaining / np.sqrt(n)
+    # sd of n normal draws has relative standard error 1 / sqrt(2 n) (0.3% here); 2% allows for it
+    assert d.sd_delivery == pytest.approx(r.sd_remaining, rel=0.02)
+    # the chance of shortfall is the rebalance's 1 - chance of delivery (the same normal model),
+    # within 4 Monte Carlo standard errors
+    assert abs(d.probability_of_shortfall - (1 - r.probability_after)) < 4 * d.probability_of_shortfall_se + 1e-3
+    assert d.probability_of_shortfall_normal == pytest.approx(1 - r.probability_after, abs=1e-6)
+
+
+def test_fold_actuals_on_a_subset_equals_the_whole_table_update(tmp_path):
+    """The stress updates only the rebalanced deal's rows; each row's update depends only on its
+    own columns and the posterior, so the subset equals the same rows of the whole-table update."""
+    scn, fc = _committed_on(tmp_path, _with_optional_factors, deals=[("alpha", 0.20, 0.95, 22.0)])
+    acts = _actuals_from_holds(bk.get_deal(scn, "alpha").holds, fc, range(1, 4), 0.85)
+    whole = rb.fold_actuals(fc, acts, "a25-54").forecast
+    pick = fc[(fc.week >= 4) & (fc.network == "net2")]
+    part = rb.fold_actuals(fc, acts, "a25-54", rows=pick).forecast
+    pd.testing.assert_frame_equal(part, whole.loc[pick.index])
+
+
+def test_releasing_a_rebalanced_deal_removes_its_postings(tmp_path):
+    scn, fc = _committed_on(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0), ("beta", 0.2, 0.9, 18.0)])
+    for name in ("alpha", "beta"):
+        acts = _actuals_from_holds(bk.get_deal(scn, name).holds, fc, range(1, 3), 0.9)
+        assert rb.rebalance_deal(scn, name, acts, forecast=fc, solver="highs", commit=True).committed
+    assert set(bk.read_postings(scn)["deal"]) == {"alpha", "beta"}
+    removed = bk.release_deal(scn, "alpha")
+    assert len(removed.postings) > 0
+    assert set(bk.read_postings(scn)["deal"]) == {"beta"}  # cascade: alpha's went with it
+    assert bk.read_postings(scn, deal="alpha").empty
+    conn = bk.open_book(bk.book_path(scn))
+    assert conn.execute("SELECT COUNT(*) FROM postings WHERE deal = 'alpha'").fetchone()[0] == 0
+    conn.close()
+
+
+def test_a_book_from_before_postings_upgrades_keeps_working_and_cautions(tmp_path):
+    """A version-2 book with a rebalanced deal (what pledge wrote before postings were stored):
+    opening it upgrades it to the current schema; the stress keeps valuing the deal on the prior
+    forecast (today's behaviour) and says so; re-running the rebalance with commit stores the
+    postings, and the caution goes."""
+    import sqlite3
+
+    from planner import stress as st
+
+    scn, fc = _committed_on(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0), ("beta", 0.2, 0.9, 18.0)])
+    acts = _actuals_from_holds(bk.get_deal(scn, "alpha").holds, fc, range(1, 5), 0.8)
+    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
+    assert r.committed
+    # make it the book an older pledge would have left: no postings table, schema version 2,
+    # and a summary without the posted_unit_weeks key
+    path = bk.book_path(scn)
+    conn = sqlite3.connect(path)
+    conn.execute("DROP TABLE postings")
+    conn.execute("DELETE FROM schema_version WHERE version > 2")
+    summary = json.loads(conn.execute("SELECT summary_json FROM deals WHERE name='alpha'").fetchone()[0])
+    summary.pop("posted_unit_weeks")
+    conn.execute("UPDATE deals SET summary_json = ? WHERE name='alpha'", (json.dumps(summary),))
+    conn.commit()
+    conn.close()
+
+    model, _ = st.load_book_model(scn, forecast=fc)
+    conn = bk.open_book(path)
+    assert bk._schema_version(conn) == bk.SCHEMA_VERSION == 3
+    conn.close()
+    assert bk.read_postings(scn).empty
+    assert len(model.warnings) == 1
+    assert "'alpha'" in model.warnings[0] and "before its posted actuals" in model.warnings[0]
+    assert "--commit" in model.warnings[0]
+    j = model.deals.index("alpha")
+    # today's behaviour: the remaining holds on the prior forecast (above the rebalance's figure
+    # after a 20% shortfall)
+    assert model.mean[j] > r.delivered + r.expected_remaining
+    res = st.stress_model(model, draws=2_000, seed=0)
+    assert res.warnings == model.warnings and res.as_dict()["warnings"] == model.warnings
+
+    r2 = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
+    assert r2.committed and len(bk.read_postings(scn, deal="alpha")) == len(acts)
+    model, _ = st.load_book_model(scn, forecast=fc)
+    assert model.warnings == []
+    assert model.mean[j] == pytest.approx(r2.delivered + r2.expected_remaining, rel=1e-9)
+
+
+def test_rebalance_on_no_postings_gives_no_caution(tmp_path):
+    """A committed rebalance with no posted unit-weeks has no evidence to store: nothing to warn of."""
+    from planner import stress as st
+
+    scn, fc = _committed_on(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0)])
+    acts = pd.DataFrame({c: pd.Series([], dtype=t) for c, t in zip(
+        rb.ACTUALS_COLUMNS, [str, str, str, "int64", "int64", float])})
+    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
+    assert r.committed
+    model, _ = st.load_book_model(scn, forecast=fc)
+    assert model.warnings == []

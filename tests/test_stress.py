@@ -310,6 +310,31 @@ def test_cli_commit_stress_rebalance_end_to_end(small_scenario, scenario_copy, m
     assert r["aired_weeks"] == [1, 2, 3] and r["posted_vs_forecast"] == pytest.approx(-0.2)
     assert r["deliverable"] and r["probability_after"] >= 0.95 - 1e-6 and r["committed"]
     assert r["shared_error_caution"] == caution  # the same caution as the stress test's
+    # the stress then values the re-planned weeks on the forecast the rebalance used (the book
+    # stores the postings): its model mean is the rebalance's, so the MC mean is within 4 of its
+    # standard errors (sd / sqrt(draws))
+    code, out, _ = _cli(capsys, "stress", folder, "--draws", 20000, "--seed", 4, "--json")
+    s = next(x for x in json.loads(out)["deals"] if x["deal"] == "small-comfortable")
+    assert abs(s["expected_delivery"] - (r["delivered"] + r["expected_remaining"])) < 4 * r["sd_remaining"] / np.sqrt(20000)
+    assert s["sd_delivery"] == pytest.approx(r["sd_remaining"], rel=0.03)
+    assert json.loads(out)["warnings"] == ([caution] if caution else [])
+    # a book from before postings were stored: the stress says the deal is valued on the old forecast
+    import sqlite3
+
+    conn = sqlite3.connect(folder / "book.sqlite")
+    conn.execute("DELETE FROM postings")
+    conn.commit()
+    conn.close()
+    code, out, _ = _cli(capsys, "stress", folder, "--draws", 2000, "--json")
+    stale = st.stale_rebalance_caution("small-comfortable", 3)
+    assert code == 0 and json.loads(out)["warnings"] == [stale] + ([caution] if caution else [])
+    code, out, _ = _cli(capsys, "stress", folder, "--draws", 2000)
+    assert code == 0 and "before its posted actuals" in " ".join(out.split())
+    code, out, _ = _cli(capsys, "rebalance", folder, "small-comfortable", "--actuals", path, "--json",
+                        "--solver", "highs", "--commit")
+    assert code == 0 and json.loads(out)["committed"]
+    code, out, _ = _cli(capsys, "stress", folder, "--draws", 2000, "--json")
+    assert json.loads(out)["warnings"] == ([caution] if caution else [])
     code, out, _ = _cli(capsys, "rebalance", folder, "small-comfortable", "--actuals", path, "--solver", "highs")
     assert code == 0 and "chance of delivery" in out
     path.write_text("zone,network,daypart,week,spots_aired,impressions\nx,y,z,1,1,1\n")

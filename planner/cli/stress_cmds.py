@@ -5,6 +5,7 @@ from pathlib import Path
 from typing import List, Optional
 
 import typer
+from rich.markup import escape
 from rich.table import Table
 
 from planner.cli import app
@@ -50,8 +51,9 @@ def stress_cmd(
     from planner.forecast_job import forecast_caution
 
     caution = forecast_caution(scn, scenario)
+    cautions = list(r.warnings) + ([caution] if caution else [])  # the book's own, then the forecast's
     if as_json:
-        print_json({**r.as_dict(), "warnings": [caution] if caution else []})
+        print_json({**r.as_dict(), "warnings": cautions})
         return
     cur = r.currency
     out_console.print(f"[bold]Book stress[/]: {r.draws:,} draws, seed {r.seed}, {r.method} sampler, "
@@ -84,6 +86,6 @@ def stress_cmd(
         j = r.joint
         out_console.print(f"  most correlated pair {j['deals'][0]} / {j['deals'][1]} (corr {j['correlation']:.2f}): "
                           f"both short {j['probability_both_short']:.2%} vs {j['product_if_independent']:.2%} if independent")
-    if caution:
-        out_console.print(f"[yellow]caution: {caution}[/yellow]")
+    for c in cautions:
+        out_console.print(f"[yellow]caution: {escape(c)}[/yellow]")
     out_console.print(CAUTION, style="dim")
