@@ -56,7 +56,7 @@ def read_actuals(path: str | os.PathLike, scenario: Any = None, deal: Any = None
 
     spots_aired: whole aired spots (>= 0); impressions: delivered in the deal's demo (>= 0).
     With `scenario`/`deal`, units must exist in the inventory and weeks lie in the deal's flight.
-    Raises InputError naming the file and row (CSV line numbers, header = line 1).
+    Raises InputError naming the file and row (1-based data rows, as for the scenario's files).
     """
     path = Path(path)
     if not path.is_file():
@@ -70,11 +70,13 @@ def read_actuals(path: str | os.PathLike, scenario: Any = None, deal: Any = None
     if missing:
         raise InputError(f"{path}: missing column(s) {', '.join(missing)} (need {','.join(ACTUALS_COLUMNS)})")
     df = df[ACTUALS_COLUMNS].copy()
+    if df.empty:
+        raise InputError(f"{path}: no rows (post at least one aired unit-week)")
     for c in ("zone", "network", "daypart"):
         df[c] = df[c].astype(str).str.strip()
         blank = df[c] == ""
         if blank.any():
-            raise InputError(f"{path}: row {int(np.flatnonzero(blank)[0]) + 2}: {c} is blank")
+            raise InputError(f"{path}: row {int(np.flatnonzero(blank)[0]) + 1}: {c} is blank")
     for c, integer in (("week", True), ("spots_aired", True), ("impressions", False)):
         num = pd.to_numeric(df[c].str.strip(), errors="coerce")
         bad = num.isna() | ~np.isfinite(num) | (num < 0)
@@ -83,17 +85,17 @@ def read_actuals(path: str | os.PathLike, scenario: Any = None, deal: Any = None
         if bad.any():
             i = int(np.flatnonzero(bad.to_numpy())[0])
             what = "a whole number >= 0" if integer else "a number >= 0"
-            raise InputError(f"{path}: row {i + 2}: {c} {df[c].iloc[i]!r} is not {what}")
+            raise InputError(f"{path}: row {i + 1}: {c} {df[c].iloc[i]!r} is not {what}")
         df[c] = num.astype("int64") if integer else num.astype(float)
     dup = df.duplicated(UNIT_KEY, keep="first")
     if dup.any():
         i = int(np.flatnonzero(dup.to_numpy())[0])
         r = df.iloc[i]
-        raise InputError(f"{path}: row {i + 2}: duplicate unit {r.zone}/{r.network}/{r.daypart}/week {r.week}")
+        raise InputError(f"{path}: row {i + 1}: duplicate unit {r.zone}/{r.network}/{r.daypart}/week {r.week}")
     pos = (df["impressions"] > 0) & (df["spots_aired"] == 0)
     if pos.any():
         i = int(np.flatnonzero(pos.to_numpy())[0])
-        raise InputError(f"{path}: row {i + 2}: impressions posted with 0 spots aired")
+        raise InputError(f"{path}: row {i + 1}: impressions posted with 0 spots aired")
     if scenario is not None:
         inv = scenario.inventory[UNIT_KEY].astype({"week": "int64"})
         m = df.merge(inv.assign(_known=True), on=UNIT_KEY, how="left")
@@ -101,13 +103,13 @@ def read_actuals(path: str | os.PathLike, scenario: Any = None, deal: Any = None
         if unknown.any():
             i = int(np.flatnonzero(unknown)[0])
             r = df.iloc[i]
-            raise InputError(f"{path}: row {i + 2}: unit {r.zone}/{r.network}/{r.daypart}/week {r.week} "
+            raise InputError(f"{path}: row {i + 1}: unit {r.zone}/{r.network}/{r.daypart}/week {r.week} "
                              f"is not in the scenario's inventory")
     if deal is not None:
         out = (df["week"] < deal.first_week) | (df["week"] > deal.last_week)
         if out.any():
             i = int(np.flatnonzero(out.to_numpy())[0])
-            raise InputError(f"{path}: row {i + 2}: week {df['week'].iloc[i]} is outside deal "
+            raise InputError(f"{path}: row {i + 1}: week {df['week'].iloc[i]} is outside deal "
                              f"{deal.name!r}'s flight (weeks {deal.first_week}-{deal.last_week})")
     return df.reset_index(drop=True)
 
@@ -348,7 +350,10 @@ class RebalanceResult:
     unmet: float
     committed: bool
     status: str
+    # per network that posted: the posterior mean of its level factor, in sds of that factor
+    # (standard-normal units), and the change of its units' forecast level from it (fraction)
     network_shift: dict = field(default_factory=dict)
+    network_level_change: dict = field(default_factory=dict)
     warnings: list[str] = field(default_factory=list)
     plan: pd.DataFrame | None = field(default=None, repr=False)
     catch_up: pd.DataFrame | None = field(default=None, repr=False)
@@ -402,6 +407,13 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
     unposted = int((unposted["_merge"] == "left_only").sum())
     if unposted:
         warnings.append(f"{unposted} held unit-week(s) in aired weeks have no posting; counted as 0 delivered")
+    vs_held = acts.merge(held_aired[UNIT_KEY + ["spots"]], on=UNIT_KEY, how="left")
+    extra = (vs_held["spots_aired"] > vs_held["spots"].fillna(0)).to_numpy()
+    if extra.any():
+        r = vs_held[extra].iloc[0]
+        warnings.append(f"{int(extra.sum())} posted unit-week(s) aired more spots than the deal holds there "
+                        f"(first: {r.zone}/{r.network}/{r.daypart}/week {int(r.week)}, {int(r.spots_aired)} aired, "
+                        f"{int(0 if pd.isna(r.spots) else r.spots)} held); their impressions count as delivered")
     # Expected delivery of what aired, under the prior forecast (per aired spot, no preemption).
     ok = obs[~no_fc]
     expected_aired = float((ok["spots_aired"] * ok["mean_impressions"]).sum())
@@ -436,6 +448,9 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
     unmet = 0.0 if deliverable else max(G_left - max_del, 0.0)
     catch = _catch_up(held_rem, new_plan) if deliverable else None
     net_shift = {str(n): float(post.mean[i]) for i, n in enumerate(post.networks)}
+    fc_demo = forecast[forecast["demo"] == deal.demo]
+    rel_sd = (fc_demo["level_sd_network"] / fc_demo["mean_impressions"]).groupby(fc_demo["network"].astype(str)).median()
+    net_change = {n: z * float(rel_sd.get(n, np.nan)) for n, z in net_shift.items()}
     committed = False
     if commit and deliverable and remaining and G_left > 0:
         cols = UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "sd"]
@@ -457,7 +472,7 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
         added_spots=new_spots - held_spots_n if deliverable else 0, held_remaining_cost=held_cost,
         new_cost=new_cost, added_cost=new_cost - held_cost if deliverable else 0.0,
         max_deliverable=max_del, unmet=unmet, committed=committed, status=status,
-        network_shift=net_shift, warnings=warnings, plan=new_plan, catch_up=catch, forecast=updated,
+        network_shift=net_shift, network_level_change=net_change, warnings=warnings, plan=new_plan, catch_up=catch, forecast=updated,
         posterior=post)
 
 

@@ -752,4 +752,4 @@ def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str
         scenario_name=scenario.name, scenario_path=str(scenario.path), currency=scenario.currency,
         deals=sections, book=book_part, forecasts=bands, dayparts=[d.name for d in scenario.dayparts],
         seed=stress.seed if stress is not None else seed, notes=notes, versions=package_versions(),
-        warnings=[caution] if caution else [])
+        warnings=([caution] if caution else []) + (list(stress.warnings) if stress is not None else []))

@@ -465,6 +465,8 @@ def _most_correlated_pair(model: BookModel) -> tuple[int, int] | None:
         corr = cov / np.outer(sd, sd)
     corr = np.nan_to_num(corr, nan=-np.inf)
     np.fill_diagonal(corr, -np.inf)
+    if not np.isfinite(corr).any():  # no two deals with any spread (e.g. every spot preempted)
+        return None
     i, j = np.unravel_index(np.argmax(corr), corr.shape)
     return int(i), int(j)
 

@@ -46,16 +46,17 @@ def _write(tmp_path, text):
 
 @pytest.mark.parametrize("body,msg", [
     ("zone,network,daypart,week,spots_aired\nz1,net1,prime,1,2\n", "missing column"),
-    ("zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,1,-2,100\n", "row 2: spots_aired"),
+    ("zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,1,-2,100\n", "row 1: spots_aired"),
     ("zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,1,2,100\nz1,net1,prime,x,2,100\n",
-     "row 3: week"),
+     "row 2: week"),
     ("zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,1,2,100\nz1,net1,prime,1,1,50\n",
-     "row 3: duplicate unit"),
-    ("zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,1,1.5,100\n", "row 2: spots_aired"),
+     "row 2: duplicate unit"),
+    ("zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,1,1.5,100\n", "row 1: spots_aired"),
     ("zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,1,0,100\n", "0 spots aired"),
     ("zone,network,daypart,week,spots_aired,impressions\nz9,net1,prime,1,2,100\n", "not in the scenario's inventory"),
     ("zone,network,daypart,week,spots_aired,impressions\nz1,net1,prime,99,2,100\n", "not in the scenario's inventory"),
-    ("zone,network,daypart,week,spots_aired,impressions\n,net1,prime,1,2,100\n", "row 2: zone is blank"),
+    ("zone,network,daypart,week,spots_aired,impressions\n,net1,prime,1,2,100\n", "row 1: zone is blank"),
+    ("zone,network,daypart,week,spots_aired,impressions\n", "no rows"),
 ])
 def test_bad_actuals_name_file_and_row(tmp_path, body, msg):
     scn, _ = make_synthetic(tmp_path / "s")
@@ -196,6 +197,17 @@ def test_common_factor_moves_every_unit_and_keeps_level_variances_exact():
 
 # --------------------------------------------------------------------------- the re-plan
 
+def test_more_spots_aired_than_held_is_said(tmp_path):
+    scn, fc = _committed(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0)])
+    holds = bk.get_deal(scn, "alpha").holds
+    acts = _actuals_from_holds(holds, fc, range(1, 3), 1.0)
+    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
+    assert not any("more spots than the deal holds" in w for w in r.warnings)
+    acts.loc[acts.index[0], "spots_aired"] += 5
+    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
+    assert any(w.startswith("1 posted unit-week(s) aired more spots than the deal holds") for w in r.warnings)
+
+
 def test_actuals_20_percent_under_are_caught_up_to_the_deals_confidence(tmp_path):
     scn, fc = _committed(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0)])
     holds = bk.get_deal(scn, "alpha").holds
@@ -209,6 +221,10 @@ def test_actuals_20_percent_under_are_caught_up_to_the_deals_confidence(tmp_path
     assert r.probability_after >= 0.95 - 1e-6  # back to the deal's confidence
     assert r.added_spots > 0 and r.added_cost > 0
     assert all(s < 0 for s in r.network_shift.values())
+    # in fractions of the level: the factor's shift times the network factor's relative sd
+    for n, z in r.network_shift.items():
+        rel = (fc.level_sd_network / fc.mean_impressions)[fc.network == n].median()
+        assert r.network_level_change[n] == pytest.approx(z * rel)
     # the evidence lowered the forecast of the remaining weeks: the re-plan used the lowered one
     before = fc[(fc.week > 4)].mean_impressions.sum()
     after = r.forecast[(r.forecast.week > 4)].mean_impressions.sum()

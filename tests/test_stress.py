@@ -195,6 +195,9 @@ def test_shocks_move_liability_the_right_way():
     assert pre.book["expected_liability"] > base.book["expected_liability"]
     dp = run([st.parse_shock("daypart=prime:-0.10", dayparts=["prime", "day"])])
     assert dp.book["cvar95"] > base.book["cvar95"]
+    gone = run(pm=100.0)  # every spot preempted (rate capped at 1): nothing delivered, no spread
+    assert all(d.probability_of_shortfall == 1.0 for d in gone.deals)
+    assert gone.joint == {}  # no pair of deals to call correlated (it named one deal twice)
     both = run([st.parse_shock("network=n1:-0.15"), st.parse_shock("all:-0.05")], 2.0)
     assert both.book["expected_liability"] > net.book["expected_liability"]
     assert net.shocks == ["network n1 -15.0%"]
@@ -339,7 +342,7 @@ def test_cli_commit_stress_rebalance_end_to_end(small_scenario, scenario_copy, m
     assert code == 0 and "chance of delivery" in out
     path.write_text("zone,network,daypart,week,spots_aired,impressions\nx,y,z,1,1,1\n")
     code, _, err = _cli(capsys, "rebalance", folder, "small-comfortable", "--actuals", path)
-    assert code == 2 and "actuals.csv" in err and "row 2" in err
+    assert code == 2 and "actuals.csv" in err and "row 1" in err  # 1-based data rows, as the scenario's files
 
 
 @pytest.mark.slow
