@@ -1043,6 +1043,12 @@ def _bisect(lo: float, hi: float, ok_at, steps: int = 5) -> float:
     return lo
 
 
+def no_rules_no_margin(rules: Rules) -> Rules:
+    """The same risk rule with no share or pacing rule and no margin (confidence just above 50%,
+    or pad 0): the loosest rules, whose largest guarantee is what the spots can deliver at all."""
+    return Rules(confidence=0.5 + 1e-9) if rules.confidence is not None else Rules(pad=0.0)
+
+
 def diagnose(prob: AllocationProblem, steps: int = 5) -> list[str]:
     """Why a guarantee cannot be met: each rule family relaxed in turn, in seller words.
 
@@ -1080,8 +1086,7 @@ def diagnose(prob: AllocationProblem, steps: int = 5) -> list[str]:
         v = _bisect(0.0, r.pad, lambda t: ok(pad=t), steps)
         out.append(f"pad: needs {_pct(r.pad)}, can reach {_pct(v)} at this guarantee")
     if not out:
-        loose = Rules(confidence=0.5 + 1e-9) if r.confidence is not None else Rules(pad=0.0)
-        mg = max_guarantee(replace(prob, rules=loose))
+        mg = max_guarantee(replace(prob, rules=no_rules_no_margin(r)))
         if mg.value < G * (1 - 1e-6):
             out.append(f"avails: even with no share or pacing rule and no risk margin the spots left that the "
                        f"deal may buy deliver at most {mg.value:,.0f} expected impressions, short of {G:,.0f}")

@@ -230,7 +230,8 @@ def rules_of(deal) -> al.Rules:
                     confidence=deal.confidence if deal.pad is None else None, pad=deal.pad)
 
 
-def _check_solver(solver: str) -> None:
+def check_solver(solver: str) -> None:
+    """InputError unless `solver` is one the allocator knows."""
     if solver not in al.SOLVERS:
         raise InputError(f"--solver {solver!r}: choose one of {', '.join(al.SOLVERS)}")
 
@@ -239,7 +240,7 @@ def run_deal(scenario, deal_name: str, *, solver: str = "cbc", held=None, book=N
              gap: float = al.DEFAULT_GAP, time_limit: float = al.DEFAULT_TIME_LIMIT,
              progress: Callable | None = None, guarantee: float | None = None) -> DealRun:
     """Build the deal's allocation problem and solve it (whole spots)."""
-    _check_solver(solver)
+    check_solver(solver)
     deal = _get_deal(scenario, deal_name)
     table, fitted = _forecast_table(scenario, forecast, progress)
     units = deal_units(scenario, table, deal)
@@ -268,7 +269,7 @@ def scope_diagnosis(run: DealRun) -> list[str]:
         + ([f"max_spots_per_unit {mix.max_spots_per_unit}"] if mix.max_spots_per_unit else [])
     if run.units is None or not named:
         return []
-    loose = al.Rules(confidence=0.5 + 1e-9) if prob.rules.confidence is not None else al.Rules(pad=0.0)
+    loose = al.no_rules_no_margin(prob.rules)
     inside = al.max_guarantee(replace(prob, rules=loose)).value
     if inside >= prob.guarantee * (1 - 1e-6):
         return []

@@ -133,12 +133,11 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
     `stage(description)` is a context manager factory shown around each stage (the CLI passes
     its progress display); `say(text)` receives one-line notes. Returns a `DemoResult`.
     """
-    from planner.allocate import SOLVERS
+    from planner.deals import check_solver
     from planner.scenario import load_scenario
 
     # Every option is checked before the folder or its book is touched.
-    if solver not in SOLVERS:
-        raise InputError(f"--solver {solver!r}: choose one of {', '.join(SOLVERS)}")
+    check_solver(solver)
     if int(draws) < 2:
         raise InputError(f"--draws {draws}: need at least 2 draws")
     if int(seed) < 0:
