@@ -448,8 +448,8 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
     unmet = 0.0 if deliverable else max(G_left - max_del, 0.0)
     catch = _catch_up(held_rem, new_plan) if deliverable else None
     net_shift = {str(n): float(post.mean[i]) for i, n in enumerate(post.networks)}
-    fc_demo = forecast[forecast["demo"] == deal.demo]
-    rel_sd = (fc_demo["level_sd_network"] / fc_demo["mean_impressions"]).groupby(fc_demo["network"].astype(str)).median()
+    ev = obs[~no_fc]  # the posted rows the posterior used: every network in it posted
+    rel_sd = (ev["level_sd_network"] / ev["mean_impressions"]).groupby(ev["network"].astype(str)).median()
     net_change = {n: z * float(rel_sd.get(n, np.nan)) for n, z in net_shift.items()}
     committed = False
     if commit and deliverable and remaining and G_left > 0:
