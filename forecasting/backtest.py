@@ -280,7 +280,7 @@ def _score_block(cube: ProfileCube, info: pd.DataFrame, specs, universes: pd.Dat
     actual, counts = daypart_week_means(actual_cells, wd, starts, specs)
     masked = np.where(np.isfinite(actual_cells), fc.plan_pred_, np.nan)
     model_raw, _ = daypart_week_means(masked, wd, starts, specs)
-    model_mean = model_raw * fc.level_factor(fc.plan_recent_)
+    model_mean = fc.combine_plan(model_raw) * fc.level_factor(fc.plan_recent_)
     base = {
         "last_year": last_year(cube.values[:, :cut], cube.day0.day_of_week, h0 + starts, specs),
         "trailing_8w": trailing_mean(cube.values, cube.day0.day_of_week, cut, specs, W),

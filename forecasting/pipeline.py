@@ -27,14 +27,19 @@ import pandas as pd
 from scipy.stats import chi2, norm
 
 from .baselines import last_year, spread_by_daypart, trailing_mean
+from .candidates import SIMPLE_CANDIDATES, simple_candidates
 from .dayparts import DaypartSpec, as_specs, daypart_week_means, daypart_week_sums
 from .models import ProfileForecaster
 from .profiles import ProfileCube
 from .scoring import coverage, total_bias_sd
+from .stacking import StackedCombiner
 from .uncertainty import COMPONENT_KEYS, LevelErrorModel, airing_cv, factor_components
 
 Progress = Callable[[str, float], None]
 
+#: the profile model's name among the candidates
+PROFILE = "profile"
+CANDIDATES = (PROFILE,) + SIMPLE_CANDIDATES
 Z90 = norm.ppf(0.90)  # 1.2816 (NIST/SEMATECH table: z(0.90) = 1.2816)
 
 
@@ -54,6 +59,12 @@ class FoldResult:
     truncated: np.ndarray | None = None  # (S,) bool
     history_weeks: np.ndarray | None = None  # (S,)
     recent: np.ndarray | None = None  # (S, P) log(actual / fitted) over the last weeks before the origin
+    candidates: dict = field(default_factory=dict)  # name -> (S, P, W) other candidates' means
+    combined: np.ndarray | None = None  # (S, P, W) the stacked combination (set after the stacking fit)
+
+    def all_candidates(self) -> dict:
+        """{candidate: (S, P, W) mean ratings}, the profile model's first."""
+        return {PROFILE: self.forecast, **self.candidates}
 
 
 def fold_origins(n_days: int, gap: int, horizon: int, n_folds: int, min_train: int) -> list[int]:
@@ -172,23 +183,26 @@ class DaypartForecaster:
             "trailing_8w": trailing_mean(cube.values, cube.day0.day_of_week, origin, dayparts, weeks),
         }
         recent = self._recent_residual(model, train, cube.day0, origin, dayparts)
-        return FoldResult(origin, a_mean, counts, f_mean, base, truncated, history_weeks, recent)
+        cands = simple_candidates(train, cube.day0.day_of_week, origin, gap, weeks, dayparts, info,
+                                  recent_weeks=self.recent_weeks, random_state=self.random_state + k)
+        return FoldResult(origin, a_mean, counts, f_mean, base, truncated, history_weeks, recent, cands)
 
     def _errors_frame(self, folds: list[FoldResult], info: pd.DataFrame, dayparts) -> tuple[pd.DataFrame, pd.DataFrame]:
         need = self.min_cells * self._expected_cells(dayparts)[None, :, None]
         model_rows, base_rows = [], []
         names = np.array([dp.name for dp in dayparts])
         for j, f in enumerate(folds):
-            ok = (f.counts >= need) & (f.forecast > 0) & np.isfinite(f.actual)
+            fc = f.forecast if f.combined is None else f.combined
+            ok = (f.counts >= need) & (fc > 0) & np.isfinite(f.actual)
             s, p, w = np.nonzero(ok)
-            rel = f.actual[s, p, w] / f.forecast[s, p, w] - 1.0
+            rel = f.actual[s, p, w] / fc[s, p, w] - 1.0
             model_rows.append(pd.DataFrame({
                 "fold": j, "zone": info["zone"].to_numpy()[s], "network": info["network"].to_numpy()[s],
                 "genre": info["genre"].to_numpy()[s], "demo": info["demo"].to_numpy()[s],
                 "daypart": names[p], "week": w + 1, "rel_error": rel,
                 "truncated": f.truncated[s], "history_weeks": f.history_weeks[s],
                 "recent": f.recent[s, p],
-                "size": np.log10(np.maximum(f.forecast[s, p, w] * self.universe_s_[s], 1e-9))}))
+                "size": np.log10(np.maximum(fc[s, p, w] * self.universe_s_[s], 1e-9))}))
             for name, fb in f.baselines.items():
                 okb = (f.counts >= need) & np.isfinite(f.actual) & np.isfinite(fb) & (fb > 0) & ~f.truncated[:, None, None]
                 s, p, w = np.nonzero(okb)
@@ -198,6 +212,35 @@ class DaypartForecaster:
         base = pd.concat(base_rows, ignore_index=True) if base_rows else pd.DataFrame(
             columns=["baseline", "daypart", "rel_error"])
         return errors, base
+
+    def _fit_combiner(self, folds: list[FoldResult], dayparts) -> StackedCombiner:
+        """Stack the candidates on the refits' held-out unit-weeks of full-history series (every
+        candidate finite and > 0, enough cells observed), in impressions; set each fold's
+        ``combined``."""
+        need = self.min_cells * self._expected_cells(dayparts)[None, :, None]
+        names = np.array([dp.name for dp in dayparts])
+        frames = []
+        for j, f in enumerate(folds):
+            cands = f.all_candidates()
+            ok = (f.counts >= need) & np.isfinite(f.actual) & ~f.truncated[:, None, None]
+            ok &= np.isfinite(cands[PROFILE]) & (cands[PROFILE] > 0)
+            s, p, w = np.nonzero(ok)
+            u = self.universe_s_[s]
+            valid = {c: np.where(cands[c][s, p, w] > 0, cands[c][s, p, w] * u, np.nan) for c in CANDIDATES}
+            frames.append(pd.DataFrame({"fold": j, "daypart": names[p], "actual": f.actual[s, p, w] * u, **valid}))
+        rows = pd.concat(frames, ignore_index=True)
+        if len(rows) < 50:
+            raise ValueError("too few held-out unit-weeks to weigh the candidate forecasts")
+        comb = StackedCombiner(CANDIDATES, random_state=self.random_state).fit(rows)
+        for f in folds:
+            f.combined = comb.combine(f.all_candidates(), list(names))
+        return comb
+
+    def combine_plan(self, profile_mean: np.ndarray) -> np.ndarray:
+        """The stacked plan-week means (S, P, W) with `profile_mean` as the profile model's part
+        (e.g. its daypart means over observed cells only) and the other candidates as fitted."""
+        names = [dp.name for dp in self.dayparts_]
+        return self.combiner_.combine({PROFILE: profile_mean, **self.plan_candidates_}, names)
 
     def _calibration(self, errors: pd.DataFrame) -> dict:
         """Leave-one-refit-out checks of the error law on the full-history units of each refit.
@@ -281,6 +324,30 @@ class DaypartForecaster:
                 "total_z_p": float(chi2.sf(np.sum(z ** 2), z.size)),
                 "total_excess_sd": float(np.sqrt(max(excess, 0.0)))}
 
+    @staticmethod
+    def shift_to_cover(totals: dict, n_refits: int) -> float:
+        """Variance (fraction^2) of a shift shared by every unit that, added to the law, brings the
+        refits' total misses to ``mean z^2 = 1`` (0 when they are already within the law).
+
+        With ``z_j^2 = bias_j^2 / (bias_sd_j^2 + v (1 + 1 / (J - 1)))`` (the shift less the other
+        refits' mean, as the bias correction takes it), ``mean_j z_j^2`` falls as v grows; v is
+        found by bisection. The refits' totals are what a deal spread over every unit is exposed to:
+        when they miss by more than the law allows, the law widens rather than only saying so.
+        """
+        if n_refits < 2 or not totals:
+            return 0.0
+        b2 = np.array([t["bias"] ** 2 for t in totals.values()], dtype=float)
+        s2 = np.array([t["bias_sd"] ** 2 for t in totals.values()], dtype=float)
+        c = 1.0 + 1.0 / (n_refits - 1)
+        msz = lambda v: float(np.mean(b2 / np.maximum(s2 + c * v, 1e-300)))  # noqa: E731
+        if not np.all(np.isfinite(b2)) or msz(0.0) <= 1.0:
+            return 0.0
+        lo, hi = 0.0, float(b2.max())
+        for _ in range(60):
+            mid = 0.5 * (lo + hi)
+            lo, hi = (mid, hi) if msz(mid) > 1.0 else (lo, mid)
+        return hi
+
     def fold_scored_days(self) -> list[list[str]]:
         """First and last held-out day (YYYY-MM-DD) of each refit, latest first: the weeks whose
         errors the level error law was estimated on."""
@@ -334,10 +401,16 @@ class DaypartForecaster:
             t0 = time.perf_counter()
             folds.append(self._run_fold(cube, self.info_, dayparts, o, self.gap_days_, self.weeks_, k))
             timings[f"fold_{k + 1}"] = time.perf_counter() - t0
+        self.combiner_ = self._fit_combiner(folds, dayparts)
         errors, base_errors = self._errors_frame(folds, self.info_, dayparts)
         self.heldout_errors_ = errors
+        self.fold_results_ = [FoldResult(f.origin, f.actual, f.counts, f.forecast, {}, f.truncated, f.history_weeks,
+                                         f.recent, {}, f.combined) for f in folds]
         self.level_ = LevelErrorModel().fit(errors)
         self.calibration_ = self._calibration(errors)
+        shift = self.shift_to_cover(self.calibration_.get("leave_one_fold_out_total") or {}, len(origins))
+        if shift > 0:
+            self.level_.widen_common(shift, len(origins))
         self.baseline_spread_ = spread_by_daypart(base_errors)
 
         progress("final fit on the whole history", len(origins) / steps)
@@ -352,8 +425,12 @@ class DaypartForecaster:
         wd = (cube.day0.day_of_week + p0) % 7
         raw_mean, _ = daypart_week_means(pred, wd, 7 * np.arange(self.weeks_), dayparts)
         self.plan_recent_ = self._recent_residual(self.model_, cube.values, cube.day0, T, dayparts)
+        self.plan_candidates_ = simple_candidates(cube.values, cube.day0.day_of_week, T, self.gap_days_, self.weeks_,
+                                                  dayparts, self.info_, recent_weeks=self.recent_weeks,
+                                                  random_state=self.random_state)
         self.plan_raw_mean_ = raw_mean
-        self.plan_mean_ = raw_mean * self.level_factor(self.plan_recent_)
+        self.plan_combined_ = self.combine_plan(raw_mean)
+        self.plan_mean_ = self.plan_combined_ * self.level_factor(self.plan_recent_)
         # Airing noise: dispersion of cells within daypart weeks of the recent history.
         a_start = max(T - 7 * self.airing_weeks, 0)
         starts = np.arange(a_start, T - 6, 7) - a_start
@@ -376,14 +453,46 @@ class DaypartForecaster:
         u = u.to_numpy(float)
         return np.where(np.isfinite(u) & (u > 0), u, 1.0)
 
-    def level_factor(self, recent: np.ndarray) -> np.ndarray:
-        """Multiplier (S, P, W) of the raw daypart means: recent-residual carry-over x bias."""
+    def level_factor(self, recent: np.ndarray, law: LevelErrorModel | None = None) -> np.ndarray:
+        """Multiplier (S, P, W) of the raw daypart means: recent-residual carry-over x bias (of
+        `law`, default the fitted `level_`)."""
+        law = self.level_ if law is None else law
         names = [dp.name for dp in self.dayparts_]
-        beta = self.level_.recent_beta(np.arange(1, self.weeks_ + 1))  # (W,)
-        bias = np.array([self.level_.bias_.get(n, 0.0) for n in names])
+        beta = law.recent_beta(np.arange(1, self.weeks_ + 1))  # (W,)
+        bias = np.array([law.bias_.get(n, 0.0) for n in names])
         return np.exp(recent[:, :, None] * beta[None, None, :]) * (1.0 + bias)[None, :, None]
 
     # ------------------------------------------------------------------ outputs
+    def heldout_table(self, j: int, universes: pd.DataFrame, units: pd.DataFrame | None = None,
+                      min_cells: float | None = None) -> pd.DataFrame:
+        """The forecast table refit `j` would have shipped for its held-out weeks, with what they
+        delivered: the contract table (`forecast_table`) of the stacked forecast made at that origin
+        at the real lead, its mean correction and error law fitted on the OTHER refits' errors (and
+        widened as the shipped law was), plus ``actual_impressions`` (the unit-week's observed mean
+        rating x universe, per spot). Weeks are numbered 1..W from the first held-out week. Rows of
+        series whose history the refit truncated on purpose, or with fewer than `min_cells` (share)
+        of the daypart's cells observed, are left out. For replaying deals (a hindcast).
+
+        The stacking weights and level ratios are those fitted on every refit (refit `j` included):
+        a small in-sample part, a few numbers per daypart.
+        """
+        f = self.fold_results_[int(j)]
+        J = len(self.fold_results_)
+        law = LevelErrorModel().fit(self.heldout_errors_[self.heldout_errors_["fold"] != j])
+        if self.level_.widened_common_var_ > 0:
+            law.widen_common(self.level_.widened_common_var_, J - 1)
+        mean = f.combined * self.level_factor(f.recent, law)
+        need = (self.min_cells if min_cells is None else min_cells) * self._expected_cells(self.dayparts_)
+        ok = (f.counts >= need[None, :, None]) & np.isfinite(f.actual) & np.isfinite(mean) & (mean > 0)
+        ok &= ~f.truncated[:, None, None]
+        t = self._table(mean, f.history_weeks, universes, units, law)
+        names = {dp.name: i for i, dp in enumerate(self.dayparts_)}
+        s = t["series"].to_numpy()
+        p = t["daypart"].map(names).to_numpy()
+        w = t["week"].to_numpy() - 1
+        t["actual_impressions"] = f.actual[s, p, w] * t["universe"].to_numpy(float)
+        return t[ok[s, p, w]].drop(columns="series").reset_index(drop=True)
+
     def forecast_table(self, universes: pd.DataFrame, units: pd.DataFrame | None = None) -> pd.DataFrame:
         """The forecast table (DEVELOPERS.md, "Forecast table"), impressions per 30-second spot.
 
@@ -399,16 +508,23 @@ class DaypartForecaster:
         mean_impressions, airing_sd, level_sd, level_sd_network, level_sd_flight, level_sd_week,
         q10_impressions, q90_impressions, history_weeks, level_sd_network_week, level_sd_common``.
         """
+        t = self._table(self.plan_mean_, self.history_weeks_, universes, units, self.level_)
+        return t.drop(columns="series")
+
+    def _table(self, mean: np.ndarray, history_weeks: np.ndarray, universes: pd.DataFrame,
+               units: pd.DataFrame | None, law: LevelErrorModel) -> pd.DataFrame:
+        """Contract table of (S, P, W) mean ratings under error law `law`, with the series index
+        (``series``) kept for callers that join arrays back."""
         info = self.info_
-        S, P, W = self.plan_mean_.shape
+        S, P, W = mean.shape
         s, p, w = np.meshgrid(np.arange(S), np.arange(P), np.arange(W), indexing="ij")
         s, p, w = s.ravel(), p.ravel(), w.ravel()
         names = np.array([dp.name for dp in self.dayparts_])
         t = pd.DataFrame({
             "zone": info["zone"].to_numpy()[s], "network": info["network"].to_numpy()[s],
             "daypart": names[p], "week": (w + 1).astype(np.int64), "demo": info["demo"].to_numpy()[s],
-            "genre": info["genre"].to_numpy()[s],
-            "mean_rating": self.plan_mean_[s, p, w], "history_weeks": np.round(self.history_weeks_[s], 1),
+            "genre": info["genre"].to_numpy()[s], "series": s,
+            "mean_rating": mean[s, p, w], "history_weeks": np.round(history_weeks[s], 1),
             "cv": self.airing_cv_[s, p],
         })
         uni = universes[["zone", "demo", "universe"]].copy()
@@ -418,8 +534,8 @@ class DaypartForecaster:
         t["universe"] = t["universe"].astype(float)
         mu = t["mean_rating"].to_numpy(float) * t["universe"].to_numpy(float)
         # Size as in the folds (the fit's universes, else ratings): log10 expected impressions.
-        t["size"] = np.log10(np.maximum(self.plan_mean_[s, p, w] * self.universe_s_[s], 1e-9))
-        sd = self.level_.predict(t)
+        t["size"] = np.log10(np.maximum(mean[s, p, w] * self.universe_s_[s], 1e-9))
+        sd = law.predict(t)
         t["mean_impressions"] = mu
         t["airing_sd"] = t["cv"].to_numpy() * mu
         level_cols = [col.replace("rel_sd_", "level_sd_") for col, _ in COMPONENT_KEYS]
@@ -437,7 +553,8 @@ class DaypartForecaster:
             t = t.merge(keys, on=["zone", "network", "daypart", "week"], how="inner")
         cols = ["zone", "network", "daypart", "week", "demo", "universe", "mean_rating", "mean_impressions",
                 "airing_sd", "level_sd", "level_sd_network", "level_sd_flight", "level_sd_week",
-                "q10_impressions", "q90_impressions", "history_weeks", "level_sd_network_week", "level_sd_common"]
+                "q10_impressions", "q90_impressions", "history_weeks", "level_sd_network_week", "level_sd_common",
+                "series"]
         return t[cols].sort_values(["zone", "network", "daypart", "week", "demo"]).reset_index(drop=True)
 
     def summary(self) -> dict:
@@ -450,6 +567,7 @@ class DaypartForecaster:
             "pca_components": int(self.model_.pca_.components_.shape[0]),
             "pca_explained": float(self.model_.pca_.explained_variance_ratio_.sum()),
             "level_error": self.level_.summary(),
+            "candidates": self.combiner_.summary(),
             "calibration": self.calibration_,
             "baseline_spread": self.baseline_spread_,
             "timings_seconds": {k: round(v, 2) for k, v in self.timings_.items()},

@@ -124,9 +124,11 @@ class LevelErrorModel:
         self._fit_recent(full)
         for frame in (df, full):
             frame["ratio"] = (1.0 + frame["rel_error"]) / np.exp(self.recent_beta(frame["week"]) * frame["recent"])
-        self.bias_ = (full.groupby("daypart")["ratio"].mean() - 1.0).to_dict()
+        self.bias_ = self._weighted_bias(full)
+        # the variance components are taken around each daypart's mean unit-week ratio
+        centre = (full.groupby("daypart")["ratio"].mean() - 1.0).to_dict()
         for frame in (df, full):
-            b = frame["daypart"].map(self.bias_).astype(float).fillna(0.0)
+            b = frame["daypart"].map(centre).astype(float).fillna(0.0)
             frame["e"] = frame["ratio"] / (1.0 + b) - 1.0
         self.n_rows_ = len(full)
         if "size" in full and np.isfinite(full["size"]).any():
@@ -143,7 +145,33 @@ class LevelErrorModel:
         self._fit_common(self._fit_network(flights, net))
         self._fit_history(df[df["truncated"]], full)  # ratios to the unscaled full-history variance
         self._apply_scale(self._fit_scale(full))
+        self.widened_common_var_ = 0.0
         return self
+
+    @staticmethod
+    def _weighted_bias(full: pd.DataFrame) -> dict:
+        """Mean correction by daypart: ``exp(mean over refits of log(sum actual / sum forecast)) - 1``
+        (forecast impressions ``10**size`` times the recent carry-over as weights; without ``size``
+        every unit-week weighs the same). Impression-weighted, as a deal's total is, and one refit's
+        few unit-weeks with huge ratios cannot set the level of every unit."""
+        size = full["size"].to_numpy(float) if "size" in full else np.zeros(len(full))
+        fcst = np.power(10.0, np.where(np.isfinite(size), size, np.nanmedian(size) if np.isfinite(size).any() else 0.0))
+        carry = (1.0 + full["rel_error"].to_numpy(float)) / full["ratio"].to_numpy(float)
+        f = fcst * carry
+        frame = pd.DataFrame({"daypart": full["daypart"].to_numpy(), "fold": full["fold"].to_numpy(),
+                              "a": fcst * (1.0 + full["rel_error"].to_numpy(float)), "f": f})
+        sums = frame.groupby(["daypart", "fold"])[["a", "f"]].sum()
+        sums = sums[(sums["a"] > 0) & (sums["f"] > 0)]
+        log_ratio = np.log(sums["a"] / sums["f"]).groupby(level="daypart").mean()
+        return {str(k): float(np.exp(v) - 1.0) for k, v in log_ratio.items()}
+
+    def widen_common(self, var_shift: float, n_refits: int) -> None:
+        """Add a shift shared by every unit, of variance `var_shift` (fraction^2) in a refit's
+        total, to the common factor: a forecast's error holds it (1 + 1/J) times (its J-refit mean
+        correction), the held-out errors (1 - 1/J) times."""
+        self.widened_common_var_ = float(var_shift)
+        self.var_common_ += (1.0 + 1.0 / n_refits) * var_shift
+        self.var_common_heldout_ += (1.0 - 1.0 / n_refits) * var_shift
 
     # ------------------------------------------------------------------ components
     @staticmethod
@@ -430,6 +458,7 @@ class LevelErrorModel:
                                                                     self.history_ratio_["ratio"])},
             "heldout_unit_weeks": int(self.n_rows_),
             "quantile_scale": float(self.scale_),
+            "common_widened_by_sd": float(np.sqrt(self.widened_common_var_)),
         }
 
 

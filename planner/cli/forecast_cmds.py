@@ -239,3 +239,52 @@ def show_cmd(
                       markup=False, highlight=False)
     _print_aligned(head, rows)
     out_console.print(CAUTION)
+
+
+@forecast_app.command("hindcast")
+def hindcast_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    apply: bool = typer.Option(False, "--apply",
+                               help="Widen the cached forecast's shared level sds by the scale the replayed deals "
+                                    "call for (never narrower)."),
+    seed: int = typer.Option(0, "--seed", min=0, help="Seed of the forecast and of the preemption draws."),
+    solver: str = typer.Option("highs", "--solver", help="Allocator's solver: highs or cbc."),
+    json_out: bool = typer.Option(False, "--json", help="Print one JSON object."),
+) -> None:
+    """Replay deals shaped like the scenario's at past origins and count how often their claimed
+    chances of delivery came true (a reliability table)."""
+    from planner.deals import check_solver
+    from planner.hindcast import hindcast_scenario
+    from planner.scenario import load_scenario
+
+    check_solver(solver)
+    scn = load_scenario(scenario)
+    if not scn.deals:
+        raise InputError(f"{scenario}: no deals/*.toml to shape the replayed deals on")
+    with _progress("forecast hindcast") as cb:
+        s = hindcast_scenario(scn, seed=seed, solver=solver, apply=apply, progress=cb)
+    s = {k: v for k, v in s.items() if k != "fit_key"}
+    s["caution"] = ("Replayed deals measure past weeks: future errors can be larger. " + CAUTION)
+    if json_out:
+        print_json(s)
+        return
+    if not s.get("deals"):
+        out_console.print("no deal could be replayed (no deliverable plan at any origin)")
+        return
+    out_console.print(f"{s['deals']} deals replayed at {s['origins']} past origins (about {s['effective_deals']:.1f} "
+                      f"independent outcomes: deals at one origin share its shocks, correlation "
+                      f"{s['intra_origin_correlation']:.2f})")
+    head = ["claimed chance", "deals", "mean claim", "came true", "+- 2 se"]
+    rows = [[f"{b['low']:.0%}-{b['high']:.0%}", str(b["deals"]),
+             f"{b['mean_claimed']:.1%}" if b["deals"] else "-", f"{b['realised']:.1%}" if b["deals"] else "-",
+             f"{2 * b['se']:.1%}" if b["deals"] else "-"] for b in s["reliability"]]
+    _print_aligned(head, rows)
+    c95 = s["claimed_95"]
+    if c95["deals"]:
+        out_console.print(f"claimed at 95%: {c95['deals']} deals, delivered in {c95['realised']:.1%}")
+    out_console.print(f"deal totals: delivered / expected - 1 = {s['deal_total_bias']:+.1%}; z RMS {s['z_rms']:.2f} "
+                      f"(1 if the law is right); PIT deciles {s['pit_histogram']}")
+    out_console.print(f"scale of the shared level factors that makes the PIT uniform: {s['shared_scale']:.2f}"
+                      + (f"; applied {s['applied_scale']:.2f} to the cached forecast" if apply else
+                         " (--apply widens the cached forecast by it when above 1)"))
+    out_console.print(s["caution"])

@@ -1,0 +1,144 @@
+"""Replayed deals (planner.hindcast): the statistics against references, the realised delivery
+against the raw history, and the command end to end on a small invented scenario."""
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy.stats import cramervonmises, norm
+
+from planner.hindcast import (cramer_von_mises, effective_count, reliability_for, replay_deals, shared_scale,
+                              summarise)
+
+
+def test_cramer_von_mises_matches_scipy():
+    """Against scipy.stats.cramervonmises (reference library). Catches a wrong plotting position."""
+    u = np.random.default_rng(0).beta(2, 3, 57)
+    assert cramer_von_mises(u) == pytest.approx(cramervonmises(u, "uniform").statistic, rel=1e-12)
+
+
+def test_effective_count_of_clustered_outcomes():
+    """Hand-worked extremes (Kish 1965): identical z within each of 4 clusters -> rho 1, 4 effective
+    outcomes; z independent of the cluster -> close to n. Catches a count that ignores shared shocks."""
+    cluster = np.repeat(np.arange(4), 25)
+    same = np.repeat([-1.0, 0.5, 2.0, -0.3], 25)
+    n_eff, rho = effective_count(same, cluster)
+    assert rho == pytest.approx(1.0)
+    assert n_eff == pytest.approx(4.0)
+    z = np.random.default_rng(1).normal(size=100)
+    n_eff, rho = effective_count(z, cluster)
+    assert n_eff > 60
+
+
+def test_shared_scale_recovers_a_doubled_shared_sd():
+    """Synthetic deals whose shared level error is twice the law's: the scale that makes the PIT
+    uniform is 2. Monte Carlo over 4,000 deals: the Cramer-von Mises minimiser's standard error is
+    about 0.03 here (from repeated draws), so |k - 2| < 0.15 fails with negligible probability.
+    Catches a scale applied to the wrong part of the variance or inverted."""
+    rng = np.random.default_rng(2)
+    n = 4000
+    q = rng.uniform(1, 4, n) ** 2
+    lin = rng.uniform(0.5, 1.5, n) ** 2
+    dev = rng.normal(size=n) * 2.0 * np.sqrt(q) + rng.normal(size=n) * np.sqrt(lin)
+    deals = pd.DataFrame({"delivered": 100 + dev, "expected": 100.0, "shared_var": q, "other_var": lin})
+    assert shared_scale(deals) == pytest.approx(2.0, abs=0.15)
+
+
+def test_reliability_table_counts_claims_and_outcomes():
+    """Hand-made deals: 10 claimed at 95% of which 9 met, 10 at 60% of which 6 met, one origin
+    each half. Catches bins that mix claims or count the wrong outcome."""
+    deals = pd.DataFrame({
+        "origin": ["a"] * 10 + ["b"] * 10,
+        "claimed": [0.95] * 10 + [0.6] * 10,
+        "met": [True] * 9 + [False] + [True] * 6 + [False] * 4,
+        "delivered": 1.0, "expected": 1.0, "sd": 1.0, "shared_var": 0.5, "other_var": 0.5,
+        "z": np.r_[np.linspace(-1, 1, 10), np.linspace(-1, 1, 10)]})
+    deals["pit"] = norm.cdf(deals["z"])
+    s = summarise(deals)
+    by = {(b["low"], b["high"]): b for b in s["reliability"]}
+    assert by[(0.9, 0.97)]["deals"] == 10 and by[(0.9, 0.97)]["realised"] == pytest.approx(0.9)
+    assert by[(0.5, 0.8)]["realised"] == pytest.approx(0.6)
+    assert by[(0.8, 0.9)]["deals"] == 0
+    assert reliability_for(s, 0.95)["mean_claimed"] == pytest.approx(0.95)
+    assert reliability_for(s, 0.85) is None
+
+
+@pytest.fixture(scope="module")
+def fitted_small(small_scenario, tmp_path_factory):
+    import shutil
+
+    from planner.forecast_job import ensure_forecast, load_model
+    from planner.scenario import load_scenario
+
+    dest = tmp_path_factory.mktemp("hind") / "small"
+    shutil.copytree(small_scenario, dest)
+    sc = load_scenario(dest)
+    ensure_forecast(sc)
+    return sc, load_model(sc)
+
+
+def test_heldout_table_actuals_match_the_raw_history(fitted_small):
+    """The realised level a replayed deal is delivered from is the unit-week's mean quarter-hour
+    rating in the daypart x universe, recomputed here from the history file with pandas alone.
+    Catches a week or daypart misalignment between the past forecast and what it is scored on."""
+    sc, model = fitted_small
+    t = model.heldout_table(0, sc.universes, units=sc.inventory)
+    assert len(t) and np.isfinite(t["actual_impressions"]).all()
+    hist = pd.read_parquet(sc.history_path)
+    hist["date"] = pd.to_datetime(hist["date"])
+    first = model.day0_ + pd.Timedelta(days=int(model.folds_[0] + model.gap_days_))
+    dp = {d.name: d for d in sc.dayparts}
+    for r in t.sample(6, random_state=0).itertuples():
+        d = dp[r.daypart]
+        start = first + pd.Timedelta(days=7 * (r.week - 1))
+        cells = []
+        for k in range(7):
+            day = start + pd.Timedelta(days=k)
+            if day.day_of_week not in d.days:
+                continue
+            for q in d.quarter_hours:
+                cells.append((day + pd.Timedelta(days=q // 96), q % 96))
+        key = pd.DataFrame(cells, columns=["date", "quarter_hour"])
+        sel = hist[(hist["zone"] == r.zone) & (hist["network"] == r.network) & (hist["demo"] == r.demo)]
+        got = sel.merge(key, on=["date", "quarter_hour"])["rating"].astype(float).mean()
+        assert r.actual_impressions == pytest.approx(got * r.universe, rel=1e-4)
+
+
+def test_replayed_deals_keep_their_claims_and_rules(fitted_small):
+    """Each replayed plan claims at least the confidence it was planned at (the chance constraint,
+    Charnes & Cooper 1959), its expected delivery clears the guarantee, and every origin replays.
+    Catches a replay that plans without the risk margin or skips origins."""
+    sc, model = fitted_small
+    res = replay_deals(sc, model, fractions=(0.5,), confidences=(0.9,), seed=0)
+    d = res.deals
+    assert d["origin"].nunique() == len(model.folds_)
+    conf = d[d["risk"] == "confidence 90%"]
+    assert len(conf) and (conf["claimed"] >= 0.9 - 1e-3).all()
+    assert (d["expected"] >= d["guarantee"]).all()
+    s = res.summary
+    assert s["deals"] == len(d) and sum(b["deals"] for b in s["reliability"]) == (d["claimed"] >= 0.5).sum()
+
+
+@pytest.mark.slow
+def test_hindcast_command_json_and_apply(fitted_small):
+    """`pledge forecast hindcast --apply --json` writes hindcast.json and widens only the shared
+    level sds of the cached table by the applied scale (the airing sd and means unchanged)."""
+    from typer.testing import CliRunner
+
+    from planner.cli import app
+    from planner.forecast_job import load_forecast
+
+    sc, _ = fitted_small
+    before = load_forecast(sc)
+    r = CliRunner().invoke(app, ["forecast", "hindcast", str(sc.path), "--apply", "--json"])
+    assert r.exit_code == 0, r.output
+    out = json.loads(r.stdout)
+    after = load_forecast(sc)
+    k = out["applied_scale"]
+    assert k >= 1.0
+    np.testing.assert_allclose(after["level_sd_network"], before["level_sd_network"] * k, rtol=1e-9)
+    np.testing.assert_allclose(after["level_sd_week"], before["level_sd_week"], rtol=1e-12)
+    np.testing.assert_allclose(after["mean_impressions"], before["mean_impressions"], rtol=1e-12)
+    assert (sc.path / "forecast" / "hindcast.json").is_file()
