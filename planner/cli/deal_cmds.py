@@ -59,6 +59,20 @@ def _cautions(r) -> None:
         out_console.print(c, style="dim", highlight=False)
 
 
+def _hindcast_claim(scn, chance) -> dict | None:
+    """What `pledge forecast hindcast` found on this history for claims like `chance`, or None."""
+    from planner.hindcast import cached_hindcast, reliability_for
+
+    return reliability_for(cached_hindcast(scn), chance) if chance is not None else None
+
+
+def _hindcast_text(b: dict | None) -> str:
+    if b is None:
+        return "no hindcast yet (pledge forecast hindcast)"
+    return (f"{_pct(b['realised'])} of {b['deals']} replays at {100 * b['low']:.0f}-{_pct(b['high'], 0)} "
+            f"(+-{100 * 2 * b['se']:.0f} pts)")
+
+
 def _kv_table(rows) -> Table:
     t = Table(show_header=False, box=None, pad_edge=False)
     t.add_column("", style="bold")
@@ -90,8 +104,9 @@ def check_cmd(
         r = check_deal(scn, deal, solver=solver, target_margin=target_margin, frontier=frontier, book=book,
                       time_limit=time_limit)
     _fit_note(r)
+    claim = _hindcast_claim(scn, r.probability_of_delivery if r.deliverable else None)
     if as_json:
-        print_json(r.to_json())
+        print_json({**r.to_json(), "hindcast_for_claim": claim})
         return
     cur = r.currency
     colour = "green" if r.deliverable else "red"
@@ -102,6 +117,7 @@ def check_cmd(
         rows += [
             ("expected delivery", f"{_num(r.expected_impressions)} (sd {_num(r.sd_impressions)})"),
             ("chance of delivery", _pct(r.probability_of_delivery)),
+            ("  claims like it on this history", _hindcast_text(claim)),
             ("  if errors were independent", f"{_pct(r.probability_if_independent)} (overstated)"),
             ("cost", _money(r.cost, cur)),
             ("revenue", f"{_money(r.revenue, cur)} at {r.price_cpm:,.2f} CPM"),
@@ -178,6 +194,7 @@ def plan_cmd(
         r = plan_deal(scn, deal, solver=solver, book=book, time_limit=time_limit)
     _fit_note(r)
     files = write_plan_files(r.spots, out, split_by) if r.deliverable else []
+    claim = _hindcast_claim(scn, r.totals.get("probability_of_delivery") if r.deliverable else None)
     if as_json:
         print_json({"deal": r.deal, "deliverable": r.deliverable, "verdict": r.verdict, "reason": r.reason,
                     "currency": r.currency, "guarantee": r.guarantee, "risk_rule": r.risk_rule,
@@ -185,7 +202,7 @@ def plan_cmd(
                     "totals": r.totals, "pacing": r.pacing.to_dict(orient="records"),
                     "files": [str(p) for p in files], "solver": r.solver, "gap": r.gap, "lp_bound": r.lp_bound,
                     "cuts": r.cuts, "binding": r.binding, "fitted_forecast_first": r.fitted_forecast_first,
-                    "cautions": r.cautions})
+                    "cautions": r.cautions, "hindcast_for_claim": claim})
         return
     cur = r.currency
     if not r.deliverable:
@@ -202,6 +219,7 @@ def plan_cmd(
         ("guarantee", _num(t["guarantee"])),
         ("expected delivery", f"{_num(t['expected_impressions'])} (sd {_num(t['sd_impressions'])})"),
         ("chance of delivery", _pct(t["probability_of_delivery"])),
+        ("  claims like it on this history", _hindcast_text(claim)),
         ("margin", f"{_money(t['margin'], cur)} ({_pct(t['margin_pct'])})"),
         ("risk margin", _risk(r)),
         ("solver", f"{r.solver}, gap {_pct(r.gap, 2)}"),

@@ -72,13 +72,14 @@ def fit_cmd(
     caution = shared_error_caution(meta, scenario)
     out = {"scenario": scn.name, "path": str(res.path), "rows": meta["rows"], "seed": seed,
            "history": meta["history"], "lead_gap_days": fit["lead_gap_days"], "folds": fit["folds"],
-           "level_error": fit["level_error"], "calibration": fit["calibration"],
+           "level_error": fit["level_error"], "calibration": fit["calibration"], "candidates": fit.get("candidates"),
            "seconds": meta["seconds"], "shared_error_caution": caution,
            "caution": CAUTION}
     if json_out:
         print_json(out)
         return
     le = fit["level_error"]
+    _print_candidates(fit.get("candidates"))
     out_console.print(f"forecast written: {res.path} ({meta['rows']:,} unit-week rows)")
     out_console.print(f"history {meta['history']['first_day']} .. {meta['history']['last_day']}, "
                       f"lead gap {fit['lead_gap_days']} days, {fit['folds']} rolling-origin refits, "
@@ -103,6 +104,22 @@ def fit_cmd(
         if caution:
             out_console.print(f"[yellow]caution: {caution}[/yellow]")
     out_console.print(CAUTION)
+
+
+def _print_candidates(cands: dict | None) -> None:
+    """Each candidate's weight and held-out CRPS by daypart, and the combination's CRPS."""
+    if not cands:
+        return
+    names = cands["candidates"]
+    out_console.print("candidate forecasts by daypart: weight in the combination (held-out CRPS, impressions "
+                      "per spot, lower is better)")
+    head = ["daypart"] + [n.replace("_", " ") for n in names] + ["combined"]
+    rows = []
+    for dp, w in cands["weights_by_daypart"].items():
+        sc = cands["heldout_crps_by_daypart"].get(dp, {})
+        crps = lambda n: f" ({sc[n]:,.0f})" if n in sc else " (-)"  # noqa: E731
+        rows.append([dp] + [f"{w[n]:.2f}{crps(n)}" for n in names] + [f"({sc['combined']:,.0f})" if sc else "-"])
+    _print_aligned(head, rows)
 
 
 @forecast_app.command("backtest")
