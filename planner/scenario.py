@@ -8,8 +8,10 @@ not counted) or key, and what is wrong; several problems are collected where tha
 
 Addition to the data contract: `scenario.toml` may carry a `[history_generator]` table
 (`seed`, `start`, `end`, optional `short_history`, ...). When `history.parquet` and `history.csv`
-are both missing and that table is present, the loader generates `history.parquet` with
-`scenarios.generate` on first use and caches it in the folder.
+are both missing and that table is present, the loader generates `history.parquet` on first use
+and caches it in the folder. Its optional `family` names the generator: "profile" (the default,
+`scenarios.generate`) or "drift" (`scenarios.drift`, with its knobs); dispatch in
+`scenarios.families`.
 
 Addition to the data contract: the history may instead be a folder `history/` of Parquet parts
 (`history/*.parquet`, searched recursively), each part holding all the history columns, for a
