@@ -86,6 +86,8 @@ DRIFT_GENERATOR_RULES: dict[str, tuple[str, Any]] = {
 }
 #: the keys of a [history_generator] table of the drift family (scenarios.drift)
 DRIFT_GENERATOR_KEYS = _GENERATOR_COMMON + tuple(DRIFT_GENERATOR_RULES)
+#: scenarios.drift.DriftSpec.launch_months when the table does not set it
+DRIFT_DEFAULT_LAUNCH_MONTHS = 9
 _MAX_LISTED = 3
 
 
@@ -789,7 +791,7 @@ def _check_drift_calendar(g: dict, first_week: date, networks: Sequence[str], pr
     if "launch_network" in g and launch not in networks:
         problems.add(f"{f}: launch_network {launch!r} is not a network in networks.csv")
         return
-    months = g.get("launch_months", 9)  # scenarios.drift.DriftSpec.launch_months
+    months = g.get("launch_months", DRIFT_DEFAULT_LAUNCH_MONTHS)
     if months:
         day = (pd.Timestamp(first_week) - pd.DateOffset(months=int(months))).date()
         if day > g["end"]:

@@ -4,8 +4,8 @@ The history generators (either family, `scenarios.families.simulate_scenario_tru
 past the end of the history, so the plan weeks have a "true" audience. `posted_actuals` airs a
 buy plan against it: each bought spot is preempted with the unit's preemption chance, and an
 aired spot lands on a random day of the daypart in its week and a random quarter-hour of the
-daypart, delivering that quarter-hour's simulated rating x universe. The result has the posted-actuals layout of the data contract, for mid-flight demos and
-tests. Everything is invented.
+daypart, delivering that quarter-hour's simulated rating x universe. The result has the
+posted-actuals layout of the data contract, for mid-flight demos and tests. Everything is invented.
 """
 from __future__ import annotations
 

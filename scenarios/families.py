@@ -13,9 +13,11 @@ from pathlib import Path
 
 import numpy as np
 
+from planner.scenario import GENERATOR_FAMILIES
 from scenarios import drift, generate
 
-FAMILIES = ("profile", "drift")
+#: the history families a [history_generator] table may name (the loader's list)
+FAMILIES = GENERATOR_FAMILIES
 
 
 def family_of(scenario) -> str:

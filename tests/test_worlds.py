@@ -22,7 +22,8 @@ from scipy import stats
 
 from planner.cli import main
 from planner.errors import ScenarioError
-from planner.scenario import DRIFT_GENERATOR_RULES, load_scenario, validate_history
+from planner.scenario import (DRIFT_DEFAULT_LAUNCH_MONTHS, DRIFT_GENERATOR_RULES, load_scenario,
+                              validate_history)
 from scenarios.drift import (DRIFT_GENRES, DRIFT_KNOBS, DriftSim, DriftSpec, main_peak_hour, simulate_drift,
                              write_drift_history)
 from scenarios.worlds import FAMILIES, PLAN_START, make_world, world_truth_levels
@@ -425,7 +426,10 @@ def test_posted_actuals_on_a_drift_world(drift_world):
 # ----------------------------------------------------------------------------- scenario.toml keys
 
 def test_drift_knobs_are_the_loaders_keys():
+    """The loader validates exactly the DriftSpec knobs, and assumes its default launch."""
     assert set(DRIFT_KNOBS) == set(DRIFT_GENERATOR_RULES)
+    launch = {f.name: f.default for f in dataclasses.fields(DriftSpec)}["launch_months"]
+    assert launch == DRIFT_DEFAULT_LAUNCH_MONTHS
 
 
 @pytest.mark.parametrize("edit, message", [
