@@ -8,8 +8,10 @@ not counted) or key, and what is wrong; several problems are collected where tha
 
 Addition to the data contract: `scenario.toml` may carry a `[history_generator]` table
 (`seed`, `start`, `end`, optional `short_history`, ...). When `history.parquet` and `history.csv`
-are both missing and that table is present, the loader generates `history.parquet` with
-`scenarios.generate` on first use and caches it in the folder.
+are both missing and that table is present, the loader generates `history.parquet` on first use
+and caches it in the folder. Its optional `family` names the generator: "profile" (the default,
+`scenarios.generate`) or "drift" (`scenarios.drift`, with its knobs); dispatch in
+`scenarios.families`.
 
 Addition to the data contract: the history may instead be a folder `history/` of Parquet parts
 (`history/*.parquet`, searched recursively), each part holding all the history columns, for a
@@ -44,6 +46,48 @@ DEAL_KEYS = ("name", "advertiser", "demo", "impressions", "first_week", "last_we
 MIX_KEYS = ("max_network_share", "daypart_min_share", "daypart_max_share", "exclude_networks",
             "exclude_zones", "weekly_tolerance", "max_spots_per_unit")
 HISTORY_COLUMNS = ("zone", "network", "demo", "date", "quarter_hour", "rating")
+#: families of invented history a [history_generator] table may name (`family`; absent: "profile")
+GENERATOR_FAMILIES = ("profile", "drift")
+_GENERATOR_COMMON = ("family", "seed", "start", "end")
+#: the keys of a [history_generator] table of the profile family (scenarios.generate)
+PROFILE_GENERATOR_KEYS = _GENERATOR_COMMON + (
+    "short_history", "short_history_days", "horizon_days", "panel_fraction", "missing_qh_rate",
+    "missing_days_per_zone", "missing_days_per_series", "network_peak")
+
+
+def _num_in(lo: float, hi: float, *, lo_open: bool = False, hi_open: bool = False):
+    def ok(v: Any) -> bool:
+        return _is_num(v) and (lo < v if lo_open else lo <= v) and (v < hi if hi_open else v <= hi)
+    return ok
+
+
+#: the knobs of the drift family (scenarios.drift.DriftSpec fields): key -> (what it must be, check)
+DRIFT_GENERATOR_RULES: dict[str, tuple[str, Any]] = {
+    "network_shock_rho": ("a number with -1 < rho < 1", _num_in(-1, 1, lo_open=True, hi_open=True)),
+    "network_shock_sd": ("a number >= 0 (log scale)", _num_in(0, 5)),
+    "zone_network_shock_rho": ("a number with -1 < rho < 1", _num_in(-1, 1, lo_open=True, hi_open=True)),
+    "zone_network_shock_sd": ("a number >= 0 (log scale)", _num_in(0, 5)),
+    "season_amplitude": ("a number >= 0 (log scale)", _num_in(0, 5)),
+    "erosion_mean": ("a yearly rate with -0.5 <= rate <= 0.5 (fraction)", _num_in(-0.5, 0.5)),
+    "erosion_sd": ("a number >= 0 (fraction per year)", _num_in(0, 1)),
+    "launch_network": ("the name of a network in networks.csv", lambda v: isinstance(v, str)),
+    "launch_months": ("a whole number of months >= 0 (0: no launch)", lambda v: _is_int(v) and v >= 0),
+    "floor": ("a rating fraction with 0 <= floor < 1", _num_in(0, 1, hi_open=True)),
+    "missing_day_share": ("a share with 0 <= share < 1", _num_in(0, 1, hi_open=True)),
+    "missing_qh_share": ("a share with 0 <= share < 1", _num_in(0, 1, hi_open=True)),
+    "peak_jitter_hours": ("a number of hours >= 0", _num_in(0, 12)),
+    "network_level_sd": ("a number >= 0 (log scale)", _num_in(0, 5)),
+    "zone_level_sd": ("a number >= 0 (log scale)", _num_in(0, 5)),
+    "zone_network_level_sd": ("a number >= 0 (log scale)", _num_in(0, 5)),
+    "demo_ratio_sd": ("a number >= 0 (log scale)", _num_in(0, 5)),
+    "day_noise_sd": ("a number >= 0 (log scale)", _num_in(0, 5)),
+    "airing_noise_sd": ("a number >= 0 (log scale)", _num_in(0, 5)),
+    "demo_noise_sd": ("a number >= 0 (log scale)", _num_in(0, 5)),
+}
+#: the keys of a [history_generator] table of the drift family (scenarios.drift)
+DRIFT_GENERATOR_KEYS = _GENERATOR_COMMON + tuple(DRIFT_GENERATOR_RULES)
+#: scenarios.drift.DriftSpec.launch_months when the table does not set it
+DRIFT_DEFAULT_LAUNCH_MONTHS = 9
 _MAX_LISTED = 3
 
 
@@ -407,6 +451,15 @@ def _parse_generator(raw: Any, problems: _Problems) -> dict | None:
         problems.add(f"{f}: must be a table")
         return None
     g = dict(raw)
+    family = g.get("family", "profile")
+    if family not in GENERATOR_FAMILIES:
+        problems.add(f"{f}: family must be one of {', '.join(GENERATOR_FAMILIES)}, got {family!r}")
+        return None
+    _unknown_keys(f, g, DRIFT_GENERATOR_KEYS if family == "drift" else PROFILE_GENERATOR_KEYS, problems)
+    if family == "drift":
+        for k, (what, ok) in DRIFT_GENERATOR_RULES.items():
+            if k in g and not ok(g[k]):
+                problems.add(f"{f}: {k} must be {what}, got {g[k]!r}")
     if not _is_int(g.get("seed")):
         problems.add(f"{f}: seed must be an integer, got {g.get('seed')!r}")
     for k in ("start", "end"):
@@ -700,6 +753,8 @@ def load_scenario(path: str | Path, *, generate: bool = True, allow_empty_invent
             if z not in zone_names or n not in network_names:
                 problems.add(f"scenario.toml [history_generator]: short_history [{z!r}, {n!r}] names an unknown "
                              "zone or network")
+        if generator.get("family") == "drift":
+            _check_drift_calendar(generator, first_week, network_names, problems)
         problems.raise_if_any()
     hp, hc, hd = folder / "history.parquet", folder / "history.csv", folder / "history"
     history_path = hp if hp.is_file() else (hc if hc.is_file() else (hd if _history_exists(hd) else hp))
@@ -715,27 +770,48 @@ def load_scenario(path: str | Path, *, generate: bool = True, allow_empty_invent
                                 "[history_generator] table to make one)")
         if generate:
             from planner.cli.common import info
-            from scenarios.generate import spec_from_scenario, write_spec
+            from scenarios.families import write_scenario_history
 
             info(f"{folder.name}: generating the invented history into history.parquet (first use, seconds) ...")
-            write_spec(spec_from_scenario(scenario), hp)
+            write_scenario_history(scenario, hp)
     if _history_exists(history_path):
         _check_history_columns(history_path)
     return scenario
+
+
+def _check_drift_calendar(g: dict, first_week: date, networks: Sequence[str], problems: _Problems) -> None:
+    """The drift family simulates the plan weeks after the history: `end` before `first_week`, and
+    the launched network (`launch_network`, default the last network) launched before `end`."""
+    f = "scenario.toml [history_generator]"
+    if g["end"] >= first_week:
+        problems.add(f"{f}: end {g['end']} must be before first_week {first_week} (the drift family simulates "
+                     "the plan weeks after the history)")
+        return
+    launch = g.get("launch_network", networks[-1])
+    if "launch_network" in g and launch not in networks:
+        problems.add(f"{f}: launch_network {launch!r} is not a network in networks.csv")
+        return
+    months = g.get("launch_months", DRIFT_DEFAULT_LAUNCH_MONTHS)
+    if months:
+        day = (pd.Timestamp(first_week) - pd.DateOffset(months=int(months))).date()
+        if day > g["end"]:
+            problems.add(f"{f}: launch_months {months} puts the launch of {launch} on {day}, after the history's "
+                         f"end {g['end']} (the network would have no history)")
 
 
 def _stale(path: Path, scenario: Scenario) -> bool:
     """True when `path` was written by the generator from settings other than the scenario's."""
     import pyarrow.parquet as pq
 
-    from scenarios.generate import METADATA_KEY, spec_digest, spec_from_scenario
+    from scenarios.families import history_digest
+    from scenarios.generate import METADATA_KEY
 
     try:
         meta = pq.read_schema(path).metadata or {}
     except Exception:  # noqa: BLE001 - unreadable: the column check reports it
         return False
     made = meta.get(METADATA_KEY)
-    return made is not None and made.decode() != spec_digest(spec_from_scenario(scenario))
+    return made is not None and made.decode() != history_digest(scenario)
 
 
 def _history_parts(path: Path) -> list[Path]:

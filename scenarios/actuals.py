@@ -1,11 +1,11 @@
 """Invented posted actuals: what bought spots delivered in the generator's simulated future.
 
-The history generator simulates past the end of the history (`horizon_days`), so the plan weeks
-have a "true" audience. `posted_actuals` airs a buy plan against it: each bought spot is preempted
-with the unit's preemption chance, and an aired spot lands on a random day of the daypart in its
-week and a random quarter-hour of the daypart, delivering that quarter-hour's simulated rating x
-universe. The result has the posted-actuals layout of the data contract, for mid-flight demos and
-tests. Everything is invented.
+The history generators (either family, `scenarios.families.simulate_scenario_truth`) simulate
+past the end of the history, so the plan weeks have a "true" audience. `posted_actuals` airs a
+buy plan against it: each bought spot is preempted with the unit's preemption chance, and an
+aired spot lands on a random day of the daypart in its week and a random quarter-hour of the
+daypart, delivering that quarter-hour's simulated rating x universe. The result has the
+posted-actuals layout of the data contract, for mid-flight demos and tests. Everything is invented.
 """
 from __future__ import annotations
 
@@ -14,7 +14,8 @@ from typing import Iterable
 import numpy as np
 import pandas as pd
 
-from scenarios.generate import QH, _Sim, spec_from_scenario
+from scenarios.families import simulate_scenario_truth
+from scenarios.generate import QH
 
 ACTUALS_COLUMNS = ["zone", "network", "daypart", "week", "spots_aired", "impressions"]
 
@@ -35,7 +36,7 @@ def posted_actuals(scenario, spots: pd.DataFrame, demo: str, *, weeks: Iterable[
     """
     if scenario.history_generator is None:
         raise ValueError("posted_actuals needs a scenario with a [history_generator] table")
-    spec = spec_from_scenario(scenario)
+    sim = simulate_scenario_truth(scenario)
     weeks = sorted(set(int(w) for w in weeks))
     plan = spots[spots["week"].isin(weeks) & (spots["spots"] > 0)].reset_index(drop=True)
     if plan.empty:
@@ -48,20 +49,19 @@ def posted_actuals(scenario, spots: pd.DataFrame, demo: str, *, weeks: Iterable[
     aired = rng.binomial(plan["spots"].to_numpy().astype(np.int64), 1.0 - plan["preempt_rate"].to_numpy())
     plan["spots_aired"] = aired
 
-    start = np.datetime64(spec.start, "D")
-    di = spec.demos.index(demo)
+    start = np.datetime64(sim.start, "D")
+    di = sim.demos.index(demo)
     uni = scenario.universes.set_index(["zone", "demo"])["universe"]
     total = np.zeros(len(plan))
-    sim = _Sim(spec)
     for zone, rows in plan.groupby("zone").groups.items():
         rows = np.asarray(rows)
-        flat = sim.zone(spec.zones.index(zone))[:, di].reshape(len(spec.networks), -1)  # (networks, days*96)
+        flat = sim.zone(sim.zones.index(zone))[:, di].reshape(len(sim.networks), -1)  # (networks, days*96)
         r = plan.loc[rows]
         n_air = r["spots_aired"].to_numpy()
         rep = np.repeat(np.arange(len(r)), n_air)  # one entry per aired spot
         if rep.size == 0:
             continue
-        net = r["network"].map({n: i for i, n in enumerate(spec.networks)}).to_numpy()[rep]
+        net = r["network"].map({n: i for i, n in enumerate(sim.networks)}).to_numpy()[rep]
         idx = np.empty(rep.size, dtype=np.int64)
         # Draw the airing slot per spot, daypart by daypart (days and quarter-hours differ).
         for dp in scenario.dayparts:
@@ -97,29 +97,28 @@ def true_unit_week_levels(scenario, demos: Iterable[str] | None = None) -> pd.Da
 
     if scenario.history_generator is None:
         raise ValueError("true_unit_week_levels needs a scenario with a [history_generator] table")
-    spec = spec_from_scenario(scenario)
-    demos = list(demos) if demos is not None else list(spec.demos)
+    sim = simulate_scenario_truth(scenario)
+    demos = list(demos) if demos is not None else list(sim.demos)
     specs = as_specs(scenario.dayparts)
-    start = np.datetime64(spec.start, "D")
+    start = np.datetime64(sim.start, "D")
     p0 = int((np.datetime64(scenario.week_start(1), "D") - start).astype(np.int64))
     W = int(scenario.weeks)
     span = 7 * W + 1  # one day more: a daypart past midnight ends on the next day
-    sim = _Sim(spec)
     uni = scenario.universes.set_index(["zone", "demo"])["universe"]
     names = np.array([d.name for d in specs])
     wd = pd.Timestamp(scenario.week_start(1)).day_of_week  # weekday of the slice's first day
     frames = []
-    for zi, zone in enumerate(spec.zones):
+    for zi, zone in enumerate(sim.zones):
         cube = sim.zone(zi)  # (networks, demos, days, 96)
         if p0 + span > cube.shape[2]:
             raise ValueError("plan weeks run past the simulated horizon: raise horizon_days")
         for demo in demos:
-            di = spec.demos.index(demo)
+            di = sim.demos.index(demo)
             vals = cube[:, di, p0:p0 + span]  # (networks, span, 96)
             mean, _ = daypart_week_means(vals, wd, 7 * np.arange(W), specs)  # (networks, P, W)
-            n, p, w = np.meshgrid(np.arange(len(spec.networks)), np.arange(len(specs)), np.arange(W), indexing="ij")
+            n, p, w = np.meshgrid(np.arange(len(sim.networks)), np.arange(len(specs)), np.arange(W), indexing="ij")
             frames.append(pd.DataFrame({
-                "zone": zone, "network": np.asarray(spec.networks)[n.ravel()], "daypart": names[p.ravel()],
+                "zone": zone, "network": np.asarray(sim.networks)[n.ravel()], "daypart": names[p.ravel()],
                 "week": w.ravel() + 1, "demo": demo,
                 "true_impressions": mean.ravel().astype(float) * float(uni[(zone, demo)])}))
     return pd.concat(frames, ignore_index=True)
@@ -150,8 +149,9 @@ def true_network_shock_week_sd(scenario, first_days: Iterable, weeks: int = 13) 
     """How turbulent the generator's network shocks were in each window of `weeks` weeks.
 
     Per window: the sd, over networks and weeks, of each network's weekly mean shock (log
-    multiplier, the drift and the episodes shared by a network in every zone; seasonality, trend
-    and day-of-week left out) around its mean over the window. It is the truth behind the
+    multiplier shared by a network in every zone: the profile family's drift and episodes, the
+    drift family's weekly AR(1) shock; seasonality, trend and day-of-week left out) around its
+    mean over the window. It is the truth behind the
     network-week factor a backtest block measures (`forecasting.backtest.factor_sd_measured_and_law`),
     so a block can be told calm or turbulent against the windows its error law was estimated on.
     Invented data only.
@@ -168,13 +168,13 @@ def true_network_shock_week_sd(scenario, first_days: Iterable, weeks: int = 13) 
     """
     if scenario.history_generator is None:
         raise ValueError("true_network_shock_week_sd needs a scenario with a [history_generator] table")
-    spec = spec_from_scenario(scenario)
-    sim = _Sim(spec)
-    start = np.datetime64(spec.start, "D")
+    sim = simulate_scenario_truth(scenario)
+    shock = sim.network_shock()
+    start = np.datetime64(sim.start, "D")
     out = []
     for first in first_days:
         i0 = int((np.datetime64(pd.Timestamp(first).date(), "D") - start).astype(np.int64))
-        x = sim.net_shock[:, i0:i0 + 7 * int(weeks)]
+        x = shock[:, i0:i0 + 7 * int(weeks)]
         if i0 < 0 or x.shape[1] < 7 * int(weeks):
             raise ValueError(f"window from {first} is outside the simulated span")
         weekly = x.reshape(x.shape[0], int(weeks), 7).mean(axis=2)

@@ -19,7 +19,8 @@ import numpy as np
 import pandas as pd
 from scipy.optimize import linprog
 
-from scenarios.generate import QH, simulate_truth, spec_from_scenario
+from scenarios.families import simulate_scenario_truth
+from scenarios.generate import QH
 
 # Seven dayparts, every day of the week; late fringe wraps past midnight.
 DAYPARTS = [
@@ -72,34 +73,47 @@ class DealSpec:
     mix: dict = field(default_factory=dict)
 
 
-def _toml_value(v) -> str:
+def toml_value(v) -> str:
+    """A Python value as TOML text (strings, numbers, booleans, dates, lists, inline tables); floats
+    of 0.001 and above rounded to 6 decimals."""
     if isinstance(v, bool):
         return "true" if v else "false"
     if isinstance(v, str):
         return f'"{v}"'
     if isinstance(v, dict):
-        return "{ " + ", ".join(f"{k} = {_toml_value(x)}" for k, x in v.items()) + " }"
+        return "{ " + ", ".join(f"{k} = {toml_value(x)}" for k, x in v.items()) + " }"
     if isinstance(v, (list, tuple)):
-        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+        return "[" + ", ".join(toml_value(x) for x in v) + "]"
     if isinstance(v, float):
-        return repr(round(v, 6))
+        return repr(round(v, 6)) if abs(v) >= 1e-3 else repr(v)
+    if isinstance(v, date):
+        return v.isoformat()
     return str(v)
 
 
-def scenario_toml(*, name: str, first_week: date, weeks: int, seed: int, start: date, end: date,
-                  short_history: list[tuple[str, str]], short_history_days: int, horizon_days: int,
-                  preempt_rate: float = 0.03, comment: str = "") -> str:
-    """Text of a scenario.toml with the seven dayparts and a [history_generator] table."""
+def scenario_header(*, name: str, first_week: date, weeks: int, preempt_rate: float = 0.03,
+                    comment: str = "") -> list[str]:
+    """Lines of a scenario.toml before its [history_generator] table: calendar, demos hh and
+    a25-54, the seven dayparts (every day of the week)."""
     lines = [f"# {comment}" if comment else "# Invented scenario: every name and number is made up.",
              f'name = "{name}"', f"first_week = {first_week.isoformat()}", f"weeks = {weeks}",
              'currency = "USD"', f"preempt_rate = {preempt_rate}", 'demos = ["hh", "a25-54"]', ""]
     for dp, s, e in DAYPARTS:
         lines += ["[[daypart]]", f'name = "{dp}"', f'start = "{s}"', f'end = "{e}"',
                   'days = ["mon", "tue", "wed", "thu", "fri", "sat", "sun"]', ""]
+    return lines
+
+
+def scenario_toml(*, name: str, first_week: date, weeks: int, seed: int, start: date, end: date,
+                  short_history: list[tuple[str, str]], short_history_days: int, horizon_days: int,
+                  preempt_rate: float = 0.03, comment: str = "") -> str:
+    """Text of a scenario.toml with the seven dayparts and a [history_generator] table (profile family)."""
+    lines = scenario_header(name=name, first_week=first_week, weeks=weeks, preempt_rate=preempt_rate,
+                            comment=comment)
     lines += ["# Addition to the data contract: how history.parquet is generated when it is missing",
               "# (scenarios.generate, seeded; the history is invented).",
               "[history_generator]", f"seed = {seed}", f"start = {start.isoformat()}", f"end = {end.isoformat()}",
-              f"short_history = {_toml_value([list(x) for x in short_history])}",
+              f"short_history = {toml_value([list(x) for x in short_history])}",
               f"short_history_days = {short_history_days}", f"horizon_days = {horizon_days}", ""]
     return "\n".join(lines)
 
@@ -107,14 +121,15 @@ def scenario_toml(*, name: str, first_week: date, weeks: int, seed: int, start: 
 def unit_truth(scenario) -> pd.DataFrame:
     """Mean measured rating per zone x network x daypart x week x demo over the plan weeks.
 
-    From the generator's own simulation past the end of the history (what the future brings).
+    From the generator's own simulation past the end of the history (what the future brings), of
+    the scenario's history family (`scenarios.families.simulate_scenario_truth`).
     Columns zone, network, daypart, week, demo, rating (fraction), impressions (per spot).
     """
-    spec = spec_from_scenario(scenario)
-    dates, truth = simulate_truth(spec)
+    sim = simulate_scenario_truth(scenario)
+    truth = sim.ratings()
     nz, nn, nd, ndays, _ = truth.shape
     flat = truth.reshape(nz, nn, nd, ndays * QH)
-    start = np.datetime64(spec.start, "D")
+    start = np.datetime64(sim.start, "D")
     out = []
     for dp in scenario.dayparts:
         q = np.asarray(dp.quarter_hours)
@@ -130,8 +145,8 @@ def unit_truth(scenario) -> pd.DataFrame:
             mean = flat[..., idx].mean(axis=-1)  # (zones, networks, demos)
             zi, ni, ki = np.meshgrid(np.arange(nz), np.arange(nn), np.arange(nd), indexing="ij")
             out.append(pd.DataFrame({
-                "zone": np.asarray(spec.zones)[zi.ravel()], "network": np.asarray(spec.networks)[ni.ravel()],
-                "daypart": dp.name, "week": w, "demo": np.asarray(spec.demos)[ki.ravel()],
+                "zone": np.asarray(sim.zones)[zi.ravel()], "network": np.asarray(sim.networks)[ni.ravel()],
+                "daypart": dp.name, "week": w, "demo": np.asarray(sim.demos)[ki.ravel()],
                 "rating": mean.ravel().astype(float)}))
     df = pd.concat(out, ignore_index=True)
     uni = scenario.universes.rename(columns={"universe": "u"})
@@ -232,7 +247,7 @@ def deal_toml(spec: DealSpec, impressions: int, price_cpm: float, cap: float) ->
     else:
         lines.append("# no confidence or pad given: the default confidence (0.95) applies")
     if spec.mix:
-        lines += ["", "[mix]"] + [f"{k} = {_toml_value(v)}" for k, v in spec.mix.items()]
+        lines += ["", "[mix]"] + [f"{k} = {toml_value(v)}" for k, v in spec.mix.items()]
     return "\n".join(lines) + "\n"
 
 
@@ -282,7 +297,7 @@ def finish_scenario(dest: Path, deal_specs: list[DealSpec], *, seed: int, genera
     return sized
 
 
-_SMALL_MARKETS = {
+SMALL_MARKETS = {
     "pellham": [("pellham-upper", 700_000), ("pellham-lower", 240_000), ("pellham-mills", 150_000)],
     "wyncote": [("wyncote-east", 420_000), ("wyncote-west", 110_000), ("wyncote-glen", 90_000)],
 }
@@ -293,13 +308,13 @@ def write_scenario(dest, *, seed: int = 0, n_zones: int = 3, n_networks: int = 3
     """A complete small invented scenario folder (for tests); see `scenarios.generate.make_small_scenario`."""
     dest = Path(dest)
     dest.mkdir(parents=True, exist_ok=True)
-    zones = [z for zs in _SMALL_MARKETS.values() for z in zs]
+    zones = [z for zs in SMALL_MARKETS.values() for z in zs]
     if not 1 <= n_zones <= len(zones):
         raise ValueError(f"n_zones must be 1..{len(zones)}")
     # Alternate markets so two markets appear as soon as n_zones >= 2.
     order = [zones[i] for i in (0, 3, 1, 4, 2, 5)][:n_zones]
     markets: dict = {}
-    for m, zs in _SMALL_MARKETS.items():
+    for m, zs in SMALL_MARKETS.items():
         pick = [z for z in zs if z in order]
         if pick:
             markets[m] = pick
