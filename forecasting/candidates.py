@@ -121,7 +121,7 @@ class LevelRegression:
     Attributes
     ----------
     model_ : fitted `sklearn.linear_model.Ridge`; smear_ : retransformation factor (Duan 1983);
-    n_rows_ : training rows used (0 when there were too few: predictions are then the trailing level).
+    n_rows_ : training rows used (0 when there were too few: predictions are then NaN).
     """
 
     def __init__(self, alpha: float = 30.0, recent_weeks: int = 8, max_rows: int = 250_000, origin_step: int = 2,
@@ -230,8 +230,8 @@ class LevelRegression:
         logm = np.log(np.maximum(means, LOG_FLOOR))
         feats, l8 = self._features_at(logm, counts, means, n, gap_weeks, n_weeks, n)
         base = np.where(np.isfinite(l8), np.exp(l8), np.nan)[:, :, None]
-        if self.n_rows_ == 0:
-            return np.repeat(base, n_weeks, axis=2)
+        if self.n_rows_ == 0:  # too short a history to learn from: no forecast (weight 0 when stacked)
+            return np.full((S, P, n_weeks), np.nan)
         s, p, w = (a.ravel() for a in np.meshgrid(np.arange(S), np.arange(P), np.arange(n_weeks), indexing="ij"))
         pred = self.model_.predict(self._design(feats, s, p, w)).reshape(S, P, n_weeks)
         return base * np.exp(pred) * self.smear_

@@ -40,6 +40,7 @@ Progress = Callable[[str, float], None]
 #: the profile model's name among the candidates
 PROFILE = "profile"
 CANDIDATES = (PROFILE,) + SIMPLE_CANDIDATES
+YEAR_DAYS = 364
 Z90 = norm.ppf(0.90)  # 1.2816 (NIST/SEMATECH table: z(0.90) = 1.2816)
 
 
@@ -83,6 +84,26 @@ def fold_origins(n_days: int, gap: int, horizon: int, n_folds: int, min_train: i
     return [latest - k * step for k in range(n_folds) if latest - k * step >= min_train]
 
 
+def seasonal_origin(plan_start: int, gap: int, horizon: int, min_train: int, origins: Sequence[int],
+                    n_days: int) -> int | None:
+    """Origin of a refit whose held-out weeks are the plan weeks one year (364 days) earlier, at the
+    same lead, or None when the history cannot hold it (training shorter than `min_train`, held-out
+    weeks past the history) or an origin of `origins` already sits within 28 days of it."""
+    o = plan_start - YEAR_DAYS - gap
+    if o < min_train or o + gap + horizon > n_days or any(abs(o - x) < 28 for x in origins):
+        return None
+    return o
+
+
+def season_weight(origin: int, gap: int, horizon: int, plan_start: int, scale_days: float = 91.0) -> float:
+    """How much a refit's held-out weeks resemble the plan weeks in season: ``exp(-(d / 91)^2)``, d
+    the distance (days, on the 364-day circle) between the middles of the two windows; 1 for the
+    same weeks of another year, 0.37 a quarter apart, about 0 half a year apart."""
+    d = abs((origin + gap) - plan_start) % YEAR_DAYS
+    d = min(d, YEAR_DAYS - d)
+    return float(np.exp(-(d / scale_days) ** 2))
+
+
 class DaypartForecaster:
     """Probabilistic daypart forecasts for every series of a history cube.
 
@@ -96,6 +117,8 @@ class DaypartForecaster:
     min_cells : a held-out unit-week counts only with this share of its cells observed.
     recent_weeks : weeks before the origin whose residual feeds the level correction.
     model_params : keyword arguments of `ProfileForecaster`.
+    seasonal_fold : add a refit whose held-out weeks are the plan weeks a year earlier, when the
+        history holds it (`seasonal_origin`): the refit most like the plan weeks.
     random_state : seed of everything.
 
     Attributes
@@ -109,7 +132,7 @@ class DaypartForecaster:
     def __init__(self, n_folds: int = 3, truncate_share: float = 0.3,
                  truncate_weeks: Sequence[int] = (0, 4, 13, 26), airing_weeks: int = 52,
                  min_train_days: int = 182, min_cells: float = 0.5, recent_weeks: int = 8,
-                 model_params: dict | None = None, random_state: int = 0):
+                 model_params: dict | None = None, seasonal_fold: bool = True, random_state: int = 0):
         self.n_folds = n_folds
         self.truncate_share = truncate_share
         self.truncate_weeks = tuple(truncate_weeks)
@@ -118,6 +141,7 @@ class DaypartForecaster:
         self.min_cells = min_cells
         self.recent_weeks = recent_weeks
         self.model_params = model_params
+        self.seasonal_fold = seasonal_fold
         self.random_state = random_state
 
     # ------------------------------------------------------------------ helpers
@@ -197,7 +221,8 @@ class DaypartForecaster:
             s, p, w = np.nonzero(ok)
             rel = f.actual[s, p, w] / fc[s, p, w] - 1.0
             model_rows.append(pd.DataFrame({
-                "fold": j, "zone": info["zone"].to_numpy()[s], "network": info["network"].to_numpy()[s],
+                "fold": j, "season_weight": self.season_weights_[j],
+                "zone": info["zone"].to_numpy()[s], "network": info["network"].to_numpy()[s],
                 "genre": info["genre"].to_numpy()[s], "demo": info["demo"].to_numpy()[s],
                 "daypart": names[p], "week": w + 1, "rel_error": rel,
                 "truncated": f.truncated[s], "history_weeks": f.history_weeks[s],
@@ -227,11 +252,12 @@ class DaypartForecaster:
             s, p, w = np.nonzero(ok)
             u = self.universe_s_[s]
             valid = {c: np.where(cands[c][s, p, w] > 0, cands[c][s, p, w] * u, np.nan) for c in CANDIDATES}
-            frames.append(pd.DataFrame({"fold": j, "daypart": names[p], "actual": f.actual[s, p, w] * u, **valid}))
+            frames.append(pd.DataFrame({"fold": j, "season_weight": self.season_weights_[j], "daypart": names[p],
+                                        "actual": f.actual[s, p, w] * u, **valid}))
         rows = pd.concat(frames, ignore_index=True)
         if len(rows) < 50:
             raise ValueError("too few held-out unit-weeks to weigh the candidate forecasts")
-        comb = StackedCombiner(CANDIDATES, random_state=self.random_state).fit(rows)
+        comb = StackedCombiner(CANDIDATES, prior_weights={PROFILE: 1.0}, random_state=self.random_state).fit(rows)
         for f in folds:
             f.combined = comb.combine(f.all_candidates(), list(names))
         return comb
@@ -387,6 +413,10 @@ class DaypartForecaster:
         self.gap_days_ = max(p0 - T, 0)
         horizon = 7 * self.weeks_
         origins = fold_origins(T, self.gap_days_, horizon, self.n_folds, self.min_train_days)
+        extra = seasonal_origin(p0, self.gap_days_, horizon, self.min_train_days, origins, T) \
+            if self.seasonal_fold and origins else None
+        origins = origins + ([extra] if extra is not None else [])
+        self.season_weights_ = [season_weight(o, self.gap_days_, horizon, p0) for o in origins]
         if not origins:
             need = self.min_train_days + self.gap_days_ + horizon
             raise ValueError(f"history too short to estimate forecast uncertainty: {T} days, need at least "

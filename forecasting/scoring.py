@@ -229,3 +229,24 @@ def measured_factor_sds(rel_error, network, week, unit) -> dict:
         var_a = 0.0
     return {name: float(np.sqrt(max(v, 0.0))) for name, v in
             (("network", var_a), ("network_week", var_g), ("flight", var_b), ("week", var_c))}
+
+
+def pooled_level_ratio(actual, forecast, fold, weight=None, prior: float = 1.0) -> float:
+    """Level correction of a forecast from held-out refits: ``exp(sum_j s_j L_j / (sum_j s_j + prior))``
+    with ``L_j = log(sum actual / sum forecast)`` over refit j's unit-weeks (impression-weighted:
+    what a deal's total needs, and a few unit-weeks with huge ratios cannot set it) and s_j the
+    refit's weight (its resemblance to the plan weeks, 1 without `weight`); `prior` refits' worth
+    of pull toward no correction, so refits unlike the plan weeks (another season) barely move it.
+
+    Parameters
+    ----------
+    actual, forecast : (n,) impressions (or ratings) of held-out unit-weeks.
+    fold : (n,) refit of each; weight : (n,) the refit's weight (constant within a refit).
+    """
+    df = pd.DataFrame({"a": np.asarray(actual, float), "f": np.asarray(forecast, float), "fold": np.asarray(fold),
+                       "s": 1.0 if weight is None else np.asarray(weight, float)})
+    sums = df.groupby("fold").agg(a=("a", "sum"), f=("f", "sum"), s=("s", "first"))
+    sums = sums[(sums["a"] > 0) & (sums["f"] > 0)]
+    if sums.empty:
+        return 1.0
+    return float(np.exp(np.sum(sums["s"] * np.log(sums["a"] / sums["f"])) / (sums["s"].sum() + prior)))

@@ -1,8 +1,10 @@
 """Combining candidate forecasts by the held-out CRPS of their mixture (stacking).
 
 Each candidate k, per daypart, is first put on the level the held-out weeks showed, by an
-impression-weighted ratio (sum actual / sum forecast per refit, the refits' log ratios averaged,
-so no few unit-weeks with huge ratios set the level of every unit), and given its own spread (the
+impression-weighted ratio (sum actual / sum forecast per refit, the refits' log ratios averaged
+with weights for how much each refit's weeks resemble the plan weeks in season and shrunk toward
+no correction, so neither a few unit-weeks with huge ratios nor a refit of another season set
+the level of every unit: `forecasting.scoring.pooled_level_ratio`), and given its own spread (the
 root mean square of its relative held-out errors after that). Its predictive law of a unit-week
 is N(b_k m_k, (s_k b_k m_k)^2). The weights w (w_k >= 0, sum 1) minimise the mean CRPS of the
 mixture sum_k w_k N(...) over the held-out unit-weeks, in impressions (the deals' unit), per
@@ -10,7 +12,10 @@ daypart where it has enough rows (else all dayparts pooled). The CRPS of a mixtu
 w (CRPS is quadratic in the predictive CDF, the CDF linear in w), so the optimum is global and in
 sample never worse than the best single candidate (a vertex). The combined point forecast is the
 mixture's mean, ``sum_k w_k b_k m_k``; where a candidate has no forecast its weight is shared
-out among the others.
+out among the others. The CRPS rows count by their refit's resemblance to the plan weeks in
+season (plus a floor), and the fitted weights are pulled toward a prior (the pipeline's: the
+profile model alone, the one candidate that models the calendar) by one refit's worth, so when the
+held-out weeks say little about weeks like the plan weeks the incumbent keeps most of the weight.
 
 References
 ----------
@@ -29,6 +34,11 @@ import numpy as np
 import pandas as pd
 from scipy.optimize import minimize
 from scipy.stats import norm
+
+from .scoring import pooled_level_ratio
+
+#: season weight every held-out row keeps in the weights' CRPS (so refits of other seasons count a little)
+SEASON_FLOOR = 0.05
 
 
 def _abs_normal_mean(mu: np.ndarray, var: np.ndarray) -> np.ndarray:
@@ -61,16 +71,17 @@ def crps_normal_mixture(y, weights, mu, sigma) -> np.ndarray:
     return first - 0.5 * second
 
 
-def _simplex_weights(y: np.ndarray, mu: np.ndarray, sigma: np.ndarray) -> np.ndarray:
-    """Weights on the simplex minimising the mean mixture CRPS (SLSQP; convex problem)."""
+def _simplex_weights(y: np.ndarray, mu: np.ndarray, sigma: np.ndarray, row_weight=None) -> np.ndarray:
+    """Weights on the simplex minimising the (row-weighted) mean mixture CRPS (SLSQP; convex)."""
     K = mu.shape[1]
     if K == 1:
         return np.ones(1)
     scale = max(float(np.mean(np.abs(y))), 1e-300)
     yy, mm, ss = y / scale, mu / scale, sigma / scale
+    rw = np.ones(len(y)) if row_weight is None else np.asarray(row_weight, float)
 
     def loss(w):
-        return float(np.mean(crps_normal_mixture(yy, w, mm, ss)))
+        return float(np.average(crps_normal_mixture(yy, w, mm, ss), weights=rw))
 
     singles = [loss(np.eye(K)[k]) for k in range(K)]
     start = np.full(K, 1.0 / K)
@@ -90,6 +101,11 @@ class StackedCombiner:
     ----------
     candidates : names of the candidate columns, in order.
     min_rows : held-out unit-weeks a daypart needs for weights of its own (else the pooled ones).
+    ratio_prior : refits' worth of pull of each level ratio toward 1 (`forecasting.scoring.pooled_level_ratio`;
+        with a ``season_weight`` column, refits unlike the plan weeks in season count little), and of
+        the weights toward `prior_weights`.
+    prior_weights : {candidate: weight} the weights fall back on when the held-out weeks say little
+        about weeks like the plan weeks (None: no pull).
     max_rows : rows per daypart used for the weights (a seeded sample; the CRPS is an average).
     random_state : seed of that sample.
 
@@ -101,22 +117,14 @@ class StackedCombiner:
     scores_ : DataFrame (daypart x [candidates..., "combined"]) mean held-out CRPS (impressions).
     """
 
-    def __init__(self, candidates: Sequence[str], min_rows: int = 300, max_rows: int = 20_000, random_state: int = 0):
+    def __init__(self, candidates: Sequence[str], min_rows: int = 300, max_rows: int = 20_000, ratio_prior: float = 1.0,
+                 prior_weights: dict | None = None, random_state: int = 0):
         self.candidates = tuple(candidates)
+        self.ratio_prior = ratio_prior
+        self.prior_weights = prior_weights
         self.min_rows = min_rows
         self.max_rows = max_rows
         self.random_state = random_state
-
-    @staticmethod
-    def level_ratio(actual: np.ndarray, forecast: np.ndarray, fold: np.ndarray) -> float:
-        """exp(mean over refits of log(sum actual / sum forecast)) (impression-weighted, robust to
-        a few unit-weeks with huge ratios); 1 without data."""
-        df = pd.DataFrame({"a": actual, "f": forecast, "fold": fold})
-        sums = df.groupby("fold")[["a", "f"]].sum()
-        sums = sums[(sums["a"] > 0) & (sums["f"] > 0)]
-        if sums.empty:
-            return 1.0
-        return float(np.exp(np.mean(np.log(sums["a"] / sums["f"]))))
 
     def fit(self, rows: pd.DataFrame) -> "StackedCombiner":
         """Fit on held-out unit-weeks: columns ``fold, daypart, actual`` and one column per
@@ -132,7 +140,7 @@ class StackedCombiner:
             ratio[dp], spread[dp] = {}, {}
             for c in cands:  # each candidate's level and spread where it has a forecast
                 h = g[np.isfinite(g[c]) & (g[c] > 0)]
-                r = self.level_ratio(h["actual"].to_numpy(), h[c].to_numpy(), h["fold"].to_numpy())
+                r = pooled_level_ratio(h["actual"], h[c], h["fold"], h.get("season_weight"), self.ratio_prior)
                 rel = np.clip(h["actual"].to_numpy(float) / (h[c].to_numpy(float) * r) - 1.0, -1.0, 3.0)
                 ratio[dp][c] = r
                 spread[dp][c] = float(np.sqrt(np.mean(rel ** 2))) if len(rel) else 1.0
@@ -140,13 +148,25 @@ class StackedCombiner:
         self.spread_ = pd.DataFrame(spread).T[cands]
         parts = {dp: self._weight_rows(g, dp) for dp, g in rows.groupby("daypart", sort=True)}
         pooled = [np.concatenate(x) for x in zip(*parts.values())]
-        self.pooled_weights_ = self._full_weights(_simplex_weights(*pooled) if len(pooled[0]) else None)
-        weights = {dp: (self._full_weights(_simplex_weights(*p)).to_numpy() if len(p[0]) >= self.min_rows
-                        else self.pooled_weights_.to_numpy()) for dp, p in parts.items()}
+        self.pooled_weights_ = self._toward_prior(self._full_weights(_simplex_weights(*pooled) if len(pooled[0]) else None),
+                                                  rows)
+        weights = {dp: (self._toward_prior(self._full_weights(_simplex_weights(*p)), rows).to_numpy()
+                        if len(p[0]) >= self.min_rows else self.pooled_weights_.to_numpy()) for dp, p in parts.items()}
         self.weights_ = pd.DataFrame(weights, index=cands).T
-        self.scores_ = pd.DataFrame({dp: self._scores(*p, self.weights_.loc[dp, self.usable_].to_numpy(float))
+        self.scores_ = pd.DataFrame({dp: self._scores(*p[:3], self.weights_.loc[dp, self.usable_].to_numpy(float))
                                      for dp, p in parts.items() if len(p[0])}).T
         return self
+
+    def _toward_prior(self, w: pd.Series, rows: pd.DataFrame) -> pd.Series:
+        """``(S w + prior w0) / (S + prior)``: the fitted weights pulled toward `prior_weights` (w0)
+        by `ratio_prior` refits' worth, S the refits' summed season weights (how much of the held-out
+        evidence is about weeks like the plan weeks)."""
+        if self.prior_weights is None:
+            return w
+        S = float(rows.groupby("fold")["season_weight"].first().sum()) if "season_weight" in rows \
+            else float(rows["fold"].nunique())
+        w0 = pd.Series(self.prior_weights, dtype=float).reindex(w.index).fillna(0.0)
+        return (S * w + self.ratio_prior * w0) / (S + self.ratio_prior)
 
     def _weight_rows(self, g: pd.DataFrame, dp: str):
         """(y, mu, sd) of a daypart's rows where every usable candidate has a forecast (a seeded
@@ -156,7 +176,8 @@ class StackedCombiner:
         if len(g) > self.max_rows:
             g = g.iloc[np.sort(np.random.default_rng([self.random_state, 505]).choice(len(g), self.max_rows, replace=False))]
         mu = g[use].to_numpy(float) * self.ratio_.loc[dp, use].to_numpy(float)[None, :]
-        return g["actual"].to_numpy(float), mu, mu * self.spread_.loc[dp, use].to_numpy(float)[None, :]
+        sw = g["season_weight"].to_numpy(float) + SEASON_FLOOR if "season_weight" in g else np.ones(len(g))
+        return g["actual"].to_numpy(float), mu, mu * self.spread_.loc[dp, use].to_numpy(float)[None, :], sw
 
     def _full_weights(self, w_usable) -> pd.Series:
         """Weights over every candidate (0 for the unusable); equal weights when there was no row."""

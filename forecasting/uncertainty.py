@@ -41,6 +41,8 @@ import numpy as np
 import pandas as pd
 from scipy.stats import norm
 
+from .scoring import pooled_level_ratio
+
 FLIGHT_KEYS = ["fold", "zone", "network", "daypart", "demo"]
 #: the four relative-sd columns of `LevelErrorModel.predict` and the keys of the unit-weeks that
 #: share each factor within one refit (None: each unit-week alone)
@@ -83,6 +85,7 @@ class LevelErrorModel:
     Parameters
     ----------
     prior_flights : shrinkage weight (in flights) of a daypart x genre cell toward its daypart.
+    ratio_prior : refits' worth of pull of the mean correction toward none (see `_weighted_bias`).
 
     Attributes
     ----------
@@ -101,8 +104,9 @@ class LevelErrorModel:
     scale_ : quantile scale of every level sd; n_rows_ : number of held-out unit-weeks used.
     """
 
-    def __init__(self, prior_flights: float = 30.0):
+    def __init__(self, prior_flights: float = 30.0, ratio_prior: float = 1.0):
         self.prior_flights = prior_flights
+        self.ratio_prior = ratio_prior
 
     def fit(self, errors: pd.DataFrame) -> "LevelErrorModel":
         """Fit on held-out errors.
@@ -148,22 +152,23 @@ class LevelErrorModel:
         self.widened_common_var_ = 0.0
         return self
 
-    @staticmethod
-    def _weighted_bias(full: pd.DataFrame) -> dict:
-        """Mean correction by daypart: ``exp(mean over refits of log(sum actual / sum forecast)) - 1``
-        (forecast impressions ``10**size`` times the recent carry-over as weights; without ``size``
-        every unit-week weighs the same). Impression-weighted, as a deal's total is, and one refit's
-        few unit-weeks with huge ratios cannot set the level of every unit."""
+    def _weighted_bias(self, full: pd.DataFrame) -> dict:
+        """Mean correction by daypart, `forecasting.scoring.pooled_level_ratio` - 1 of the actual over
+        the forecast with its recent carry-over (forecast impressions ``10**size``; without ``size``
+        every unit-week weighs the same), refits weighted by ``season_weight`` when given.
+        Impression-weighted, as a deal's total is: one refit's few unit-weeks with huge ratios cannot
+        set the level of every unit, nor can refits of another season."""
         size = full["size"].to_numpy(float) if "size" in full else np.zeros(len(full))
         fcst = np.power(10.0, np.where(np.isfinite(size), size, np.nanmedian(size) if np.isfinite(size).any() else 0.0))
         carry = (1.0 + full["rel_error"].to_numpy(float)) / full["ratio"].to_numpy(float)
-        f = fcst * carry
-        frame = pd.DataFrame({"daypart": full["daypart"].to_numpy(), "fold": full["fold"].to_numpy(),
-                              "a": fcst * (1.0 + full["rel_error"].to_numpy(float)), "f": f})
-        sums = frame.groupby(["daypart", "fold"])[["a", "f"]].sum()
-        sums = sums[(sums["a"] > 0) & (sums["f"] > 0)]
-        log_ratio = np.log(sums["a"] / sums["f"]).groupby(level="daypart").mean()
-        return {str(k): float(np.exp(v) - 1.0) for k, v in log_ratio.items()}
+        actual = fcst * (1.0 + full["rel_error"].to_numpy(float))
+        out = {}
+        for dp, idx in full.groupby("daypart").indices.items():
+            g = full.iloc[idx]
+            out[str(dp)] = pooled_level_ratio(actual[idx], (fcst * carry)[idx], g["fold"],
+                                              g["season_weight"] if "season_weight" in g else None,
+                                              self.ratio_prior) - 1.0
+        return out
 
     def widen_common(self, var_shift: float, n_refits: int) -> None:
         """Add a shift shared by every unit, of variance `var_shift` (fraction^2) in a refit's

@@ -13,7 +13,8 @@ import scoringrules as sr
 
 from forecasting.candidates import LevelRegression, last_year_scaled, trailing, weekly_grid
 from forecasting.dayparts import DaypartSpec
-from forecasting.pipeline import DaypartForecaster
+from forecasting.pipeline import DaypartForecaster, season_weight, seasonal_origin
+from forecasting.scoring import pooled_level_ratio
 from forecasting.stacking import StackedCombiner, crps_normal_mixture
 
 
@@ -63,13 +64,33 @@ def test_level_ratio_is_impression_weighted_and_robust():
     """Hand-worked: in one refit a tiny unit-week has a ratio of 100 (actual 100, forecast 1) next
     to a big one on target (actual 1,000, forecast 1,000). The unweighted mean ratio would be 50.5;
     the deal-relevant ratio is sum actual / sum forecast = 1,100 / 1,001. With two more refits on
-    target the combined ratio is exp(mean(log(1100/1001), 0, 0)). Catches an unweighted mean of
-    unit-week ratios (the fault that made an 18% over-forecast)."""
+    target the combined ratio is exp(mean(log(1100/1001), 0, 0)); with one refit's worth of prior
+    toward 1, exp(log(1100/1001) / 4). Catches an unweighted mean of unit-week ratios (the fault
+    that made an 18% over-forecast)."""
     actual = np.array([100.0, 1000.0, 50.0, 50.0])
     forecast = np.array([1.0, 1000.0, 50.0, 50.0])
     fold = np.array([0, 0, 1, 2])
-    expected = np.exp(np.log(1100 / 1001) / 3)
-    assert StackedCombiner.level_ratio(actual, forecast, fold) == pytest.approx(expected, rel=1e-12)
+    assert pooled_level_ratio(actual, forecast, fold, prior=0.0) == pytest.approx(np.exp(np.log(1100 / 1001) / 3))
+    assert pooled_level_ratio(actual, forecast, fold) == pytest.approx(np.exp(np.log(1100 / 1001) / 4))
+
+
+def test_level_ratio_weighs_refits_by_season():
+    """Hand-worked: a refit of the plan weeks' season (weight 1) saw actual / forecast = 0.9, one half
+    a year away (weight 0.02) saw 1.3: exp((log 0.9 + 0.02 log 1.3) / (1.02 + 1)). Catches season
+    weights ignored (a winter refit's ratio applied to summer weeks)."""
+    r = pooled_level_ratio([90.0, 130.0], [100.0, 100.0], [0, 1], [1.0, 0.02])
+    assert r == pytest.approx(np.exp((np.log(0.9) + 0.02 * np.log(1.3)) / 2.02))
+
+
+def test_season_weight_of_refits():
+    """Same weeks a year earlier -> 1; a quarter (91 days) apart -> exp(-1); half a year -> about 0.
+    Also the seasonal refit's origin is the plan start less a year and the lead (hand-worked)."""
+    assert season_weight(origin=100 - 364 - 20, gap=20, horizon=91, plan_start=100) == pytest.approx(1.0)
+    assert season_weight(origin=100 - 91 - 20, gap=20, horizon=91, plan_start=100) == pytest.approx(np.exp(-1))
+    assert season_weight(origin=100 - 182 - 20, gap=20, horizon=91, plan_start=100) < 0.02
+    assert seasonal_origin(800, 119, 91, 182, [500], 730) == 800 - 364 - 119
+    assert seasonal_origin(800, 119, 91, 182, [800 - 364 - 119 + 10], 730) is None  # one already there
+    assert seasonal_origin(500, 119, 91, 182, [], 730) is None  # too little training before it
 
 
 def test_combine_renormalises_over_candidates_that_have_a_forecast():
