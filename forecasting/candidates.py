@@ -4,10 +4,9 @@ Besides the quarter-hour profile model (`forecasting.models.ProfileForecaster`),
 structurally different forecasters of a daypart-week mean rating are made at every origin, from
 the history before it only:
 
-- ``last_year_scaled``: the same weeks one year (364 days) earlier, scaled by the recent
-  year-over-year ratio (the last `recent_weeks` weeks before the origin over the same weeks a year
-  earlier), the series' own ratio shrunk halfway toward its network x daypart ratio; it carries
-  seasonality and erosion.
+- ``last_year_scaled``: the same weeks one year (364 days) earlier, scaled by half the recent
+  year-over-year change pooled over every series (up to 26 weeks before the origin over the same
+  weeks a year earlier); it carries each unit's seasonality and, partly, erosion.
 - ``trailing``: the mean of the last `recent_weeks` weeks before the origin; it carries level
   shifts and launches.
 - ``regression``: a random-effects regression of log unit-week levels (`LevelRegression`): the
@@ -78,13 +77,15 @@ def trailing(grid: tuple[np.ndarray, np.ndarray], n_weeks: int, recent_weeks: in
     return np.repeat(m[:, :, None], n_weeks, axis=2)
 
 
-def last_year_scaled(grid: tuple[np.ndarray, np.ndarray], gap_weeks: int, n_weeks: int, network_codes: np.ndarray,
-                     recent_weeks: int = 8, shrink: float = 0.5) -> np.ndarray:
-    """Last year's same weeks x the recent year-over-year ratio (shrunk), (S, P, W) ratings.
+def last_year_scaled(grid: tuple[np.ndarray, np.ndarray], gap_weeks: int, n_weeks: int,
+                     max_ratio_weeks: int = 26, shrink: float = 0.5) -> np.ndarray:
+    """Last year's same weeks x the recent year-over-year ratio, (S, P, W) ratings.
 
     Target week w (0-based) starts `gap_weeks + w` weeks after the origin; its last-year week is 52
-    weeks earlier. The ratio is sum(recent weeks) / sum(same weeks a year earlier); its log is
-    shrunk by `shrink` toward the network x daypart log ratio (pooled sums).
+    weeks earlier. The ratio is pooled over every series, per daypart: sum of the last k weeks over
+    the sum of the same weeks a year earlier (k the longest window up to `max_ratio_weeks` the
+    history holds, at least 4), its log times `shrink`. A series' own ratio, or its network's, is
+    measured on a few weeks of shocks and adds more noise than the erosion it would carry.
     """
     means, counts = grid
     S, P, n = means.shape
@@ -92,19 +93,16 @@ def last_year_scaled(grid: tuple[np.ndarray, np.ndarray], gap_weeks: int, n_week
     out = np.full((S, P, n_weeks), np.nan)
     ok = (ly_idx >= 0) & (ly_idx < n)
     out[:, :, ok] = means[:, :, ly_idx[ok]]
-    now = _window_mean(means, counts, n - recent_weeks, n)
-    then = _window_mean(means, counts, n - recent_weeks - YEAR_WEEKS, n - YEAR_WEEKS)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        own = np.log(np.maximum(now, LOG_FLOOR) / np.maximum(then, LOG_FLOOR))
+    k = min(max_ratio_weeks, n - YEAR_WEEKS)
+    if k < 4:
+        return out
+    now = _window_mean(means, counts, n - k, n)
+    then = _window_mean(means, counts, n - k - YEAR_WEEKS, n - YEAR_WEEKS)
     both = np.isfinite(now) & np.isfinite(then)
-    pooled = np.zeros((network_codes.max() + 1, P, 2))
-    np.add.at(pooled[:, :, 0], network_codes, np.where(both, now, 0.0))
-    np.add.at(pooled[:, :, 1], network_codes, np.where(both, then, 0.0))
     with np.errstate(invalid="ignore", divide="ignore"):
-        net = np.log(np.maximum(pooled[:, :, 0], LOG_FLOOR) / np.maximum(pooled[:, :, 1], LOG_FLOOR))[network_codes]
-    net = np.where(np.isfinite(net), net, 0.0)
-    log_ratio = np.where(both, shrink * net + (1.0 - shrink) * own, net)
-    return out * np.exp(np.clip(log_ratio, -1.5, 1.5))[:, :, None]
+        ratio = np.where(both, now, 0.0).sum(axis=0) / np.where(both, then, 0.0).sum(axis=0)  # (P,)
+    log_ratio = np.where(np.isfinite(ratio) & (ratio > 0), np.log(np.maximum(ratio, LOG_FLOOR)), 0.0)
+    return out * np.exp(shrink * np.clip(log_ratio, -1.0, 1.0))[None, :, None]
 
 
 class LevelRegression:
@@ -248,10 +246,9 @@ def simple_candidates(values: np.ndarray, day0_weekday: int, origin: int, gap_da
     """
     grid = weekly_grid(values, day0_weekday, origin, dayparts)
     gap_weeks = int(round(gap_days / 7.0))
-    nets = pd.factorize(info["network"].astype(str))[0]
     reg = LevelRegression(recent_weeks=recent_weeks, random_state=random_state).fit(grid, info, gap_weeks, n_weeks)
     return {
-        "last_year_scaled": last_year_scaled(grid, gap_weeks, n_weeks, nets, recent_weeks),
+        "last_year_scaled": last_year_scaled(grid, gap_weeks, n_weeks),
         "trailing": trailing(grid, n_weeks, recent_weeks),
         "regression": reg.predict(grid, gap_weeks, n_weeks),
     }

@@ -40,6 +40,10 @@ Progress = Callable[[str, float], None]
 #: the profile model's name among the candidates
 PROFILE = "profile"
 CANDIDATES = (PROFILE,) + SIMPLE_CANDIDATES
+#: the stacking weights' prior: the two candidates that carry the season (the profile model's
+#: calendar, last year's same weeks); at a horizon of months the season matters more than the
+#: recent level, so the others get weight only as far as the held-out weeks earn it
+SEASONAL_PRIOR = {PROFILE: 0.5, "last_year_scaled": 0.5}
 YEAR_DAYS = 364
 Z90 = norm.ppf(0.90)  # 1.2816 (NIST/SEMATECH table: z(0.90) = 1.2816)
 
@@ -257,7 +261,7 @@ class DaypartForecaster:
         rows = pd.concat(frames, ignore_index=True)
         if len(rows) < 50:
             raise ValueError("too few held-out unit-weeks to weigh the candidate forecasts")
-        comb = StackedCombiner(CANDIDATES, prior_weights={PROFILE: 1.0}, random_state=self.random_state).fit(rows)
+        comb = StackedCombiner(CANDIDATES, prior_weights=SEASONAL_PRIOR, random_state=self.random_state).fit(rows)
         for f in folds:
             f.combined = comb.combine(f.all_candidates(), list(names))
         return comb

@@ -13,9 +13,10 @@ w (CRPS is quadratic in the predictive CDF, the CDF linear in w), so the optimum
 sample never worse than the best single candidate (a vertex). The combined point forecast is the
 mixture's mean, ``sum_k w_k b_k m_k``; where a candidate has no forecast its weight is shared
 out among the others. The CRPS rows count by their refit's resemblance to the plan weeks in
-season (plus a floor), and the fitted weights are pulled toward a prior (the pipeline's: the
-profile model alone, the one candidate that models the calendar) by one refit's worth, so when the
-held-out weeks say little about weeks like the plan weeks the incumbent keeps most of the weight.
+season (plus a floor), and the fitted weights are pulled toward a prior by one refit's worth
+(a fixed average: estimated weights rarely beat one by much, Smith & Wallis 2009; the pipeline's
+averages the two candidates that carry the season), so when the held-out weeks say little about
+weeks like the plan weeks the combination stays close to that average.
 
 References
 ----------
@@ -25,6 +26,8 @@ Grimit, E. P., Gneiting, T., Berrocal, V. J. & Johnson, N. A. (2006). The contin
     probability score for circular variables and its application to mesoscale forecast ensemble
     verification. QJRMS 132 (the closed-form CRPS of a Gaussian mixture).
 Bates, J. M. & Granger, C. W. J. (1969). The combination of forecasts. Oper. Res. Q. 20(4).
+Smith, J. & Wallis, K. F. (2009). A simple explanation of the forecast combination puzzle. Oxford
+    Bulletin of Economics and Statistics 71(3).
 """
 from __future__ import annotations
 

@@ -113,19 +113,20 @@ def _grid_from_levels(levels: np.ndarray):
 
 def test_last_year_scaled_recovers_a_seasonal_series_with_erosion():
     """Synthetic series: level = seasonal(week of year) x 0.9^(years): last year's same week times
-    the year-over-year ratio of the recent weeks is exactly right when the series' own and its
-    network's ratios agree (generating formula). Catches a misaligned last-year week or an inverted ratio."""
+    the pooled year-over-year ratio is exactly right at full strength (generating formula: the
+    ratio of two windows a year apart is 0.9 whatever the season), and by default the ratio is
+    taken at half strength (x 0.9^0.5). Catches a misaligned last-year week or an inverted ratio."""
     n = 120
     t = np.arange(n + 30)
     season = 1.0 + 0.3 * np.sin(2 * np.pi * t / 52.0)
     level = 0.01 * season * 0.9 ** (t / 52.0)
     grid = _grid_from_levels(np.vstack([level[:n], 2 * level[:n]]))
     gap, W = 4, 13
-    out = last_year_scaled(grid, gap, W, np.array([0, 0]), recent_weeks=8)
     truth = level[n + gap:n + gap + W]
-    # the recent window's ratio is 0.9 exactly; seasonal terms cancel between the two windows
-    np.testing.assert_allclose(out[0, 0], truth, rtol=1e-9)
-    np.testing.assert_allclose(out[1, 0], 2 * truth, rtol=1e-9)
+    full = last_year_scaled(grid, gap, W, shrink=1.0)
+    np.testing.assert_allclose(full[0, 0], truth, rtol=1e-9)
+    np.testing.assert_allclose(full[1, 0], 2 * truth, rtol=1e-9)
+    np.testing.assert_allclose(last_year_scaled(grid, gap, W)[0, 0], truth / 0.9 * 0.9 ** 0.5, rtol=1e-9)
     np.testing.assert_allclose(trailing(grid, W, 8)[0, 0], np.mean(level[n - 8:n]), rtol=1e-12)
 
 
