@@ -23,6 +23,44 @@ CAUTIONS = ("Forecasts are estimates from past audiences; contract terms decide 
             "people accountable for the money review it before committing.")
 FRONTIER_SIZES = (0.5, 0.75, 0.9, 1.0, 1.1, 1.25, 1.5)
 Z10 = 1.2815515655446004  # standard normal 90% quantile (p10/p90 band)
+#: columns of a buy-plan CSV (`plan_frame`): the allocation's, then what a buyer needs to place
+#: the order (the deal, each week's Monday and Sunday, the daypart's days and clock times)
+PLAN_COLUMNS = ["zone", "network", "daypart", "week", "spots", "rate", "cost", "expected_impressions",
+                "preempt_rate", "sd_impressions", "deal", "week_start", "week_end", "days", "start", "end"]
+_DAY_NAMES = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
+
+
+def days_text(days) -> str:
+    """Weekday numbers (0=Mon..6=Sun) as text: (0, 1, 2, 3, 4) -> 'mon-fri', (0, 2) -> 'mon,wed'."""
+    days = sorted(set(int(d) for d in days))
+    parts, i = [], 0
+    while i < len(days):
+        j = i
+        while j + 1 < len(days) and days[j + 1] == days[j] + 1:
+            j += 1
+        parts.append(_DAY_NAMES[days[i]] if j - i < 2 else f"{_DAY_NAMES[days[i]]}-{_DAY_NAMES[days[j]]}")
+        if j - i == 1:
+            parts.append(_DAY_NAMES[days[j]])
+        i = j + 1
+    return ",".join(parts)
+
+
+def plan_frame(scenario, deal_name: str, spots: pd.DataFrame, extra=()) -> pd.DataFrame:
+    """A buy plan as written to CSV: `PLAN_COLUMNS`, then the columns `extra` of `spots`.
+
+    `spots`: one row per bought unit-week (`PlanResult.spots` or a re-plan's order). Adds the
+    deal name, the week's Monday and Sunday (ISO dates, `scenario.week_start`/`week_end`) and the
+    daypart's days (`days_text`) and clock times (start inclusive, end exclusive, local clock).
+    """
+    out = spots.copy()
+    out["deal"] = deal_name
+    weeks = out["week"].astype("int64")
+    out["week_start"] = weeks.map(lambda w: scenario.week_start(w).isoformat())
+    out["week_end"] = weeks.map(lambda w: scenario.week_end(w).isoformat())
+    parts = {d.name: (days_text(d.days), d.start, d.end) for d in scenario.dayparts}
+    for i, col in enumerate(("days", "start", "end")):
+        out[col] = out["daypart"].map(lambda name, i=i: parts[name][i])
+    return out[PLAN_COLUMNS + list(extra)].reset_index(drop=True)
 
 
 @dataclass

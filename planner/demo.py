@@ -22,6 +22,7 @@ REPORT_NAME = "report.html"
 SUMMARY_NAME = "demo-summary.json"
 DEFAULT_DRAWS = 20_000
 DEFAULT_SEED = 0
+EXAMPLE_WEEKS = 4  # weeks of invented posted actuals the demo leaves for `pledge rebalance`
 
 
 @dataclass
@@ -43,6 +44,9 @@ class DemoResult:
     draws: int = DEFAULT_DRAWS
     seed: int = DEFAULT_SEED
     warnings: list[str] = field(default_factory=list)  # cautions about this forecast (the report's)
+    # invented posted actuals of a committed deal's first weeks (`example_actuals`), to try rebalance
+    actuals_example: Path | None = None
+    actuals_deal: str | None = None
 
     def as_dict(self) -> dict:
         return {
@@ -52,6 +56,8 @@ class DemoResult:
             "not_committed": self.not_committed, "released_before_rerun": self.released,
             "stress": self.stress, "draws": self.draws, "seed": self.seed, "seconds": self.seconds,
             "warnings": self.warnings,
+            "actuals_example": None if self.actuals_example is None else str(self.actuals_example),
+            "actuals_deal": self.actuals_deal,
         }
 
 
@@ -117,6 +123,26 @@ def _reuse_plan(plan: Any, forecast: Any) -> Callable[..., Any]:
         return plan_deal(scenario, deal_name, held=held, forecast=forecast, **kwargs)
 
     return planner
+
+
+def example_actuals(scenario: Any, deal_name: str, weeks: int = EXAMPLE_WEEKS, seed: int = 0) -> Path:
+    """Write invented posted actuals of a committed deal's first `weeks` plan weeks beside the
+    scenario (`posted-actuals-DEAL.csv`, the data contract's layout) and return the path.
+
+    The held spots air against the invented generator's simulated future
+    (`scenarios.actuals.posted_actuals`), as a station's posting would report them.
+    """
+    from planner.atomic import write_with_atomic
+    from planner.book import get_deal
+    from scenarios.actuals import posted_actuals
+
+    d = get_deal(scenario, deal_name)
+    aired = range(d.first_week, min(d.first_week + weeks, d.last_week + 1))
+    acts = posted_actuals(scenario, d.holds[["zone", "network", "daypart", "week", "spots"]], d.demo,
+                          weeks=aired, seed=seed)
+    acts = acts.assign(impressions=acts["impressions"].round())
+    path = Path(scenario.path) / f"posted-actuals-{deal_name}.csv"
+    return write_with_atomic(path, lambda p: acts.to_csv(p, index=False))
 
 
 def _payload(result: Any) -> dict:
@@ -203,6 +229,12 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
             else:
                 not_committed[name] = "not deliverable"
             advance(1)
+    example = None
+    if committed:
+        # a deal with weeks left after the example's weeks, the longest flight first
+        deal = max(committed, key=lambda n: scn.deals[n].last_week - scn.deals[n].first_week)
+        example = example_actuals(scn, deal)
+        say(f"invented posted actuals of {deal}'s first weeks in {example}")
     stress = None
     if committed:
         from planner.stress import stress_book
@@ -219,7 +251,8 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
                         reused_folder=reused_folder, reused_forecast=reused_forecast, checks=checks,
                         committed=committed, not_committed=not_committed, released=released,
                         stress=stress.as_dict() if stress is not None else None, seconds=seconds,
-                        draws=draws, seed=seed, warnings=list(data.warnings))
+                        draws=draws, seed=seed, warnings=list(data.warnings), actuals_example=example,
+                        actuals_deal=deal if example is not None else None)
     from planner.atomic import write_text_atomic
     import json
 

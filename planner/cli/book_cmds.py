@@ -9,10 +9,12 @@ from pathlib import Path
 from typing import Optional
 
 import typer
+from rich.markup import escape
 from rich.table import Table
 
 from planner.cli import app
 from planner.cli.common import book_option, count, info, money, out_console, print_json, progress
+from planner.cli.deal_cmds import write_plan_files
 from planner.errors import InputError
 
 book_app = typer.Typer(help="The book of sold deals: commit, list, show, release, check.", no_args_is_help=True)
@@ -38,13 +40,8 @@ def _load(scenario: Path):
 
 
 def print_table(table: Table) -> None:
-    """Print a table on stdout; when stdout is not a terminal, wide enough not to truncate."""
-    if out_console.is_terminal:
-        out_console.print(table)
-    else:
-        from rich.console import Console
-
-        Console(width=140, no_color=True).print(table)
+    """Print a table on stdout (when stdout is not a terminal, on a page wide enough not to wrap)."""
+    out_console.print(table)
 
 
 def short(value) -> str:
@@ -195,27 +192,46 @@ def rebalance_cmd(
     deal: str = typer.Argument(..., help="Committed deal name."),
     actuals: Path = typer.Option(..., "--actuals", help="Posted actuals CSV: zone,network,daypart,week,spots_aired,impressions."),
     book: Optional[Path] = _BOOK_OPT,
-    commit: bool = typer.Option(False, "--commit", help="Replace the deal's holds in the book by the re-plan."),
+    commit: bool = typer.Option(False, "--commit", help="Replace the deal's holds in the book by the re-plan "
+                                                        "(refused, exit 2, when the postings look wrong)."),
+    unposted_as_zero: bool = typer.Option(False, "--unposted-as-zero",
+                                          help="Accept held unit-weeks up to the last posted week that have no "
+                                               "posted row as delivering nothing (otherwise --commit refuses)."),
+    out: Optional[Path] = typer.Option(None, "--out", help="CSV file for the re-planned remaining weeks, in the "
+                                                           "plan CSV's format plus held and change columns."),
     solver: str = typer.Option("cbc", "--solver", help="cbc or highs."),
     as_json: bool = _JSON_OPT,
 ) -> None:
     """Mid-flight: update the forecast from posted actuals and re-plan the remaining weeks."""
+    from planner.deals import plan_frame
+    from planner.forecast_job import forecast_caution
     from planner.rebalance import rebalance_deal
 
+    if out is not None and out.is_dir():
+        raise InputError(f"--out {out}: is a folder, give a file name")
     scn = _load(scenario)
     with progress(f"rebalancing {deal}"):
-        r = rebalance_deal(scn, deal, actuals, book, commit=commit, solver=solver)
-    from planner.forecast_job import forecast_caution
-
+        r = rebalance_deal(scn, deal, actuals, book, commit=commit, solver=solver,
+                           unposted_as_zero=unposted_as_zero)
+    files = []
+    if out is not None and r.order is not None:
+        files = write_plan_files(plan_frame(scn, deal, r.order, extra=("held", "change")), out, None)
     shared = forecast_caution(scn, scenario)
     if as_json:
-        print_json({**r.as_dict(), "shared_error_caution": shared, "caution": CAUTION})
+        print_json({**r.as_dict(), "files": [str(p) for p in files], "shared_error_caution": shared,
+                    "caution": CAUTION})
         return
     cur = scn.currency
     out_console.print(f"[bold]{deal}[/]: weeks aired {r.aired_weeks[0] if r.aired_weeks else '-'}-"
                       f"{r.aired_weeks[-1] if r.aired_weeks else '-'}, delivered {count(r.delivered)} of "
                       f"{count(r.guarantee)} ({r.delivered / r.guarantee:.1%}); posted vs forecast "
                       f"{r.posted_vs_forecast:+.1%}")
+    for p in r.problems:  # part of the answer, never silenced
+        out_console.print(f"[bold red]warning[/]: {escape(p)}", highlight=False)
+    if r.problems:
+        out_console.print("  [red]these postings look wrong: --commit would be refused[/]")
+    for w in r.warnings:
+        out_console.print(f"[yellow]warning[/]: {escape(w)}", highlight=False)
     out_console.print(f"  remaining guarantee {count(r.remaining_guarantee)} over weeks "
                       f"{r.remaining_weeks[0] if r.remaining_weeks else '-'}-{r.remaining_weeks[-1] if r.remaining_weeks else '-'}")
     out_console.print(f"  chance of delivery with the current holds, updated forecast: {r.probability_before:.1%}")
@@ -227,12 +243,12 @@ def rebalance_cmd(
         out_console.print(f"  [red]cannot be met[/] at {r.confidence_label}: the most the remaining avails can "
                           f"deliver at that confidence is {count(r.max_deliverable)}, short by {count(r.unmet)} "
                           f"impressions; best-effort plan chance of delivery {r.probability_after:.1%}")
+    if files:
+        out_console.print(f"  re-planned remaining weeks written to {', '.join(map(str, files))}")
     if r.committed:
         out_console.print("  book updated with the re-plan's holds")
     elif commit:
-        out_console.print("  book not updated (no deliverable re-plan)")
-    for w in r.warnings:
-        info(f"warning: {w}")
+        out_console.print(f"  book not updated ({r.not_committed_reason})")
     if shared:
-        out_console.print(f"[yellow]caution: {shared}[/yellow]")
+        out_console.print(f"[yellow]caution: {escape(shared)}[/yellow]")
     out_console.print(CAUTION, style="dim")

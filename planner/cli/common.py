@@ -16,7 +16,10 @@ from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
 # Progress and messages go to stderr so that `--json` keeps stdout one clean JSON object.
 err_console = Console(stderr=True)
-out_console = Console()
+# Answers go to stdout. Piped or redirected (not a terminal), lines are never wrapped, so a
+# figure is never split from its label and scripts can grep whole lines; tables get a wide page.
+_STDOUT_TTY = bool(getattr(sys.stdout, "isatty", lambda: False)())
+out_console = Console() if _STDOUT_TTY else Console(soft_wrap=True, width=400)
 
 _QUIET = {"on": False}
 

@@ -18,8 +18,6 @@ from planner.errors import InputError
 _JSON_OPT = typer.Option(False, "--json", help="Print one JSON object on stdout.")
 _SOLVER_OPT = typer.Option("cbc", "--solver", help="Integer solver: cbc (shipped with pulp) or highs.")
 _BOOK_OPT = book_option("Book of committed deals whose spots are held (default: SCENARIO/book.sqlite if it exists).")
-PLAN_COLUMNS = ["zone", "network", "daypart", "week", "spots", "rate", "cost", "expected_impressions",
-                "preempt_rate", "sd_impressions"]
 
 
 def _load(scenario: Path):
@@ -137,11 +135,10 @@ def _safe(name: str) -> str:
     return re.sub(r"[^A-Za-z0-9._-]+", "_", str(name))
 
 
-def write_plan_files(spots, out: Path, split_by: str | None) -> list[Path]:
-    """Write the plan CSV (or one per zone) atomically; return the paths written."""
+def write_plan_files(frame, out: Path, split_by: str | None) -> list[Path]:
+    """Write a plan CSV (`planner.deals.plan_frame`; or one per zone) atomically; return the paths."""
     from planner.atomic import write_with_atomic
 
-    frame = spots[PLAN_COLUMNS]
     if split_by is None:
         write_with_atomic(out, lambda p: frame.to_csv(p, index=False))
         return [out]
@@ -167,7 +164,7 @@ def plan_cmd(
     as_json: bool = _JSON_OPT,
 ) -> None:
     """The whole-spot buy plan of DEAL at least cost, with totals and the weekly pacing table."""
-    from planner.deals import plan_deal
+    from planner.deals import plan_deal, plan_frame
 
     if split_by is not None and split_by != "zone":
         raise InputError(f"--split-by {split_by!r}: only 'zone' is supported")
@@ -177,7 +174,7 @@ def plan_cmd(
     with progress(f"planning {deal}"):
         r = plan_deal(scn, deal, solver=solver, book=book, time_limit=time_limit)
     _fit_note(r)
-    files = write_plan_files(r.spots, out, split_by) if r.deliverable else []
+    files = write_plan_files(plan_frame(scn, deal, r.spots), out, split_by) if r.deliverable else []
     if as_json:
         print_json({"deal": r.deal, "deliverable": r.deliverable, "verdict": r.verdict, "reason": r.reason,
                     "currency": r.currency, "guarantee": r.guarantee, "risk_rule": r.risk_rule,

@@ -140,4 +140,8 @@ def demo_cmd(
     for w in result.warnings:
         out_console.print(f"[yellow]caution: {w}[/yellow]")
     out_console.print(f"report: [bold]{result.report}[/]   (done in {elapsed:,.0f} s)")
+    if result.actuals_example is not None:
+        out_console.print(f"mid-flight: invented posted actuals of {result.actuals_deal}'s first weeks; try "
+                          f"pledge rebalance {result.folder} {result.actuals_deal} --actuals {result.actuals_example}",
+                          highlight=False)
     out_console.print(CAUTION, style="dim")
