@@ -22,10 +22,13 @@ Books are read without being created: reading a book that does not exist yet giv
 from __future__ import annotations
 
 import contextlib
+import getpass
 import json
 import os
 import sqlite3
+import tempfile
 import time
+import urllib.parse
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -137,6 +140,7 @@ def _connect(path: Path) -> sqlite3.Connection:
     conn = sqlite3.connect(str(path), timeout=_BUSY_TIMEOUT_MS / 1000, isolation_level=None)
     conn.row_factory = sqlite3.Row
     conn.execute(f"PRAGMA busy_timeout = {_BUSY_TIMEOUT_MS}")
+    conn.execute("PRAGMA schema_version").fetchone()  # fails here when the file cannot be opened
     mode = conn.execute("PRAGMA journal_mode = WAL").fetchone()[0]
     if str(mode).lower() != "wal":  # pragma: no cover - file systems without shared memory
         conn.execute("PRAGMA journal_mode = DELETE")
@@ -179,28 +183,102 @@ def _upgrade(conn: sqlite3.Connection, path: Path) -> None:
         raise
 
 
+def _not_a_book(path: Path) -> None:
+    """InputError when `path` is a file that cannot be a book (0 bytes: SQLite would take it for
+    an empty database and write a fresh schema into it, so every deal would look easier)."""
+    if path.is_file() and path.stat().st_size == 0:
+        raise InputError(f"{path}: not a book (an empty file; `pledge book commit` creates a book where there "
+                         f"is no file, so remove it or name another --book)")
+
+
+def _create_book(path: Path) -> None:
+    """Make a new book at `path` whole: the schema is written to a file beside it, which is then
+    linked into place (a concurrent reader never sees a half-made, 0-byte book). When another
+    process made the book meanwhile, its book is kept."""
+    from planner.atomic import ordinary_mode
+
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".new", dir=path.parent)
+    os.close(fd)
+    tmp = Path(name)
+    try:
+        conn = _connect(tmp)
+        try:
+            _upgrade(conn, path)
+        finally:
+            conn.close()
+        ordinary_mode(tmp)
+        try:
+            os.link(tmp, path)
+        except FileExistsError:
+            pass
+        except OSError:  # a file system without hard links
+            if not path.exists():
+                os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
 def open_book(path: str | os.PathLike, *, create: bool = True) -> sqlite3.Connection:
     """Open (and create or upgrade) the book at `path`; returns an autocommit connection."""
     path = Path(path)
-    if not path.exists():
-        if not create:
-            raise InputError(f"{path}: no book here (commit a deal first)")
-        path.parent.mkdir(parents=True, exist_ok=True)
     try:
+        if not path.exists():
+            if not create:
+                raise InputError(f"{path}: no book here (commit a deal first)")
+            _create_book(path)
+        _not_a_book(path)
         conn = _connect(path)
         _upgrade(conn, path)
     except sqlite3.DatabaseError as exc:
+        if _read_only_error(exc):
+            raise InputError(f"{path}: the book cannot be written here, the folder or file is read-only "
+                             f"({exc})") from exc
         raise InputError(f"{path}: not a readable book ({exc})") from exc
+    except PermissionError as exc:
+        raise InputError(f"{path}: the book cannot be written here, the folder is read-only ({exc})") from exc
     return conn
+
+
+def _open_read_only(path: Path) -> sqlite3.Connection:
+    """A read-only connection to the book at `path`, for a folder that cannot be written to (the
+    WAL index cannot be made there, so the file is opened as immutable: SQLite's URI parameter
+    for files nothing else writes while it reads). The book must be of the current schema (an
+    upgrade is a write)."""
+    uri = f"file:{urllib.parse.quote(str(path.resolve()))}?mode=ro&immutable=1"
+    try:
+        conn = sqlite3.connect(uri, uri=True, isolation_level=None)
+        conn.row_factory = sqlite3.Row
+        version = _schema_version(conn)
+    except sqlite3.DatabaseError as exc:
+        raise InputError(f"{path}: not a readable book ({exc})") from exc
+    if version != SCHEMA_VERSION:
+        conn.close()
+        raise InputError(f"{path}: book schema version {version} needs an upgrade to {SCHEMA_VERSION}, which "
+                         f"cannot be written in this read-only folder; open it once where it can be written")
+    return conn
+
+
+def _read_only_error(exc: BaseException | None) -> bool:
+    """True for the errors SQLite gives on a book in a folder or file it may not write."""
+    text = str(exc).lower()
+    return isinstance(exc, sqlite3.OperationalError) and (
+        "unable to open" in text or "readonly" in text or "read-only" in text)
 
 
 @contextlib.contextmanager
 def _reader(path: Path) -> Iterator[sqlite3.Connection | None]:
-    """A connection for reading, or None when the book file does not exist (an empty book)."""
+    """A connection for reading, or None when the book file does not exist (an empty book).
+    In a folder that cannot be written to, a read-only connection (`_open_read_only`)."""
     if not path.exists():
         yield None
         return
-    conn = open_book(path)
+    try:
+        conn = open_book(path)
+    except InputError as exc:
+        if not _read_only_error(exc.__cause__):
+            raise
+        conn = _open_read_only(path)
     try:
         yield conn
     finally:

@@ -24,7 +24,7 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from planner.atomic import write_text_atomic, write_with_atomic
+from planner.atomic import check_writable, write_text_atomic, write_with_atomic
 from planner.errors import InputError
 
 FORECAST_DIR = "forecast"
@@ -139,6 +139,7 @@ def fit_forecast(scenario, *, demo: str | None = None, engine: str = "duckdb", s
     if demo is not None and demo not in scenario.demos:
         raise InputError(f"--demo {demo!r}: not a demo of the scenario (known: {', '.join(scenario.demos)})")
     key = fit_key(scenario, demo=demo, seed=seed)
+    check_writable(forecast_dir(scenario), "the fitted forecast")  # before minutes of fitting
     t0 = time.perf_counter()
     cube, info = load_history_cube(scenario, demos=[demo] if demo else None, engine=engine, progress=progress)
     t_ingest = time.perf_counter() - t0

@@ -482,14 +482,9 @@ def render_report(data: ReportData) -> str:
 
 
 def write_report(data: ReportData, path: str | Path) -> Path:
-    """Render `data` and write it to `path` atomically (whole or not at all). Returns the path."""
-    import os
-
-    out = write_text_atomic(path, render_report(data))
-    umask = os.umask(0)
-    os.umask(umask)
-    os.chmod(out, 0o666 & ~umask)  # a report is for sharing: the usual file mode, not the temp file's 0600
-    return out
+    """Render `data` and write it to `path` atomically (whole or not at all, mode 0666 & ~umask).
+    Returns the path."""
+    return write_text_atomic(path, render_report(data))
 
 
 # --------------------------------------------------------------------------------------------

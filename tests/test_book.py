@@ -2,6 +2,7 @@
 a commit killed mid-way. Small synthetic scenarios built in memory (invented data)."""
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import signal
@@ -541,3 +542,90 @@ def test_fast_hold_read_equals_sql_order_by(tmp_path):
             ref.astype({c: object for c in cols[:4]}))
     assert bk._holds_columns(conn, cols, "", ()) is None  # the separator forces the row path
     conn.close()
+
+
+# --------------------------------------------------------------------------- issue 19: a book that is what it says
+
+def test_a_zero_byte_book_is_refused_not_read_as_empty(tmp_path, capsys):
+    """QA finding: a 0-byte book file was taken for an empty book and a fresh schema written
+    into it (every deal then looked easier). It is not a book: refused, exit 2, left as it was."""
+    from planner.cli import main
+
+    scn, _ = make_synthetic(tmp_path / "s")
+    empty = scn.path / "book.sqlite"
+    empty.write_bytes(b"")
+    for call in (lambda: bk.held_spots(scn), lambda: bk.list_deals(scn), lambda: bk.check_book(scn),
+                 lambda: bk.commit_deal(scn, "alpha", planner=greedy_planner(2))):
+        with pytest.raises(InputError, match="not a book"):
+            call()
+    assert empty.stat().st_size == 0
+    assert main(["book", "list", str(scn.path)]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("error: ") and "not a book" in err and str(empty) in err
+    assert empty.stat().st_size == 0
+
+
+def test_a_new_book_appears_whole(tmp_path):
+    """A new book is made beside its path and moved into place with its schema, so a concurrent
+    reader never sees the 0-byte file SQLite would leave while creating it (now refused)."""
+    path = tmp_path / "b" / "book.sqlite"
+    bk.open_book(path).close()
+    conn = sqlite3.connect(path)
+    assert conn.execute("SELECT MAX(version) FROM schema_version").fetchone()[0] == bk.SCHEMA_VERSION
+    conn.close()
+    assert sorted(p.name for p in path.parent.iterdir() if not p.name.startswith("book.sqlite")) == []
+
+
+@contextlib.contextmanager
+def read_only(*folders):
+    """Make `folders` read-only for the block: chmod a-w (or, for root, who ignores modes, the
+    immutable attribute, chattr +i); skip the test when the platform allows neither."""
+    done = []
+    try:
+        for f in folders:
+            f = Path(f)
+            if os.geteuid() != 0:
+                os.chmod(f, 0o555)
+                done.append(("chmod", f))
+            elif subprocess.run(["chattr", "+i", str(f)], capture_output=True).returncode == 0:
+                done.append(("chattr", f))
+            else:
+                pytest.skip("cannot make a folder read-only here (root without chattr)")
+            probe = f / ".probe"
+            try:
+                probe.write_text("x")
+            except OSError:
+                continue
+            probe.unlink()
+            pytest.skip("the folder stayed writable")
+        yield
+    finally:
+        for how, f in reversed(done):
+            if how == "chmod":
+                os.chmod(f, 0o755)
+            else:
+                subprocess.run(["chattr", "-i", str(f)], capture_output=True)
+
+
+def test_a_read_only_folder_still_answers_reads(tmp_path):
+    """QA finding: in a read-only scenario folder every read failed with "not a readable book
+    (unable to open database file)" (WAL needs its index file beside the book). Reads now work
+    from a read-only connection with the same answers; a write says the folder is read-only."""
+    scn, _ = make_synthetic(tmp_path / "s")
+    bk.commit_deal(scn, "alpha", planner=greedy_planner(5))
+    before = (bk.held_spots(scn), [d.name for d in bk.list_deals(scn)], bk.get_deal(scn, "alpha").holds,
+              bk.check_book(scn), bk.events(scn)[["deal", "action"]])
+    listing = sorted(p.name for p in scn.path.iterdir())
+    with read_only(scn.path):
+        after = (bk.held_spots(scn), [d.name for d in bk.list_deals(scn)], bk.get_deal(scn, "alpha").holds,
+                 bk.check_book(scn), bk.events(scn)[["deal", "action"]])
+        pd.testing.assert_frame_equal(after[0], before[0])
+        assert after[1] == before[1] and after[3] == before[3]
+        pd.testing.assert_frame_equal(after[2], before[2])
+        pd.testing.assert_frame_equal(after[4], before[4])
+        with pytest.raises(InputError, match="read-only"):
+            bk.commit_deal(scn, "beta", planner=greedy_planner(5))
+        with pytest.raises(InputError, match="read-only"):
+            bk.release_deal(scn, "alpha")
+        assert sorted(p.name for p in scn.path.iterdir()) == listing
+    assert [d.name for d in bk.list_deals(scn)] == ["alpha"]
