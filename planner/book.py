@@ -565,6 +565,27 @@ def over_avails(held: pd.DataFrame, inventory: pd.DataFrame, extra: pd.DataFrame
     return merged[merged["spots"] > merged["avails"]].reset_index(drop=True)
 
 
+def over_avails_warning(held: pd.DataFrame, inventory: pd.DataFrame) -> list[str]:
+    """One warning when the held spots (summed per unit, `HELD_COLUMNS`) exceed a unit's avails
+    (the inventory was cut below existing holds), naming the count of units, the spots over and
+    the first unit; [] otherwise."""
+    over = over_avails(held, inventory)
+    if over.empty:
+        return []
+    r = over.iloc[0]
+    excess = int((over["spots"] - over["avails"]).sum())
+    return [f"the book holds more spots than the avails in {len(over):,} unit(s), {excess:,} spot(s) over "
+            f"(first: {r.zone}/{r.network}/{r.daypart}/week {int(r.week)}, {int(r.spots)} held, {int(r.avails)} "
+            f"avails): the inventory was cut below the holds; release or re-plan a deal (`pledge book check`)"]
+
+
+def book_warnings(scenario: Any, book: str | os.PathLike | None = None) -> list[str]:
+    """Warnings about the book against the scenario's inventory (`over_avails_warning`); [] when
+    there is no book."""
+    with _reader(book_path(scenario, book)) as conn:
+        return over_avails_warning(_held_from(conn), scenario.inventory)
+
+
 def _plan_spots(plan: Any) -> pd.DataFrame:
     spots = plan.spots.copy()
     spots = spots[spots["spots"] > 0].reset_index(drop=True)

@@ -75,6 +75,7 @@ class DealRun:
     held_spots: int
     units: pd.DataFrame | None = None    # the deal's demo and weeks, before its exclusions and spot cap
     held: pd.DataFrame | None = None     # other deals' holds the avails were reduced by
+    warnings: list = field(default_factory=list)  # about the book read (`planner.book.book_warnings`)
 
 
 @dataclass
@@ -120,6 +121,8 @@ class PlanResult:
     held_spots_excluded: int
     binding: list = field(default_factory=list)
     cautions: list = field(default_factory=list)
+    warnings: list = field(default_factory=list)  # about the data (the book held over avails)
+    notes: list = field(default_factory=list)  # about this plan (pacing, chance under a pad)
 
 
 @dataclass
@@ -168,6 +171,8 @@ class CheckResult:
     held_spots_excluded: int
     frontier: list | None = None
     cautions: list = field(default_factory=list)
+    warnings: list = field(default_factory=list)  # about the data (the book held over avails)
+    notes: list = field(default_factory=list)  # about this plan (pacing, chance under a pad)
 
     def to_json(self) -> dict:
         """Plain dict for `--json` (the documented keys first)."""
@@ -242,6 +247,13 @@ def _held(scenario, held, book, deal_name: str):
     return held_spots(scenario, book, exclude=(deal_name,))
 
 
+def _book_warnings(scenario, book) -> list[str]:
+    """`planner.book.book_warnings` of the book a check or plan read."""
+    from planner.book import book_warnings
+
+    return book_warnings(scenario, book)
+
+
 def deal_units(scenario, forecast: pd.DataFrame, deal) -> pd.DataFrame:
     """Forecast rows of the deal's demo joined with the inventory (avails, rate, preempt_rate)."""
     fc = forecast[forecast["demo"] == deal.demo]
@@ -290,7 +302,8 @@ def run_deal(scenario, deal_name: str, *, solver: str = "cbc", held=None, book=N
     prob = al.make_problem(scope, deal.impressions if guarantee is None else guarantee, rules_of(deal), deal.weeks)
     alloc = al.allocate(prob, solver=solver, gap=gap, time_limit=time_limit)
     n_held = int(held_df["spots"].sum()) if held_df is not None and len(held_df) else 0
-    return DealRun(scenario, deal, prob, alloc, fitted, n_held, units=units, held=held_df)
+    warnings = _book_warnings(scenario, book) if held is None else []
+    return DealRun(scenario, deal, prob, alloc, fitted, n_held, units=units, held=held_df, warnings=warnings)
 
 
 def scope_diagnosis(run: DealRun) -> list[str]:
@@ -450,7 +463,7 @@ def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
         solver=a.solver, gap=a.gap, lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts,
         iterations=a.iterations, build_seconds=a.build_seconds, solve_seconds=a.solve_seconds,
         fitted_forecast_first=run.fitted_now, held_spots_excluded=run.held_spots, binding=binding,
-        cautions=_cautions(run))
+        cautions=_cautions(run), warnings=list(run.warnings))
 
 
 def frontier(prob: al.AllocationProblem, sizes, *, solver: str = "cbc", gap: float = al.DEFAULT_GAP,
@@ -526,4 +539,4 @@ def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=a
         binding=binding, spots=s["spots"], units_bought=s["units"], solver=a.solver, gap=a.gap,
         lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts, iterations=a.iterations,
         build_seconds=a.build_seconds, solve_seconds=a.solve_seconds, fitted_forecast_first=run.fitted_now,
-        held_spots_excluded=run.held_spots, frontier=fr, cautions=_cautions(run))
+        held_spots_excluded=run.held_spots, frontier=fr, cautions=_cautions(run), warnings=list(run.warnings))

@@ -492,7 +492,7 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
     they raise InputError before anything is planned or written. `unposted_as_zero` accepts
     held unit-weeks without a row as delivering nothing (said in `warnings`).
     """
-    from planner.book import get_deal, held_spots, replace_holds
+    from planner.book import book_warnings, get_deal, held_spots, replace_holds
 
     if deal_name not in scenario.deals:
         raise InputError(f"{scenario.path}: no deal named {deal_name!r} in deals/")
@@ -503,7 +503,7 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
         from planner.forecast_job import ensure_forecast
 
         forecast = ensure_forecast(scenario).table
-    warnings: list[str] = []
+    warnings: list[str] = book_warnings(scenario, book)
     folded = fold_actuals(forecast, acts, deal.demo)
     obs, no_fc, post, updated = folded.observed, folded.unmatched, folded.posterior, folded.forecast
     if no_fc.any():

@@ -749,7 +749,9 @@ def load_book_model(scenario: Any, book: str | os.PathLike | None = None, *, for
     if fixed.any():
         model.mean = model.mean + fixed
         model.fixed = fixed
-    model.warnings = cautions
+    from planner.book import over_avails_warning
+
+    model.warnings = over_avails_warning(holds.groupby(UNIT_KEY, as_index=False)["spots"].sum(), inv) + cautions
     return model, parsed
 
 

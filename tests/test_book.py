@@ -472,7 +472,7 @@ def test_cli_book_list_show_release(tmp_path, capsys):
     code, _, err = _cli(capsys, "book", "show", str(scn.path), "nope")
     assert code == 2 and "not in the book" in err
     code, out, _ = _cli(capsys, "book", "release", str(scn.path), "alpha", "--json")
-    assert code == 0 and json.loads(out) == {"released": "alpha", "spots_freed": 6}
+    assert code == 0 and json.loads(out) == {"released": "alpha", "spots_freed": 6, "warnings": []}
     code, out, _ = _cli(capsys, "book", "list", str(scn.path), "--json")
     assert json.loads(out)["deals"] == []
     code, _, err = _cli(capsys, "book", "list", str(tmp_path / "missing"))
@@ -629,3 +629,49 @@ def test_a_read_only_folder_still_answers_reads(tmp_path):
             bk.release_deal(scn, "alpha")
         assert sorted(p.name for p in scn.path.iterdir()) == listing
     assert [d.name for d in bk.list_deals(scn)] == ["alpha"]
+
+
+def test_units_held_over_their_avails_are_flagged_everywhere_and_book_check_exits_3(
+        small_scenario, scenario_copy, monkeypatch, capsys):
+    """QA finding: avails cut below existing holds: validate said valid, check, stress and report
+    were silent, book check printed "NOT consistent" and exited 0. Every command that reads the
+    book now says how many units and spots are held over their avails; book check exits 3."""
+    from planner.cli import main
+    from planner.scenario import load_scenario
+
+    folder = scenario_copy(small_scenario)
+    scn = load_scenario(folder)
+    use_forecast(monkeypatch, synthetic_forecast(scn))
+    assert main(["book", "commit", str(folder), "small-comfortable", "--solver", "highs"]) == 0
+    held = bk.held_spots(scn)
+    cut = held.nlargest(2, "spots")  # two held units lose all but one avail
+    inv = pd.read_csv(folder / "inventory.csv")
+    key = inv.set_index(UNIT).index
+    hit = key.isin(cut.set_index(UNIT).index)
+    inv.loc[hit, "avails"] = 1
+    inv.to_csv(folder / "inventory.csv", index=False)
+    over = int(cut["spots"].sum()) - 2
+    capsys.readouterr()
+    assert main(["book", "check", str(folder)]) == 3
+    assert "NOT consistent" in capsys.readouterr().out
+    runs = {
+        "validate": ["validate", str(folder)],
+        "check": ["check", str(folder), "small-tight", "--solver", "highs"],
+        "plan": ["plan", str(folder), "small-tight", "--solver", "highs", "--out", str(folder / "p.csv")],
+        "stress": ["stress", str(folder), "--draws", "2000"],
+        "list": ["book", "list", str(folder)],
+        "show": ["book", "show", str(folder), "small-comfortable"],
+        "report": ["report", str(folder), "--out", str(folder / "r.html"), "--draws", "2000", "--solver", "highs"],
+    }
+    want = f"the book holds more spots than the avails in 2 unit(s), {over:,} spot(s) over"
+    for name, argv in runs.items():
+        assert main(["--quiet", *argv]) == 0, name
+        out = capsys.readouterr().out
+        assert want in " ".join(out.split()), (name, out)
+    for name, argv in runs.items():
+        if name == "plan":
+            continue
+        assert main([*argv, "--json"]) == 0, name
+        js = json.loads(capsys.readouterr().out)
+        warnings = js["book"]["warnings"] if name == "validate" else js["warnings"]
+        assert any(w.startswith(want) for w in warnings), name

@@ -14,11 +14,14 @@ from rich.table import Table
 
 from planner.cli import app
 from planner.cli.common import book_option, count, info, money, out_console, print_json, progress
-from planner.cli.deal_cmds import write_plan_files
+from planner.cli.deal_cmds import print_warnings, write_plan_files
 from planner.errors import InputError
 
 book_app = typer.Typer(help="The book of sold deals: commit, list, show, release, check.", no_args_is_help=True)
 app.add_typer(book_app, name="book")
+
+#: exit status of `pledge book check` when the book is not consistent (an answer, not bad input)
+EXIT_INCONSISTENT = 3
 
 CAUTION = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
            "under-delivery. Review a plan with the people accountable for the money before committing.")
@@ -37,6 +40,19 @@ def _load(scenario: Path):
     from planner.scenario import load_scenario
 
     return load_scenario(_folder(scenario))
+
+
+def book_warnings(scn, book) -> list[str]:
+    """`planner.book.book_warnings`: the book held over the scenario's avails ([] without a
+    scenario: a folder that holds only a book)."""
+    from planner.book import book_warnings as warnings_of
+
+    return [] if scn is None else warnings_of(scn, book)
+
+
+def _load_if_scenario(scenario: Path):
+    """The scenario of the folder, or None when it holds no scenario.toml (a book alone)."""
+    return _load(scenario) if (_folder(scenario) / "scenario.toml").is_file() else None
 
 
 def print_table(table: Table) -> None:
@@ -73,8 +89,9 @@ def commit_cmd(
     scn = _load(scenario)
     with progress(f"planning and committing {deal}"):
         result = commit_deal(scn, deal, book, solver=solver)
+    warnings = book_warnings(scn, book)
     if as_json:
-        print_json({**result.as_dict(), "caution": CAUTION})
+        print_json({**result.as_dict(), "warnings": warnings, "caution": CAUTION})
         return
     s = result.summary
     if result.committed:
@@ -86,6 +103,7 @@ def commit_cmd(
             out_console.print("  (another desk committed meanwhile: re-planned under the book's write lock)")
     else:
         out_console.print(f"[bold red]not committed[/] {deal}: {result.reason}")
+    print_warnings(warnings)
     out_console.print(CAUTION, style="dim")
 
 
@@ -98,10 +116,12 @@ def list_cmd(
     """List the committed deals."""
     from planner.book import book_path, list_deals
 
-    _folder(scenario)
+    scn = _load_if_scenario(scenario)
     deals = list_deals(scenario, book)
+    warnings = book_warnings(scn, book)
     if as_json:
-        print_json({"book": str(book_path(scenario, book)), "deals": [d.as_dict() for d in deals]})
+        print_json({"book": str(book_path(scenario, book)), "deals": [d.as_dict() for d in deals],
+                    "warnings": warnings})
         return
     if not deals:
         out_console.print(f"no deals committed in {book_path(scenario, book)}")
@@ -114,6 +134,7 @@ def list_cmd(
         t.add_row(d.name, d.demo, f"{d.first_week}-{d.last_week}", short(d.guarantee), f"{d.price_cpm:.2f}",
                   short(d.cost), _f(d.spots), _f(d.probability, "{:.1%}"))
     print_table(t)
+    print_warnings(warnings)
 
 
 @book_app.command("show")
@@ -126,10 +147,11 @@ def show_cmd(
     """Show one committed deal and the spots it holds."""
     from planner.book import get_deal
 
-    _folder(scenario)
+    scn = _load_if_scenario(scenario)
     d = get_deal(scenario, name, book)
+    warnings = book_warnings(scn, book)
     if as_json:
-        print_json(d.as_dict(with_holds=True))
+        print_json({**d.as_dict(with_holds=True), "warnings": warnings})
         return
     out_console.print(f"[bold]{d.name}[/] ({d.advertiser or '-'}), demo {d.demo}, weeks {d.first_week}-{d.last_week}, "
                       f"guarantee {count(d.guarantee)} at CPM {d.price_cpm:.2f}, committed {d.committed_at}")
@@ -145,6 +167,7 @@ def show_cmd(
         for r in by_week.itertuples(index=False):
             t.add_row(str(r.week), count(r.spots), count(r.cost), count(r.expected_impressions))
         print_table(t)
+    print_warnings(warnings)
 
 
 @book_app.command("release")
@@ -157,12 +180,14 @@ def release_cmd(
     """Release a committed deal: remove it and free the spots it holds."""
     from planner.book import release_deal
 
-    _folder(scenario)
+    scn = _load_if_scenario(scenario)
     d = release_deal(scenario, name, book)
+    warnings = book_warnings(scn, book)
     if as_json:
-        print_json({"released": d.name, "spots_freed": d.spots})
+        print_json({"released": d.name, "spots_freed": d.spots, "warnings": warnings})
         return
     out_console.print(f"released {d.name}: {count(d.spots or 0)} spots freed")
+    print_warnings(warnings)
 
 
 @book_app.command("check")
@@ -171,19 +196,25 @@ def check_cmd(
     book: Optional[Path] = _BOOK_OPT,
     as_json: bool = _JSON_OPT,
 ) -> None:
-    """Check the book: database integrity, units held beyond their avails, orphan holds."""
+    """Check the book: database integrity, units held beyond their avails, orphan holds.
+
+    Exit status 0 when consistent, 3 when not (an answer about the book), 2 for bad input."""
     from planner.book import book_path, check_book
 
     scn = _load(scenario)
     r = check_book(scn, book)
     ok = r.get("integrity", "ok") == "ok" and not (r["over_avails"] or r["orphan_holds"] or r["spot_count_mismatch"])
+    warnings = book_warnings(scn, book)
     if as_json:
-        print_json({"book": str(book_path(scenario, book)), "consistent": ok, **r})
-        return
-    out_console.print(f"book {book_path(scenario, book)}: {r['deals']} deal(s); "
-                      f"{'consistent' if ok else 'NOT consistent'} (integrity {r.get('integrity', 'ok')}, "
-                      f"units over avails {r['over_avails']}, orphan holds {r['orphan_holds']}, "
-                      f"spot-count mismatches {r['spot_count_mismatch']})")
+        print_json({"book": str(book_path(scenario, book)), "consistent": ok, **r, "warnings": warnings})
+    else:
+        out_console.print(f"book {book_path(scenario, book)}: {r['deals']} deal(s); "
+                          f"{'consistent' if ok else 'NOT consistent'} (integrity {r.get('integrity', 'ok')}, "
+                          f"units over avails {r['over_avails']}, orphan holds {r['orphan_holds']}, "
+                          f"spot-count mismatches {r['spot_count_mismatch']})")
+        print_warnings(warnings)
+    if not ok:
+        raise typer.Exit(EXIT_INCONSISTENT)
 
 
 @app.command("rebalance")

@@ -9,6 +9,7 @@ from pathlib import Path
 from typing import Optional
 
 import typer
+from rich.markup import escape
 from rich.table import Table
 
 from planner.cli import app
@@ -57,6 +58,12 @@ def _cautions(r) -> None:
         out_console.print(c, style="dim", highlight=False)
 
 
+def print_warnings(warnings) -> None:
+    """Data warnings, part of the answer on stdout (never silenced by --quiet)."""
+    for w in warnings:
+        out_console.print(f"[bold yellow]warning[/]: {escape(w)}", highlight=False)
+
+
 def _kv_table(rows) -> Table:
     t = Table(show_header=False, box=None, pad_edge=False)
     t.add_column("", style="bold")
@@ -95,6 +102,7 @@ def check_cmd(
     colour = "green" if r.deliverable else "red"
     out_console.print(f"[bold]{r.deal}[/] ({r.advertiser}, {r.demo}, weeks {r.first_week}-{r.last_week}): "
                       f"[bold {colour}]{r.verdict.upper()}[/]", highlight=False)
+    print_warnings(r.warnings)
     rows = [("guarantee", f"{_num(r.guarantee)} impressions"), ("risk margin", _risk(r))]
     if r.deliverable:
         rows += [
@@ -182,17 +190,19 @@ def plan_cmd(
                     "totals": r.totals, "pacing": r.pacing.to_dict(orient="records"),
                     "files": [str(p) for p in files], "solver": r.solver, "gap": r.gap, "lp_bound": r.lp_bound,
                     "cuts": r.cuts, "binding": r.binding, "fitted_forecast_first": r.fitted_forecast_first,
-                    "cautions": r.cautions})
+                    "warnings": r.warnings, "notes": r.notes, "cautions": r.cautions})
         return
     cur = r.currency
     if not r.deliverable:
         out_console.print(f"[bold]{r.deal}[/]: [bold red]NOT DELIVERABLE[/], no plan written", highlight=False)
+        print_warnings(r.warnings)
         for b in r.binding:
             out_console.print(f"  - {b}", highlight=False)
         _cautions(r)
         return
     t = r.totals
     out_console.print(f"[bold]{r.deal}[/]: buy plan written to {', '.join(map(str, files))}", highlight=False)
+    print_warnings(r.warnings)
     out_console.print(_kv_table([
         ("spots", f"{_num(t['spots'])} in {_num(t['units'])} units"),
         ("cost", _money(t["cost"], cur)),
