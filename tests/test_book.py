@@ -195,7 +195,7 @@ def test_version_2_book_gains_the_postings_table_with_cascade(tmp_path):
     conn.close()
     assert bk.read_postings(tmp_path, path).empty  # reading upgrades it
     conn = bk.open_book(path)
-    assert bk._schema_version(conn) == 3
+    assert bk._schema_version(conn) == bk.SCHEMA_VERSION
     fks = conn.execute("PRAGMA foreign_key_list(postings)").fetchall()
     assert [(r["table"], r["from"], r["to"], r["on_delete"]) for r in fks] == [("deals", "deal", "name", "CASCADE")]
     conn.close()
@@ -675,3 +675,68 @@ def test_units_held_over_their_avails_are_flagged_everywhere_and_book_check_exit
         js = json.loads(capsys.readouterr().out)
         warnings = js["book"]["warnings"] if name == "validate" else js["warnings"]
         assert any(w.startswith(want) for w in warnings), name
+
+
+def test_events_record_the_os_user_and_book_events_shows_the_audit_trail(tmp_path, monkeypatch, capsys):
+    """Each commit, release and re-plan records who did it (the operating-system user);
+    `pledge book events` lists time, action, deal and user, oldest first."""
+    import getpass
+
+    monkeypatch.setattr(getpass, "getuser", lambda: "desk-tester")
+    scn, _ = make_synthetic(tmp_path / "s")
+    bk.commit_deal(scn, "alpha", planner=greedy_planner(4))
+    holds = bk.get_deal(scn, "alpha").holds
+    bk.replace_holds(scn, "alpha", holds, {"note": "re-plan"})
+    bk.release_deal(scn, "alpha")
+    log = bk.events(scn)
+    assert log["action"].tolist() == ["commit", "rebalance", "release"]
+    assert log["user"].tolist() == ["desk-tester"] * 3 and set(log["deal"]) == {"alpha"}
+    code, out, _ = _cli(capsys, "book", "events", str(scn.path), "--json")
+    assert code == 0
+    rows = json.loads(out)["events"]
+    assert [(r["action"], r["deal"], r["user"]) for r in rows] == [
+        ("commit", "alpha", "desk-tester"), ("rebalance", "alpha", "desk-tester"), ("release", "alpha", "desk-tester")]
+    assert all(r["at"].endswith("+00:00") for r in rows)  # UTC, ISO 8601
+    code, out, _ = _cli(capsys, "book", "events", str(scn.path))
+    lines = [ln for ln in out.splitlines() if "alpha" in ln]
+    assert len(lines) == 3 and all("desk-tester" in ln for ln in lines) and "release" in lines[-1]
+
+
+def test_version_3_book_is_upgraded_and_its_old_events_have_no_user(tmp_path):
+    path = tmp_path / "v3.sqlite"
+    conn = sqlite3.connect(path)
+    conn.execute("CREATE TABLE schema_version (version INTEGER NOT NULL, applied_at TEXT NOT NULL)")
+    for version, statements in bk._MIGRATIONS[:3]:
+        for sql in statements:
+            conn.execute(sql)
+        conn.execute("INSERT INTO schema_version VALUES (?, 'then')", (version,))
+    conn.execute("INSERT INTO deals (name, demo, guarantee, price_cpm, first_week, last_week, committed_at, spots) "
+                 "VALUES ('old', 'a25-54', 1e6, 20, 1, 4, 'then', 3)")
+    conn.execute("INSERT INTO events (at, deal, action, detail_json) VALUES ('then', 'old', 'commit', '{}')")
+    conn.commit()
+    conn.close()
+    log = bk.events(tmp_path, path)
+    assert log["user"].tolist() == [None] and log["action"].tolist() == ["commit"]
+    old = bk.list_deals(tmp_path, path)[0]
+    assert old.terms == {}
+    conn = bk.open_book(path)
+    assert bk._schema_version(conn) == bk.SCHEMA_VERSION == 4
+    conn.close()
+
+
+def test_a_deal_file_that_differs_from_its_commit_is_named_key_by_key(tmp_path):
+    from dataclasses import replace
+
+    from planner.scenario import Mix
+
+    scn, _ = make_synthetic(tmp_path / "s")
+    bk.commit_deal(scn, "alpha", planner=greedy_planner(4))
+    booked = bk.get_deal(scn, "alpha")
+    deal = scn.deals["alpha"]
+    assert bk.terms_differ(booked, deal) == []
+    edited = replace(deal, impressions=deal.impressions + 1000, mix=Mix(max_network_share=0.4))
+    diff = bk.terms_differ(booked, edited)
+    assert diff == [f"impressions: {deal.impressions:,.0f} in the book, {deal.impressions + 1000:,.0f} in the file",
+                    "mix.max_network_share: None in the book, 0.4 in the file"]
+    back = bk.deal_from_book(booked)
+    assert bk.terms_differ(booked, back) == [] and back.mix == deal.mix

@@ -1,4 +1,4 @@
-"""`pledge book commit|list|show|release` and `pledge rebalance`: the book of sold deals.
+"""`pledge book commit|list|show|release|check|events` and `pledge rebalance`: the book of sold deals.
 
 Exit status: 0 for an answer (a deal that cannot be delivered and is therefore not committed is
 an answer: the verdict says "not committed"), 2 for bad input, 1 for an internal error.
@@ -17,7 +17,7 @@ from planner.cli.common import book_option, count, info, money, out_console, pri
 from planner.cli.deal_cmds import print_warnings, write_plan_files
 from planner.errors import InputError
 
-book_app = typer.Typer(help="The book of sold deals: commit, list, show, release, check.", no_args_is_help=True)
+book_app = typer.Typer(help="The book of sold deals: commit, list, show, release, check, events.", no_args_is_help=True)
 app.add_typer(book_app, name="book")
 
 #: exit status of `pledge book check` when the book is not consistent (an answer, not bad input)
@@ -168,6 +168,35 @@ def show_cmd(
             t.add_row(str(r.week), count(r.spots), count(r.cost), count(r.expected_impressions))
         print_table(t)
     print_warnings(warnings)
+
+
+@book_app.command("events")
+def events_cmd(
+    scenario: Path = typer.Argument(..., help="Scenario folder."),
+    deal: Optional[str] = typer.Option(None, "--deal", help="Only this deal's events."),
+    book: Optional[Path] = _BOOK_OPT,
+    as_json: bool = _JSON_OPT,
+) -> None:
+    """The book's audit trail: every commit, release and re-plan with its time (UTC) and user."""
+    from planner.book import book_path, events
+
+    _folder(scenario)
+    log = events(scenario, book)
+    if deal is not None:
+        log = log[log["deal"] == deal]
+    if as_json:
+        print_json({"book": str(book_path(scenario, book)), "events": log.to_dict(orient="records")})
+        return
+    if log.empty:
+        out_console.print(f"no events in {book_path(scenario, book)}")
+        return
+    t = Table(title=f"events of book {book_path(scenario, book)} (oldest first)", title_justify="left")
+    for c in ("time (UTC)", "action", "deal", "user", "spots"):
+        t.add_column(c, justify="right" if c == "spots" else "left", no_wrap=True)
+    for r in log.itertuples(index=False):  # one row per event: a log, not a large table
+        spots = r.detail.get("spots") if isinstance(r.detail, dict) else None
+        t.add_row(str(r.at).replace("+00:00", ""), r.action, r.deal, r.user or "-", _f(spots))
+    print_table(t)
 
 
 @book_app.command("release")
