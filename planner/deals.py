@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 
 from planner import allocate as al
-from planner.delivery import UNIT_KEY
+from planner.delivery import UNIT_KEY, DeliveryModel
 from planner.errors import InputError
 
 CAUTIONS = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
@@ -375,6 +375,23 @@ def _spots_frame(run: DealRun) -> pd.DataFrame:
     return out.sort_values(UNIT_KEY).reset_index(drop=True)
 
 
+def _by_week(dm, x: np.ndarray, wk: np.ndarray, weeks) -> tuple[np.ndarray, np.ndarray]:
+    """Expected impressions and sd of spots `x` week by week (`wk` the week of each unit row)."""
+    exp, sds = [], []
+    for w in weeks:  # one pass per flight week (a dozen or so), each vectorised
+        xw = np.where(wk == w, x, 0.0)
+        exp.append(dm.mean(xw))
+        sds.append(dm.sd(xw))
+    return np.array(exp), np.array(sds)
+
+
+def _pacing_frame(weeks, exp: np.ndarray, sds: np.ndarray) -> pd.DataFrame:
+    """Pacing table: week, expected_impressions, sd, p10/p90 (normal band), even_pacing."""
+    even = float(np.sum(exp)) / len(weeks) if len(weeks) else np.nan
+    return pd.DataFrame({"week": list(weeks), "expected_impressions": exp, "sd": sds, "p10": exp - Z10 * sds,
+                         "p90": exp + Z10 * sds, "even_pacing": even})
+
+
 def pacing_table(run: DealRun) -> pd.DataFrame:
     """Per flight week: expected impressions, sd, p10/p90 (normal band) and even pacing."""
     prob, x = run.problem, run.allocation.x
@@ -382,17 +399,20 @@ def pacing_table(run: DealRun) -> pd.DataFrame:
     if x is None:
         return pd.DataFrame({"week": weeks, "expected_impressions": np.nan, "sd": np.nan, "p10": np.nan,
                              "p90": np.nan, "even_pacing": np.nan})
-    dm = prob.model
-    wk = prob.units["week"].to_numpy()
-    exp, sds = [], []
-    for w in weeks:  # one pass per flight week (a dozen or so), each vectorised
-        xw = np.where(wk == w, x, 0.0)
-        exp.append(dm.mean(xw))
-        sds.append(dm.sd(xw))
-    exp, sds = np.array(exp), np.array(sds)
-    even = dm.mean(x) / len(weeks)
-    return pd.DataFrame({"week": weeks, "expected_impressions": exp, "sd": sds, "p10": exp - Z10 * sds,
-                         "p90": exp + Z10 * sds, "even_pacing": even})
+    return _pacing_frame(weeks, *_by_week(prob.model, x, prob.units["week"].to_numpy(), weeks))
+
+
+def held_pacing(scenario, deal, holds: pd.DataFrame, forecast: pd.DataFrame) -> pd.DataFrame:
+    """Pacing of a deal's held spots (`pacing_table`'s columns): each week's expected impressions
+    as the book stores them (`holds.expected_impressions`), its sd from the delivery model of the
+    held spots on `forecast` (deal's demo; preemption from the inventory)."""
+    weeks = list(deal.weeks)
+    units = holds[UNIT_KEY + ["spots"]].astype({"week": "int64"}).merge(
+        deal_units(scenario, forecast, deal), on=UNIT_KEY, how="inner")
+    _, sds = (_by_week(DeliveryModel.from_units(units), units["spots"].to_numpy(float), units["week"].to_numpy(),
+                       weeks) if len(units) else (None, np.zeros(len(weeks))))
+    exp = holds.groupby("week")["expected_impressions"].sum().reindex(weeks, fill_value=0.0).to_numpy(float)
+    return _pacing_frame(weeks, exp, sds)
 
 
 def _summary(run: DealRun) -> dict:

@@ -145,12 +145,6 @@ def example_actuals(scenario: Any, deal_name: str, weeks: int = EXAMPLE_WEEKS, s
     return write_with_atomic(path, lambda p: acts.to_csv(p, index=False))
 
 
-def _payload(result: Any) -> dict:
-    from planner.report import check_payload
-
-    return check_payload(result)
-
-
 def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, seed: int = DEFAULT_SEED,
              solver: str = "cbc", stage: Callable[..., ContextManager] | None = None,
              say: Callable[[str], None] | None = None) -> DemoResult:
@@ -204,26 +198,22 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
         say(f"re-run: released {', '.join(released)} from the demo book to start it afresh")
 
     from planner.book import commit_deal, held_spots
-    from planner.report import evaluate_deal
+    from planner.deals import plan_result, run_deal
 
-    checks: dict[str, dict] = {}
     committed: list[str] = []
     not_committed: dict[str, str] = {}
     names = list(scn.deals)
-    runs = {}
-    # The desk's order of work: check a deal against the book as it stands, commit it if it is
+    # The desk's order of work: plan a deal against the book as it stands, commit it if it is
     # deliverable, then the next deal (it sees the spots the earlier ones hold).
     with timed("check_commit", f"3/5 checking {len(names)} demo deals, committing the deliverable ones",
                total=len(names)) as advance:
         for name in names:
-            check, plan, extra = evaluate_deal(scn, name, forecast=fc.table, held=held_spots(scn), solver=solver)
-            runs[name] = (check, plan, extra)
-            checks[name] = _payload(check)
-            if plan is not None and plan.deliverable:
+            plan = plan_result(run_deal(scn, name, solver=solver, held=held_spots(scn), forecast=fc.table),
+                               explain=False)
+            if plan.deliverable:
                 r = commit_deal(scn, name, planner=_reuse_plan(plan, fc.table), solver=solver)
                 if r.committed:
                     committed.append(name)
-                    runs[name] = (check, r.plan, extra)
                 else:
                     not_committed[name] = r.reason
             else:
@@ -243,10 +233,16 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
             stress = stress_book(scn, draws=draws, seed=seed, forecast=fc.table)
     report = folder / REPORT_NAME
     with timed("report", "5/5 writing the report"):
-        data = build_report(scn, forecast=fc.table, stress=stress, runs=runs, seed=seed, solver=solver,
-                            check_note="The demo checked each deal in turn against the book as it stood "
-                                       "(the deals committed before it), and committed it when deliverable.")
+        # The report checks every deal against the book as it now stands (not the demo's own
+        # checks, made as the book filled): the same answers `pledge report` gives on this folder.
+        data = build_report(scn, forecast=fc.table, stress=stress, seed=seed, solver=solver,
+                            check_note="The demo checked each deal in turn against the book as it stood (the "
+                                       "deals committed before it) and committed it when deliverable; below, a "
+                                       "deal not in the book is checked against every deal's holds.")
         write_report(data, report)
+    # One book, one answer: the demo's table is the report's (a deal in the book from the book,
+    # its largest guarantee against the other deals' holds).
+    checks = {d.name: d.verdict for d in data.deals}
     result = DemoResult(folder=folder, report=report, scenario=scn.name, currency=scn.currency,
                         reused_folder=reused_folder, reused_forecast=reused_forecast, checks=checks,
                         committed=committed, not_committed=not_committed, released=released,

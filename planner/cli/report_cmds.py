@@ -40,8 +40,9 @@ def _verdict_table(checks: dict[str, dict], currency: str, committed: set[str] |
                   count(v["margin"]) if v.get("margin") is not None else "-",
                   _pct(v.get("probability_of_delivery")), _k(v.get("max_guarantee")))
     if committed is not None:
-        t.caption = ("verdict: held = deliverable and committed to the book, NO = not deliverable; "
-                     "max: the largest deliverable guarantee against the holds the book had when the deal was checked")
+        t.caption = ("verdict: held = in the book (its held plan and terms, from the book), yes/NO = deliverable "
+                     "or not against the book's holds; max: the largest deliverable guarantee against the other "
+                     "deals' holds")
         t.caption_justify = "left"
     return t
 
@@ -58,6 +59,7 @@ def report_cmd(
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object on stdout."),
 ) -> None:
     """Write one HTML report: verdicts, frontier, pacing, where the money goes, stress, forecast bands."""
+    from planner.book import list_deals
     from planner.report import build_report, write_report
     from planner.scenario import load_scenario
 
@@ -70,9 +72,11 @@ def report_cmd(
     if draws < 2:
         raise InputError(f"--draws {draws}: need at least 2 draws")
     scn = load_scenario(scenario)
+    known = set(scn.deals) | {d.name for d in list_deals(scn, book)}
     for name in deal or ():
-        if name not in scn.deals:
-            raise InputError(f"{scenario}: no deal named {name!r} in deals/ (known: {', '.join(sorted(scn.deals))})")
+        if name not in known:
+            raise InputError(f"{scenario}: no deal named {name!r} in deals/ or the book (known: "
+                             f"{', '.join(sorted(known))})")
     with progress("building the report"):
         data = build_report(scn, deals=deal or None, draws=draws, seed=seed, solver=solver, book=book,
                             stage=lambda text: info(f"  {text}"))
