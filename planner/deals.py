@@ -306,18 +306,45 @@ def run_deal(scenario, deal_name: str, *, solver: str = "cbc", held=None, book=N
     return DealRun(scenario, deal, prob, alloc, fitted, n_held, units=units, held=held_df, warnings=warnings)
 
 
-def scope_diagnosis(run: DealRun) -> list[str]:
-    """What the deal's exclusions and per-unit spot cap cost, when the spots they leave fall short.
+def _scope_items(mix) -> list[tuple[str, dict]]:
+    """The deal's exclusions and spot cap, each as (label as in the deal file, candidate_units
+    arguments without it)."""
+    base = dict(exclude_networks=mix.exclude_networks, exclude_zones=mix.exclude_zones,
+                max_spots_per_unit=mix.max_spots_per_unit)
+    out = []
+    if mix.exclude_zones:
+        out.append((f"exclude_zones {', '.join(mix.exclude_zones)}", {**base, "exclude_zones": ()}))
+    if mix.exclude_networks:
+        out.append((f"exclude_networks {', '.join(mix.exclude_networks)}", {**base, "exclude_networks": ()}))
+    if mix.max_spots_per_unit:
+        out.append((f"max_spots_per_unit {mix.max_spots_per_unit}", {**base, "max_spots_per_unit": None}))
+    return out
 
-    They decide which spots the deal may buy, not how the plan mixes them, so `al.diagnose`
-    (which relaxes the plan's rules) keeps them. Here: the largest guarantee with no share or
-    pacing rule and no risk margin, inside them and without them (LP relaxations, impressions).
-    Returns one line, or none when the deal has neither or the spots inside them suffice.
-    """
+
+def scope_levers(run: DealRun, current: float) -> list[tuple[float, str]]:
+    """The deal's exclusions and per-unit spot cap removed one at a time, every rule kept: (gain,
+    text) for each whose removal raises the largest deliverable guarantee above `current`
+    (`allocate.lever_text`; LP relaxations, impressions). They decide which spots the deal may
+    buy, so `al.rule_levers` (which changes the plan's rules) cannot try them."""
+    if run.units is None:
+        return []
+    prob, deal = run.problem, run.deal
+    out = []
+    for label, args in _scope_items(deal.mix):
+        scope = al.candidate_units(run.units, weeks=deal.weeks, held=run.held, **args)
+        allowed = al.max_guarantee(al.make_problem(scope, prob.guarantee, prob.rules, deal.weeks),
+                                   tol=2e-3, max_iter=40).value
+        if allowed - current > 1e-3 * max(prob.guarantee, 1.0):
+            out.append((allowed - current, al.lever_text(label, allowed, current)))
+    return out
+
+
+def scope_diagnosis(run: DealRun) -> list[str]:
+    """When even with no rule and no margin the spots the deal may buy fall short: what they
+    would deliver without its exclusions and spot cap (LP relaxation, impressions). One line, or
+    none when the deal has neither or the spots inside them suffice."""
     mix, prob = run.deal.mix, run.problem
-    named = ([f"exclude_zones {', '.join(mix.exclude_zones)}"] if mix.exclude_zones else []) \
-        + ([f"exclude_networks {', '.join(mix.exclude_networks)}"] if mix.exclude_networks else []) \
-        + ([f"max_spots_per_unit {mix.max_spots_per_unit}"] if mix.max_spots_per_unit else [])
+    named = [label for label, _ in _scope_items(mix)]
     if run.units is None or not named:
         return []
     loose = al.no_rules_no_margin(prob.rules)
@@ -327,9 +354,8 @@ def scope_diagnosis(run: DealRun) -> list[str]:
     scope = al.candidate_units(run.units, weeks=run.deal.weeks, held=run.held)
     without = al.max_guarantee(al.make_problem(scope, prob.guarantee, loose, run.deal.weeks)).value
     verdict = "enough" if without >= prob.guarantee * (1 - 1e-6) else "still short"
-    return [f"exclusions and spot cap ({'; '.join(named)}): with no share or pacing rule and no risk margin "
-            f"the spots they leave deliver at most {inside:,.0f} expected impressions; without them "
-            f"{without:,.0f} ({verdict} for {prob.guarantee:,.0f})"]
+    return [f"without its {'; '.join(named)} too, with no share or pacing rule and no risk margin, the spots "
+            f"left would deliver at most {without:,.0f} expected impressions ({verdict} for {prob.guarantee:,.0f})"]
 
 
 def _risk_text(deal) -> str:
@@ -465,7 +491,9 @@ def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
         binding = []
         reason = a.status
     else:
-        binding = al.diagnose(prob) + scope_diagnosis(run) if explain else []
+        current = al.max_guarantee(prob, tol=2e-3, max_iter=40).value if explain else 0.0
+        binding = (al.diagnose(prob, current=current, levers=scope_levers(run, current)) + scope_diagnosis(run)
+                   if explain else [])
         reason = "no plan meets the guarantee under the deal's rules and risk margin"
         if binding:
             reason += " (" + "; ".join(binding[:3]) + ")"
@@ -540,7 +568,7 @@ def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=a
     else:
         binding = [f"largest deliverable guarantee at these rules: {max_g:,.0f} impressions "
                    f"({100 * max_g / deal.impressions:.0f}% of the {deal.impressions:,.0f} asked)"]
-        binding += al.diagnose(prob) + scope_diagnosis(run)
+        binding += al.diagnose(prob, current=mg.value, levers=scope_levers(run, mg.value)) + scope_diagnosis(run)
     cpm = al.cpm_needed(a.cost, deal.impressions, target_margin) if (a.feasible and target_margin is not None) else None
     fr = None
     if with_frontier:

@@ -158,8 +158,13 @@ def test_diagnosis_names_what_the_exclusions_cost(scn, fc):
                    mix_exclude_zones=[z for z in units["zone"].unique() if z != keep_zone])
     r = deals.check_deal(s, "x", forecast=fc, held=None, solver="highs")
     assert not r.deliverable
-    line = next(b for b in r.binding if b.startswith("exclusions and spot cap"))
-    assert f"at most {inside:,.0f} expected impressions; without them {everything:,.0f} (enough" in line
+    excluded = ", ".join(s.deals["x"].mix.exclude_zones)
+    lever = next(b for b in r.binding if b.startswith(f"exclude_zones {excluded}: without it alone"))
+    allowed = float(lever.split("would be ")[1].split(" ")[0].replace(",", ""))
+    assert allowed == pytest.approx(everything, rel=2e-3)  # the LP's tolerance
+    assert any(f"deliver at most {inside:,.0f} expected impressions" in b for b in r.binding)
+    line = next(b for b in r.binding if b.startswith(f"without its exclude_zones {excluded} too"))
+    assert f"at most {everything:,.0f} expected impressions (enough" in line
 
 
 @pytest.mark.parametrize("changes, words", [
