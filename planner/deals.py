@@ -123,6 +123,7 @@ class PlanResult:
     cautions: list = field(default_factory=list)
     warnings: list = field(default_factory=list)  # about the data (the book held over avails)
     notes: list = field(default_factory=list)  # about this plan (pacing, chance under a pad)
+    shared_error_caution: str | None = None  # the forecast's caution in full (its brief form is in cautions)
 
 
 @dataclass
@@ -173,6 +174,7 @@ class CheckResult:
     cautions: list = field(default_factory=list)
     warnings: list = field(default_factory=list)  # about the data (the book held over avails)
     notes: list = field(default_factory=list)  # about this plan (pacing, chance under a pad)
+    shared_error_caution: str | None = None  # the forecast's caution in full (its brief form is in cautions)
 
     def to_json(self) -> dict:
         """Plain dict for `--json` (the documented keys first)."""
@@ -374,10 +376,17 @@ def _cautions(run: DealRun) -> list[str]:
         out.append("The forecast was missing or stale and was fitted first.")
     from planner.forecast_job import forecast_caution
 
-    shared = forecast_caution(run.scenario)
+    shared = forecast_caution(run.scenario, brief=True)
     if shared:
         out.append(shared)
     return out
+
+
+def _shared_caution(run: DealRun) -> str | None:
+    """The whole text of the forecast's caution on errors shared by all units (for --json)."""
+    from planner.forecast_job import forecast_caution
+
+    return forecast_caution(run.scenario)
 
 
 def _spots_frame(run: DealRun) -> pd.DataFrame:
@@ -511,7 +520,7 @@ def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
         solver=a.solver, gap=a.gap, lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts,
         iterations=a.iterations, build_seconds=a.build_seconds, solve_seconds=a.solve_seconds,
         fitted_forecast_first=run.fitted_now, held_spots_excluded=run.held_spots, binding=binding,
-        cautions=_cautions(run), warnings=list(run.warnings))
+        cautions=_cautions(run), warnings=list(run.warnings), shared_error_caution=_shared_caution(run))
 
 
 def frontier(prob: al.AllocationProblem, sizes, *, solver: str = "cbc", gap: float = al.DEFAULT_GAP,
@@ -587,4 +596,5 @@ def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=a
         binding=binding, spots=s["spots"], units_bought=s["units"], solver=a.solver, gap=a.gap,
         lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts, iterations=a.iterations,
         build_seconds=a.build_seconds, solve_seconds=a.solve_seconds, fitted_forecast_first=run.fitted_now,
-        held_spots_excluded=run.held_spots, frontier=fr, cautions=_cautions(run), warnings=list(run.warnings))
+        held_spots_excluded=run.held_spots, frontier=fr, cautions=_cautions(run), warnings=list(run.warnings),
+        shared_error_caution=_shared_caution(run))

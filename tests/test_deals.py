@@ -83,7 +83,9 @@ def test_default_confidence_is_stated(scn, fc):
     from planner.forecast_job import forecast_meta, shared_error_caution
 
     shared = shared_error_caution(forecast_meta(scn), scn.path)
-    assert (shared in r.cautions) if shared else not any("refits missed" in c for c in r.cautions)
+    brief = shared_error_caution(forecast_meta(scn), scn.path, brief=True)
+    assert (brief in r.cautions) if brief else not any("refits missed" in c for c in r.cautions)
+    assert r.shared_error_caution == shared
 
 
 def test_too_big_deal_is_an_answer(scn, fc):

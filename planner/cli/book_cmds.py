@@ -309,6 +309,7 @@ def rebalance_cmd(
         out_console.print("  book updated with the re-plan's holds")
     elif commit:
         out_console.print(f"  book not updated ({r.not_committed_reason})")
-    if shared:
-        out_console.print(f"[yellow]caution: {escape(shared)}[/yellow]")
+    brief = forecast_caution(scn, scenario, brief=True)
+    if brief:
+        out_console.print(f"[yellow]caution: {escape(brief)}[/yellow]")
     out_console.print(CAUTION, style="dim")

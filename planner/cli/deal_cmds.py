@@ -190,7 +190,8 @@ def plan_cmd(
                     "totals": r.totals, "pacing": r.pacing.to_dict(orient="records"),
                     "files": [str(p) for p in files], "solver": r.solver, "gap": r.gap, "lp_bound": r.lp_bound,
                     "cuts": r.cuts, "binding": r.binding, "fitted_forecast_first": r.fitted_forecast_first,
-                    "warnings": r.warnings, "notes": r.notes, "cautions": r.cautions})
+                    "warnings": r.warnings, "notes": r.notes, "cautions": r.cautions,
+                    "shared_error_caution": r.shared_error_caution})
         return
     cur = r.currency
     if not r.deliverable:

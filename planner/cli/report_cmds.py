@@ -6,11 +6,14 @@ from typing import List, Optional
 
 import typer
 from rich import box
+from rich.markup import escape
 from rich.table import Table
 
 from planner.cli import app
 from planner.cli.common import book_option, count, info, money, out_console, print_json, progress
 from planner.errors import InputError
+from planner.forecast_job import forecast_caution
+from planner.scenario import load_scenario
 
 CAUTION = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
            "under-delivery; review a plan with the people accountable for the money before committing.")
@@ -23,6 +26,14 @@ def _pct(v) -> str:
 def _k(v) -> str:
     """Impressions in thousands, grouped: 26,729,000 -> '26,729'."""
     return "-" if v is None else f"{float(v) / 1000:,.0f}"
+
+
+def print_cautions(warnings, full: str | None, brief: str | None) -> None:
+    """The report's cautions on stdout, the forecast's own in its brief form (`full` replaced by
+    `brief`; the whole text is in the report and in --json)."""
+    for w in warnings:
+        out_console.print(f"[yellow]caution: {escape(brief if (full is not None and w == full) else w)}[/yellow]",
+                          highlight=False)
 
 
 def _verdict_table(checks: dict[str, dict], currency: str, committed: set[str] | None = None) -> Table:
@@ -61,7 +72,6 @@ def report_cmd(
     """Write one HTML report: verdicts, frontier, pacing, where the money goes, stress, forecast bands."""
     from planner.book import list_deals
     from planner.report import build_report, write_report
-    from planner.scenario import load_scenario
 
     if not scenario.is_dir():
         raise InputError(f"{scenario}: not a scenario folder")
@@ -96,8 +106,7 @@ def report_cmd(
         out_console.print(f"book: {len(b.deals)} deal(s), expected liability {money(b.expected_liability, scn.currency)}, "
                           f"VaR95 {money(b.var95, scn.currency)}, CVaR95 {money(b.cvar95, scn.currency)} "
                           f"({count(b.draws)} draws, seed {b.seed})")
-    for w in data.warnings:
-        out_console.print(f"[yellow]caution: {w}[/yellow]")
+    print_cautions(data.warnings, forecast_caution(scn), forecast_caution(scn, brief=True))
     out_console.print(f"report written to [bold]{path}[/]")
     out_console.print(CAUTION, style="dim")
 
@@ -141,8 +150,8 @@ def demo_cmd(
         out_console.print(f"book of {len(result.committed)} deal(s): expected liability ({basis} basis) "
                           f"{money(b['expected_liability'], cur)}, VaR95 {money(b['var95'], cur)}, "
                           f"CVaR95 {money(b['cvar95'], cur)} ({count(result.draws)} draws, seed {result.seed})")
-    for w in result.warnings:
-        out_console.print(f"[yellow]caution: {w}[/yellow]")
+    scn = load_scenario(result.folder)
+    print_cautions(result.warnings, forecast_caution(scn), forecast_caution(scn, brief=True))
     out_console.print(f"report: [bold]{result.report}[/]   (done in {elapsed:,.0f} s)")
     if result.actuals_example is not None:
         out_console.print(f"mid-flight: invented posted actuals of {result.actuals_deal}'s first weeks; try "

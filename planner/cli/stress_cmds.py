@@ -52,6 +52,7 @@ def stress_cmd(
 
     caution = forecast_caution(scn, scenario)
     cautions = list(r.warnings) + ([caution] if caution else [])  # the book's own, then the forecast's
+    brief = forecast_caution(scn, scenario, brief=True)
     if as_json:
         print_json({**r.as_dict(), "warnings": cautions})
         return
@@ -86,6 +87,6 @@ def stress_cmd(
         j = r.joint
         out_console.print(f"  most correlated pair {j['deals'][0]} / {j['deals'][1]} (corr {j['correlation']:.2f}): "
                           f"both short {j['probability_both_short']:.2%} vs {j['product_if_independent']:.2%} if independent")
-    for c in cautions:
+    for c in list(r.warnings) + ([brief] if brief else []):
         out_console.print(f"[yellow]caution: {escape(c)}[/yellow]")
     out_console.print(CAUTION, style="dim")
