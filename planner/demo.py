@@ -16,11 +16,11 @@ from pathlib import Path
 from typing import Any, Callable, ContextManager
 
 from planner.errors import InputError
+from planner.stress import DEFAULT_DRAWS
 
 DEFAULT_FOLDER = "pledge-demo"
 REPORT_NAME = "report.html"
 SUMMARY_NAME = "demo-summary.json"
-DEFAULT_DRAWS = 20_000
 DEFAULT_SEED = 0
 EXAMPLE_WEEKS = 4  # weeks of invented posted actuals the demo leaves for `pledge rebalance`
 

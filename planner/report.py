@@ -27,6 +27,7 @@ import pandas as pd
 
 from planner import plots
 from planner.atomic import write_text_atomic
+from planner.stress import DEFAULT_DRAWS
 
 CAUTIONS = (
     "Forecasts are estimates made from past audiences; actual delivery will differ, and the bands "
@@ -397,15 +398,16 @@ def _book_section(data: ReportData) -> str:
         return '<h2>The book</h2><div class="empty">No deals committed to the book: no stress test.</div>'
     c = data.currency
     shocks = ", ".join(b.shocks) if b.shocks else "none"
-    tiles = (
-        _tile("_book", "expected_liability", "expected liability", b.expected_liability,
-              fmt_money(b.expected_liability, c))
-        + _tile("_book", "var95", "VaR95 of liability", b.var95, fmt_money(b.var95, c), "risk")
-        + _tile("_book", "cvar95", "CVaR95 of liability", b.cvar95, fmt_money(b.cvar95, c), "risk")
-        + _tile("_book", "draws", "Monte Carlo draws", b.draws, fmt_count(b.draws))
-    )
-    img = _img(plots.liability_svg(b.liability_draws, b.var95, b.cvar95, c), "liability", None,
-               "book liability distribution")
+    tiles = "".join(
+        _tile("_book", key, f"{label} of {b.liability_basis} liability (\u00b1 s.e.)", value,
+              f"{fmt_money(value, c)} \u00b1 {fmt_count(b.extra.get(key + '_se'))}", cls)
+        + f'<span hidden data-deal="_book" data-field="{key}_se" '
+          f'data-value="{_esc(_attr_value(b.extra.get(key + "_se")))}"></span>'
+        for key, label, value, cls in (("expected_liability", "expected value", b.expected_liability, ""),
+                                       ("var95", "VaR95", b.var95, "risk"), ("cvar95", "CVaR95", b.cvar95, "risk"))
+    ) + _tile("_book", "draws", "Monte Carlo draws", b.draws, fmt_count(b.draws))
+    img = _img(plots.liability_svg(b.liability_draws, b.var95, b.cvar95, c, b.liability_basis), "liability", None,
+               f"book {b.liability_basis} liability distribution")
     deals = ", ".join(b.deals) if b.deals else "\u2014"
     rows = "".join(
         f"<tr><td>{_esc(r['deal'])}</td><td>{fmt_pct(r['probability_of_shortfall'])}</td>"
@@ -739,7 +741,7 @@ def evaluate_deal(scenario: Any, name: str, *, forecast: pd.DataFrame, held: pd.
 
 def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str | Path | None = None,
                  forecast: pd.DataFrame | None = None, stress: Any = None,
-                 runs: dict[str, tuple[Any, Any]] | None = None, draws: int = 20_000, seed: int = 0,
+                 runs: dict[str, tuple[Any, Any]] | None = None, draws: int = DEFAULT_DRAWS, seed: int = 0,
                  solver: str = "cbc", n_units: int = 3, stage: Any = None,
                  check_note: str | None = None) -> ReportData:
     """Gather everything the report shows for `deals` (default: every deal of the scenario).

@@ -79,3 +79,59 @@ def test_piped_output_is_not_wrapped(cautioned, capsys):
     code, out, _ = _cli(capsys, "check", folder, "small-tight", "--solver", "highs")
     caution = next(line for line in out.splitlines() if line.startswith("Forecasts are estimates"))
     assert caution.rstrip().endswith("before committing.")
+
+
+def test_one_default_draw_count_for_stress_report_and_demo():
+    """QA finding: report and demo drew 20,000 times, stress 100,000: one book, two answers
+    (VaR95 USD 15,711 against 18,443). One default everywhere."""
+    import inspect
+
+    import typer
+
+    from planner.cli import app
+    from planner.demo import run_demo
+    from planner.report import build_report
+    from planner.stress import DEFAULT_DRAWS, stress_book
+
+    cmd = typer.main.get_command(app)
+    defaults = {name: next(p.default for p in cmd.commands[name].params if p.name == "draws")
+                for name in ("stress", "report", "demo")}
+    api = {f.__name__: inspect.signature(f).parameters["draws"].default for f in (stress_book, build_report, run_demo)}
+    assert set(defaults.values()) | set(api.values()) == {DEFAULT_DRAWS}, (defaults, api)
+
+
+def test_the_report_gives_var_and_cvar_with_standard_errors_and_names_the_basis(cautioned, capsys):
+    from test_report import report_fields
+
+    folder, _, _ = cautioned
+    code, out, _ = _cli(capsys, "report", folder, "--out", folder / "r.html", "--draws", 4000, "--seed", 3,
+                        "--solver", "highs")
+    assert code == 0
+    code, st, _ = _cli(capsys, "stress", folder, "--draws", 4000, "--seed", 3, "--json")
+    book = json.loads(st)["book"]
+    fields = report_fields(folder / "r.html").fields
+    for key in ("expected_liability", "var95", "cvar95"):
+        assert float(fields[("_book", key + "_se")]) == pytest.approx(book[key + "_se"], rel=1e-9)
+        assert f"{key.replace('expected_liability', 'expected liability (refund basis)').upper() if False else ''}" == ""
+    line = next(x for x in out.splitlines() if x.startswith("book: "))
+    assert f"VaR95 USD {book['var95']:,.0f} +- {book['var95_se']:,.0f}" in line
+    assert f"CVaR95 USD {book['cvar95']:,.0f} +- {book['cvar95_se']:,.0f}" in line
+    assert "refund basis" in line
+
+
+def test_liability_labels_name_their_units_and_basis(cautioned, capsys):
+    """QA findings: "exp. shortfall" (impressions) sat under a caption saying money in USD; the
+    report's histogram was titled make-good liability on a refund basis."""
+    import numpy as np
+
+    from planner import plots
+
+    folder, _, _ = cautioned
+    code, out, _ = _cli(capsys, "stress", folder, "--draws", 2000)
+    header = next(x for x in out.splitlines() if "exp. shortfall" in x)
+    assert "exp. shortfall (imp.)" in header and "exp. liability (USD)" in header
+    draws = np.random.default_rng(0).exponential(1000.0, 500)
+    refund = plots.liability_svg(draws, 2000.0, 3000.0, "USD", "refund")
+    makegood = plots.liability_svg(draws, 2000.0, 3000.0, "USD", "makegood")
+    assert "Refund liability" in refund and "Make-good" not in refund
+    assert "Make-good liability" in makegood and "Refund" not in makegood

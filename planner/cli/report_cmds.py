@@ -14,6 +14,7 @@ from planner.cli.common import book_option, count, info, money, out_console, pri
 from planner.errors import InputError
 from planner.forecast_job import forecast_caution
 from planner.scenario import load_scenario
+from planner.stress import DEFAULT_DRAWS
 
 CAUTION = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
            "under-delivery; review a plan with the people accountable for the money before committing.")
@@ -26,6 +27,17 @@ def _pct(v) -> str:
 def _k(v) -> str:
     """Impressions in thousands, grouped: 26,729,000 -> '26,729'."""
     return "-" if v is None else f"{float(v) / 1000:,.0f}"
+
+
+def book_line(b: dict, basis: str, currency: str) -> str:
+    """'expected liability (refund basis) USD 4,764 +- 61, VaR95 USD 15,711 +- 420, CVaR95 ...'
+    from a stress result's `book` dict (Monte Carlo standard errors after +-)."""
+    def fig(key: str) -> str:
+        se = b.get(key + "_se")
+        return money(b[key], currency) + ("" if se is None or se != se else f" +- {count(se)}")
+
+    return (f"expected liability ({basis} basis) {fig('expected_liability')}, VaR95 {fig('var95')}, "
+            f"CVaR95 {fig('cvar95')}")
 
 
 def print_cautions(warnings, full: str | None, brief: str | None) -> None:
@@ -63,7 +75,7 @@ def report_cmd(
     scenario: Path = typer.Argument(..., help="Scenario folder."),
     out: Path = typer.Option(..., "--out", help="HTML file to write (self-contained, opens from disk)."),
     deal: Optional[List[str]] = typer.Option(None, "--deal", help="Deal to include (repeatable; default: every deal)."),
-    draws: int = typer.Option(20_000, "--draws", help="Monte Carlo draws for the book's stress test."),
+    draws: int = typer.Option(DEFAULT_DRAWS, "--draws", help="Monte Carlo draws for the book's stress test."),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed of the stress test."),
     solver: str = typer.Option("cbc", "--solver", help="cbc or highs."),
     book: Optional[Path] = book_option(),
@@ -103,8 +115,7 @@ def report_cmd(
     out_console.print(_verdict_table(checks, scn.currency, {d.name for d in data.deals if d.in_book}))
     if data.book is not None:
         b = data.book
-        out_console.print(f"book: {len(b.deals)} deal(s), expected liability {money(b.expected_liability, scn.currency)}, "
-                          f"VaR95 {money(b.var95, scn.currency)}, CVaR95 {money(b.cvar95, scn.currency)} "
+        out_console.print(f"book: {len(b.deals)} deal(s), {book_line(b.extra, b.liability_basis, scn.currency)} "
                           f"({count(b.draws)} draws, seed {b.seed})")
     print_cautions(data.warnings, forecast_caution(scn), forecast_caution(scn, brief=True))
     out_console.print(f"report written to [bold]{path}[/]")
@@ -114,7 +125,7 @@ def report_cmd(
 @app.command("demo")
 def demo_cmd(
     out: Path = typer.Option(Path("pledge-demo"), "--out", help="Working folder for the demo (created, or reused if it is one)."),
-    draws: int = typer.Option(20_000, "--draws", help="Monte Carlo draws for the book's stress test."),
+    draws: int = typer.Option(DEFAULT_DRAWS, "--draws", help="Monte Carlo draws for the book's stress test."),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed of the stress test."),
     solver: str = typer.Option("cbc", "--solver", help="cbc or highs."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object on stdout."),
@@ -147,9 +158,8 @@ def demo_cmd(
     if result.stress:
         b = result.stress["book"]
         basis = result.stress.get("liability_basis", "refund")
-        out_console.print(f"book of {len(result.committed)} deal(s): expected liability ({basis} basis) "
-                          f"{money(b['expected_liability'], cur)}, VaR95 {money(b['var95'], cur)}, "
-                          f"CVaR95 {money(b['cvar95'], cur)} ({count(result.draws)} draws, seed {result.seed})")
+        out_console.print(f"book of {len(result.committed)} deal(s): {book_line(b, basis, cur)} "
+                          f"({count(result.draws)} draws, seed {result.seed})")
     scn = load_scenario(result.folder)
     print_cautions(result.warnings, forecast_caution(scn), forecast_caution(scn, brief=True))
     out_console.print(f"report: [bold]{result.report}[/]   (done in {elapsed:,.0f} s)")
