@@ -23,6 +23,12 @@ CAUTIONS = ("Forecasts are estimates from past audiences; contract terms decide 
             "people accountable for the money review it before committing.")
 FRONTIER_SIZES = (0.5, 0.75, 0.9, 1.0, 1.1, 1.25, 1.5)
 Z10 = 1.2815515655446004  # standard normal 90% quantile (p10/p90 band)
+#: a plan with no pacing rule whose weekly expected delivery strays further than this from even
+#: pacing says so (a buyer expects delivery spread over the flight)
+PACING_NOTE = 0.25
+#: a plan under a pad whose chance of delivery is below this says so (what a confidence rule,
+#: the default, would have held)
+PAD_CHANCE_NOTE = 0.95
 #: columns of a buy-plan CSV (`plan_frame`): the allocation's, then what a buyer needs to place
 #: the order (the deal, each week's Monday and Sunday, the daypart's days and clock times)
 PLAN_COLUMNS = ["zone", "network", "daypart", "week", "spots", "rate", "cost", "expected_impressions",
@@ -490,6 +496,39 @@ def plan_deal(scenario, deal_name: str, *, solver: str = "cbc", held=None, book=
     return plan_result(run, explain=explain)
 
 
+def _weeks_text(weeks) -> str:
+    """[5, 6, 7, 9] -> '5-7, 9'."""
+    weeks, out, i = sorted(int(w) for w in weeks), [], 0
+    while i < len(weeks):
+        j = i
+        while j + 1 < len(weeks) and weeks[j + 1] == weeks[j] + 1:
+            j += 1
+        out.append(str(weeks[i]) if i == j else f"{weeks[i]}-{weeks[j]}")
+        i = j + 1
+    return ", ".join(out)
+
+
+def plan_notes(run: DealRun, pacing: pd.DataFrame, probability: float | None) -> list[str]:
+    """What a buyer should know of a feasible plan that its rules did not ask for: weekly pacing
+    more than `PACING_NOTE` from even with no pacing rule; a chance of delivery below
+    `PAD_CHANCE_NOTE` under a pad. `pacing`: `pacing_table`; `probability`: the plan's chance."""
+    if not run.allocation.feasible:
+        return []
+    deal, out = run.deal, []
+    dev = pacing["expected_impressions"] / pacing["even_pacing"] - 1.0
+    if deal.mix.weekly_tolerance is None and len(dev) and float(dev.abs().max()) > PACING_NOTE:
+        low = pacing["week"][dev < -PACING_NOTE]
+        high = pacing["week"][dev > PACING_NOTE]
+        parts = ([f"weeks {_weeks_text(low)} more than {PACING_NOTE:.0%} below"] if len(low) else []) + (
+            [f"weeks {_weeks_text(high)} more than {PACING_NOTE:.0%} above"] if len(high) else [])
+        out.append(f"weekly pacing strays up to {float(dev[dev.abs().idxmax()]):+.0%} from even ({'; '.join(parts)}) "
+                   f"and the deal sets no pacing rule: add weekly_tolerance to its [mix] to spread delivery")
+    if deal.pad is not None and probability is not None and probability < PAD_CHANCE_NOTE:
+        out.append(f"chance of delivery {probability:.1%} is below {PAD_CHANCE_NOTE:.0%} under the pad of "
+                   f"{deal.pad:.0%}: a confidence rule (confidence = {PAD_CHANCE_NOTE:g}) would hold it there")
+    return out
+
+
 def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
     deal, a, prob = run.deal, run.allocation, run.problem
     s = _summary(run)
@@ -507,6 +546,7 @@ def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
         if binding:
             reason += " (" + "; ".join(binding[:3]) + ")"
     spots = _spots_frame(run)
+    pacing = pacing_table(run)
     totals = {"spots": s["spots"], "units": s["units"], "cost": s["cost"], "expected_impressions": s["expected_impressions"],
               "sd_impressions": s["sd"], "guarantee": deal.impressions, "probability_of_delivery": s["probability"],
               "revenue": s["revenue"], "margin": s["margin"], "margin_pct": s["margin_pct"]}
@@ -514,13 +554,14 @@ def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
         deal=deal.name, deliverable=a.feasible, verdict=_verdict(run), reason=reason, currency=run.scenario.currency,
         guarantee=deal.impressions, risk_rule=prob.rules.risk_rule, confidence=prob.rules.confidence,
         pad=prob.rules.pad, default_confidence_used=bool(deal.risk_default_used), spots=spots,
-        pacing=pacing_table(run), totals=totals, cost=s["cost"], revenue=s["revenue"], margin=s["margin"],
+        pacing=pacing, totals=totals, cost=s["cost"], revenue=s["revenue"], margin=s["margin"],
         margin_pct=s["margin_pct"], expected_impressions=s["expected_impressions"], sd=s["sd"],
         probability=s["probability"], probability_if_independent=s["probability_if_independent"],
         solver=a.solver, gap=a.gap, lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts,
         iterations=a.iterations, build_seconds=a.build_seconds, solve_seconds=a.solve_seconds,
         fitted_forecast_first=run.fitted_now, held_spots_excluded=run.held_spots, binding=binding,
-        cautions=_cautions(run), warnings=list(run.warnings), shared_error_caution=_shared_caution(run))
+        cautions=_cautions(run), warnings=list(run.warnings), shared_error_caution=_shared_caution(run),
+        notes=plan_notes(run, pacing, s["probability"]))
 
 
 def frontier(prob: al.AllocationProblem, sizes, *, solver: str = "cbc", gap: float = al.DEFAULT_GAP,
@@ -597,4 +638,4 @@ def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=a
         lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts, iterations=a.iterations,
         build_seconds=a.build_seconds, solve_seconds=a.solve_seconds, fitted_forecast_first=run.fitted_now,
         held_spots_excluded=run.held_spots, frontier=fr, cautions=_cautions(run), warnings=list(run.warnings),
-        shared_error_caution=_shared_caution(run))
+        shared_error_caution=_shared_caution(run), notes=plan_notes(run, pacing_table(run), s["probability"]))

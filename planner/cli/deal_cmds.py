@@ -128,6 +128,8 @@ def check_cmd(
         out_console.print("[bold]what binds[/]" if r.deliverable else "[bold]what limits it[/]")
         for b in r.binding:
             out_console.print(f"  - {b}", highlight=False)
+    for n in r.notes:
+        out_console.print(f"[bold yellow]note[/]: {escape(n)}", highlight=False)
     if r.frontier:
         t = Table(title="frontier (LP relaxation: continuous spots)", title_justify="left")
         for c in ("guarantee", "deliverable", "cost", "cost per 1000", "chance of delivery"):
@@ -222,4 +224,6 @@ def plan_cmd(
         pt.add_row(str(row.week), _num(row.expected_impressions), _num(row.p10), _num(row.p90),
                    _num(row.even_pacing), f"{100 * dev:+.1f}%")
     out_console.print(pt)
+    for n in r.notes:
+        out_console.print(f"[bold yellow]note[/]: {escape(n)}", highlight=False)
     _cautions(r)
