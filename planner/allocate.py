@@ -39,6 +39,7 @@ from __future__ import annotations
 import math
 import os
 import re
+import shutil
 import subprocess
 import tempfile
 import time
@@ -52,6 +53,7 @@ import scipy.sparse as sp
 from scipy.special import ndtri
 
 from planner.delivery import DeliveryModel
+from planner.errors import InputError
 
 SCALE = 1e-3  # impressions -> thousands inside the model
 INF = highspy.kHighsInf
@@ -626,10 +628,19 @@ _CBC_NUM = r"([-+]?[0-9.]+(?:[eE][-+]?[0-9]+)?)"
 
 
 def cbc_path() -> str:
-    """Path of the CBC binary shipped with pulp."""
-    import pulp
+    """Path of a CBC binary: `cbc` on the PATH (as `pip install 'pulp[cbc]'` or a system package
+    installs it for pulp's `COIN_CMD`), else the binary pulp < 4 ships (`pulp.apis.coin_api.
+    pulp_cbc_path`). Uses none of pulp's deprecated classes (`PULP_CBC_CMD` goes in pulp 4)."""
+    from pulp.apis import coin_api
 
-    return pulp.PULP_CBC_CMD(msg=0).path
+    found = shutil.which("cbc")
+    if found:
+        return found
+    bundled = getattr(coin_api, "pulp_cbc_path", None)
+    if bundled and os.access(bundled, os.X_OK):
+        return os.path.normpath(bundled)
+    raise InputError("--solver cbc: no CBC binary found (install it with pip install 'pulp[cbc]', or use "
+                     "--solver highs)")
 
 
 def _solve_mip_cbc(model: _Model, gap: float, time_limit: float) -> MIPResult:
@@ -1150,6 +1161,15 @@ def diagnose(prob: AllocationProblem, steps: int = 5, current: float | None = No
 # ---------------------------------------------------------------------------------------------
 # Reference only: the same base model through pulp's one-object-per-variable modelling
 # ---------------------------------------------------------------------------------------------
+def pulp_variable(lp, name: str, low: float | None = None, up: float | None = None, cat: str = "Continuous"):
+    """A pulp variable of model `lp`: `lp.add_variable` where pulp has it (constructing
+    `LpVariable` directly is deprecated for pulp 4), `pulp.LpVariable` before."""
+    import pulp
+
+    add = getattr(lp, "add_variable", None)
+    return add(name, low, up, cat=cat) if add is not None else pulp.LpVariable(name, low, up, cat)
+
+
 def pulp_reference_model(prob: AllocationProblem, *, integer: bool = True, cuts=()):
     """The min-cost model (rules, pacing, pad or the chance constraint's base row plus given cuts)
     built one pulp variable and one expression at a time. Kept as the reference for the benchmark
@@ -1162,7 +1182,7 @@ def pulp_reference_model(prob: AllocationProblem, *, integer: bool = True, cuts=
     r, u, dm = prob.rules, prob.units, prob.model
     lp = pulp.LpProblem("allocation", pulp.LpMinimize)
     cat = pulp.LpInteger if integer else pulp.LpContinuous
-    x = [pulp.LpVariable(f"x{i}", lowBound=0, upBound=float(prob.ub[i]), cat=cat) for i in range(prob.n)]
+    x = [pulp_variable(lp, f"x{i}", 0, float(prob.ub[i]), cat) for i in range(prob.n)]
     m = dm.m * SCALE
     lp += pulp.lpSum(float(prob.rate[i]) * x[i] for i in range(prob.n))
     T = pulp.lpSum(float(m[i]) * x[i] for i in range(prob.n))

@@ -204,7 +204,7 @@ def test_pulp_reference_model_gives_the_same_lp_cost():
 
     prob = problem(pad=0.05, confidence=None)
     ref = al.pulp_reference_model(prob, integer=False)
-    ref.solve(pulp.PULP_CBC_CMD(msg=0))
+    ref.solve(pulp.COIN_CMD(path=al.cbc_path(), msg=False))
     ours = al.allocate(prob, integer=False)
     assert pulp.value(ref.objective) == pytest.approx(ours.cost, rel=1e-6)
 
@@ -319,3 +319,16 @@ def test_what_limits_it_names_each_rule_with_what_removing_it_alone_allows():
         assert allowed == pytest.approx(want, rel=2e-3) and gain == pytest.approx(want - both, rel=5e-3)
     assert f"deliver at most {loose:,.0f} expected impressions, short of 75,000" in " ".join(words)
     assert "avails in weeks 1-3 exhausted on 3 of 3 networks" in words
+
+
+def test_cbc_is_found_without_pulps_deprecated_class():
+    """pulp's PULP_CBC_CMD warns of its removal in pulp 4; the CBC path is found without it (a
+    DeprecationWarning is an error here), and it runs: CBC's own version banner."""
+    import subprocess
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", DeprecationWarning)
+        path = al.cbc_path()
+    out = subprocess.run([path, "-quit"], capture_output=True, text=True, timeout=60).stdout
+    assert "CBC" in out.upper() or "Coin" in out
