@@ -54,8 +54,8 @@ from planner.errors import InputError
 
 ALPHA = 0.95
 #: Monte Carlo draws of every stress of the book unless asked otherwise (pledge stress, report,
-#: demo): one book, one answer. At 100,000 draws the demo book's VaR95 has a standard error of
-#: about 1% of it (batch means).
+#: demo): one book, one answer. At 100,000 draws the demo book's VaR95 is USD 18,443 +- 704 and
+#: its CVaR95 USD 87,340 +- 1,365 (Monte Carlo standard errors, README).
 DEFAULT_DRAWS = 100_000
 LIABILITY_BASES = ("refund", "makegood")
 _CHUNK = 100_000
