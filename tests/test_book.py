@@ -661,6 +661,7 @@ def test_units_held_over_their_avails_are_flagged_everywhere_and_book_check_exit
         "stress": ["stress", str(folder), "--draws", "2000"],
         "list": ["book", "list", str(folder)],
         "show": ["book", "show", str(folder), "small-comfortable"],
+        "events": ["book", "events", str(folder)],
         "report": ["report", str(folder), "--out", str(folder / "r.html"), "--draws", "2000", "--solver", "highs"],
     }
     want = f"the book holds more spots than the avails in 2 unit(s), {over:,} spot(s) over"

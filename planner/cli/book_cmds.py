@@ -180,13 +180,16 @@ def events_cmd(
     """The book's audit trail: every commit, release and re-plan with its time (UTC) and user."""
     from planner.book import book_path, events
 
-    _folder(scenario)
+    scn = _load_if_scenario(scenario)
     log = events(scenario, book)
+    warnings = book_warnings(scn, book)
     if deal is not None:
         log = log[log["deal"] == deal]
     if as_json:
-        print_json({"book": str(book_path(scenario, book)), "events": log.to_dict(orient="records")})
+        print_json({"book": str(book_path(scenario, book)), "events": log.to_dict(orient="records"),
+                    "warnings": warnings})
         return
+    print_warnings(warnings)
     if log.empty:
         out_console.print(f"no events in {book_path(scenario, book)}")
         return
