@@ -13,6 +13,7 @@ Verdict figures are placed in elements carrying ``data-deal``, ``data-field`` an
 from __future__ import annotations
 
 import base64
+import copy
 import html
 import json
 import math
@@ -667,8 +668,6 @@ def booked_section(scenario: Any, booked: Any, *, forecast: pd.DataFrame, held: 
     deliverable guarantee and the cost frontier from a check of the committed terms against the
     other deals' holds `held`. `flags` says where the figures come from, and how the deal file
     differs from the commit (or that it is gone)."""
-    import copy
-
     from planner.book import deal_from_book, terms_differ
     from planner.deals import held_pacing
 
