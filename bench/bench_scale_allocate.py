@@ -38,7 +38,7 @@ def build_pulp(prob):
     import numpy as np
     import pulp
 
-    from planner.allocate import SCALE
+    from planner.allocate import SCALE, pulp_variable
 
     r = prob.rules
     u = prob.units
@@ -48,8 +48,8 @@ def build_pulp(prob):
     lp = pulp.LpProblem("national_check", pulp.LpMinimize)
     x = []
     for i in range(n):
-        x.append(pulp.LpVariable(f"x{i}", lowBound=0, upBound=ub[i], cat="Integer"))
-    T = pulp.LpVariable("T", lowBound=0)
+        x.append(pulp_variable(lp, f"x{i}", 0, ub[i], "Integer"))
+    T = pulp_variable(lp, "T", 0)
     lp += pulp.lpSum(rate[i] * x[i] for i in range(n))
     lp += pulp.lpSum(m[i] * x[i] for i in range(n)) - T == 0, "total"
     if r.max_network_share is not None:

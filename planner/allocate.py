@@ -39,10 +39,12 @@ from __future__ import annotations
 import math
 import os
 import re
+import shutil
 import subprocess
 import tempfile
 import time
 from dataclasses import dataclass, field, replace
+from typing import Sequence
 
 import highspy
 import numpy as np
@@ -51,6 +53,7 @@ import scipy.sparse as sp
 from scipy.special import ndtri
 
 from planner.delivery import DeliveryModel
+from planner.errors import InputError
 
 SCALE = 1e-3  # impressions -> thousands inside the model
 INF = highspy.kHighsInf
@@ -625,10 +628,19 @@ _CBC_NUM = r"([-+]?[0-9.]+(?:[eE][-+]?[0-9]+)?)"
 
 
 def cbc_path() -> str:
-    """Path of the CBC binary shipped with pulp."""
-    import pulp
+    """Path of a CBC binary: `cbc` on the PATH (as `pip install 'pulp[cbc]'` or a system package
+    installs it for pulp's `COIN_CMD`), else the binary pulp < 4 ships (`pulp.apis.coin_api.
+    pulp_cbc_path`). Uses none of pulp's deprecated classes (`PULP_CBC_CMD` goes in pulp 4)."""
+    from pulp.apis import coin_api
 
-    return pulp.PULP_CBC_CMD(msg=0).path
+    found = shutil.which("cbc")
+    if found:
+        return found
+    bundled = getattr(coin_api, "pulp_cbc_path", None)
+    if bundled and os.access(bundled, os.X_OK):
+        return os.path.normpath(bundled)
+    raise InputError("--solver cbc: no CBC binary found (install it with pip install 'pulp[cbc]', or use "
+                     "--solver highs)")
 
 
 def _solve_mip_cbc(model: _Model, gap: float, time_limit: float) -> MIPResult:
@@ -978,8 +990,16 @@ def exhausted_avails(prob: AllocationProblem, x: np.ndarray | None) -> list[str]
     nw["done"] = nw["x"] >= nw["ub"] - 1e-6
     per_week = nw.groupby(level="week")["done"].agg(["sum", "size"])
     per_week = per_week[per_week["sum"] > 0]
-    return [f"avails in week {int(w)} exhausted on {int(r['sum'])} of {int(r['size'])} networks"
-            for w, r in per_week.iterrows()]
+    # consecutive weeks with the same count fold into one range ("weeks 1-4")
+    runs: list[list] = []
+    for w, r in per_week.iterrows():  # one row per flight week
+        k = (int(r["sum"]), int(r["size"]))
+        if runs and runs[-1][2] == k and runs[-1][1] == int(w) - 1:
+            runs[-1][1] = int(w)
+        else:
+            runs.append([int(w), int(w), k])
+    return [f"avails in {'week ' + str(a) if a == b else f'weeks {a}-{b}'} exhausted on {k[0]} of {k[1]} networks"
+            for a, b, k in runs]
 
 
 def binding_constraints(prob: AllocationProblem, alloc: Allocation, *, dual_tol: float = 1e-7) -> list[str]:
@@ -1049,56 +1069,107 @@ def no_rules_no_margin(rules: Rules) -> Rules:
     return Rules(confidence=0.5 + 1e-9) if rules.confidence is not None else Rules(pad=0.0)
 
 
-def diagnose(prob: AllocationProblem, steps: int = 5) -> list[str]:
-    """Why a guarantee cannot be met: each rule family relaxed in turn, in seller words.
-
-    For each rule that alone blocks the guarantee, the loosest setting of it that would make the
-    guarantee deliverable with every other rule kept (found by bisection on max-guarantee LPs).
-    """
+def _relaxations(prob: AllocationProblem, steps: int):
+    """Each rule of the deal alone, as named in its deal file: (label, the change that removes it,
+    a function giving the loosest setting of it that meets the guarantee with every other rule
+    kept, in words; bisection on max-guarantee LPs)."""
     r = prob.rules
-    out: list[str] = []
-    G = prob.guarantee
 
     def ok(**changes) -> bool:
         return _feasible_at(with_rules(prob, **changes))
 
-    if r.max_network_share is not None and ok(max_network_share=None):
-        v = 1.0 - _bisect(0.0, 1.0 - r.max_network_share, lambda t: ok(max_network_share=1.0 - t), steps)
-        out.append(f"network share: capped at {_pct(r.max_network_share)}, needs {_pct(v)}")
+    out = []
+    if r.max_network_share is not None:
+        out.append((f"max_network_share {_pct(r.max_network_share)}", dict(max_network_share=None),
+                    lambda: f"network share: capped at {_pct(r.max_network_share)}, needs "
+                            f"{_pct(1.0 - _bisect(0.0, 1.0 - r.max_network_share, lambda t: ok(max_network_share=1.0 - t), steps))}"))
     for d, s in r.daypart_min_share.items():
-        if s and ok(daypart_min_share={**r.daypart_min_share, d: 0.0}):
-            v = _bisect(0.0, s, lambda t: ok(daypart_min_share={**r.daypart_min_share, d: t}), steps)
-            out.append(f"{d} share: needs {_pct(s)}, can reach {_pct(v)}")
+        if s:
+            out.append((f"daypart_min_share {d} {_pct(s)}",
+                        dict(daypart_min_share={k: v for k, v in r.daypart_min_share.items() if k != d}),
+                        lambda d=d, s=s: f"{d} share: needs {_pct(s)}, can reach "
+                        f"{_pct(_bisect(0.0, s, lambda t: ok(daypart_min_share={**r.daypart_min_share, d: t}), steps))}"))
     for d, s in r.daypart_max_share.items():
-        if s < 1 and ok(daypart_max_share={k: v for k, v in r.daypart_max_share.items() if k != d}):
-            v = 1.0 - _bisect(0.0, 1.0 - s, lambda t: ok(daypart_max_share={**r.daypart_max_share, d: 1.0 - t}), steps)
-            out.append(f"{d} share: capped at {_pct(s)}, needs {_pct(v)}")
-    if r.weekly_tolerance is not None and ok(weekly_tolerance=None):
-        hi = max(1.0, r.weekly_tolerance)
-        while not ok(weekly_tolerance=hi) and hi < 64:
-            hi *= 2
-        v = hi - _bisect(0.0, hi - r.weekly_tolerance, lambda t: ok(weekly_tolerance=hi - t), steps)
-        out.append(f"weekly pacing: within +-{_pct(r.weekly_tolerance)} of even pacing, needs +-{_pct(v)}")
-    if r.confidence is not None and ok(confidence=0.5 + 1e-9):
-        v = _bisect(0.5 + 1e-9, r.confidence, lambda t: ok(confidence=t), steps)
-        out.append(f"confidence: needs {_pct(r.confidence)}, can reach {_pct(v)} at this guarantee")
-    if r.pad is not None and r.pad > 0 and ok(pad=0.0):
-        v = _bisect(0.0, r.pad, lambda t: ok(pad=t), steps)
-        out.append(f"pad: needs {_pct(r.pad)}, can reach {_pct(v)} at this guarantee")
-    if not out:
-        mg = max_guarantee(replace(prob, rules=no_rules_no_margin(r)))
-        if mg.value < G * (1 - 1e-6):
-            out.append(f"avails: even with no share or pacing rule and no risk margin the spots left that the "
-                       f"deal may buy deliver at most {mg.value:,.0f} expected impressions, short of {G:,.0f}")
-            out.extend(exhausted_avails(prob, mg.x))
-        else:
-            out.append("no single rule blocks it: several rules together limit the plan")
+        if s < 1:
+            out.append((f"daypart_max_share {d} {_pct(s)}",
+                        dict(daypart_max_share={k: v for k, v in r.daypart_max_share.items() if k != d}),
+                        lambda d=d, s=s: f"{d} share: capped at {_pct(s)}, needs "
+                        f"{_pct(1.0 - _bisect(0.0, 1.0 - s, lambda t: ok(daypart_max_share={**r.daypart_max_share, d: 1.0 - t}), steps))}"))
+    if r.weekly_tolerance is not None:
+        def pacing() -> str:
+            hi = max(1.0, r.weekly_tolerance)
+            while not ok(weekly_tolerance=hi) and hi < 64:
+                hi *= 2
+            v = hi - _bisect(0.0, hi - r.weekly_tolerance, lambda t: ok(weekly_tolerance=hi - t), steps)
+            return f"weekly pacing: within +-{_pct(r.weekly_tolerance)} of even pacing, needs +-{_pct(v)}"
+        out.append((f"weekly_tolerance {_pct(r.weekly_tolerance)}", dict(weekly_tolerance=None), pacing))
+    if r.confidence is not None:
+        out.append((f"confidence {_pct(r.confidence)}", dict(confidence=0.5 + 1e-9),
+                    lambda: f"confidence: needs {_pct(r.confidence)}, can reach "
+                            f"{_pct(_bisect(0.5 + 1e-9, r.confidence, lambda t: ok(confidence=t), steps))} at this guarantee"))
+    if r.pad is not None and r.pad > 0:
+        out.append((f"pad {_pct(r.pad)}", dict(pad=0.0),
+                    lambda: f"pad: needs {_pct(r.pad)}, can reach "
+                            f"{_pct(_bisect(0.0, r.pad, lambda t: ok(pad=t), steps))} at this guarantee"))
+    return out
+
+
+def lever_text(label: str, allowed: float, current: float) -> str:
+    """'RULE: without it alone the largest deliverable guarantee would be N (+gain)'."""
+    return (f"{label}: without it alone the largest deliverable guarantee would be {allowed:,.0f} "
+            f"(+{allowed - current:,.0f})")
+
+
+def rule_levers(prob: AllocationProblem, current: float, steps: int = 5) -> list[tuple[float, str]]:
+    """Each rule of the deal (share caps and minimums, pacing, risk margin) removed alone, with
+    every other rule kept: (gain, text) for every rule whose removal raises the largest
+    deliverable guarantee above `current` (max-guarantee LP re-solved; impressions); when
+    removing it alone is enough for the guarantee, the text adds the loosest setting that is."""
+    G = prob.guarantee
+    out = []
+    for label, change, loosest in _relaxations(prob, steps):
+        mg = max_guarantee(with_rules(prob, **change), tol=2e-3, max_iter=40).value
+        if mg - current > 1e-3 * max(G, 1.0):
+            text = lever_text(label, mg, current)
+            out.append((mg - current, text + ("; " + loosest() if mg >= G * (1 - 1e-3) else "")))
+    return out
+
+
+def diagnose(prob: AllocationProblem, steps: int = 5, current: float | None = None,
+             levers: Sequence[tuple[float, str]] = ()) -> list[str]:
+    """Why a guarantee cannot be met, in seller words, the largest lever first.
+
+    `rule_levers` (each rule removed alone, against `current`, the largest guarantee at these
+    rules; computed when not given) and any other `levers` (gain, text), largest gain first;
+    then what the avails allow with no rule and no margin, with the weeks whose avails run out
+    (`exhausted_avails`).
+    """
+    G = prob.guarantee
+    current = max_guarantee(prob, tol=2e-3, max_iter=40).value if current is None else current
+    found = sorted(rule_levers(prob, current, steps) + list(levers), key=lambda t: -t[0])
+    out = [text for _, text in found]
+    mg = max_guarantee(replace(prob, rules=no_rules_no_margin(prob.rules)))
+    if mg.value < G * (1 - 1e-6):
+        out.append(f"avails: even with no share or pacing rule and no risk margin the spots left that the "
+                   f"deal may buy deliver at most {mg.value:,.0f} expected impressions, short of {G:,.0f}")
+        out.extend(exhausted_avails(prob, mg.x))
+    elif not found:
+        out.append("no single rule blocks it: several rules together limit the plan")
     return out
 
 
 # ---------------------------------------------------------------------------------------------
 # Reference only: the same base model through pulp's one-object-per-variable modelling
 # ---------------------------------------------------------------------------------------------
+def pulp_variable(lp, name: str, low: float | None = None, up: float | None = None, cat: str = "Continuous"):
+    """A pulp variable of model `lp`: `lp.add_variable` where pulp has it (constructing
+    `LpVariable` directly is deprecated for pulp 4), `pulp.LpVariable` before."""
+    import pulp
+
+    add = getattr(lp, "add_variable", None)
+    return add(name, low, up, cat=cat) if add is not None else pulp.LpVariable(name, low, up, cat)
+
+
 def pulp_reference_model(prob: AllocationProblem, *, integer: bool = True, cuts=()):
     """The min-cost model (rules, pacing, pad or the chance constraint's base row plus given cuts)
     built one pulp variable and one expression at a time. Kept as the reference for the benchmark
@@ -1111,7 +1182,7 @@ def pulp_reference_model(prob: AllocationProblem, *, integer: bool = True, cuts=
     r, u, dm = prob.rules, prob.units, prob.model
     lp = pulp.LpProblem("allocation", pulp.LpMinimize)
     cat = pulp.LpInteger if integer else pulp.LpContinuous
-    x = [pulp.LpVariable(f"x{i}", lowBound=0, upBound=float(prob.ub[i]), cat=cat) for i in range(prob.n)]
+    x = [pulp_variable(lp, f"x{i}", 0, float(prob.ub[i]), cat) for i in range(prob.n)]
     m = dm.m * SCALE
     lp += pulp.lpSum(float(prob.rate[i]) * x[i] for i in range(prob.n))
     T = pulp.lpSum(float(m[i]) * x[i] for i in range(prob.n))

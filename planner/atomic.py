@@ -1,4 +1,8 @@
-"""Write output files whole or not at all (temporary file in the same folder, then rename)."""
+"""Write output files whole or not at all (temporary file in the same folder, then rename).
+
+A file written here gets the mode a file created the ordinary way would get, 0666 & ~umask
+(POSIX creat(2)), not the temporary file's 0600: plans and reports are shared.
+"""
 from __future__ import annotations
 
 import contextlib
@@ -6,6 +10,42 @@ import os
 import tempfile
 from pathlib import Path
 from typing import Callable, Iterator
+
+
+def current_umask() -> int:
+    """The process umask (read from /proc on Linux; elsewhere set and restored at once)."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError, IndexError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def ordinary_mode(path: str | os.PathLike) -> None:
+    """Give `path` the mode of a newly created ordinary file: 0666 & ~umask."""
+    os.chmod(path, 0o666 & ~current_umask())
+
+
+def check_writable(folder: str | os.PathLike, what: str) -> Path:
+    """Make `folder` if needed and check a file can be created in it; InputError naming the
+    folder and `what` would be written there otherwise (a read-only scenario folder)."""
+    from planner.errors import InputError
+
+    folder = Path(folder)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        fd, name = tempfile.mkstemp(prefix=".pledge-write-check.", dir=folder)
+        os.close(fd)
+        os.unlink(name)
+    except OSError as exc:
+        raise InputError(f"{folder}: cannot write {what} here ({exc.strerror or exc}); "
+                         f"make the folder writable or work on a copy of the scenario") from exc
+    return folder
 
 
 @contextlib.contextmanager
@@ -23,6 +63,7 @@ def atomic_path(target: str | os.PathLike) -> Iterator[Path]:
         yield tmp_path
         with open(tmp_path, "rb+") as fh:
             os.fsync(fh.fileno())
+        ordinary_mode(tmp_path)
         os.replace(tmp_path, target)
     except BaseException:
         tmp_path.unlink(missing_ok=True)

@@ -22,10 +22,13 @@ Books are read without being created: reading a book that does not exist yet giv
 from __future__ import annotations
 
 import contextlib
+import getpass
 import json
 import os
 import sqlite3
+import tempfile
 import time
+import urllib.parse
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -35,6 +38,7 @@ import numpy as np
 import pandas as pd
 
 from planner.errors import InputError
+from planner.scenario import Deal, Mix
 
 BOOK_FILENAME = "book.sqlite"
 UNIT_KEY = ["zone", "network", "daypart", "week"]
@@ -109,6 +113,12 @@ _MIGRATIONS: list[tuple[int, list[str]]] = [
             PRIMARY KEY (deal, zone, network, daypart, week)
         )""",
     ]),
+    (4, [
+        # The deal's terms as committed (every key of its deal file, mix rules included), so the
+        # book answers for a deal whose file changed or went; and who did each thing (audit).
+        "ALTER TABLE deals ADD COLUMN terms_json TEXT",
+        "ALTER TABLE events ADD COLUMN user TEXT",
+    ]),
 ]
 SCHEMA_VERSION = _MIGRATIONS[-1][0]
 
@@ -133,10 +143,19 @@ def _now() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
 
 
+def os_user() -> str:
+    """The operating-system user running pledge (login name; the numeric uid when there is none)."""
+    try:
+        return getpass.getuser()
+    except (KeyError, OSError):  # no login name in the environment or the password database
+        return str(os.getuid()) if hasattr(os, "getuid") else "unknown"
+
+
 def _connect(path: Path) -> sqlite3.Connection:
     conn = sqlite3.connect(str(path), timeout=_BUSY_TIMEOUT_MS / 1000, isolation_level=None)
     conn.row_factory = sqlite3.Row
     conn.execute(f"PRAGMA busy_timeout = {_BUSY_TIMEOUT_MS}")
+    conn.execute("PRAGMA schema_version").fetchone()  # fails here when the file cannot be opened
     mode = conn.execute("PRAGMA journal_mode = WAL").fetchone()[0]
     if str(mode).lower() != "wal":  # pragma: no cover - file systems without shared memory
         conn.execute("PRAGMA journal_mode = DELETE")
@@ -179,28 +198,102 @@ def _upgrade(conn: sqlite3.Connection, path: Path) -> None:
         raise
 
 
+def _not_a_book(path: Path) -> None:
+    """InputError when `path` is a file that cannot be a book (0 bytes: SQLite would take it for
+    an empty database and write a fresh schema into it, so every deal would look easier)."""
+    if path.is_file() and path.stat().st_size == 0:
+        raise InputError(f"{path}: not a book (an empty file; `pledge book commit` creates a book where there "
+                         f"is no file, so remove it or name another --book)")
+
+
+def _create_book(path: Path) -> None:
+    """Make a new book at `path` whole: the schema is written to a file beside it, which is then
+    linked into place (a concurrent reader never sees a half-made, 0-byte book). When another
+    process made the book meanwhile, its book is kept."""
+    from planner.atomic import ordinary_mode
+
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".new", dir=path.parent)
+    os.close(fd)
+    tmp = Path(name)
+    try:
+        conn = _connect(tmp)
+        try:
+            _upgrade(conn, path)
+        finally:
+            conn.close()
+        ordinary_mode(tmp)
+        try:
+            os.link(tmp, path)
+        except FileExistsError:
+            pass
+        except OSError:  # a file system without hard links
+            if not path.exists():
+                os.replace(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
 def open_book(path: str | os.PathLike, *, create: bool = True) -> sqlite3.Connection:
     """Open (and create or upgrade) the book at `path`; returns an autocommit connection."""
     path = Path(path)
-    if not path.exists():
-        if not create:
-            raise InputError(f"{path}: no book here (commit a deal first)")
-        path.parent.mkdir(parents=True, exist_ok=True)
     try:
+        if not path.exists():
+            if not create:
+                raise InputError(f"{path}: no book here (commit a deal first)")
+            _create_book(path)
+        _not_a_book(path)
         conn = _connect(path)
         _upgrade(conn, path)
     except sqlite3.DatabaseError as exc:
+        if _read_only_error(exc):
+            raise InputError(f"{path}: the book cannot be written here, the folder or file is read-only "
+                             f"({exc})") from exc
         raise InputError(f"{path}: not a readable book ({exc})") from exc
+    except PermissionError as exc:
+        raise InputError(f"{path}: the book cannot be written here, the folder is read-only ({exc})") from exc
     return conn
+
+
+def _open_read_only(path: Path) -> sqlite3.Connection:
+    """A read-only connection to the book at `path`, for a folder that cannot be written to (the
+    WAL index cannot be made there, so the file is opened as immutable: SQLite's URI parameter
+    for files nothing else writes while it reads). The book must be of the current schema (an
+    upgrade is a write)."""
+    uri = f"file:{urllib.parse.quote(str(path.resolve()))}?mode=ro&immutable=1"
+    try:
+        conn = sqlite3.connect(uri, uri=True, isolation_level=None)
+        conn.row_factory = sqlite3.Row
+        version = _schema_version(conn)
+    except sqlite3.DatabaseError as exc:
+        raise InputError(f"{path}: not a readable book ({exc})") from exc
+    if version != SCHEMA_VERSION:
+        conn.close()
+        raise InputError(f"{path}: book schema version {version} needs an upgrade to {SCHEMA_VERSION}, which "
+                         f"cannot be written in this read-only folder; open it once where it can be written")
+    return conn
+
+
+def _read_only_error(exc: BaseException | None) -> bool:
+    """True for the errors SQLite gives on a book in a folder or file it may not write."""
+    text = str(exc).lower()
+    return isinstance(exc, sqlite3.OperationalError) and (
+        "unable to open" in text or "readonly" in text or "read-only" in text)
 
 
 @contextlib.contextmanager
 def _reader(path: Path) -> Iterator[sqlite3.Connection | None]:
-    """A connection for reading, or None when the book file does not exist (an empty book)."""
+    """A connection for reading, or None when the book file does not exist (an empty book).
+    In a folder that cannot be written to, a read-only connection (`_open_read_only`)."""
     if not path.exists():
         yield None
         return
-    conn = open_book(path)
+    try:
+        conn = open_book(path)
+    except InputError as exc:
+        if not _read_only_error(exc.__cause__):
+            raise
+        conn = _open_read_only(path)
     try:
         yield conn
     finally:
@@ -274,6 +367,8 @@ class BookDeal:
     cost: float | None
     spots: int | None
     summary: dict = field(default_factory=dict)
+    # the deal's terms as committed (`deal_terms`; {} for a deal committed before schema 4)
+    terms: dict = field(default_factory=dict)
     holds: pd.DataFrame | None = None
     # posted actuals stored by a committed rebalance (DataFrame `POSTING_COLUMNS`; empty when
     # none are stored; None when not read)
@@ -291,6 +386,7 @@ class BookDeal:
             "probability", "cost", "spots")}
         out["revenue"] = self.revenue
         out["summary"] = self.summary
+        out["terms"] = self.terms
         if with_holds and self.holds is not None:
             out["holds"] = self.holds.to_dict(orient="records")
         return out
@@ -305,7 +401,7 @@ def _deal_from_row(row: sqlite3.Row, holds: pd.DataFrame | None = None,
         first_week=d["first_week"], last_week=d["last_week"], committed_at=d["committed_at"],
         expected_impressions=d["expected_impressions"], sd=d["sd"], probability=d["probability"],
         cost=d["cost"], spots=d["spots"], summary=json.loads(d["summary_json"] or "{}"), holds=holds,
-        postings=postings)
+        postings=postings, terms=json.loads(d.get("terms_json") or "{}"))
 
 
 _TEXT_HOLD = ("deal", "zone", "network", "daypart")
@@ -458,13 +554,15 @@ def _holds_of_empty() -> pd.DataFrame:
 
 
 def events(scenario_or_path: Any, book: str | os.PathLike | None = None) -> pd.DataFrame:
-    """The book's log: `at, deal, action, detail` (one row per commit, release, rebalance)."""
+    """The book's log, oldest first: `at` (UTC, ISO 8601), `deal`, `action` (commit, release,
+    rebalance), `user` (operating-system user; None for events logged before schema 4) and
+    `detail` (dict)."""
+    cols = ["at", "deal", "action", "user", "detail"]
     with _reader(book_path(scenario_or_path, book)) as conn:
         if conn is None:
-            return pd.DataFrame(columns=["at", "deal", "action", "detail"])
-        rows = conn.execute("SELECT at, deal, action, detail_json FROM events ORDER BY id").fetchall()
-        return pd.DataFrame([(r[0], r[1], r[2], json.loads(r[3] or "{}")) for r in rows],
-                            columns=["at", "deal", "action", "detail"])
+            return pd.DataFrame(columns=cols)
+        rows = conn.execute("SELECT at, deal, action, user, detail_json FROM events ORDER BY id").fetchall()
+        return pd.DataFrame([(r[0], r[1], r[2], r[3], json.loads(r[4] or "{}")) for r in rows], columns=cols)
 
 
 # --------------------------------------------------------------------------- checks
@@ -485,6 +583,27 @@ def over_avails(held: pd.DataFrame, inventory: pd.DataFrame, extra: pd.DataFrame
     merged = total.merge(inv, on=UNIT_KEY, how="left")
     merged["avails"] = merged["avails"].fillna(0).astype("int64")
     return merged[merged["spots"] > merged["avails"]].reset_index(drop=True)
+
+
+def over_avails_warning(held: pd.DataFrame, inventory: pd.DataFrame) -> list[str]:
+    """One warning when the held spots (summed per unit, `HELD_COLUMNS`) exceed a unit's avails
+    (the inventory was cut below existing holds), naming the count of units, the spots over and
+    the first unit; [] otherwise."""
+    over = over_avails(held, inventory)
+    if over.empty:
+        return []
+    r = over.iloc[0]
+    excess = int((over["spots"] - over["avails"]).sum())
+    return [f"the book holds more spots than the avails in {len(over):,} unit(s), {excess:,} spot(s) over "
+            f"(first: {r.zone}/{r.network}/{r.daypart}/week {int(r.week)}, {int(r.spots)} held, {int(r.avails)} "
+            f"avails): the inventory was cut below the holds; release or re-plan a deal (`pledge book check`)"]
+
+
+def book_warnings(scenario: Any, book: str | os.PathLike | None = None) -> list[str]:
+    """Warnings about the book against the scenario's inventory (`over_avails_warning`); [] when
+    there is no book."""
+    with _reader(book_path(scenario, book)) as conn:
+        return over_avails_warning(_held_from(conn), scenario.inventory)
 
 
 def _plan_spots(plan: Any) -> pd.DataFrame:
@@ -570,14 +689,14 @@ def _insert_deal(conn: sqlite3.Connection, scenario: Any, deal: Any, spots: pd.D
     conn.execute(
         """INSERT INTO deals (name, advertiser, demo, guarantee, price_cpm, confidence, pad,
                first_week, last_week, committed_at, expected_impressions, sd, probability, cost,
-               spots, summary_json, scenario_name)
-           VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)""",
+               spots, summary_json, scenario_name, terms_json)
+           VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)""",
         (deal.name, getattr(deal, "advertiser", None), deal.demo, float(deal.impressions),
          float(deal.price_cpm), _opt(getattr(deal, "confidence", None)), _opt(getattr(deal, "pad", None)),
          int(deal.first_week), int(deal.last_week), committed_at or _now(),
          summary.get("expected_impressions"), summary.get("sd"), summary.get("probability"),
          summary.get("cost"), summary.get("spots"), json.dumps(summary, default=str),
-         getattr(scenario, "name", None)))
+         getattr(scenario, "name", None), json.dumps(deal_terms(deal))))
     rows = [(deal.name, r.zone, r.network, r.daypart, int(r.week), int(r.spots), _opt(r.rate),
              _opt(r.cost), _opt(r.expected_impressions), _opt(r.sd))
             for r in spots.itertuples(index=False)]
@@ -585,6 +704,56 @@ def _insert_deal(conn: sqlite3.Connection, scenario: Any, deal: Any, spots: pd.D
         """INSERT INTO holds (deal, zone, network, daypart, week, spots, rate, cost,
                expected_impressions, sd) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)""", rows)
     _log(conn, deal.name, action, summary)
+
+
+def deal_terms(deal: Any) -> dict:
+    """A deal's terms as stored with its commit: the deal file's keys (`planner.scenario.Deal`
+    without its name and path), mix rules as a dict with lists for the exclusions."""
+    mix = getattr(deal, "mix", None)
+    rules = {}
+    if mix is not None:
+        rules = {k: (list(v) if isinstance(v, tuple) else (dict(v) if isinstance(v, dict) else v))
+                 for k, v in vars(mix).items()}
+    return {"advertiser": getattr(deal, "advertiser", None), "demo": deal.demo, "impressions": float(deal.impressions),
+            "first_week": int(deal.first_week), "last_week": int(deal.last_week),
+            "price_cpm": float(deal.price_cpm), "confidence": _opt(getattr(deal, "confidence", None)),
+            "pad": _opt(getattr(deal, "pad", None)), "mix": rules}
+
+
+def terms_differ(booked: BookDeal, deal: Any) -> list[str]:
+    """How a deal file differs from the terms its deal was committed on: one text per key
+    ('impressions: 26,729,000 in the book, 30,000,000 in the file'); [] when the same. A deal
+    committed before terms were stored (schema < 4) is compared on the book's columns only."""
+    now = deal_terms(deal)
+    then = dict(booked.terms) if booked.terms else {
+        "advertiser": booked.advertiser, "demo": booked.demo, "impressions": booked.guarantee,
+        "first_week": booked.first_week, "last_week": booked.last_week, "price_cpm": booked.price_cpm,
+        "confidence": booked.confidence, "pad": booked.pad}
+    out = []
+    for key, was in then.items():
+        new = now.get(key)
+        if key == "mix":
+            out += [f"mix.{k}: {was.get(k)!r} in the book, {new.get(k)!r} in the file"
+                    for k in sorted(set(was) | set(new)) if was.get(k) != new.get(k)]
+        elif was != new:
+            fmt = (lambda v: f"{v:,.0f}") if key == "impressions" else repr
+            out.append(f"{key}: {fmt(was) if was is not None else None} in the book, "
+                       f"{fmt(new) if new is not None else None} in the file")
+    return out
+
+
+def deal_from_book(booked: BookDeal, path: Any = None) -> Any:
+    """The `planner.scenario.Deal` a committed deal was committed on (its stored terms; mix rules
+    empty for a deal committed before they were stored)."""
+    t = booked.terms or {}
+    m = t.get("mix") or {}
+    mix = Mix(max_network_share=m.get("max_network_share"), daypart_min_share=dict(m.get("daypart_min_share") or {}),
+              daypart_max_share=dict(m.get("daypart_max_share") or {}),
+              exclude_networks=tuple(m.get("exclude_networks") or ()), exclude_zones=tuple(m.get("exclude_zones") or ()),
+              weekly_tolerance=m.get("weekly_tolerance"), max_spots_per_unit=m.get("max_spots_per_unit"))
+    return Deal(name=booked.name, advertiser=booked.advertiser or "", demo=booked.demo, impressions=booked.guarantee,
+                first_week=booked.first_week, last_week=booked.last_week, price_cpm=booked.price_cpm,
+                confidence=booked.confidence, pad=booked.pad, mix=mix, path=path)
 
 
 def _opt(value) -> float | None:
@@ -595,8 +764,8 @@ def _opt(value) -> float | None:
 
 
 def _log(conn: sqlite3.Connection, deal: str, action: str, detail: dict) -> None:
-    conn.execute("INSERT INTO events (at, deal, action, detail_json) VALUES (?, ?, ?, ?)",
-                 (_now(), deal, action, json.dumps(detail, default=str)))
+    conn.execute("INSERT INTO events (at, deal, action, user, detail_json) VALUES (?, ?, ?, ?, ?)",
+                 (_now(), deal, action, os_user(), json.dumps(detail, default=str)))
 
 
 def _sleep_hook() -> None:

@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 
 from planner import allocate as al
-from planner.delivery import UNIT_KEY
+from planner.delivery import UNIT_KEY, DeliveryModel
 from planner.errors import InputError
 
 CAUTIONS = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
@@ -23,6 +23,50 @@ CAUTIONS = ("Forecasts are estimates from past audiences; contract terms decide 
             "people accountable for the money review it before committing.")
 FRONTIER_SIZES = (0.5, 0.75, 0.9, 1.0, 1.1, 1.25, 1.5)
 Z10 = 1.2815515655446004  # standard normal 90% quantile (p10/p90 band)
+#: a plan with no pacing rule whose weekly expected delivery strays further than this from even
+#: pacing says so (a buyer expects delivery spread over the flight)
+PACING_NOTE = 0.25
+#: a plan under a pad whose chance of delivery is below this says so (what a confidence rule,
+#: the default, would have held)
+PAD_CHANCE_NOTE = 0.95
+#: columns of a buy-plan CSV (`plan_frame`): the allocation's, then what a buyer needs to place
+#: the order (the deal, each week's Monday and Sunday, the daypart's days and clock times)
+PLAN_COLUMNS = ["zone", "network", "daypart", "week", "spots", "rate", "cost", "expected_impressions",
+                "preempt_rate", "sd_impressions", "deal", "week_start", "week_end", "days", "start", "end"]
+_DAY_NAMES = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
+
+
+def days_text(days) -> str:
+    """Weekday numbers (0=Mon..6=Sun) as text: (0, 1, 2, 3, 4) -> 'mon-fri', (0, 2) -> 'mon,wed'."""
+    days = sorted(set(int(d) for d in days))
+    parts, i = [], 0
+    while i < len(days):
+        j = i
+        while j + 1 < len(days) and days[j + 1] == days[j] + 1:
+            j += 1
+        parts.append(_DAY_NAMES[days[i]] if j - i < 2 else f"{_DAY_NAMES[days[i]]}-{_DAY_NAMES[days[j]]}")
+        if j - i == 1:
+            parts.append(_DAY_NAMES[days[j]])
+        i = j + 1
+    return ",".join(parts)
+
+
+def plan_frame(scenario, deal_name: str, spots: pd.DataFrame, extra=()) -> pd.DataFrame:
+    """A buy plan as written to CSV: `PLAN_COLUMNS`, then the columns `extra` of `spots`.
+
+    `spots`: one row per bought unit-week (`PlanResult.spots` or a re-plan's order). Adds the
+    deal name, the week's Monday and Sunday (ISO dates, `scenario.week_start`/`week_end`) and the
+    daypart's days (`days_text`) and clock times (start inclusive, end exclusive, local clock).
+    """
+    out = spots.copy()
+    out["deal"] = deal_name
+    weeks = out["week"].astype("int64")
+    out["week_start"] = weeks.map(lambda w: scenario.week_start(w).isoformat())
+    out["week_end"] = weeks.map(lambda w: scenario.week_end(w).isoformat())
+    parts = {d.name: (days_text(d.days), d.start, d.end) for d in scenario.dayparts}
+    for i, col in enumerate(("days", "start", "end")):
+        out[col] = out["daypart"].map(lambda name, i=i: parts[name][i])
+    return out[PLAN_COLUMNS + list(extra)].reset_index(drop=True)
 
 
 @dataclass
@@ -37,6 +81,7 @@ class DealRun:
     held_spots: int
     units: pd.DataFrame | None = None    # the deal's demo and weeks, before its exclusions and spot cap
     held: pd.DataFrame | None = None     # other deals' holds the avails were reduced by
+    warnings: list = field(default_factory=list)  # about the book read (`planner.book.book_warnings`)
 
 
 @dataclass
@@ -82,6 +127,9 @@ class PlanResult:
     held_spots_excluded: int
     binding: list = field(default_factory=list)
     cautions: list = field(default_factory=list)
+    warnings: list = field(default_factory=list)  # about the data (the book held over avails)
+    notes: list = field(default_factory=list)  # about this plan (pacing, chance under a pad)
+    shared_error_caution: str | None = None  # the forecast's caution in full (its brief form is in cautions)
 
 
 @dataclass
@@ -130,6 +178,9 @@ class CheckResult:
     held_spots_excluded: int
     frontier: list | None = None
     cautions: list = field(default_factory=list)
+    warnings: list = field(default_factory=list)  # about the data (the book held over avails)
+    notes: list = field(default_factory=list)  # about this plan (pacing, chance under a pad)
+    shared_error_caution: str | None = None  # the forecast's caution in full (its brief form is in cautions)
 
     def to_json(self) -> dict:
         """Plain dict for `--json` (the documented keys first)."""
@@ -204,6 +255,13 @@ def _held(scenario, held, book, deal_name: str):
     return held_spots(scenario, book, exclude=(deal_name,))
 
 
+def _book_warnings(scenario, book) -> list[str]:
+    """`planner.book.book_warnings` of the book a check or plan read."""
+    from planner.book import book_warnings
+
+    return book_warnings(scenario, book)
+
+
 def deal_units(scenario, forecast: pd.DataFrame, deal) -> pd.DataFrame:
     """Forecast rows of the deal's demo joined with the inventory (avails, rate, preempt_rate)."""
     fc = forecast[forecast["demo"] == deal.demo]
@@ -252,21 +310,49 @@ def run_deal(scenario, deal_name: str, *, solver: str = "cbc", held=None, book=N
     prob = al.make_problem(scope, deal.impressions if guarantee is None else guarantee, rules_of(deal), deal.weeks)
     alloc = al.allocate(prob, solver=solver, gap=gap, time_limit=time_limit)
     n_held = int(held_df["spots"].sum()) if held_df is not None and len(held_df) else 0
-    return DealRun(scenario, deal, prob, alloc, fitted, n_held, units=units, held=held_df)
+    warnings = _book_warnings(scenario, book) if held is None else []
+    return DealRun(scenario, deal, prob, alloc, fitted, n_held, units=units, held=held_df, warnings=warnings)
+
+
+def _scope_items(mix) -> list[tuple[str, dict]]:
+    """The deal's exclusions and spot cap, each as (label as in the deal file, candidate_units
+    arguments without it)."""
+    base = dict(exclude_networks=mix.exclude_networks, exclude_zones=mix.exclude_zones,
+                max_spots_per_unit=mix.max_spots_per_unit)
+    out = []
+    if mix.exclude_zones:
+        out.append((f"exclude_zones {', '.join(mix.exclude_zones)}", {**base, "exclude_zones": ()}))
+    if mix.exclude_networks:
+        out.append((f"exclude_networks {', '.join(mix.exclude_networks)}", {**base, "exclude_networks": ()}))
+    if mix.max_spots_per_unit:
+        out.append((f"max_spots_per_unit {mix.max_spots_per_unit}", {**base, "max_spots_per_unit": None}))
+    return out
+
+
+def scope_levers(run: DealRun, current: float) -> list[tuple[float, str]]:
+    """The deal's exclusions and per-unit spot cap removed one at a time, every rule kept: (gain,
+    text) for each whose removal raises the largest deliverable guarantee above `current`
+    (`allocate.lever_text`; LP relaxations, impressions). They decide which spots the deal may
+    buy, so `al.rule_levers` (which changes the plan's rules) cannot try them."""
+    if run.units is None:
+        return []
+    prob, deal = run.problem, run.deal
+    out = []
+    for label, args in _scope_items(deal.mix):
+        scope = al.candidate_units(run.units, weeks=deal.weeks, held=run.held, **args)
+        allowed = al.max_guarantee(al.make_problem(scope, prob.guarantee, prob.rules, deal.weeks),
+                                   tol=2e-3, max_iter=40).value
+        if allowed - current > 1e-3 * max(prob.guarantee, 1.0):
+            out.append((allowed - current, al.lever_text(label, allowed, current)))
+    return out
 
 
 def scope_diagnosis(run: DealRun) -> list[str]:
-    """What the deal's exclusions and per-unit spot cap cost, when the spots they leave fall short.
-
-    They decide which spots the deal may buy, not how the plan mixes them, so `al.diagnose`
-    (which relaxes the plan's rules) keeps them. Here: the largest guarantee with no share or
-    pacing rule and no risk margin, inside them and without them (LP relaxations, impressions).
-    Returns one line, or none when the deal has neither or the spots inside them suffice.
-    """
+    """When even with no rule and no margin the spots the deal may buy fall short: what they
+    would deliver without its exclusions and spot cap (LP relaxation, impressions). One line, or
+    none when the deal has neither or the spots inside them suffice."""
     mix, prob = run.deal.mix, run.problem
-    named = ([f"exclude_zones {', '.join(mix.exclude_zones)}"] if mix.exclude_zones else []) \
-        + ([f"exclude_networks {', '.join(mix.exclude_networks)}"] if mix.exclude_networks else []) \
-        + ([f"max_spots_per_unit {mix.max_spots_per_unit}"] if mix.max_spots_per_unit else [])
+    named = [label for label, _ in _scope_items(mix)]
     if run.units is None or not named:
         return []
     loose = al.no_rules_no_margin(prob.rules)
@@ -276,9 +362,8 @@ def scope_diagnosis(run: DealRun) -> list[str]:
     scope = al.candidate_units(run.units, weeks=run.deal.weeks, held=run.held)
     without = al.max_guarantee(al.make_problem(scope, prob.guarantee, loose, run.deal.weeks)).value
     verdict = "enough" if without >= prob.guarantee * (1 - 1e-6) else "still short"
-    return [f"exclusions and spot cap ({'; '.join(named)}): with no share or pacing rule and no risk margin "
-            f"the spots they leave deliver at most {inside:,.0f} expected impressions; without them "
-            f"{without:,.0f} ({verdict} for {prob.guarantee:,.0f})"]
+    return [f"without its {'; '.join(named)} too, with no share or pacing rule and no risk margin, the spots "
+            f"left would deliver at most {without:,.0f} expected impressions ({verdict} for {prob.guarantee:,.0f})"]
 
 
 def _risk_text(deal) -> str:
@@ -297,10 +382,17 @@ def _cautions(run: DealRun) -> list[str]:
         out.append("The forecast was missing or stale and was fitted first.")
     from planner.forecast_job import forecast_caution
 
-    shared = forecast_caution(run.scenario)
+    shared = forecast_caution(run.scenario, brief=True)
     if shared:
         out.append(shared)
     return out
+
+
+def _shared_caution(run: DealRun) -> str | None:
+    """The whole text of the forecast's caution on errors shared by all units (for --json)."""
+    from planner.forecast_job import forecast_caution
+
+    return forecast_caution(run.scenario)
 
 
 def _spots_frame(run: DealRun) -> pd.DataFrame:
@@ -324,6 +416,23 @@ def _spots_frame(run: DealRun) -> pd.DataFrame:
     return out.sort_values(UNIT_KEY).reset_index(drop=True)
 
 
+def _by_week(dm, x: np.ndarray, wk: np.ndarray, weeks) -> tuple[np.ndarray, np.ndarray]:
+    """Expected impressions and sd of spots `x` week by week (`wk` the week of each unit row)."""
+    exp, sds = [], []
+    for w in weeks:  # one pass per flight week (a dozen or so), each vectorised
+        xw = np.where(wk == w, x, 0.0)
+        exp.append(dm.mean(xw))
+        sds.append(dm.sd(xw))
+    return np.array(exp), np.array(sds)
+
+
+def _pacing_frame(weeks, exp: np.ndarray, sds: np.ndarray) -> pd.DataFrame:
+    """Pacing table: week, expected_impressions, sd, p10/p90 (normal band), even_pacing."""
+    even = float(np.sum(exp)) / len(weeks) if len(weeks) else np.nan
+    return pd.DataFrame({"week": list(weeks), "expected_impressions": exp, "sd": sds, "p10": exp - Z10 * sds,
+                         "p90": exp + Z10 * sds, "even_pacing": even})
+
+
 def pacing_table(run: DealRun) -> pd.DataFrame:
     """Per flight week: expected impressions, sd, p10/p90 (normal band) and even pacing."""
     prob, x = run.problem, run.allocation.x
@@ -331,17 +440,20 @@ def pacing_table(run: DealRun) -> pd.DataFrame:
     if x is None:
         return pd.DataFrame({"week": weeks, "expected_impressions": np.nan, "sd": np.nan, "p10": np.nan,
                              "p90": np.nan, "even_pacing": np.nan})
-    dm = prob.model
-    wk = prob.units["week"].to_numpy()
-    exp, sds = [], []
-    for w in weeks:  # one pass per flight week (a dozen or so), each vectorised
-        xw = np.where(wk == w, x, 0.0)
-        exp.append(dm.mean(xw))
-        sds.append(dm.sd(xw))
-    exp, sds = np.array(exp), np.array(sds)
-    even = dm.mean(x) / len(weeks)
-    return pd.DataFrame({"week": weeks, "expected_impressions": exp, "sd": sds, "p10": exp - Z10 * sds,
-                         "p90": exp + Z10 * sds, "even_pacing": even})
+    return _pacing_frame(weeks, *_by_week(prob.model, x, prob.units["week"].to_numpy(), weeks))
+
+
+def held_pacing(scenario, deal, holds: pd.DataFrame, forecast: pd.DataFrame) -> pd.DataFrame:
+    """Pacing of a deal's held spots (`pacing_table`'s columns): each week's expected impressions
+    as the book stores them (`holds.expected_impressions`), its sd from the delivery model of the
+    held spots on `forecast` (deal's demo; preemption from the inventory)."""
+    weeks = list(deal.weeks)
+    units = holds[UNIT_KEY + ["spots"]].astype({"week": "int64"}).merge(
+        deal_units(scenario, forecast, deal), on=UNIT_KEY, how="inner")
+    _, sds = (_by_week(DeliveryModel.from_units(units), units["spots"].to_numpy(float), units["week"].to_numpy(),
+                       weeks) if len(units) else (None, np.zeros(len(weeks))))
+    exp = holds.groupby("week")["expected_impressions"].sum().reindex(weeks, fill_value=0.0).to_numpy(float)
+    return _pacing_frame(weeks, exp, sds)
 
 
 def _summary(run: DealRun) -> dict:
@@ -384,6 +496,39 @@ def plan_deal(scenario, deal_name: str, *, solver: str = "cbc", held=None, book=
     return plan_result(run, explain=explain)
 
 
+def _weeks_text(weeks) -> str:
+    """[5, 6, 7, 9] -> '5-7, 9'."""
+    weeks, out, i = sorted(int(w) for w in weeks), [], 0
+    while i < len(weeks):
+        j = i
+        while j + 1 < len(weeks) and weeks[j + 1] == weeks[j] + 1:
+            j += 1
+        out.append(str(weeks[i]) if i == j else f"{weeks[i]}-{weeks[j]}")
+        i = j + 1
+    return ", ".join(out)
+
+
+def plan_notes(run: DealRun, pacing: pd.DataFrame, probability: float | None) -> list[str]:
+    """What a buyer should know of a feasible plan that its rules did not ask for: weekly pacing
+    more than `PACING_NOTE` from even with no pacing rule; a chance of delivery below
+    `PAD_CHANCE_NOTE` under a pad. `pacing`: `pacing_table`; `probability`: the plan's chance."""
+    if not run.allocation.feasible:
+        return []
+    deal, out = run.deal, []
+    dev = pacing["expected_impressions"] / pacing["even_pacing"] - 1.0
+    if deal.mix.weekly_tolerance is None and len(dev) and float(dev.abs().max()) > PACING_NOTE:
+        low = pacing["week"][dev < -PACING_NOTE]
+        high = pacing["week"][dev > PACING_NOTE]
+        parts = ([f"weeks {_weeks_text(low)} more than {PACING_NOTE:.0%} below"] if len(low) else []) + (
+            [f"weeks {_weeks_text(high)} more than {PACING_NOTE:.0%} above"] if len(high) else [])
+        out.append(f"weekly pacing strays up to {float(dev[dev.abs().idxmax()]):+.0%} from even ({'; '.join(parts)}) "
+                   f"and the deal sets no pacing rule: add weekly_tolerance to its [mix] to spread delivery")
+    if deal.pad is not None and probability is not None and probability < PAD_CHANCE_NOTE:
+        out.append(f"chance of delivery {probability:.1%} is below {PAD_CHANCE_NOTE:.0%} under the pad of "
+                   f"{deal.pad:.0%}: a confidence rule (confidence = {PAD_CHANCE_NOTE:g}) would hold it there")
+    return out
+
+
 def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
     deal, a, prob = run.deal, run.allocation, run.problem
     s = _summary(run)
@@ -394,11 +539,14 @@ def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
         binding = []
         reason = a.status
     else:
-        binding = al.diagnose(prob) + scope_diagnosis(run) if explain else []
+        current = al.max_guarantee(prob, tol=2e-3, max_iter=40).value if explain else 0.0
+        binding = (al.diagnose(prob, current=current, levers=scope_levers(run, current)) + scope_diagnosis(run)
+                   if explain else [])
         reason = "no plan meets the guarantee under the deal's rules and risk margin"
         if binding:
             reason += " (" + "; ".join(binding[:3]) + ")"
     spots = _spots_frame(run)
+    pacing = pacing_table(run)
     totals = {"spots": s["spots"], "units": s["units"], "cost": s["cost"], "expected_impressions": s["expected_impressions"],
               "sd_impressions": s["sd"], "guarantee": deal.impressions, "probability_of_delivery": s["probability"],
               "revenue": s["revenue"], "margin": s["margin"], "margin_pct": s["margin_pct"]}
@@ -406,13 +554,14 @@ def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
         deal=deal.name, deliverable=a.feasible, verdict=_verdict(run), reason=reason, currency=run.scenario.currency,
         guarantee=deal.impressions, risk_rule=prob.rules.risk_rule, confidence=prob.rules.confidence,
         pad=prob.rules.pad, default_confidence_used=bool(deal.risk_default_used), spots=spots,
-        pacing=pacing_table(run), totals=totals, cost=s["cost"], revenue=s["revenue"], margin=s["margin"],
+        pacing=pacing, totals=totals, cost=s["cost"], revenue=s["revenue"], margin=s["margin"],
         margin_pct=s["margin_pct"], expected_impressions=s["expected_impressions"], sd=s["sd"],
         probability=s["probability"], probability_if_independent=s["probability_if_independent"],
         solver=a.solver, gap=a.gap, lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts,
         iterations=a.iterations, build_seconds=a.build_seconds, solve_seconds=a.solve_seconds,
         fitted_forecast_first=run.fitted_now, held_spots_excluded=run.held_spots, binding=binding,
-        cautions=_cautions(run))
+        cautions=_cautions(run), warnings=list(run.warnings), shared_error_caution=_shared_caution(run),
+        notes=plan_notes(run, pacing, s["probability"]))
 
 
 def frontier(prob: al.AllocationProblem, sizes, *, solver: str = "cbc", gap: float = al.DEFAULT_GAP,
@@ -469,7 +618,7 @@ def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=a
     else:
         binding = [f"largest deliverable guarantee at these rules: {max_g:,.0f} impressions "
                    f"({100 * max_g / deal.impressions:.0f}% of the {deal.impressions:,.0f} asked)"]
-        binding += al.diagnose(prob) + scope_diagnosis(run)
+        binding += al.diagnose(prob, current=mg.value, levers=scope_levers(run, mg.value)) + scope_diagnosis(run)
     cpm = al.cpm_needed(a.cost, deal.impressions, target_margin) if (a.feasible and target_margin is not None) else None
     fr = None
     if with_frontier:
@@ -488,4 +637,5 @@ def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=a
         binding=binding, spots=s["spots"], units_bought=s["units"], solver=a.solver, gap=a.gap,
         lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts, iterations=a.iterations,
         build_seconds=a.build_seconds, solve_seconds=a.solve_seconds, fitted_forecast_first=run.fitted_now,
-        held_spots_excluded=run.held_spots, frontier=fr, cautions=_cautions(run))
+        held_spots_excluded=run.held_spots, frontier=fr, cautions=_cautions(run), warnings=list(run.warnings),
+        shared_error_caution=_shared_caution(run), notes=plan_notes(run, pacing_table(run), s["probability"]))

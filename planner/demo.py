@@ -16,12 +16,13 @@ from pathlib import Path
 from typing import Any, Callable, ContextManager
 
 from planner.errors import InputError
+from planner.stress import DEFAULT_DRAWS
 
 DEFAULT_FOLDER = "pledge-demo"
 REPORT_NAME = "report.html"
 SUMMARY_NAME = "demo-summary.json"
-DEFAULT_DRAWS = 20_000
 DEFAULT_SEED = 0
+EXAMPLE_WEEKS = 4  # weeks of invented posted actuals the demo leaves for `pledge rebalance`
 
 
 @dataclass
@@ -43,6 +44,9 @@ class DemoResult:
     draws: int = DEFAULT_DRAWS
     seed: int = DEFAULT_SEED
     warnings: list[str] = field(default_factory=list)  # cautions about this forecast (the report's)
+    # invented posted actuals of a committed deal's first weeks (`example_actuals`), to try rebalance
+    actuals_example: Path | None = None
+    actuals_deal: str | None = None
 
     def as_dict(self) -> dict:
         return {
@@ -52,6 +56,8 @@ class DemoResult:
             "not_committed": self.not_committed, "released_before_rerun": self.released,
             "stress": self.stress, "draws": self.draws, "seed": self.seed, "seconds": self.seconds,
             "warnings": self.warnings,
+            "actuals_example": None if self.actuals_example is None else str(self.actuals_example),
+            "actuals_deal": self.actuals_deal,
         }
 
 
@@ -119,10 +125,24 @@ def _reuse_plan(plan: Any, forecast: Any) -> Callable[..., Any]:
     return planner
 
 
-def _payload(result: Any) -> dict:
-    from planner.report import check_payload
+def example_actuals(scenario: Any, deal_name: str, weeks: int = EXAMPLE_WEEKS, seed: int = 0) -> Path:
+    """Write invented posted actuals of a committed deal's first `weeks` plan weeks beside the
+    scenario (`posted-actuals-DEAL.csv`, the data contract's layout) and return the path.
 
-    return check_payload(result)
+    The held spots air against the invented generator's simulated future
+    (`scenarios.actuals.posted_actuals`), as a station's posting would report them.
+    """
+    from planner.atomic import write_with_atomic
+    from planner.book import get_deal
+    from scenarios.actuals import posted_actuals
+
+    d = get_deal(scenario, deal_name)
+    aired = range(d.first_week, min(d.first_week + weeks, d.last_week + 1))
+    acts = posted_actuals(scenario, d.holds[["zone", "network", "daypart", "week", "spots"]], d.demo,
+                          weeks=aired, seed=seed)
+    acts = acts.assign(impressions=acts["impressions"].round())
+    path = Path(scenario.path) / f"posted-actuals-{deal_name}.csv"
+    return write_with_atomic(path, lambda p: acts.to_csv(p, index=False))
 
 
 def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, seed: int = DEFAULT_SEED,
@@ -178,31 +198,33 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
         say(f"re-run: released {', '.join(released)} from the demo book to start it afresh")
 
     from planner.book import commit_deal, held_spots
-    from planner.report import evaluate_deal
+    from planner.deals import plan_result, run_deal
 
-    checks: dict[str, dict] = {}
     committed: list[str] = []
     not_committed: dict[str, str] = {}
     names = list(scn.deals)
-    runs = {}
-    # The desk's order of work: check a deal against the book as it stands, commit it if it is
+    # The desk's order of work: plan a deal against the book as it stands, commit it if it is
     # deliverable, then the next deal (it sees the spots the earlier ones hold).
     with timed("check_commit", f"3/5 checking {len(names)} demo deals, committing the deliverable ones",
                total=len(names)) as advance:
         for name in names:
-            check, plan, extra = evaluate_deal(scn, name, forecast=fc.table, held=held_spots(scn), solver=solver)
-            runs[name] = (check, plan, extra)
-            checks[name] = _payload(check)
-            if plan is not None and plan.deliverable:
+            plan = plan_result(run_deal(scn, name, solver=solver, held=held_spots(scn), forecast=fc.table),
+                               explain=False)
+            if plan.deliverable:
                 r = commit_deal(scn, name, planner=_reuse_plan(plan, fc.table), solver=solver)
                 if r.committed:
                     committed.append(name)
-                    runs[name] = (check, r.plan, extra)
                 else:
                     not_committed[name] = r.reason
             else:
                 not_committed[name] = "not deliverable"
             advance(1)
+    example = None
+    if committed:
+        # a deal with weeks left after the example's weeks, the longest flight first
+        deal = max(committed, key=lambda n: scn.deals[n].last_week - scn.deals[n].first_week)
+        example = example_actuals(scn, deal)
+        say(f"invented posted actuals of {deal}'s first weeks in {example}")
     stress = None
     if committed:
         from planner.stress import stress_book
@@ -211,15 +233,22 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
             stress = stress_book(scn, draws=draws, seed=seed, forecast=fc.table)
     report = folder / REPORT_NAME
     with timed("report", "5/5 writing the report"):
-        data = build_report(scn, forecast=fc.table, stress=stress, runs=runs, seed=seed, solver=solver,
-                            check_note="The demo checked each deal in turn against the book as it stood "
-                                       "(the deals committed before it), and committed it when deliverable.")
+        # The report checks every deal against the book as it now stands (not the demo's own
+        # checks, made as the book filled): the same answers `pledge report` gives on this folder.
+        data = build_report(scn, forecast=fc.table, stress=stress, seed=seed, solver=solver,
+                            check_note="The demo checked each deal in turn against the book as it stood (the "
+                                       "deals committed before it) and committed it when deliverable; below, a "
+                                       "deal not in the book is checked against every deal's holds.")
         write_report(data, report)
+    # One book, one answer: the demo's table is the report's (a deal in the book from the book,
+    # its largest guarantee against the other deals' holds).
+    checks = {d.name: d.verdict for d in data.deals}
     result = DemoResult(folder=folder, report=report, scenario=scn.name, currency=scn.currency,
                         reused_folder=reused_folder, reused_forecast=reused_forecast, checks=checks,
                         committed=committed, not_committed=not_committed, released=released,
                         stress=stress.as_dict() if stress is not None else None, seconds=seconds,
-                        draws=draws, seed=seed, warnings=list(data.warnings))
+                        draws=draws, seed=seed, warnings=list(data.warnings), actuals_example=example,
+                        actuals_deal=deal if example is not None else None)
     from planner.atomic import write_text_atomic
     import json
 

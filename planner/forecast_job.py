@@ -24,7 +24,7 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from planner.atomic import write_text_atomic, write_with_atomic
+from planner.atomic import check_writable, write_text_atomic, write_with_atomic
 from planner.errors import InputError
 
 FORECAST_DIR = "forecast"
@@ -139,6 +139,7 @@ def fit_forecast(scenario, *, demo: str | None = None, engine: str = "duckdb", s
     if demo is not None and demo not in scenario.demos:
         raise InputError(f"--demo {demo!r}: not a demo of the scenario (known: {', '.join(scenario.demos)})")
     key = fit_key(scenario, demo=demo, seed=seed)
+    check_writable(forecast_dir(scenario), "the fitted forecast")  # before minutes of fitting
     t0 = time.perf_counter()
     cube, info = load_history_cube(scenario, demos=[demo] if demo else None, engine=engine, progress=progress)
     t_ingest = time.perf_counter() - t0
@@ -188,19 +189,24 @@ def ensure_forecast(scenario, *, demo: str | None = None, engine: str = "duckdb"
     return fit_forecast(scenario, demo=demo, engine=engine, seed=seed, progress=progress)
 
 
-def shared_error_caution(meta: dict | None, scenario_path) -> str | None:
+def shared_error_caution(meta: dict | None, scenario_path, brief: bool = False) -> str | None:
     """The caution a fit's own check of its refit totals calls for, or None.
 
     `meta` is a forecast's ``meta.json`` (see `ensure_forecast`); the caution is due when the
     chi-square test of the refits' total misses against the error law rejects at 5%
     (``fit.calibration.total_z_p``), and names the stress shock of one shift of the estimated
-    sd (``total_excess_sd``).
+    sd (``total_excess_sd``). `brief`: the same caution in one sentence of at most 150
+    characters, pointing to `pledge forecast fit` and the report for the whole text (what
+    answers print; the whole text stays in their --json).
     """
     fit = (meta or {}).get("fit") or {}
     cal = fit.get("calibration") or {}
     p = cal.get("total_z_p")
     if p is None or not p < 0.05:
         return None
+    if brief:
+        return (f"forecast refits missed their totals beyond the error law (p = {p:.3f}): shared errors may "
+                "exceed the bands; see pledge forecast fit, the report")
     excess = float(cal.get("total_excess_sd") or 0.0)
     common = float((fit.get("level_error") or {}).get("rel_sd_common") or 0.0)
     n = len(cal.get("leave_one_fold_out_total") or {})
@@ -219,10 +225,12 @@ def forecast_meta(scenario) -> dict | None:
     return _read_meta(forecast_dir(scenario))
 
 
-def forecast_caution(scenario, scenario_path=None) -> str | None:
+def forecast_caution(scenario, scenario_path=None, brief: bool = False) -> str | None:
     """`shared_error_caution` of the scenario's cached forecast (the stress command naming
-    `scenario_path`, default the scenario's path), None when there is no forecast or no caution."""
-    return shared_error_caution(forecast_meta(scenario), scenario.path if scenario_path is None else scenario_path)
+    `scenario_path`, default the scenario's path; `brief` its one-sentence form), None when there
+    is no forecast or no caution."""
+    return shared_error_caution(forecast_meta(scenario), scenario.path if scenario_path is None else scenario_path,
+                                brief)
 
 
 def load_forecast(scenario) -> pd.DataFrame:

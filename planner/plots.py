@@ -261,13 +261,19 @@ def delivery_svg(draws: np.ndarray, guarantee: float, probability_of_shortfall: 
         return _svg(fig)
 
 
-def liability_svg(draws: np.ndarray, var95: float, cvar95: float, currency: str) -> str:
-    """Distribution of the book's make-good liability with VaR95 and CVaR95 marked.
+#: title words of each liability basis (`planner.stress.LIABILITY_BASES`)
+BASIS_TITLE = {"refund": "Refund liability (shortfall x price CPM)",
+               "makegood": "Make-good liability (shortfall x plan cost per impression)"}
+
+
+def liability_svg(draws: np.ndarray, var95: float, cvar95: float, currency: str, basis: str = "refund") -> str:
+    """Distribution of the book's liability on its `basis` with VaR95 and CVaR95 marked.
 
     Parameters
     ----------
     draws : book liability per Monte Carlo draw, in `currency`, shape (n_draws,), >= 0.
     var95, cvar95 : the 95% value at risk and conditional value at risk (Rockafellar & Uryasev 2000).
+    basis : "refund" or "makegood", named in the title.
     """
     draws = np.asarray(draws, dtype=float)
     zero_share = float(np.mean(draws <= 0))
@@ -293,7 +299,7 @@ def liability_svg(draws: np.ndarray, var95: float, cvar95: float, currency: str)
         ax.xaxis.set_major_formatter(SHORT)
         ax.yaxis.set_major_formatter(FuncFormatter(_share))
         _style(ax)
-        ax.set_title(f"Make-good liability of the book (no liability in {zero_share:.0%} of draws)", loc="left")
+        ax.set_title(f"{BASIS_TITLE.get(basis, basis)} of the book (none in {zero_share:.0%} of draws)", loc="left")
         return _svg(fig)
 
 

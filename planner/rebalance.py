@@ -47,6 +47,10 @@ from planner.errors import InputError
 
 ACTUALS_COLUMNS = ["zone", "network", "daypart", "week", "spots_aired", "impressions"]
 _Z90 = 1.2815515655446004  # standard normal 0.90 quantile (NIST/SEMATECH e-Handbook table)
+#: a posting further than this many sds of the forecast's own error law from its forecast (one
+#: unit-week, or the deal's posted total) is taken for a data error: a commit is refused. Under
+#: the normal law a 6-sd miss has a chance of about 2e-9 per unit-week.
+PLAUSIBLE_SDS = 6.0
 
 
 # --------------------------------------------------------------------------- actuals
@@ -320,6 +324,104 @@ def plan_for_commit(forecast: pd.DataFrame, *, solver: str = "cbc"):
     return _planner
 
 
+# --------------------------------------------------------------------------- checks of the postings
+
+def _unit(r) -> str:
+    return f"{r.zone}/{r.network}/{r.daypart}/week {int(r.week)}"
+
+
+def _weeks_text(weeks) -> str:
+    """Sorted plan weeks as ranges: [3, 4, 5, 8] -> 'weeks 3-5, 8' ('week 2' for one)."""
+    weeks = sorted(set(int(w) for w in weeks))
+    parts, start = [], None
+    for i, w in enumerate(weeks):
+        start = w if start is None else start
+        if i + 1 == len(weeks) or weeks[i + 1] != w + 1:
+            parts.append(f"{start}" if start == w else f"{start}-{w}")
+            start = None
+    return ("week " if len(weeks) == 1 else "weeks ") + ", ".join(parts)
+
+
+def posting_problems(acts: pd.DataFrame, holds: pd.DataFrame, observed: pd.DataFrame, unmatched: np.ndarray,
+                     *, first_week: int, unposted_as_zero: bool = False) -> tuple[list[str], list[str]]:
+    """What makes posted actuals unsafe to commit a re-plan on, and what is only worth saying.
+
+    `acts`: the postings (row i is the 1-based data row i + 1 of the file); `holds`: the deal's
+    holds (`UNIT_KEY` + spots); `observed`/`unmatched`: the postings joined with their forecast
+    rows (`FoldedActuals`). Returns (problems, warnings). Problems: held unit-weeks of weeks
+    `first_week`..last posted week without a posted row (a warning instead with
+    `unposted_as_zero`); postings in unit-weeks the deal does not hold or airing more spots than
+    it holds; a unit-week, or the deal's total, beyond `PLAUSIBLE_SDS` sds of the forecast's error
+    law (`implausible_postings`).
+    """
+    problems: list[str] = []
+    warnings: list[str] = []
+    if acts.empty:
+        return problems, warnings
+    last = int(acts["week"].max())
+    held = holds[(holds["week"] >= first_week) & (holds["week"] <= last)]
+    gaps = held.merge(acts[UNIT_KEY], on=UNIT_KEY, how="left", indicator=True)
+    gaps = gaps[gaps["_merge"] == "left_only"]
+    if len(gaps):
+        text = (f"{len(gaps)} held unit-week(s) in {_weeks_text(gaps['week'])} (up to the last posted week {last}) "
+                f"have no posted row ({int(gaps['spots'].sum()):,} held spots; first: {_unit(gaps.iloc[0])})")
+        if unposted_as_zero:
+            warnings.append(text + "; counted as 0 delivered (--unposted-as-zero)")
+        else:
+            problems.append(text + ": a stray later week or a missing one? post them, or pass --unposted-as-zero "
+                                   "to count them as delivering nothing")
+    vs = acts.reset_index(drop=True).merge(holds[UNIT_KEY + ["spots"]], on=UNIT_KEY, how="left")
+    outside = vs["spots"].isna().to_numpy()
+    if outside.any():
+        i = int(np.flatnonzero(outside)[0])
+        problems.append(f"{int(outside.sum())} posting(s) are not in the deal's held plan (first: row {i + 1}, "
+                        f"{_unit(vs.iloc[i])}, {int(vs['spots_aired'].iloc[i])} aired, none held)")
+    extra = (~outside) & (vs["spots_aired"] > vs["spots"].fillna(0)).to_numpy()
+    if extra.any():
+        i = int(np.flatnonzero(extra)[0])
+        r = vs.iloc[i]
+        problems.append(f"{int(extra.sum())} posted unit-week(s) aired more spots than the deal holds there "
+                        f"(first: row {i + 1}, {_unit(r)}, {int(r.spots_aired)} aired, {int(r.spots)} held)")
+    problems += implausible_postings(observed, unmatched)
+    return problems, warnings
+
+
+def implausible_postings(observed: pd.DataFrame, unmatched: np.ndarray, sds: float = PLAUSIBLE_SDS) -> list[str]:
+    """Postings beyond `sds` sds of the forecast's own error law, per unit-week and for the total.
+
+    Unit-week i with k aired spots: the mean impressions per aired spot has sd
+    sqrt(level_sd_i^2 + airing_sd_i^2 / k) around mean_impressions_i (DEVELOPERS.md, the error
+    model of one spot, preemption excluded since k counts aired spots). The deal's total over the
+    posted unit-weeks: mean sum k_i mu_i and the `DeliveryModel` variance of k aired spots (level
+    factors shared across units, so the total's sd does not shrink like 1/sqrt(n)). `observed`:
+    postings joined with forecast rows (row i = data row i + 1); `unmatched`: rows without one.
+    """
+    ok = ~unmatched & (observed["spots_aired"] > 0).to_numpy()
+    o = observed[ok]
+    if o.empty:
+        return []
+    k = o["spots_aired"].to_numpy(float)
+    mu = o["mean_impressions"].to_numpy(float)
+    sd = np.sqrt(o["level_sd"].to_numpy(float) ** 2 + o["airing_sd"].to_numpy(float) ** 2 / k)
+    z = (o["impressions"].to_numpy(float) / k - mu) / np.maximum(sd, 1e-9 * np.maximum(mu, 1.0))
+    out = []
+    far = np.abs(z) > sds
+    if far.any():
+        j = int(np.argmax(np.abs(z)))
+        r = o.iloc[j]
+        out.append(f"{int(far.sum())} posted unit-week(s) lie beyond {sds:g} sds of the forecast's error law "
+                   f"(worst: row {int(o.index[j]) + 1}, {_unit(r)}, {r.impressions / k[j]:,.0f} impressions per aired "
+                   f"spot against {mu[j]:,.0f} forecast, {z[j]:+,.1f} sds): impressions in another unit or scale "
+                   f"(thousands?), or another demo?")
+    dm = DeliveryModel.from_units(o.assign(preempt_rate=0.0))
+    total, expected, sd_total = float(o["impressions"].sum()), dm.mean(k), dm.sd(k)
+    zt = (total - expected) / sd_total if sd_total > 0 else 0.0
+    if abs(zt) > sds:
+        out.append(f"the deal's posted total {total:,.0f} is {total / expected:,.3g}x the forecast of the spots "
+                   f"that aired ({expected:,.0f}), {zt:+,.1f} sds of the error law: beyond {sds:g} sds")
+    return out
+
+
 # --------------------------------------------------------------------------- the rebalance
 
 @dataclass
@@ -350,6 +452,9 @@ class RebalanceResult:
     unmet: float
     committed: bool
     status: str
+    not_committed_reason: str = ""
+    # reasons the postings look wrong (a commit on them is refused): `posting_problems`
+    problems: list[str] = field(default_factory=list)
     # per network that posted: the posterior mean of its level factor, in sds of that factor
     # (standard-normal units), and the change of its units' forecast level from it (fraction)
     network_shift: dict = field(default_factory=dict)
@@ -357,11 +462,13 @@ class RebalanceResult:
     warnings: list[str] = field(default_factory=list)
     plan: pd.DataFrame | None = field(default=None, repr=False)
     catch_up: pd.DataFrame | None = field(default=None, repr=False)
+    # the re-planned remaining weeks as a buy order (`buy_order`); None without a re-plan
+    order: pd.DataFrame | None = field(default=None, repr=False)
     forecast: pd.DataFrame | None = field(default=None, repr=False)
     posterior: LevelPosterior | None = field(default=None, repr=False)
 
     def as_dict(self) -> dict:
-        skip = {"plan", "catch_up", "forecast", "posterior"}
+        skip = {"plan", "catch_up", "order", "forecast", "posterior"}
         out = {k: v for k, v in self.__dict__.items() if k not in skip}
         out["catch_up"] = [] if self.catch_up is None else self.catch_up.to_dict(orient="records")
         return out
@@ -369,7 +476,7 @@ class RebalanceResult:
 
 def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | pd.DataFrame,
                    book: str | os.PathLike | None = None, *, commit: bool = False, solver: str = "cbc",
-                   forecast: pd.DataFrame | None = None) -> RebalanceResult:
+                   forecast: pd.DataFrame | None = None, unposted_as_zero: bool = False) -> RebalanceResult:
     """Update the forecast from posted actuals and re-plan the deal's remaining weeks.
 
     `actuals`: a CSV path (validated by `read_actuals`) or an already-valid DataFrame. Aired weeks
@@ -378,8 +485,14 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
     replaced by the re-plan in one checked transaction (aired weeks' holds are kept), and the
     posted actuals used are stored with them (the book's `postings`), so the stress test values
     the remaining holds on the same updated forecast (`fold_actuals`).
+
+    Postings that look wrong (`posting_problems`: held unit-weeks up to the last posted week
+    without a row, postings outside the held plan or airing more than held, figures beyond
+    `PLAUSIBLE_SDS` sds of the forecast's error law) are listed in `problems`; with `commit=True`
+    they raise InputError before anything is planned or written. `unposted_as_zero` accepts
+    held unit-weeks without a row as delivering nothing (said in `warnings`).
     """
-    from planner.book import get_deal, held_spots, replace_holds
+    from planner.book import book_warnings, get_deal, held_spots, replace_holds
 
     if deal_name not in scenario.deals:
         raise InputError(f"{scenario.path}: no deal named {deal_name!r} in deals/")
@@ -390,7 +503,7 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
         from planner.forecast_job import ensure_forecast
 
         forecast = ensure_forecast(scenario).table
-    warnings: list[str] = []
+    warnings: list[str] = book_warnings(scenario, book)
     folded = fold_actuals(forecast, acts, deal.demo)
     obs, no_fc, post, updated = folded.observed, folded.unmatched, folded.posterior, folded.forecast
     if no_fc.any():
@@ -403,17 +516,13 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
     delivered = float(acts["impressions"].sum())
     holds = booked.holds
     held_aired = holds[holds["week"] <= last_aired]
-    unposted = held_aired.merge(acts[UNIT_KEY], on=UNIT_KEY, how="left", indicator=True)
-    unposted = int((unposted["_merge"] == "left_only").sum())
-    if unposted:
-        warnings.append(f"{unposted} held unit-week(s) in aired weeks have no posting; counted as 0 delivered")
-    vs_held = acts.merge(held_aired[UNIT_KEY + ["spots"]], on=UNIT_KEY, how="left")
-    extra = (vs_held["spots_aired"] > vs_held["spots"].fillna(0)).to_numpy()
-    if extra.any():
-        r = vs_held[extra].iloc[0]
-        warnings.append(f"{int(extra.sum())} posted unit-week(s) aired more spots than the deal holds there "
-                        f"(first: {r.zone}/{r.network}/{r.daypart}/week {int(r.week)}, {int(r.spots_aired)} aired, "
-                        f"{int(0 if pd.isna(r.spots) else r.spots)} held); their impressions count as delivered")
+    problems, said = posting_problems(acts, holds, obs, no_fc, first_week=deal.first_week,
+                                      unposted_as_zero=unposted_as_zero)
+    warnings += said
+    if commit and problems:
+        where = actuals if not isinstance(actuals, pd.DataFrame) else "posted actuals"
+        raise InputError(f"{where}: re-plan of {deal_name!r} not committed, the postings look wrong: "
+                         + "; ".join(problems) + " (nothing was written to the book)")
     # Expected delivery of what aired, under the prior forecast (per aired spot, no preemption).
     ok = obs[~no_fc]
     expected_aired = float((ok["spots_aired"] * ok["mean_impressions"]).sum())
@@ -447,11 +556,17 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
     label = (f"confidence {deal.confidence:.0%}" if deal.pad is None else f"pad {deal.pad:.0%}")
     unmet = 0.0 if deliverable else max(G_left - max_del, 0.0)
     catch = _catch_up(held_rem, new_plan) if deliverable else None
+    order = (buy_order(held_rem, new_plan, scenario.inventory)
+             if deliverable and remaining and G_left > 0 else None)
     net_shift = {str(n): float(post.mean[i]) for i, n in enumerate(post.networks)}
     ev = obs[~no_fc]  # the posted rows the posterior used: every network in it posted
     rel_sd = (ev["level_sd_network"] / ev["mean_impressions"]).groupby(ev["network"].astype(str)).median()
     net_change = {n: z * float(rel_sd.get(n, np.nan)) for n, z in net_shift.items()}
     committed = False
+    not_committed = ("" if not commit else
+                     "the guarantee is already delivered: nothing to re-plan" if G_left <= 0 else
+                     "the flight is over: nothing left to re-plan" if not remaining else
+                     "" if deliverable else "no re-plan meets the remaining guarantee")
     if commit and deliverable and remaining and G_left > 0:
         cols = UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "sd"]
         keep = held_aired[cols]
@@ -472,7 +587,9 @@ def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | p
         added_spots=new_spots - held_spots_n if deliverable else 0, held_remaining_cost=held_cost,
         new_cost=new_cost, added_cost=new_cost - held_cost if deliverable else 0.0,
         max_deliverable=max_del, unmet=unmet, committed=committed, status=status,
-        network_shift=net_shift, network_level_change=net_change, warnings=warnings, plan=new_plan, catch_up=catch, forecast=updated,
+        not_committed_reason="" if committed else not_committed, problems=problems,
+        network_shift=net_shift, network_level_change=net_change, warnings=warnings, plan=new_plan, catch_up=catch,
+        order=order, forecast=updated,
         posterior=post)
 
 
@@ -501,3 +618,26 @@ def _catch_up(held: pd.DataFrame, new: pd.DataFrame) -> pd.DataFrame:
     m["change"] = m["new"] - m["held"]
     m = m[m["change"] != 0]
     return m.sort_values(UNIT_KEY).reset_index(drop=True)
+
+
+def buy_order(held: pd.DataFrame, new: pd.DataFrame, inventory: pd.DataFrame) -> pd.DataFrame:
+    """The re-planned remaining weeks as a buy order, one row per unit-week re-planned or held.
+
+    `held`: the deal's holds in the remaining weeks (`UNIT_KEY`, spots, rate); `new`: the
+    re-plan (`PlanResult.spots`). Columns `UNIT_KEY`, spots (the new count; 0 releases the
+    unit-week), rate, cost, expected_impressions, preempt_rate, sd_impressions (of the new
+    count; impressions, currency), held (spots held before) and change (spots - held).
+    """
+    cols = UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "preempt_rate", "sd_impressions"]
+    h = held[UNIT_KEY + ["spots", "rate"]].rename(columns={"spots": "held", "rate": "held_rate"})
+    m = new[cols].merge(h, on=UNIT_KEY, how="outer")
+    inv = inventory[UNIT_KEY + ["preempt_rate"]].astype({"week": "int64"}).rename(columns={"preempt_rate": "p"})
+    m = m.astype({"week": "int64"}).merge(inv, on=UNIT_KEY, how="left")
+    for c in ("spots", "held"):
+        m[c] = m[c].fillna(0).astype("int64")
+    m["rate"] = m["rate"].fillna(m["held_rate"])
+    m["preempt_rate"] = m["preempt_rate"].fillna(m["p"])
+    for c in ("cost", "expected_impressions", "sd_impressions"):
+        m[c] = m[c].fillna(0.0)
+    m["change"] = m["spots"] - m["held"]
+    return m[cols + ["held", "change"]].sort_values(UNIT_KEY).reset_index(drop=True)

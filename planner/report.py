@@ -13,6 +13,7 @@ Verdict figures are placed in elements carrying ``data-deal``, ``data-field`` an
 from __future__ import annotations
 
 import base64
+import copy
 import html
 import json
 import math
@@ -27,6 +28,7 @@ import pandas as pd
 
 from planner import plots
 from planner.atomic import write_text_atomic
+from planner.stress import DEFAULT_DRAWS
 
 CAUTIONS = (
     "Forecasts are estimates made from past audiences; actual delivery will differ, and the bands "
@@ -67,6 +69,7 @@ class DealSection:
     pacing: pd.DataFrame | None = None
     spots: pd.DataFrame | None = None
     delivery_draws: np.ndarray | None = None
+    flags: list[str] = field(default_factory=list)  # where the figures come from; a deal file that differs
     probability_of_shortfall: float | None = None
     expected_shortfall: float | None = None
     expected_liability: float | None = None
@@ -307,7 +310,8 @@ def _verdict_panel(d: DealSection, currency: str) -> str:
         tiles.append(_tile(name, "cpm_needed", f"CPM for {fmt_pct(v.get('target_margin'), 0)} margin",
                            v.get("cpm_needed"), f"{currency} {float(v['cpm_needed']):,.2f}"))
     items = _binding_items(v.get("binding"))
-    binding = ('<div class="binding"><b>What binds:</b><ul>' +
+    label = "From the book" if d.in_book else "What binds"
+    binding = (f'<div class="binding"><b>{label}:</b><ul>' +
                "".join(f'<li data-deal="{_esc(name)}" data-field="binding">{_esc(t)}</li>' for t in items) +
                "</ul></div>") if items else \
         '<div class="binding"><b>What binds:</b> nothing at this guarantee.</div>'
@@ -395,15 +399,16 @@ def _book_section(data: ReportData) -> str:
         return '<h2>The book</h2><div class="empty">No deals committed to the book: no stress test.</div>'
     c = data.currency
     shocks = ", ".join(b.shocks) if b.shocks else "none"
-    tiles = (
-        _tile("_book", "expected_liability", "expected liability", b.expected_liability,
-              fmt_money(b.expected_liability, c))
-        + _tile("_book", "var95", "VaR95 of liability", b.var95, fmt_money(b.var95, c), "risk")
-        + _tile("_book", "cvar95", "CVaR95 of liability", b.cvar95, fmt_money(b.cvar95, c), "risk")
-        + _tile("_book", "draws", "Monte Carlo draws", b.draws, fmt_count(b.draws))
-    )
-    img = _img(plots.liability_svg(b.liability_draws, b.var95, b.cvar95, c), "liability", None,
-               "book liability distribution")
+    tiles = "".join(
+        _tile("_book", key, f"{label} of {b.liability_basis} liability (\u00b1 s.e.)", value,
+              f"{fmt_money(value, c)} \u00b1 {fmt_count(b.extra.get(key + '_se'))}", cls)
+        + f'<span hidden data-deal="_book" data-field="{key}_se" '
+          f'data-value="{_esc(_attr_value(b.extra.get(key + "_se")))}"></span>'
+        for key, label, value, cls in (("expected_liability", "expected value", b.expected_liability, ""),
+                                       ("var95", "VaR95", b.var95, "risk"), ("cvar95", "CVaR95", b.cvar95, "risk"))
+    ) + _tile("_book", "draws", "Monte Carlo draws", b.draws, fmt_count(b.draws))
+    img = _img(plots.liability_svg(b.liability_draws, b.var95, b.cvar95, c, b.liability_basis), "liability", None,
+               f"book {b.liability_basis} liability distribution")
     deals = ", ".join(b.deals) if b.deals else "\u2014"
     rows = "".join(
         f"<tr><td>{_esc(r['deal'])}</td><td>{fmt_pct(r['probability_of_shortfall'])}</td>"
@@ -482,14 +487,9 @@ def render_report(data: ReportData) -> str:
 
 
 def write_report(data: ReportData, path: str | Path) -> Path:
-    """Render `data` and write it to `path` atomically (whole or not at all). Returns the path."""
-    import os
-
-    out = write_text_atomic(path, render_report(data))
-    umask = os.umask(0)
-    os.umask(umask)
-    os.chmod(out, 0o666 & ~umask)  # a report is for sharing: the usual file mode, not the temp file's 0600
-    return out
+    """Render `data` and write it to `path` atomically (whole or not at all, mode 0666 & ~umask).
+    Returns the path."""
+    return write_text_atomic(path, render_report(data))
 
 
 # --------------------------------------------------------------------------------------------
@@ -643,6 +643,56 @@ def _section(scenario: Any, name: str, check: Any, plan: Any, in_book: bool, ext
 FRONTIER_SIZES = (0.5, 0.75, 0.9, 1.0, 1.1, 1.25, 1.5)
 
 
+def book_verdict(booked: Any) -> dict:
+    """A booked deal's answer as the book holds it (the keys of `pledge check --json` the report
+    shows): its committed terms, the held plan's cost, expected delivery, sd and chance of
+    delivery as committed (or as its last re-plan stored them); money in the scenario currency."""
+    cost = booked.cost
+    revenue = booked.revenue
+    return {"deliverable": True, "verdict": "held in the book", "guarantee": booked.guarantee,
+            "price_cpm": booked.price_cpm, "confidence": booked.confidence, "pad": booked.pad,
+            "risk_rule": "pad" if booked.pad is not None else "confidence",
+            "expected_impressions": booked.expected_impressions, "sd_impressions": booked.sd,
+            "probability_of_delivery": booked.probability, "cost": cost, "revenue": revenue,
+            "margin": None if cost is None else revenue - cost,
+            "margin_pct": None if cost is None or not revenue else (revenue - cost) / revenue,
+            "cost_cpm": None if cost is None else 1000 * cost / booked.guarantee, "spots": booked.spots,
+            "first_week": booked.first_week, "last_week": booked.last_week, "demo": booked.demo,
+            "committed_at": booked.committed_at, "source": "book"}
+
+
+def booked_section(scenario: Any, booked: Any, *, forecast: pd.DataFrame, held: pd.DataFrame | None,
+                   solver: str = "cbc") -> DealSection:
+    """The report's section of a deal in the book: its held plan (`booked.holds`), its committed
+    terms and figures (`book_verdict`), its pacing (`planner.deals.held_pacing`); the largest
+    deliverable guarantee and the cost frontier from a check of the committed terms against the
+    other deals' holds `held`. `flags` says where the figures come from, and how the deal file
+    differs from the commit (or that it is gone)."""
+    from planner.book import deal_from_book, terms_differ
+    from planner.deals import held_pacing
+
+    name = booked.name
+    file_deal = scenario.deals.get(name)
+    differs = terms_differ(booked, file_deal) if file_deal is not None else []
+    deal = file_deal if file_deal is not None and not differs else deal_from_book(booked)
+    flags = [f"held plan and terms from the book (committed {booked.committed_at})"]
+    if file_deal is None:
+        flags.append("in the book without a deal file (deals/ has none): shown from the book")
+    elif differs:
+        where = f"deals/{Path(file_deal.path).name}" if getattr(file_deal, "path", None) else "its deal file"
+        flags.append(f"{where} differs from its commit ({'; '.join(differs)}): the book's terms are shown")
+    scn = copy.copy(scenario)
+    scn.deals = {**scenario.deals, name: deal}
+    check, _, extra = evaluate_deal(scn, name, forecast=forecast, held=held, solver=solver)
+    verdict = {**check_payload(check), **book_verdict(booked), "binding": flags}
+    holds = booked.holds
+    return DealSection(
+        name=name, verdict=verdict, advertiser=booked.advertiser, demo=booked.demo,
+        weeks=(int(booked.first_week), int(booked.last_week)), price_cpm=float(booked.price_cpm), in_book=True,
+        frontier=frontier_frame(list(extra)), frontier_relaxed=True, spots=holds,
+        pacing=held_pacing(scn, deal, holds, forecast), flags=flags)
+
+
 def relaxed_frontier(problem: Any, guarantee: float, max_guarantee: float) -> list[dict]:
     """Least cost and chance of delivery against guarantee size, from the linear relaxation.
 
@@ -690,7 +740,7 @@ def evaluate_deal(scenario: Any, name: str, *, forecast: pd.DataFrame, held: pd.
 
 def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str | Path | None = None,
                  forecast: pd.DataFrame | None = None, stress: Any = None,
-                 runs: dict[str, tuple[Any, Any]] | None = None, draws: int = 20_000, seed: int = 0,
+                 runs: dict[str, tuple[Any, Any]] | None = None, draws: int = DEFAULT_DRAWS, seed: int = 0,
                  solver: str = "cbc", n_units: int = 3, stage: Any = None,
                  check_note: str | None = None) -> ReportData:
     """Gather everything the report shows for `deals` (default: every deal of the scenario).
@@ -702,7 +752,7 @@ def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str
     deals, is stress-tested with `draws` and `seed` unless `stress` (a `StressResult` with its
     draws kept) is given.
     """
-    from planner.book import held_spots, list_deals
+    from planner.book import held_spots, read_book
 
     say = stage or (lambda text: None)
     if forecast is None:
@@ -710,17 +760,24 @@ def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str
 
         say("forecast")
         forecast = ensure_forecast(scenario).table
-    names = list(deals) if deals else list(scenario.deals)
-    booked = [d.name for d in list_deals(scenario, book)]
+    booked = {d.name: d for d in read_book(scenario, book)[0]}
+    names = list(deals) if deals else list(scenario.deals) + [n for n in booked if n not in scenario.deals]
     runs = dict(runs or {})
-    sections = []
+    sections, flags = [], []
     for name in names:
-        if name not in runs:
-            say(f"checking {name}")
-            held = held_spots(scenario, book, exclude=[name] if name in booked else [])
-            runs[name] = evaluate_deal(scenario, name, forecast=forecast, held=held, solver=solver)
-        check, plan, *extra = runs[name]
-        sections.append(_section(scenario, name, check, plan, name in booked, extra[0] if extra else ()))
+        if name in booked:
+            say(f"checking {name} (in the book)")
+            held = held_spots(scenario, book, exclude=[name])
+            section = booked_section(scenario, booked[name], forecast=forecast, held=held, solver=solver)
+            flags += [f"{name}: {f}" for f in section.flags[1:]]
+        else:
+            if name not in runs:
+                say(f"checking {name}")
+                runs[name] = evaluate_deal(scenario, name, forecast=forecast, held=held_spots(scenario, book),
+                                           solver=solver)
+            check, plan, *extra = runs[name]
+            section = _section(scenario, name, check, plan, False, extra[0] if extra else ())
+        sections.append(section)
     book_part = None
     if booked:
         if stress is None or getattr(stress, "delivery", None) is None:
@@ -742,8 +799,10 @@ def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str
         g = pd.concat([g.drop_duplicates("network"), g]).drop_duplicates(["zone", "network", "daypart"])
         units = [tuple(r) for r in g.head(n_units)[["zone", "network", "daypart", "demo"]].itertuples(index=False)]
     bands = forecast_bands(scenario, forecast, units)
-    notes = [(check_note or "Every deal is checked against the avails not held by the book; a deal in the "
-              "book is checked against the other deals' holds (its own set aside).")
+    notes = [(check_note or "Every deal not in the book is checked against the avails the book does not hold.")
+             + " A deal in the book shows its held plan and the terms it was committed on, from the book; its "
+               "largest deliverable guarantee and cost frontier are against the other deals' holds (its own set "
+               "aside)."
              + f" Impressions are in each deal's demo; money in {scenario.currency}."]
     from planner.forecast_job import forecast_caution
 
@@ -752,4 +811,4 @@ def build_report(scenario: Any, deals: Sequence[str] | None = None, *, book: str
         scenario_name=scenario.name, scenario_path=str(scenario.path), currency=scenario.currency,
         deals=sections, book=book_part, forecasts=bands, dayparts=[d.name for d in scenario.dayparts],
         seed=stress.seed if stress is not None else seed, notes=notes, versions=package_versions(),
-        warnings=([caution] if caution else []) + (list(stress.warnings) if stress is not None else []))
+        warnings=([caution] if caution else []) + flags + (list(stress.warnings) if stress is not None else []))

@@ -174,7 +174,7 @@ def test_infeasible_deal_is_explained_in_seller_words():
     a = al.allocate(prob, solver="highs")
     assert not a.feasible
     words = al.diagnose(prob)
-    day = [w for w in words if w.startswith("day share: needs 90%, can reach")]
+    day = [w for w in words if "day share: needs 90%, can reach" in w]
     assert day, words
     reach = float(day[0].split("can reach ")[1].split("%")[0]) / 100
     ok = al.with_rules(prob, daypart_min_share={"day": reach - 0.01})
@@ -204,7 +204,7 @@ def test_pulp_reference_model_gives_the_same_lp_cost():
 
     prob = problem(pad=0.05, confidence=None)
     ref = al.pulp_reference_model(prob, integer=False)
-    ref.solve(pulp.PULP_CBC_CMD(msg=0))
+    ref.solve(pulp.COIN_CMD(path=al.cbc_path(), msg=False))
     ours = al.allocate(prob, integer=False)
     assert pulp.value(ref.objective) == pytest.approx(ours.cost, rel=1e-6)
 
@@ -267,3 +267,68 @@ def test_a_solver_stopped_by_its_time_limit_is_undecided_not_infeasible(monkeypa
     a = al.allocate(prob, solver="highs")
     assert not a.feasible
     assert a.status.startswith(al.UNDECIDED) and "infeasible" not in a.status.split("(")[0]
+
+
+def _hand_units():
+    """One zone, three networks, two dayparts, three identical weeks; no uncertainty and no
+    preemption (a pad of 0: the largest guarantee is the largest expected delivery, an LP)."""
+    import pandas as pd
+
+    per_week = [("n1", "prime", 500, 20), ("n1", "day", 50, 10), ("n2", "prime", 500, 10),
+                ("n2", "day", 200, 20), ("n3", "prime", 500, 5), ("n3", "day", 50, 5)]
+    rows = [dict(zone="z1", network=n, daypart=d, week=w, mean_impressions=float(mu), avails=a, rate=10.0,
+                 airing_sd=0.0, level_sd_network=0.0, level_sd_flight=0.0, level_sd_week=0.0, preempt_rate=0.0)
+            for w in (1, 2, 3) for n, d, mu, a in per_week]
+    return pd.DataFrame(rows)
+
+
+def _largest_expected(u, day_min=None, net_max=None):
+    """Reference: scipy.optimize.linprog (HiGHS) maximising expected impressions under the rules."""
+    m = u["mean_impressions"].to_numpy()
+    rows = []
+    if day_min is not None:
+        rows.append(-(m * (u["daypart"] == "day").to_numpy() - day_min * m))
+    if net_max is not None:
+        rows += [m * (u["network"] == n).to_numpy() - net_max * m for n in ("n1", "n2", "n3")]
+    ref = linprog(-m, A_ub=np.array(rows) if rows else None, b_ub=np.zeros(len(rows)) if rows else None,
+                  bounds=list(zip(np.zeros(len(u)), u["avails"].to_numpy(float))), method="highs")
+    assert ref.status == 0
+    return -ref.fun
+
+
+def test_what_limits_it_names_each_rule_with_what_removing_it_alone_allows():
+    """QA finding: a deal whose daytime minimum cost three quarters of its largest guarantee was
+    told only "avails in week N exhausted" four times. Each rule that binds is now named with the
+    largest guarantee removing it alone would allow (checked against an independent LP solve),
+    largest gain first; the weeks whose avails run out fold into ranges."""
+    u = _hand_units()
+    scope = al.candidate_units(u, weeks=(1, 2, 3))
+    prob = al.make_problem(scope, 75_000.0, al.Rules(daypart_min_share={"day": 0.6}, max_network_share=0.4, pad=0.0),
+                           (1, 2, 3))
+    both = _largest_expected(u, 0.6, 0.4)
+    no_day = _largest_expected(u, None, 0.4)
+    no_net = _largest_expected(u, 0.6, None)
+    loose = _largest_expected(u)
+    assert no_day - both > no_net - both > 0.05 * both  # the case: two levers, of different size
+    words = al.diagnose(prob)
+    lever = [w for w in words if "without it alone" in w]
+    assert [w.split(":")[0] for w in lever] == ["daypart_min_share day 60%", "max_network_share 40%"]
+    for w, want in zip(lever, (no_day, no_net)):
+        allowed = float(w.split("would be ")[1].split(" ")[0].replace(",", ""))
+        gain = float(w.split("(+")[1].split(")")[0].replace(",", ""))
+        assert allowed == pytest.approx(want, rel=2e-3) and gain == pytest.approx(want - both, rel=5e-3)
+    assert f"deliver at most {loose:,.0f} expected impressions, short of 75,000" in " ".join(words)
+    assert "avails in weeks 1-3 exhausted on 3 of 3 networks" in words
+
+
+def test_cbc_is_found_without_pulps_deprecated_class():
+    """pulp's PULP_CBC_CMD warns of its removal in pulp 4; the CBC path is found without it (a
+    DeprecationWarning is an error here), and it runs: CBC's own version banner."""
+    import subprocess
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", DeprecationWarning)
+        path = al.cbc_path()
+    out = subprocess.run([path, "-quit"], capture_output=True, text=True, timeout=60).stdout
+    assert "CBC" in out.upper() or "Coin" in out

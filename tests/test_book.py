@@ -2,6 +2,7 @@
 a commit killed mid-way. Small synthetic scenarios built in memory (invented data)."""
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import signal
@@ -194,7 +195,7 @@ def test_version_2_book_gains_the_postings_table_with_cascade(tmp_path):
     conn.close()
     assert bk.read_postings(tmp_path, path).empty  # reading upgrades it
     conn = bk.open_book(path)
-    assert bk._schema_version(conn) == 3
+    assert bk._schema_version(conn) == bk.SCHEMA_VERSION
     fks = conn.execute("PRAGMA foreign_key_list(postings)").fetchall()
     assert [(r["table"], r["from"], r["to"], r["on_delete"]) for r in fks] == [("deals", "deal", "name", "CASCADE")]
     conn.close()
@@ -471,7 +472,7 @@ def test_cli_book_list_show_release(tmp_path, capsys):
     code, _, err = _cli(capsys, "book", "show", str(scn.path), "nope")
     assert code == 2 and "not in the book" in err
     code, out, _ = _cli(capsys, "book", "release", str(scn.path), "alpha", "--json")
-    assert code == 0 and json.loads(out) == {"released": "alpha", "spots_freed": 6}
+    assert code == 0 and json.loads(out) == {"released": "alpha", "spots_freed": 6, "warnings": []}
     code, out, _ = _cli(capsys, "book", "list", str(scn.path), "--json")
     assert json.loads(out)["deals"] == []
     code, _, err = _cli(capsys, "book", "list", str(tmp_path / "missing"))
@@ -541,3 +542,202 @@ def test_fast_hold_read_equals_sql_order_by(tmp_path):
             ref.astype({c: object for c in cols[:4]}))
     assert bk._holds_columns(conn, cols, "", ()) is None  # the separator forces the row path
     conn.close()
+
+
+# --------------------------------------------------------------------------- issue 19: a book that is what it says
+
+def test_a_zero_byte_book_is_refused_not_read_as_empty(tmp_path, capsys):
+    """QA finding: a 0-byte book file was taken for an empty book and a fresh schema written
+    into it (every deal then looked easier). It is not a book: refused, exit 2, left as it was."""
+    from planner.cli import main
+
+    scn, _ = make_synthetic(tmp_path / "s")
+    empty = scn.path / "book.sqlite"
+    empty.write_bytes(b"")
+    for call in (lambda: bk.held_spots(scn), lambda: bk.list_deals(scn), lambda: bk.check_book(scn),
+                 lambda: bk.commit_deal(scn, "alpha", planner=greedy_planner(2))):
+        with pytest.raises(InputError, match="not a book"):
+            call()
+    assert empty.stat().st_size == 0
+    assert main(["book", "list", str(scn.path)]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("error: ") and "not a book" in err and str(empty) in err
+    assert empty.stat().st_size == 0
+
+
+def test_a_new_book_appears_whole(tmp_path):
+    """A new book is made beside its path and moved into place with its schema, so a concurrent
+    reader never sees the 0-byte file SQLite would leave while creating it (now refused)."""
+    path = tmp_path / "b" / "book.sqlite"
+    bk.open_book(path).close()
+    conn = sqlite3.connect(path)
+    assert conn.execute("SELECT MAX(version) FROM schema_version").fetchone()[0] == bk.SCHEMA_VERSION
+    conn.close()
+    assert sorted(p.name for p in path.parent.iterdir() if not p.name.startswith("book.sqlite")) == []
+
+
+@contextlib.contextmanager
+def read_only(*folders):
+    """Make `folders` read-only for the block: chmod a-w (or, for root, who ignores modes, the
+    immutable attribute, chattr +i); skip the test when the platform allows neither."""
+    done = []
+    try:
+        for f in folders:
+            f = Path(f)
+            if os.geteuid() != 0:
+                os.chmod(f, 0o555)
+                done.append(("chmod", f))
+            elif subprocess.run(["chattr", "+i", str(f)], capture_output=True).returncode == 0:
+                done.append(("chattr", f))
+            else:
+                pytest.skip("cannot make a folder read-only here (root without chattr)")
+            probe = f / ".probe"
+            try:
+                probe.write_text("x")
+            except OSError:
+                continue
+            probe.unlink()
+            pytest.skip("the folder stayed writable")
+        yield
+    finally:
+        for how, f in reversed(done):
+            if how == "chmod":
+                os.chmod(f, 0o755)
+            else:
+                subprocess.run(["chattr", "-i", str(f)], capture_output=True)
+
+
+def test_a_read_only_folder_still_answers_reads(tmp_path):
+    """QA finding: in a read-only scenario folder every read failed with "not a readable book
+    (unable to open database file)" (WAL needs its index file beside the book). Reads now work
+    from a read-only connection with the same answers; a write says the folder is read-only."""
+    scn, _ = make_synthetic(tmp_path / "s")
+    bk.commit_deal(scn, "alpha", planner=greedy_planner(5))
+    before = (bk.held_spots(scn), [d.name for d in bk.list_deals(scn)], bk.get_deal(scn, "alpha").holds,
+              bk.check_book(scn), bk.events(scn)[["deal", "action"]])
+    listing = sorted(p.name for p in scn.path.iterdir())
+    with read_only(scn.path):
+        after = (bk.held_spots(scn), [d.name for d in bk.list_deals(scn)], bk.get_deal(scn, "alpha").holds,
+                 bk.check_book(scn), bk.events(scn)[["deal", "action"]])
+        pd.testing.assert_frame_equal(after[0], before[0])
+        assert after[1] == before[1] and after[3] == before[3]
+        pd.testing.assert_frame_equal(after[2], before[2])
+        pd.testing.assert_frame_equal(after[4], before[4])
+        with pytest.raises(InputError, match="read-only"):
+            bk.commit_deal(scn, "beta", planner=greedy_planner(5))
+        with pytest.raises(InputError, match="read-only"):
+            bk.release_deal(scn, "alpha")
+        assert sorted(p.name for p in scn.path.iterdir()) == listing
+    assert [d.name for d in bk.list_deals(scn)] == ["alpha"]
+
+
+def test_units_held_over_their_avails_are_flagged_everywhere_and_book_check_exits_3(
+        small_scenario, scenario_copy, monkeypatch, capsys):
+    """QA finding: avails cut below existing holds: validate said valid, check, stress and report
+    were silent, book check printed "NOT consistent" and exited 0. Every command that reads the
+    book now says how many units and spots are held over their avails; book check exits 3."""
+    from planner.cli import main
+    from planner.scenario import load_scenario
+
+    folder = scenario_copy(small_scenario)
+    scn = load_scenario(folder)
+    use_forecast(monkeypatch, synthetic_forecast(scn))
+    assert main(["book", "commit", str(folder), "small-comfortable", "--solver", "highs"]) == 0
+    held = bk.held_spots(scn)
+    cut = held.nlargest(2, "spots")  # two held units lose all but one avail
+    inv = pd.read_csv(folder / "inventory.csv")
+    key = inv.set_index(UNIT).index
+    hit = key.isin(cut.set_index(UNIT).index)
+    inv.loc[hit, "avails"] = 1
+    inv.to_csv(folder / "inventory.csv", index=False)
+    over = int(cut["spots"].sum()) - 2
+    capsys.readouterr()
+    assert main(["book", "check", str(folder)]) == 3
+    assert "NOT consistent" in capsys.readouterr().out
+    runs = {
+        "validate": ["validate", str(folder)],
+        "check": ["check", str(folder), "small-tight", "--solver", "highs"],
+        "plan": ["plan", str(folder), "small-tight", "--solver", "highs", "--out", str(folder / "p.csv")],
+        "stress": ["stress", str(folder), "--draws", "2000"],
+        "list": ["book", "list", str(folder)],
+        "show": ["book", "show", str(folder), "small-comfortable"],
+        "events": ["book", "events", str(folder)],
+        "report": ["report", str(folder), "--out", str(folder / "r.html"), "--draws", "2000", "--solver", "highs"],
+    }
+    want = f"the book holds more spots than the avails in 2 unit(s), {over:,} spot(s) over"
+    for name, argv in runs.items():
+        assert main(["--quiet", *argv]) == 0, name
+        out = capsys.readouterr().out
+        assert want in " ".join(out.split()), (name, out)
+    for name, argv in runs.items():
+        if name == "plan":
+            continue
+        assert main([*argv, "--json"]) == 0, name
+        js = json.loads(capsys.readouterr().out)
+        warnings = js["book"]["warnings"] if name == "validate" else js["warnings"]
+        assert any(w.startswith(want) for w in warnings), name
+
+
+def test_events_record_the_os_user_and_book_events_shows_the_audit_trail(tmp_path, monkeypatch, capsys):
+    """Each commit, release and re-plan records who did it (the operating-system user);
+    `pledge book events` lists time, action, deal and user, oldest first."""
+    import getpass
+
+    monkeypatch.setattr(getpass, "getuser", lambda: "desk-tester")
+    scn, _ = make_synthetic(tmp_path / "s")
+    bk.commit_deal(scn, "alpha", planner=greedy_planner(4))
+    holds = bk.get_deal(scn, "alpha").holds
+    bk.replace_holds(scn, "alpha", holds, {"note": "re-plan"})
+    bk.release_deal(scn, "alpha")
+    log = bk.events(scn)
+    assert log["action"].tolist() == ["commit", "rebalance", "release"]
+    assert log["user"].tolist() == ["desk-tester"] * 3 and set(log["deal"]) == {"alpha"}
+    code, out, _ = _cli(capsys, "book", "events", str(scn.path), "--json")
+    assert code == 0
+    rows = json.loads(out)["events"]
+    assert [(r["action"], r["deal"], r["user"]) for r in rows] == [
+        ("commit", "alpha", "desk-tester"), ("rebalance", "alpha", "desk-tester"), ("release", "alpha", "desk-tester")]
+    assert all(r["at"].endswith("+00:00") for r in rows)  # UTC, ISO 8601
+    code, out, _ = _cli(capsys, "book", "events", str(scn.path))
+    lines = [ln for ln in out.splitlines() if "alpha" in ln]
+    assert len(lines) == 3 and all("desk-tester" in ln for ln in lines) and "release" in lines[-1]
+
+
+def test_version_3_book_is_upgraded_and_its_old_events_have_no_user(tmp_path):
+    path = tmp_path / "v3.sqlite"
+    conn = sqlite3.connect(path)
+    conn.execute("CREATE TABLE schema_version (version INTEGER NOT NULL, applied_at TEXT NOT NULL)")
+    for version, statements in bk._MIGRATIONS[:3]:
+        for sql in statements:
+            conn.execute(sql)
+        conn.execute("INSERT INTO schema_version VALUES (?, 'then')", (version,))
+    conn.execute("INSERT INTO deals (name, demo, guarantee, price_cpm, first_week, last_week, committed_at, spots) "
+                 "VALUES ('old', 'a25-54', 1e6, 20, 1, 4, 'then', 3)")
+    conn.execute("INSERT INTO events (at, deal, action, detail_json) VALUES ('then', 'old', 'commit', '{}')")
+    conn.commit()
+    conn.close()
+    log = bk.events(tmp_path, path)
+    assert log["user"].tolist() == [None] and log["action"].tolist() == ["commit"]
+    old = bk.list_deals(tmp_path, path)[0]
+    assert old.terms == {}
+    conn = bk.open_book(path)
+    assert bk._schema_version(conn) == bk.SCHEMA_VERSION == 4
+    conn.close()
+
+
+def test_a_deal_file_that_differs_from_its_commit_is_named_key_by_key(tmp_path):
+    from dataclasses import replace
+
+    from planner.scenario import Mix
+
+    scn, _ = make_synthetic(tmp_path / "s")
+    bk.commit_deal(scn, "alpha", planner=greedy_planner(4))
+    booked = bk.get_deal(scn, "alpha")
+    deal = scn.deals["alpha"]
+    assert bk.terms_differ(booked, deal) == []
+    edited = replace(deal, impressions=deal.impressions + 1000, mix=Mix(max_network_share=0.4))
+    diff = bk.terms_differ(booked, edited)
+    assert diff == [f"impressions: {deal.impressions:,.0f} in the book, {deal.impressions + 1000:,.0f} in the file",
+                    "mix.max_network_share: None in the book, 0.4 in the file"]
+    back = bk.deal_from_book(booked)
+    assert bk.terms_differ(booked, back) == [] and back.mix == deal.mix

@@ -83,7 +83,9 @@ def test_default_confidence_is_stated(scn, fc):
     from planner.forecast_job import forecast_meta, shared_error_caution
 
     shared = shared_error_caution(forecast_meta(scn), scn.path)
-    assert (shared in r.cautions) if shared else not any("refits missed" in c for c in r.cautions)
+    brief = shared_error_caution(forecast_meta(scn), scn.path, brief=True)
+    assert (brief in r.cautions) if brief else not any("refits missed" in c for c in r.cautions)
+    assert r.shared_error_caution == shared
 
 
 def test_too_big_deal_is_an_answer(scn, fc):
@@ -158,8 +160,13 @@ def test_diagnosis_names_what_the_exclusions_cost(scn, fc):
                    mix_exclude_zones=[z for z in units["zone"].unique() if z != keep_zone])
     r = deals.check_deal(s, "x", forecast=fc, held=None, solver="highs")
     assert not r.deliverable
-    line = next(b for b in r.binding if b.startswith("exclusions and spot cap"))
-    assert f"at most {inside:,.0f} expected impressions; without them {everything:,.0f} (enough" in line
+    excluded = ", ".join(s.deals["x"].mix.exclude_zones)
+    lever = next(b for b in r.binding if b.startswith(f"exclude_zones {excluded}: without it alone"))
+    allowed = float(lever.split("would be ")[1].split(" ")[0].replace(",", ""))
+    assert allowed == pytest.approx(everything, rel=2e-3)  # the LP's tolerance
+    assert any(f"deliver at most {inside:,.0f} expected impressions" in b for b in r.binding)
+    line = next(b for b in r.binding if b.startswith(f"without its exclude_zones {excluded} too"))
+    assert f"at most {everything:,.0f} expected impressions (enough" in line
 
 
 @pytest.mark.parametrize("changes, words", [
@@ -294,3 +301,64 @@ def test_demo_deals_verdicts_gap_and_monte_carlo(demo_fitted):
             assert mc >= prob.rules.confidence - 0.01, name
         r = deals.plan_result(run)
         assert r.probability_if_independent >= mc  # all-independent errors overstate the chance
+
+
+# ---------------------------------------------------------------------------------------------- issue 19: buyer
+def test_plan_csv_carries_deal_week_dates_and_daypart_times(small_scenario, cli_forecast, tmp_path):
+    """The buy plan names the deal, each week's Monday and Sunday and the daypart's days and
+    clock times, read here from scenario.toml by hand (data contract: week w runs from
+    first_week + 7 (w - 1) days through the Sunday after)."""
+    import datetime as dt
+    import tomllib
+
+    raw = tomllib.loads((small_scenario / "scenario.toml").read_text())
+    target = tmp_path / "plan.csv"
+    assert main(["plan", str(small_scenario), "small-comfortable", "--out", str(target), "--solver", "highs"]) == 0
+    plan = pd.read_csv(target, dtype={"start": str, "end": str})
+    assert set(plan["deal"]) == {"small-comfortable"}
+    first = raw["first_week"] if isinstance(raw["first_week"], dt.date) else dt.date.fromisoformat(raw["first_week"])
+    for w, g in plan.groupby("week"):
+        monday = first + dt.timedelta(days=7 * (int(w) - 1))
+        assert set(g["week_start"]) == {monday.isoformat()}
+        assert set(g["week_end"]) == {(monday + dt.timedelta(days=6)).isoformat()}
+    names = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
+    for d in raw["daypart"]:
+        rows = plan[plan["daypart"] == d["name"]]
+        if rows.empty:
+            continue
+        assert set(rows["start"]) == {d["start"]} and set(rows["end"]) == {d["end"]}
+        text = rows["days"].iloc[0]
+        days = [names.index(x) for x in d.get("days", names)]
+        listed = set()
+        for part in text.split(","):
+            a, _, b = part.partition("-")
+            listed |= set(range(names.index(a), names.index(b or a) + 1))
+        assert listed == set(days), (d["name"], text)
+
+
+def test_days_text_folds_runs():
+    assert deals.days_text(range(7)) == "mon-sun"
+    assert deals.days_text((0, 1, 2, 3, 4)) == "mon-fri"
+    assert deals.days_text((5, 6)) == "sat,sun" and deals.days_text((0, 2, 4)) == "mon,wed,fri"
+
+
+def test_plan_notes_pacing_astray_without_a_rule_and_a_pad_below_95_percent(scn, fc):
+    """A plan whose weekly pacing strays more than 25% from even with no pacing rule says so,
+    and a pad plan with a chance of delivery below 95% says so; the deviation is recomputed here
+    from the plan's own spots (each week's expected impressions over the flight's mean)."""
+    s = copy.copy(scn)
+    inv = scn.inventory.copy()
+    inv.loc[inv["week"] > 2, "rate"] *= 5.0  # the first two weeks are much cheaper
+    s.inventory = inv
+    s.deals = {**scn.deals}
+    s = _with_deal(s, pad=0.0, confidence=None, mix_weekly_tolerance=None, mix_max_network_share=None)
+    p = deals.plan_deal(s, "x", forecast=fc, held=None, solver="highs")
+    assert p.deliverable
+    weekly = p.spots.groupby("week")["expected_impressions"].sum().reindex(s.deals["x"].weeks, fill_value=0.0)
+    dev = weekly / weekly.mean() - 1
+    assert dev.abs().max() > 0.25  # the case
+    assert any(n.startswith(f"weekly pacing strays up to {dev[dev.abs().idxmax()]:+.0%} from even") for n in p.notes)
+    assert p.probability < 0.95 and any("below 95% under the pad of 0%" in n for n in p.notes)
+    ruled = deals.plan_deal(_with_deal(s, mix_weekly_tolerance=0.2, pad=None, confidence=0.95), "x", forecast=fc,
+                            held=None, solver="highs")
+    assert ruled.deliverable and ruled.notes == []

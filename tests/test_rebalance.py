@@ -202,10 +202,10 @@ def test_more_spots_aired_than_held_is_said(tmp_path):
     holds = bk.get_deal(scn, "alpha").holds
     acts = _actuals_from_holds(holds, fc, range(1, 3), 1.0)
     r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
-    assert not any("more spots than the deal holds" in w for w in r.warnings)
+    assert not any("more spots than the deal holds" in w for w in r.problems + r.warnings)
     acts.loc[acts.index[0], "spots_aired"] += 5
     r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
-    assert any(w.startswith("1 posted unit-week(s) aired more spots than the deal holds") for w in r.warnings)
+    assert any(w.startswith("1 posted unit-week(s) aired more spots than the deal holds") for w in r.problems)
 
 
 def test_actuals_20_percent_under_are_caught_up_to_the_deals_confidence(tmp_path):
@@ -440,6 +440,8 @@ def test_a_book_from_before_postings_upgrades_keeps_working_and_cautions(tmp_pat
     path = bk.book_path(scn)
     conn = sqlite3.connect(path)
     conn.execute("DROP TABLE postings")
+    conn.execute("ALTER TABLE deals DROP COLUMN terms_json")  # what schema 4 added
+    conn.execute("ALTER TABLE events DROP COLUMN user")
     conn.execute("DELETE FROM schema_version WHERE version > 2")
     summary = json.loads(conn.execute("SELECT summary_json FROM deals WHERE name='alpha'").fetchone()[0])
     summary.pop("posted_unit_weeks")
@@ -449,7 +451,7 @@ def test_a_book_from_before_postings_upgrades_keeps_working_and_cautions(tmp_pat
 
     model, _ = st.load_book_model(scn, forecast=fc)
     conn = bk.open_book(path)
-    assert bk._schema_version(conn) == bk.SCHEMA_VERSION == 3
+    assert bk._schema_version(conn) == bk.SCHEMA_VERSION == 4
     conn.close()
     assert bk.read_postings(scn).empty
     assert len(model.warnings) == 1
@@ -480,3 +482,148 @@ def test_rebalance_on_no_postings_gives_no_caution(tmp_path):
     assert r.committed
     model, _ = st.load_book_model(scn, forecast=fc)
     assert model.warnings == []
+
+
+# --------------------------------------------------------------------------- refusing bad postings (issue 19)
+
+def _book_state(scn):
+    """What a refused commit must leave untouched: every hold, the event log and the postings."""
+    d = bk.get_deal(scn, "alpha")
+    return (d.holds[UNIT + ["spots"]].to_dict("records"), len(bk.events(scn)), len(bk.read_postings(scn)))
+
+
+def _refused(scn, fc, acts, match, **kw):
+    before = _book_state(scn)
+    with pytest.raises(InputError, match=match) as e:
+        rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True, **kw)
+    assert _book_state(scn) == before  # nothing written
+    return str(e.value)
+
+
+def test_a_stray_later_week_is_refused_not_counted_as_zero(tmp_path):
+    """QA finding: one stray row for a late week made every held unit-week before it count as
+    zero delivered, and --commit booked a huge catch-up. Now the commit is refused, naming the
+    held unit-weeks without a posted row."""
+    scn, fc = _committed(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0)])
+    holds = bk.get_deal(scn, "alpha").holds
+    acts = _actuals_from_holds(holds, fc, range(1, 3), 1.0)
+    stray = _actuals_from_holds(holds, fc, [7], 1.0).head(1)
+    msg = _refused(scn, fc, pd.concat([acts, stray], ignore_index=True), "no posted row")
+    assert "weeks 3-7" in msg and "--unposted-as-zero" in msg
+    # without --commit the answer is given, and the same problem is in it
+    r = rb.rebalance_deal(scn, "alpha", pd.concat([acts, stray], ignore_index=True), forecast=fc, solver="highs")
+    assert not r.committed and any("no posted row" in p for p in r.problems)
+
+
+def test_a_missing_week_is_refused_unless_gaps_are_accepted_as_zero(tmp_path):
+    scn, fc = _committed(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0)])
+    holds = bk.get_deal(scn, "alpha").holds
+    acts = _actuals_from_holds(holds, fc, [1, 3], 1.0)  # week 2 missing
+    msg = _refused(scn, fc, acts, "no posted row")
+    assert "week 2" in msg
+    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True, unposted_as_zero=True)
+    assert r.committed and r.problems == []
+    assert any("counted as 0 delivered" in w for w in r.warnings)  # said, on purpose
+
+
+def test_more_spots_aired_than_held_is_refused(tmp_path):
+    scn, fc = _committed(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0)])
+    acts = _actuals_from_holds(bk.get_deal(scn, "alpha").holds, fc, range(1, 3), 1.0)
+    acts.loc[acts.index[0], "spots_aired"] += 5
+    _refused(scn, fc, acts, "more spots than the deal holds")
+
+
+def test_a_posting_outside_the_held_plan_is_refused(tmp_path):
+    scn, fc = _committed(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0)])
+    holds = bk.get_deal(scn, "alpha").holds
+    acts = _actuals_from_holds(holds, fc, range(1, 3), 1.0)
+    held_keys = set(map(tuple, holds[UNIT].to_numpy().tolist()))
+    free = next(r for r in scn.inventory[scn.inventory.week == 1][UNIT].itertuples(index=False)
+                if tuple(r) not in held_keys)
+    extra = pd.DataFrame([{**free._asdict(), "spots_aired": 1, "impressions": 1000.0}])
+    msg = _refused(scn, fc, pd.concat([acts, extra], ignore_index=True), "not in the deal's held plan")
+    assert f"row {len(acts) + 1}" in msg  # 1-based data row of the posting
+
+
+@pytest.mark.parametrize("factor", [1000.0, 10.0])
+def test_impressions_far_off_the_forecast_are_refused(tmp_path, factor):
+    """QA finding: impressions x1000 ("delivered 30018%") and x10 passed. Both lie far beyond
+    6 sds of the forecast's error law, per unit-week and for the deal."""
+    scn, fc = _committed(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0)])
+    acts = _actuals_from_holds(bk.get_deal(scn, "alpha").holds, fc, range(1, 3), factor)
+    msg = _refused(scn, fc, acts, "beyond 6 sds")
+    assert "the deal's posted total" in msg
+
+
+@pytest.mark.parametrize("sds,refused", [(5.9, False), (6.1, True)])
+def test_unit_plausibility_threshold_is_six_sds_of_the_stated_error_law(tmp_path, sds, refused):
+    """Hand-worked from the data contract's error law of one aired spot (DEVELOPERS.md, Forecast
+    table): the mean of k aired spots of a unit-week has sd sqrt(level_sd^2 + airing_sd^2 / k).
+    One unit-week posted `sds` of those above its mean, every other one exactly at forecast."""
+    scn, fc = _committed(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0)])
+    acts = _actuals_from_holds(bk.get_deal(scn, "alpha").holds, fc, range(1, 3), 1.0)
+    i = int(acts["spots_aired"].idxmax())
+    row = acts.loc[i]
+    f = fc[(fc.demo == "a25-54") & (fc.zone == row.zone) & (fc.network == row.network)
+           & (fc.daypart == row.daypart) & (fc.week == row.week)].iloc[0]
+    k = int(row.spots_aired)
+    mu = f.mean_impressions
+    level = np.sqrt((0.08 ** 2 + 0.06 ** 2 + 0.04 ** 2)) * mu  # make_synthetic's loadings
+    sd = np.sqrt(level ** 2 + (0.35 * mu) ** 2 / k)
+    acts.loc[i, "impressions"] = k * (mu + sds * sd)
+    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
+    assert any("beyond 6 sds" in p for p in r.problems) == refused
+
+
+def _cli(capsys, *argv):
+    from planner.cli import main
+
+    code = main([str(a) for a in argv])
+    out = capsys.readouterr()
+    return code, out.out, out.err
+
+
+def test_cli_rebalance_refuses_bad_postings_warns_under_quiet_and_writes_the_order(
+        small_scenario, scenario_copy, monkeypatch, capsys):
+    """--quiet silences progress only: a posting gap is still said (on stdout, in the answer);
+    --commit on it exits 2 and writes nothing; --unposted-as-zero accepts it; --out writes the
+    re-planned remaining weeks in the plan CSV's format."""
+    from planner.deals import PLAN_COLUMNS
+    from planner.scenario import load_scenario
+    from test_book import synthetic_forecast, use_forecast
+
+    folder = scenario_copy(small_scenario)
+    scn = load_scenario(folder)
+    fc = synthetic_forecast(scn)
+    use_forecast(monkeypatch, fc)
+    deal = "small-comfortable"
+    assert _cli(capsys, "book", "commit", folder, deal, "--solver", "highs")[0] == 0
+    holds = bk.get_deal(scn, deal).holds
+    first = scn.deals[deal].first_week
+    a = holds[holds["week"].isin([first, first + 2])][UNIT + ["spots"]].merge(
+        fc[fc["demo"] == scn.deals[deal].demo][UNIT + ["mean_impressions"]], on=UNIT)
+    acts = a[UNIT].assign(spots_aired=a["spots"], impressions=0.9 * a["spots"] * a["mean_impressions"])
+    path = folder / "actuals.csv"
+    acts.to_csv(path, index=False)
+    before = (bk.get_deal(scn, deal).holds.to_dict("records"), len(bk.events(scn)))
+    code, out, err = _cli(capsys, "--quiet", "rebalance", folder, deal, "--actuals", path, "--solver", "highs")
+    assert code == 0 and err == ""
+    assert f"week {first + 1}" in out and "no posted row" in out and "--commit would be refused" in out
+    code, out, err = _cli(capsys, "--quiet", "rebalance", folder, deal, "--actuals", path, "--solver", "highs",
+                          "--commit", "--out", folder / "order.csv")
+    assert code == 2 and err.startswith(f"error: {path}: ") and "no posted row" in err
+    assert "nothing was written" in err and err.count("\n") == 1
+    assert (bk.get_deal(scn, deal).holds.to_dict("records"), len(bk.events(scn))) == before
+    assert not (folder / "order.csv").exists()
+    code, out, _ = _cli(capsys, "rebalance", folder, deal, "--actuals", path, "--solver", "highs", "--commit",
+                        "--unposted-as-zero", "--out", folder / "order.csv", "--json")
+    r = json.loads(out)
+    assert code == 0 and r["committed"] and r["problems"] == []
+    assert any("counted as 0 delivered" in w for w in r["warnings"])
+    order = pd.read_csv(folder / "order.csv")
+    assert list(order.columns) == PLAN_COLUMNS + ["held", "change"]
+    assert set(order["deal"]) == {deal} and order["week"].min() == first + 3
+    assert int(order["spots"].sum()) == r["new_spots"] and int(order["change"].sum()) == r["added_spots"]
+    # the order's spots are what the book now holds in the remaining weeks
+    now = bk.get_deal(scn, deal).holds
+    assert int(now[now["week"] > first + 2]["spots"].sum()) == int(order["spots"].sum())

@@ -283,3 +283,67 @@ def test_report_renders_warnings_escaped():
     assert 'data-section="warnings"' in page and "refits missed &lt;by&gt; 8%" in page
     assert 'data-section="warnings"' not in render_report(ReportData(scenario_name="x", scenario_path="/x",
                                                                      currency="USD", deals=[]))
+
+
+# ---------------------------------------------------------------------------------------------- issue 19
+def test_a_booked_deal_is_shown_from_the_book_flagged_when_its_file_differs_and_kept_without_one(
+        small_scenario, scenario_copy, monkeypatch):
+    """QA findings: the report re-planned booked deals from their deal files (55,178 spots /
+    USD 390,806 shown, 55,190 / 390,815 held), an edited deal file showed "no (booked)", a
+    deleted one dropped the deal from the deal sections (not from the stress). The report now
+    shows a booked deal's held plan and committed terms from the book, flags a deal file that
+    differs from its commit, and keeps a booked deal whose file is gone."""
+    import tomllib
+
+    from planner import book as bk
+    from planner.report import build_report
+    from planner.scenario import load_scenario
+    from test_book import synthetic_forecast, use_forecast
+
+    folder = scenario_copy(small_scenario)
+    scn = load_scenario(folder)
+    fc = synthetic_forecast(scn)
+    use_forecast(monkeypatch, fc)
+    name = "small-comfortable"
+    assert bk.commit_deal(scn, name, forecast=fc, solver="highs").committed
+    # the book's plan is no longer what a fresh plan would be (as after a rebalance): one
+    # unit-week fewer, its own cost and expected delivery
+    b = bk.get_deal(scn, name)
+    held = b.holds.iloc[:-1]
+    summary = {"cost": float(held["cost"].sum()), "expected_impressions": float(held["expected_impressions"].sum()),
+               "probability": 0.9}
+    bk.replace_holds(scn, name, held, summary)
+    b = bk.get_deal(scn, name)
+
+    def section(report, deal):
+        return next(s for s in report.deals if s.name == deal)
+
+    def shows_the_book(s):
+        assert s.in_book and s.verdict["deliverable"] is True
+        assert int(s.spots["spots"].sum()) == b.spots == int(held["spots"].sum())
+        assert s.verdict["cost"] == b.cost and s.verdict["expected_impressions"] == b.expected_impressions
+        assert s.verdict["probability_of_delivery"] == 0.9 and s.verdict["guarantee"] == b.guarantee
+        assert s.verdict["margin"] == pytest.approx(b.revenue - b.cost, rel=1e-12)
+        assert s.pacing["expected_impressions"].sum() == pytest.approx(float(held["expected_impressions"].sum()),
+                                                                       rel=1e-9)
+
+    r = build_report(scn, forecast=fc, draws=2000, solver="highs")
+    shows_the_book(section(r, name))
+    assert not any(name in w for w in r.warnings)
+
+    deal_file = scn.deals[name].path
+    text = deal_file.read_text()
+    old = tomllib.loads(text)["impressions"]
+    edited = re.sub(r"(?m)^impressions = .*$", f"impressions = {int(old) + 5000}", text)
+    assert tomllib.loads(edited)["impressions"] == int(old) + 5000
+    deal_file.write_text(edited)
+    r = build_report(load_scenario(folder), forecast=fc, draws=2000, solver="highs")
+    shows_the_book(section(r, name))
+    flag = next(w for w in r.warnings if w.startswith(f"{name}: deals/{deal_file.name} differs from its commit"))
+    assert f"impressions: {b.guarantee:,.0f} in the book, {int(old) + 5000:,.0f} in the file" in flag
+
+    deal_file.unlink()
+    r = build_report(load_scenario(folder), forecast=fc, draws=2000, solver="highs")
+    shows_the_book(section(r, name))
+    assert any(w.startswith(f"{name}: in the book without a deal file") for w in r.warnings)
+    assert name in r.book.deals

@@ -195,7 +195,9 @@ def test_shocks_move_liability_the_right_way():
     assert pre.book["expected_liability"] > base.book["expected_liability"]
     dp = run([st.parse_shock("daypart=prime:-0.10", dayparts=["prime", "day"])])
     assert dp.book["cvar95"] > base.book["cvar95"]
-    gone = run(pm=100.0)  # every spot preempted (rate capped at 1): nothing delivered, no spread
+    # every spot preempted (not reachable by --preempt-multiplier, which keeps preemption below
+    # 100%): nothing delivered, no spread
+    gone = st.stress_model(st.build_book_model(deals, base_units.assign(preempt_rate=1.0)), draws=40_000, seed=1)
     assert all(d.probability_of_shortfall == 1.0 for d in gone.deals)
     assert gone.joint == {}  # no pair of deals to call correlated (it named one deal twice)
     both = run([st.parse_shock("network=n1:-0.15"), st.parse_shock("all:-0.05")], 2.0)
@@ -373,3 +375,32 @@ def test_demo_book_stress_agrees_with_the_allocator_and_the_exact_sampler(demo_f
         se = np.hypot(f.probability_of_shortfall_se, e.probability_of_shortfall_se)
         assert abs(f.probability_of_shortfall - e.probability_of_shortfall) < 4 * se + 1e-3
         assert f.sd_delivery == pytest.approx(e.sd_delivery, rel=0.03)
+
+
+# --------------------------------------------------------------------------- issue 19: bounds
+
+def test_draws_that_cannot_fit_in_memory_are_refused_with_the_limit(monkeypatch):
+    """QA finding: --draws 1e12 died with MemoryError (exit 1). The draws kept per deal and
+    network are counted first; more than fit in half the memory available is refused, the
+    limit named."""
+    model = _model([("a", ["n1"], 1.0), ("b", ["n2"], 1.0)])
+    with pytest.raises(InputError, match=r"--draws 1,000,000,000,000: .*at most [0-9,]+ draws"):
+        st.stress_model(model, draws=10 ** 12)
+    monkeypatch.setattr(st, "available_memory", lambda: 64 * 2 ** 20)  # 64 MiB
+    limit = st.max_draws(model, keep_draws=True)
+    assert 10_000 < limit < 2_000_000
+    with pytest.raises(InputError, match=f"at most {limit:,} draws"):
+        st.stress_model(model, draws=limit + 1)
+    st.stress_model(model, draws=min(limit, 20_000))  # within the limit: runs
+
+
+def test_preempt_multiplier_keeps_preemption_below_100_percent(tmp_path):
+    """QA finding: --preempt-multiplier 100 was accepted (preemption 300%). A multiplier that
+    takes any held unit's preemption to 100% or more is refused, naming the largest allowed."""
+    scn, _ = make_synthetic(tmp_path / "s", preempt=0.03)
+    units = pd.DataFrame(_rows("a", ["n1"], p=0.03))
+    st.apply_shocks(units, (), 30.0)  # 90%: allowed
+    with pytest.raises(InputError, match=r"--preempt-multiplier 100: .*300%.*below 33\.3"):
+        st.apply_shocks(units, (), 100.0)
+    with pytest.raises(InputError, match="--preempt-multiplier"):
+        st.apply_shocks(units, (), 1 / 0.03)

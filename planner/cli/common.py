@@ -14,9 +14,13 @@ import typer
 from rich.console import Console
 from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
-# Progress and messages go to stderr so that `--json` keeps stdout one clean JSON object.
-err_console = Console(stderr=True)
-out_console = Console()
+# Progress and messages go to stderr so that `--json` keeps stdout one clean JSON object
+# (not wrapped either when stderr is not a terminal).
+err_console = Console(stderr=True, soft_wrap=not bool(getattr(sys.stderr, "isatty", lambda: False)()))
+# Answers go to stdout. Piped or redirected (not a terminal), lines are never wrapped, so a
+# figure is never split from its label and scripts can grep whole lines; tables get a wide page.
+_STDOUT_TTY = bool(getattr(sys.stdout, "isatty", lambda: False)())
+out_console = Console() if _STDOUT_TTY else Console(soft_wrap=True, width=400)
 
 _QUIET = {"on": False}
 

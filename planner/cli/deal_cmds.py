@@ -9,6 +9,7 @@ from pathlib import Path
 from typing import Optional
 
 import typer
+from rich.markup import escape
 from rich.table import Table
 
 from planner.cli import app
@@ -18,8 +19,6 @@ from planner.errors import InputError
 _JSON_OPT = typer.Option(False, "--json", help="Print one JSON object on stdout.")
 _SOLVER_OPT = typer.Option("cbc", "--solver", help="Integer solver: cbc (shipped with pulp) or highs.")
 _BOOK_OPT = book_option("Book of committed deals whose spots are held (default: SCENARIO/book.sqlite if it exists).")
-PLAN_COLUMNS = ["zone", "network", "daypart", "week", "spots", "rate", "cost", "expected_impressions",
-                "preempt_rate", "sd_impressions"]
 
 
 def _load(scenario: Path):
@@ -73,6 +72,12 @@ def _hindcast_text(b: dict | None) -> str:
             f"(+-{100 * 2 * b['se']:.0f} pts)")
 
 
+def print_warnings(warnings) -> None:
+    """Data warnings, part of the answer on stdout (never silenced by --quiet)."""
+    for w in warnings:
+        out_console.print(f"[bold yellow]warning[/]: {escape(w)}", highlight=False)
+
+
 def _kv_table(rows) -> Table:
     t = Table(show_header=False, box=None, pad_edge=False)
     t.add_column("", style="bold")
@@ -112,6 +117,7 @@ def check_cmd(
     colour = "green" if r.deliverable else "red"
     out_console.print(f"[bold]{r.deal}[/] ({r.advertiser}, {r.demo}, weeks {r.first_week}-{r.last_week}): "
                       f"[bold {colour}]{r.verdict.upper()}[/]", highlight=False)
+    print_warnings(r.warnings)
     rows = [("guarantee", f"{_num(r.guarantee)} impressions"), ("risk margin", _risk(r))]
     if r.deliverable:
         rows += [
@@ -138,6 +144,8 @@ def check_cmd(
         out_console.print("[bold]what binds[/]" if r.deliverable else "[bold]what limits it[/]")
         for b in r.binding:
             out_console.print(f"  - {b}", highlight=False)
+    for n in r.notes:
+        out_console.print(f"[bold yellow]note[/]: {escape(n)}", highlight=False)
     if r.frontier:
         t = Table(title="frontier (LP relaxation: continuous spots)", title_justify="left")
         for c in ("guarantee", "deliverable", "cost", "cost per 1000", "chance of delivery"):
@@ -153,11 +161,10 @@ def _safe(name: str) -> str:
     return re.sub(r"[^A-Za-z0-9._-]+", "_", str(name))
 
 
-def write_plan_files(spots, out: Path, split_by: str | None) -> list[Path]:
-    """Write the plan CSV (or one per zone) atomically; return the paths written."""
+def write_plan_files(frame, out: Path, split_by: str | None) -> list[Path]:
+    """Write a plan CSV (`planner.deals.plan_frame`; or one per zone) atomically; return the paths."""
     from planner.atomic import write_with_atomic
 
-    frame = spots[PLAN_COLUMNS]
     if split_by is None:
         write_with_atomic(out, lambda p: frame.to_csv(p, index=False))
         return [out]
@@ -183,7 +190,7 @@ def plan_cmd(
     as_json: bool = _JSON_OPT,
 ) -> None:
     """The whole-spot buy plan of DEAL at least cost, with totals and the weekly pacing table."""
-    from planner.deals import plan_deal
+    from planner.deals import plan_deal, plan_frame
 
     if split_by is not None and split_by != "zone":
         raise InputError(f"--split-by {split_by!r}: only 'zone' is supported")
@@ -193,7 +200,7 @@ def plan_cmd(
     with progress(f"planning {deal}"):
         r = plan_deal(scn, deal, solver=solver, book=book, time_limit=time_limit)
     _fit_note(r)
-    files = write_plan_files(r.spots, out, split_by) if r.deliverable else []
+    files = write_plan_files(plan_frame(scn, deal, r.spots), out, split_by) if r.deliverable else []
     claim = _hindcast_claim(scn, r.totals.get("probability_of_delivery") if r.deliverable else None)
     if as_json:
         print_json({"deal": r.deal, "deliverable": r.deliverable, "verdict": r.verdict, "reason": r.reason,
@@ -202,17 +209,20 @@ def plan_cmd(
                     "totals": r.totals, "pacing": r.pacing.to_dict(orient="records"),
                     "files": [str(p) for p in files], "solver": r.solver, "gap": r.gap, "lp_bound": r.lp_bound,
                     "cuts": r.cuts, "binding": r.binding, "fitted_forecast_first": r.fitted_forecast_first,
-                    "cautions": r.cautions, "hindcast_for_claim": claim})
+                    "warnings": r.warnings, "notes": r.notes, "cautions": r.cautions,
+                    "shared_error_caution": r.shared_error_caution, "hindcast_for_claim": claim})
         return
     cur = r.currency
     if not r.deliverable:
         out_console.print(f"[bold]{r.deal}[/]: [bold red]NOT DELIVERABLE[/], no plan written", highlight=False)
+        print_warnings(r.warnings)
         for b in r.binding:
             out_console.print(f"  - {b}", highlight=False)
         _cautions(r)
         return
     t = r.totals
     out_console.print(f"[bold]{r.deal}[/]: buy plan written to {', '.join(map(str, files))}", highlight=False)
+    print_warnings(r.warnings)
     out_console.print(_kv_table([
         ("spots", f"{_num(t['spots'])} in {_num(t['units'])} units"),
         ("cost", _money(t["cost"], cur)),
@@ -232,4 +242,6 @@ def plan_cmd(
         pt.add_row(str(row.week), _num(row.expected_impressions), _num(row.p10), _num(row.p90),
                    _num(row.even_pacing), f"{100 * dev:+.1f}%")
     out_console.print(pt)
+    for n in r.notes:
+        out_console.print(f"[bold yellow]note[/]: {escape(n)}", highlight=False)
     _cautions(r)

@@ -6,11 +6,15 @@ from typing import List, Optional
 
 import typer
 from rich import box
+from rich.markup import escape
 from rich.table import Table
 
 from planner.cli import app
 from planner.cli.common import book_option, count, info, money, out_console, print_json, progress
 from planner.errors import InputError
+from planner.forecast_job import forecast_caution
+from planner.scenario import load_scenario
+from planner.stress import DEFAULT_DRAWS
 
 CAUTION = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
            "under-delivery; review a plan with the people accountable for the money before committing.")
@@ -23,6 +27,25 @@ def _pct(v) -> str:
 def _k(v) -> str:
     """Impressions in thousands, grouped: 26,729,000 -> '26,729'."""
     return "-" if v is None else f"{float(v) / 1000:,.0f}"
+
+
+def book_line(b: dict, basis: str, currency: str) -> str:
+    """'expected liability (refund basis) USD 4,764 +- 61, VaR95 USD 15,711 +- 420, CVaR95 ...'
+    from a stress result's `book` dict (Monte Carlo standard errors after +-)."""
+    def fig(key: str) -> str:
+        se = b.get(key + "_se")
+        return money(b[key], currency) + ("" if se is None or se != se else f" +- {count(se)}")
+
+    return (f"expected liability ({basis} basis) {fig('expected_liability')}, VaR95 {fig('var95')}, "
+            f"CVaR95 {fig('cvar95')}")
+
+
+def print_cautions(warnings, full: str | None, brief: str | None) -> None:
+    """The report's cautions on stdout, the forecast's own in its brief form (`full` replaced by
+    `brief`; the whole text is in the report and in --json)."""
+    for w in warnings:
+        out_console.print(f"[yellow]caution: {escape(brief if (full is not None and w == full) else w)}[/yellow]",
+                          highlight=False)
 
 
 def _verdict_table(checks: dict[str, dict], currency: str, committed: set[str] | None = None) -> Table:
@@ -40,8 +63,9 @@ def _verdict_table(checks: dict[str, dict], currency: str, committed: set[str] |
                   count(v["margin"]) if v.get("margin") is not None else "-",
                   _pct(v.get("probability_of_delivery")), _k(v.get("max_guarantee")))
     if committed is not None:
-        t.caption = ("verdict: held = deliverable and committed to the book, NO = not deliverable; "
-                     "max: the largest deliverable guarantee against the holds the book had when the deal was checked")
+        t.caption = ("verdict: held = in the book (its held plan and terms, from the book), yes/NO = deliverable "
+                     "or not against the book's holds; max: the largest deliverable guarantee against the other "
+                     "deals' holds")
         t.caption_justify = "left"
     return t
 
@@ -51,15 +75,15 @@ def report_cmd(
     scenario: Path = typer.Argument(..., help="Scenario folder."),
     out: Path = typer.Option(..., "--out", help="HTML file to write (self-contained, opens from disk)."),
     deal: Optional[List[str]] = typer.Option(None, "--deal", help="Deal to include (repeatable; default: every deal)."),
-    draws: int = typer.Option(20_000, "--draws", help="Monte Carlo draws for the book's stress test."),
+    draws: int = typer.Option(DEFAULT_DRAWS, "--draws", help="Monte Carlo draws for the book's stress test."),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed of the stress test."),
     solver: str = typer.Option("cbc", "--solver", help="cbc or highs."),
     book: Optional[Path] = book_option(),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object on stdout."),
 ) -> None:
     """Write one HTML report: verdicts, frontier, pacing, where the money goes, stress, forecast bands."""
+    from planner.book import list_deals
     from planner.report import build_report, write_report
-    from planner.scenario import load_scenario
 
     if not scenario.is_dir():
         raise InputError(f"{scenario}: not a scenario folder")
@@ -70,9 +94,11 @@ def report_cmd(
     if draws < 2:
         raise InputError(f"--draws {draws}: need at least 2 draws")
     scn = load_scenario(scenario)
+    known = set(scn.deals) | {d.name for d in list_deals(scn, book)}
     for name in deal or ():
-        if name not in scn.deals:
-            raise InputError(f"{scenario}: no deal named {name!r} in deals/ (known: {', '.join(sorted(scn.deals))})")
+        if name not in known:
+            raise InputError(f"{scenario}: no deal named {name!r} in deals/ or the book (known: "
+                             f"{', '.join(sorted(known))})")
     with progress("building the report"):
         data = build_report(scn, deals=deal or None, draws=draws, seed=seed, solver=solver, book=book,
                             stage=lambda text: info(f"  {text}"))
@@ -89,11 +115,9 @@ def report_cmd(
     out_console.print(_verdict_table(checks, scn.currency, {d.name for d in data.deals if d.in_book}))
     if data.book is not None:
         b = data.book
-        out_console.print(f"book: {len(b.deals)} deal(s), expected liability {money(b.expected_liability, scn.currency)}, "
-                          f"VaR95 {money(b.var95, scn.currency)}, CVaR95 {money(b.cvar95, scn.currency)} "
+        out_console.print(f"book: {len(b.deals)} deal(s), {book_line(b.extra, b.liability_basis, scn.currency)} "
                           f"({count(b.draws)} draws, seed {b.seed})")
-    for w in data.warnings:
-        out_console.print(f"[yellow]caution: {w}[/yellow]")
+    print_cautions(data.warnings, forecast_caution(scn), forecast_caution(scn, brief=True))
     out_console.print(f"report written to [bold]{path}[/]")
     out_console.print(CAUTION, style="dim")
 
@@ -101,7 +125,7 @@ def report_cmd(
 @app.command("demo")
 def demo_cmd(
     out: Path = typer.Option(Path("pledge-demo"), "--out", help="Working folder for the demo (created, or reused if it is one)."),
-    draws: int = typer.Option(20_000, "--draws", help="Monte Carlo draws for the book's stress test."),
+    draws: int = typer.Option(DEFAULT_DRAWS, "--draws", help="Monte Carlo draws for the book's stress test."),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed of the stress test."),
     solver: str = typer.Option("cbc", "--solver", help="cbc or highs."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object on stdout."),
@@ -134,10 +158,13 @@ def demo_cmd(
     if result.stress:
         b = result.stress["book"]
         basis = result.stress.get("liability_basis", "refund")
-        out_console.print(f"book of {len(result.committed)} deal(s): expected liability ({basis} basis) "
-                          f"{money(b['expected_liability'], cur)}, VaR95 {money(b['var95'], cur)}, "
-                          f"CVaR95 {money(b['cvar95'], cur)} ({count(result.draws)} draws, seed {result.seed})")
-    for w in result.warnings:
-        out_console.print(f"[yellow]caution: {w}[/yellow]")
+        out_console.print(f"book of {len(result.committed)} deal(s): {book_line(b, basis, cur)} "
+                          f"({count(result.draws)} draws, seed {result.seed})")
+    scn = load_scenario(result.folder)
+    print_cautions(result.warnings, forecast_caution(scn), forecast_caution(scn, brief=True))
     out_console.print(f"report: [bold]{result.report}[/]   (done in {elapsed:,.0f} s)")
+    if result.actuals_example is not None:
+        out_console.print(f"mid-flight: invented posted actuals of {result.actuals_deal}'s first weeks; try "
+                          f"pledge rebalance {result.folder} {result.actuals_deal} --actuals {result.actuals_example}",
+                          highlight=False)
     out_console.print(CAUTION, style="dim")

@@ -4,9 +4,11 @@ from __future__ import annotations
 from pathlib import Path
 
 import typer
+from rich.markup import escape
 
 from planner.cli import app
 from planner.cli.common import info, out_console, print_json
+from planner.book import book_path, book_warnings, list_deals
 from planner.scenario import load_scenario, validate_history
 
 
@@ -45,6 +47,7 @@ def scenario_summary(path: str | Path) -> dict:
                     "start": h.start, "end": h.end, "days": h.days, "completeness": h.completeness,
                     "zero_share": h.zero_share, "short_series": len(h.short_series),
                     "short_series_list": h.short_series, "missing_series": h.missing_series},
+        "book": {"path": str(book_path(sc)), "deals": len(list_deals(sc)), "warnings": book_warnings(sc)},
     }
 
 
@@ -79,6 +82,9 @@ def validate(
             f"confidence {d['confidence']:.0%}" + (" (default)" if d["risk_default_used"] else ""))
         lines.append(f"  {name}: {d['advertiser']}, {d['impressions']:,.0f} {d['demo']} impressions, "
                      f"weeks {d['weeks'][0]}-{d['weeks'][1]}, CPM {d['price_cpm']:.2f}, {risk}")
+    if s["book"]["deals"]:
+        lines.append(f"book {s['book']['path']}: {s['book']['deals']} committed deal(s)")
+    lines += [f"[bold yellow]warning[/]: {escape(w)}" for w in s["book"]["warnings"]]
     lines.append("[dim]Invented data is for demonstration; forecasts are estimates and contract terms decide "
                  "what is owed.[/dim]")
     for line in lines:

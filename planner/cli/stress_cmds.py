@@ -12,12 +12,13 @@ from planner.cli import app
 from planner.cli.book_cmds import print_table, short
 from planner.cli.common import book_option, count, money, out_console, print_json, progress
 from planner.errors import InputError
+from planner.stress import DEFAULT_DRAWS
 
 
 @app.command("stress")
 def stress_cmd(
     scenario: Path = typer.Argument(..., help="Scenario folder."),
-    draws: int = typer.Option(100_000, "--draws", help="Monte Carlo draws."),
+    draws: int = typer.Option(DEFAULT_DRAWS, "--draws", help="Monte Carlo draws."),
     seed: int = typer.Option(0, "--seed", min=0, help="Random seed (same seed, same numbers)."),
     shock: Optional[List[str]] = typer.Option(
         None, "--shock", help="network=NAME:-0.15, daypart=NAME:-0.10, zone=NAME:-0.1 or all:-0.05 (repeatable)."),
@@ -52,6 +53,7 @@ def stress_cmd(
 
     caution = forecast_caution(scn, scenario)
     cautions = list(r.warnings) + ([caution] if caution else [])  # the book's own, then the forecast's
+    brief = forecast_caution(scn, scenario, brief=True)
     if as_json:
         print_json({**r.as_dict(), "warnings": cautions})
         return
@@ -60,9 +62,10 @@ def stress_cmd(
                       f"liability basis {r.liability_basis}")
     out_console.print("  shocks: " + (", ".join(r.shocks) if r.shocks else "none")
                       + (f"; preemption x{r.preempt_multiplier:g}" if r.preempt_multiplier != 1 else ""))
-    t = Table(title=f"deals (+- Monte Carlo standard error; money in {cur})")
+    t = Table(title=f"deals (+- Monte Carlo standard error; impressions in each deal's demo, money in {cur})")
     t.add_column("deal", no_wrap=True)
-    for c in ("guarantee", "P(short)", "exp. shortfall", "exp. liability", "exp. margin", "share of CVaR"):
+    for c in ("guarantee (imp.)", "P(short)", "exp. shortfall (imp.)", f"exp. liability ({cur})",
+              f"exp. margin ({cur})", "share of CVaR"):
         t.add_column(c, justify="right", no_wrap=True)
     cvar = r.book["cvar95"]
     for d in r.deals:
@@ -86,6 +89,6 @@ def stress_cmd(
         j = r.joint
         out_console.print(f"  most correlated pair {j['deals'][0]} / {j['deals'][1]} (corr {j['correlation']:.2f}): "
                           f"both short {j['probability_both_short']:.2%} vs {j['product_if_independent']:.2%} if independent")
-    for c in cautions:
+    for c in list(r.warnings) + ([brief] if brief else []):
         out_console.print(f"[yellow]caution: {escape(c)}[/yellow]")
     out_console.print(CAUTION, style="dim")
