@@ -209,9 +209,12 @@ def test_cli_fit_text_reports_the_refit_totals(small_scenario, scenario_copy, ca
     assert "held-out total of each refit" in out
     for day, t in cal["leave_one_fold_out_total"].items():
         assert f"{day} {t['bias']:+.1%} ({t['bias_sd']:.1%})" in out
-    assert ("caution: The forecast's refits missed their totals" in out) == (cal["total_z_p"] < 0.05)
-    if cal["total_z_p"] < 0.05 and cal["total_excess_sd"] > 0:
-        assert f"--shock all:-{cal['total_excess_sd']:.3f}" in out
+    le = json.loads((dest / "forecast" / "meta.json").read_text())["fit"]["level_error"]
+    # refits missing beyond the law widen it (said), instead of a caution
+    assert "caution: The forecast's refits missed their totals" not in out
+    assert ("was widened by an sd of" in out) == (le["common_widened_by_sd"] > 0)
+    if cal["total_z_rms"] > 1.0:
+        assert le["common_widened_by_sd"] > 0
 
 
 def test_shared_error_caution_follows_the_chi_square_test():
@@ -232,3 +235,6 @@ def test_shared_error_caution_follows_the_chi_square_test():
         shared_error_caution(held, "demo"))
     assert "`pledge stress demo --shock all:-0.062`" in text
     assert "--shock" not in shared_error_caution(meta(0.01, 0.0), "demo")
+    widened = meta(0.003, 0.062)
+    widened["fit"]["level_error"] = {"rel_sd_common": 0.08, "common_widened_by_sd": 0.05}
+    assert shared_error_caution(widened, "demo") is None  # the law holds the misses: no caution due

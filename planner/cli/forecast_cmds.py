@@ -101,6 +101,11 @@ def fit_cmd(
                           + ", ".join(f"{d} {t['bias']:+.1%} ({t['bias_sd']:.1%})" for d, t in totals.items())
                           + f"; RMS in those sds {cal_fit['total_z_rms']:.2f} (about 1 if the law is right, "
                           f"chi-square p = {cal_fit['total_z_p']:.2f})")
+        widened = float(le.get("common_widened_by_sd") or 0.0)
+        if widened > 0:
+            out_console.print(f"the refits' totals missed by more than the law allowed: the shift shared by all units "
+                              f"was widened by an sd of {widened:.1%} (now {le['rel_sd_common']:.1%}) so that they are "
+                              "within it; every chance of delivery includes it")
         if caution:
             out_console.print(f"[yellow]caution: {caution}[/yellow]")
     out_console.print(CAUTION)
