@@ -245,7 +245,8 @@ class DaypartForecaster:
     def _fit_combiner(self, folds: list[FoldResult], dayparts) -> StackedCombiner:
         """Stack the candidates on the refits' held-out unit-weeks of full-history series (every
         candidate finite and > 0, enough cells observed), in impressions; set each fold's
-        ``combined``."""
+        ``combined`` from a combination weighed on the OTHER refits (cross-fitting), so the error
+        law learns from errors the combination did not see, as the plan weeks' will be."""
         need = self.min_cells * self._expected_cells(dayparts)[None, :, None]
         names = np.array([dp.name for dp in dayparts])
         frames = []
@@ -261,10 +262,15 @@ class DaypartForecaster:
         rows = pd.concat(frames, ignore_index=True)
         if len(rows) < 50:
             raise ValueError("too few held-out unit-weeks to weigh the candidate forecasts")
-        comb = StackedCombiner(CANDIDATES, prior_weights=SEASONAL_PRIOR, random_state=self.random_state).fit(rows)
-        for f in folds:
-            f.combined = comb.combine(f.all_candidates(), list(names))
+        comb = self._new_combiner().fit(rows)
+        for j, f in enumerate(folds):  # cross-fitted: refit j's combination weighed on the other refits
+            others = rows[rows["fold"] != j]
+            comb_j = self._new_combiner().fit(others) if len(others) >= 50 and len(folds) > 1 else comb
+            f.combined = comb_j.combine(f.all_candidates(), list(names))
         return comb
+
+    def _new_combiner(self) -> StackedCombiner:
+        return StackedCombiner(CANDIDATES, prior_weights=SEASONAL_PRIOR, random_state=self.random_state)
 
     def combine_plan(self, profile_mean: np.ndarray) -> np.ndarray:
         """The stacked plan-week means (S, P, W) with `profile_mean` as the profile model's part
@@ -507,8 +513,7 @@ class DaypartForecaster:
         series whose history the refit truncated on purpose, or with fewer than `min_cells` (share)
         of the daypart's cells observed, are left out. For replaying deals (a hindcast).
 
-        The stacking weights and level ratios are those fitted on every refit (refit `j` included):
-        a small in-sample part, a few numbers per daypart.
+        The combination is the cross-fitted one (weighed on the other refits).
         """
         f = self.fold_results_[int(j)]
         J = len(self.fold_results_)
