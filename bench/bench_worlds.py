@@ -21,6 +21,7 @@ delivered in at least 92%. Invented data throughout.
 Usage:
     python bench/bench_worlds.py [--families profile,drift] [--seeds 1-15] [--size small]
                                  [--lead 0,28,119] [--out bench/worlds.json]
+    python bench/bench_worlds.py --pool A.json B.json   (pool runs over other seeds: worlds and deals)
 """
 from __future__ import annotations
 
@@ -132,6 +133,20 @@ def family_summary(rows: list[dict], deals: pd.DataFrame) -> dict:
     return out
 
 
+def pool(paths: list[str]) -> int:
+    """Summaries of several runs pooled: their worlds and their replayed deals, by family."""
+    worlds = [w for p in paths for w in json.loads(Path(p).read_text())["worlds"]]
+    out = {}
+    for family in sorted({w["family"] for w in worlds}):
+        frames = [pd.read_csv(Path(p).with_suffix(f".{family}.deals.csv")) for p in paths
+                  if Path(p).with_suffix(f".{family}.deals.csv").is_file()]
+        deals = pd.concat(frames, ignore_index=True) if frames else pd.DataFrame()
+        out[family] = family_summary([w for w in worlds if w["family"] == family], deals)
+        out[family]["runs_with_replays"] = len(frames)
+    print(json.dumps(out, indent=1, default=float))
+    return 0
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--families", default="profile,drift")
@@ -139,7 +154,10 @@ def main(argv=None) -> int:
     ap.add_argument("--size", default="small")
     ap.add_argument("--lead", default="0,28,119", help="lead days, cycled over the seeds")
     ap.add_argument("--out", default=str(ROOT / "bench" / "worlds.json"))
+    ap.add_argument("--pool", nargs="+", help="summarise earlier runs' JSON (and their .FAMILY.deals.csv) together")
     args = ap.parse_args(argv)
+    if args.pool:
+        return pool(args.pool)
     leads = [int(x) for x in args.lead.split(",")]
     result = {"families": {}, "worlds": []}
     with tempfile.TemporaryDirectory() as tmp:
@@ -152,6 +170,7 @@ def main(argv=None) -> int:
                 print(json.dumps({k: (round(v, 4) if isinstance(v, float) else v) for k, v in row.items()
                                   if k not in ("coverage", "weights", "baseline_bias")}), file=sys.stderr, flush=True)
             deals = pd.concat(frames, ignore_index=True)
+            deals.to_csv(Path(args.out).with_suffix(f".{family}.deals.csv"), index=False)
             result["families"][family] = family_summary(rows, deals)
             result["worlds"] += rows
             Path(args.out).write_text(json.dumps(result, indent=1, default=float))

@@ -182,12 +182,22 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
     say(f"{'reusing' if reused_folder else 'created'} demo folder {folder}")
     from planner.book import list_deals, release_deal
     from planner.forecast_job import ensure_forecast
+    from planner.hindcast import cached_hindcast, hindcast_scenario
     from planner.report import build_report, write_report
 
-    with timed("forecast", "2/5 fitting the forecasts (reused when already fitted)"):
+    with timed("forecast", "2/5 fitting the forecasts, replaying past deals (reused when already done)"):
         fc = ensure_forecast(scn)
+        hindcast = cached_hindcast(scn)
+        if hindcast is None:  # replayed deals set the shared factors' scale (pledge forecast hindcast --apply)
+            hindcast = hindcast_scenario(scn, apply=True)
+            fc = ensure_forecast(scn)
     reused_forecast = (not bool(fc.fitted_now)) if hasattr(fc, "fitted_now") else bool(getattr(fc, "reused", False))
     say(f"forecast {'reused from' if reused_forecast else 'fitted and saved in'} {folder / 'forecast'}")
+    if hindcast.get("deals"):
+        c95 = hindcast["claimed_95"]
+        came = f"claims of 95% came true in {c95['realised']:.0%}; " if c95.get("realised") is not None else ""
+        say(f"replayed {hindcast['deals']} deals at {hindcast['origins']} past origins: {came}shared level factors "
+            f"widened x{hindcast['applied_scale']:.2f} (pledge forecast hindcast)")
 
     released = []
     for d in list_deals(scn):

@@ -142,3 +142,9 @@ def test_hindcast_command_json_and_apply(fitted_small):
     np.testing.assert_allclose(after["level_sd_week"], before["level_sd_week"], rtol=1e-12)
     np.testing.assert_allclose(after["mean_impressions"], before["mean_impressions"], rtol=1e-12)
     assert (sc.path / "forecast" / "hindcast.json").is_file()
+    # check shows, beside its chance of delivery, what the replays found for claims like it
+    r = CliRunner().invoke(app, ["check", str(sc.path), "small-comfortable", "--json"])
+    assert r.exit_code == 0, r.output
+    got = json.loads(r.stdout)
+    b = got["hindcast_for_claim"]
+    assert b is not None and b["low"] <= got["probability_of_delivery"] < b["high"] + 1e-9

@@ -68,8 +68,8 @@ def _hindcast_claim(scn, chance) -> dict | None:
 def _hindcast_text(b: dict | None) -> str:
     if b is None:
         return "no hindcast yet (pledge forecast hindcast)"
-    return (f"{_pct(b['realised'])} of {b['deals']} replays at {100 * b['low']:.0f}-{_pct(b['high'], 0)} "
-            f"(+-{100 * 2 * b['se']:.0f} pts)")
+    return (f"{_pct(b['realised'])} of {b['deals']} replays claimed {100 * b['low']:.0f}-{_pct(b['high'], 0)} "
+            f"(~{b.get('effective_deals', 0):.0f} independent)")
 
 
 def print_warnings(warnings) -> None:
