@@ -44,7 +44,7 @@ from forecasting.dayparts import as_specs  # noqa: E402
 from forecasting.scoring import total_bias_sd  # noqa: E402
 from forecasting.uncertainty import COMPONENT_KEYS, factor_components  # noqa: E402
 from planner.forecast_job import ensure_forecast, load_history_cube, load_model  # noqa: E402
-from planner.hindcast import replay_deals, summarise  # noqa: E402
+from planner.hindcast import SHARED_COLUMNS, replay_deals, summarise  # noqa: E402
 from planner.scenario import load_scenario  # noqa: E402
 from scenarios.worlds import make_world, world_truth_levels  # noqa: E402
 
@@ -100,15 +100,22 @@ def plan_week_scores(sc, table: pd.DataFrame, model) -> dict:
     return out
 
 
-def run_world(family: str, seed: int, size: str, lead: int, work: Path) -> tuple[dict, pd.DataFrame]:
+def run_world(family: str, seed: int, size: str, lead: int, work: Path, apply: bool = False) -> tuple[dict, pd.DataFrame]:
     t0 = time.perf_counter()
     path = make_world(work / f"{family}-{seed}", family, seed, size=size, lead_days=lead)
     sc = load_scenario(path)
     res = ensure_forecast(sc)
     t_fit = time.perf_counter() - t0
     model = load_model(sc)
-    scores = plan_week_scores(sc, res.table, model)
     replay = replay_deals(sc, model, seed=seed, solver="highs")
+    table = res.table
+    scale = max(float(replay.summary.get("shared_scale", 1.0)), 1.0) if apply and len(replay.deals) else 1.0
+    if scale != 1.0:  # what `pledge forecast hindcast --apply` (and pledge demo) do to the table
+        table = table.copy()
+        for col in SHARED_COLUMNS:
+            table[col] = table[col] * scale
+        table["level_sd"] = np.sqrt(sum(table[c] ** 2 for c in table.columns if c.startswith("level_sd_")))
+    scores = plan_week_scores(sc, table, model)
     deals = replay.deals.assign(family=family, seed=seed, origin=lambda d: f"{family}-{seed}-" + d["origin"])
     fit = res.meta["fit"]
     row = {"family": family, "seed": seed, "lead_days": lead, "fit_seconds": round(t_fit, 1),
@@ -117,7 +124,7 @@ def run_world(family: str, seed: int, size: str, lead: int, work: Path) -> tuple
            "baseline_bias": {n: b["bias"] for n, b in scores["baselines"].items()},
            "weights": fit["candidates"]["pooled_weights"],
            "common_widened_by_sd": fit["level_error"]["common_widened_by_sd"],
-           "replayed": int(len(deals)), "units": scores["units"]}
+           "replayed": int(len(deals)), "units": scores["units"], "applied_scale": scale}
     return row, deals
 
 
@@ -154,6 +161,9 @@ def main(argv=None) -> int:
     ap.add_argument("--size", default="small")
     ap.add_argument("--lead", default="0,28,119", help="lead days, cycled over the seeds")
     ap.add_argument("--out", default=str(ROOT / "bench" / "worlds.json"))
+    ap.add_argument("--apply", action="store_true",
+                    help="score the plan weeks after widening the shared factors by the replays' scale, as "
+                         "pledge forecast hindcast --apply and pledge demo do")
     ap.add_argument("--pool", nargs="+", help="summarise earlier runs' JSON (and their .FAMILY.deals.csv) together")
     args = ap.parse_args(argv)
     if args.pool:
@@ -164,7 +174,7 @@ def main(argv=None) -> int:
         for family in args.families.split(","):
             rows, frames = [], []
             for i, seed in enumerate(_seeds(args.seeds)):
-                row, deals = run_world(family, seed, args.size, leads[i % len(leads)], Path(tmp))
+                row, deals = run_world(family, seed, args.size, leads[i % len(leads)], Path(tmp), args.apply)
                 rows.append(row)
                 frames.append(deals)
                 print(json.dumps({k: (round(v, 4) if isinstance(v, float) else v) for k, v in row.items()
