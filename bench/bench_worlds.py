@@ -109,7 +109,7 @@ def run_world(family: str, seed: int, size: str, lead: int, work: Path, apply: b
     model = load_model(sc)
     replay = replay_deals(sc, model, seed=seed, solver="highs")
     table = res.table
-    scale = max(float(replay.summary.get("shared_scale", 1.0)), 1.0) if apply and len(replay.deals) else 1.0
+    scale = float(replay.summary.get("scale_to_apply", 1.0)) if apply and len(replay.deals) else 1.0
     if scale != 1.0:  # what `pledge forecast hindcast --apply` (and pledge demo) do to the table
         table = table.copy()
         for col in SHARED_COLUMNS:

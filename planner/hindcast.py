@@ -173,6 +173,19 @@ def shared_scale(deals: pd.DataFrame, grid=np.arange(0.5, 4.0001, 0.01)) -> floa
     return float(grid[int(np.argmin(stats))])
 
 
+#: independent outcomes' worth of pull of the applied scale toward 1 (see `applied_scale`)
+SCALE_PRIOR_OUTCOMES = 4.0
+
+
+def applied_scale(scale: float, effective_deals: float, prior: float = SCALE_PRIOR_OUTCOMES) -> float:
+    """The shared-factor scale to apply: the PIT-uniform `scale` with its log shrunk toward 0 by
+    ``n_eff / (n_eff + prior)`` and never below 1. Replayed deals amount to a few independent
+    outcomes (one per origin, about), so the raw scale is a noisy estimate (its log has an sd of
+    roughly 1 / sqrt(2 n_eff)); shrinking it keeps one unlucky origin from tripling every band."""
+    n = max(float(effective_deals), 0.0)
+    return float(max(np.exp(np.log(max(scale, 1e-9)) * n / (n + prior)), 1.0))
+
+
 def summarise(deals: pd.DataFrame) -> dict:
     """Reliability table (claimed chance bins: mean claim, realised frequency, count, effective
     count, standard error), deal-total bias, PIT histogram (10 bins) and the shared-factor scale."""
@@ -201,6 +214,7 @@ def summarise(deals: pd.DataFrame) -> dict:
         "z_rms": float(np.sqrt(np.mean(deals["z"] ** 2))),
         "pit_histogram": np.histogram(deals["pit"], bins=10, range=(0, 1))[0].tolist(),
         "shared_scale": shared_scale(deals),
+        "scale_to_apply": applied_scale(shared_scale(deals), n_eff),
     }
 
 
@@ -222,7 +236,8 @@ def hindcast_scenario(scenario, *, seed: int = 0, solver: str = "highs", apply: 
                       progress: Progress | None = None) -> dict:
     """Replay deals on the scenario's fitted forecast (fitted now when missing or stale) and write
     ``<scenario>/forecast/hindcast.json``; with `apply`, multiply the cached table's shared level
-    sds (`SHARED_COLUMNS`) by the hindcast's `shared_scale`, never below 1 (a few origins' worth of
+    sds (`SHARED_COLUMNS`) by the hindcast's `scale_to_apply` (`applied_scale`: the PIT-uniform
+    scale shrunk by the few independent outcomes behind it, never below 1: a few origins' worth of
     shared shocks is too little to narrow the law measured on every held-out unit-week), and record
     it in ``meta.json``. A refit drops the scale (run the hindcast again). Returns the summary."""
     progress = progress or (lambda m, f: None)
@@ -233,7 +248,7 @@ def hindcast_scenario(scenario, *, seed: int = 0, solver: str = "highs", apply: 
     summary["fit_key"] = res.meta.get("key")
     applied = 1.0
     if apply and summary.get("deals"):
-        applied = max(float(summary["shared_scale"]), 1.0)
+        applied = float(summary["scale_to_apply"])
         previous = float(res.meta.get("hindcast_scale", 1.0))
         factor = applied / previous
         table = res.table.copy()

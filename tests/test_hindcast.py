@@ -137,6 +137,7 @@ def test_hindcast_command_json_and_apply(fitted_small):
     out = json.loads(r.stdout)
     after = load_forecast(sc)
     k = out["applied_scale"]
+    assert k == pytest.approx(out["scale_to_apply"])
     assert k >= 1.0
     np.testing.assert_allclose(after["level_sd_network"], before["level_sd_network"] * k, rtol=1e-9)
     np.testing.assert_allclose(after["level_sd_week"], before["level_sd_week"], rtol=1e-12)
@@ -148,3 +149,14 @@ def test_hindcast_command_json_and_apply(fitted_small):
     got = json.loads(r.stdout)
     b = got["hindcast_for_claim"]
     assert b is not None and b["low"] <= got["probability_of_delivery"] < b["high"] + 1e-9
+
+
+def test_applied_scale_is_shrunk_by_the_evidence_and_never_narrows():
+    """Hand-worked: a PIT-uniform scale of 2 from 4 independent outcomes with 4 outcomes' worth of
+    prior is applied as exp(log 2 x 4/8) = sqrt 2; from many outcomes it tends to 2; a scale below 1
+    is applied as 1. Catches an unshrunk (noisy) or narrowing scale."""
+    from planner.hindcast import applied_scale
+
+    assert applied_scale(2.0, 4.0) == pytest.approx(np.sqrt(2.0))
+    assert applied_scale(2.0, 4000.0) == pytest.approx(2.0, rel=1e-3)
+    assert applied_scale(0.7, 50.0) == 1.0

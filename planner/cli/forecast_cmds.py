@@ -306,7 +306,9 @@ def hindcast_cmd(
         out_console.print(f"claimed at 95%: {c95['deals']} deals, delivered in {c95['realised']:.1%}")
     out_console.print(f"deal totals: delivered / expected - 1 = {s['deal_total_bias']:+.1%}; z RMS {s['z_rms']:.2f} "
                       f"(1 if the law is right); PIT deciles {s['pit_histogram']}")
-    out_console.print(f"scale of the shared level factors that makes the PIT uniform: {s['shared_scale']:.2f}"
-                      + (f"; applied {s['applied_scale']:.2f} to the cached forecast" if apply else
-                         " (--apply widens the cached forecast by it when above 1)"))
+    out_console.print(f"scale of the shared level factors that makes the PIT uniform: {s['shared_scale']:.2f}; "
+                      f"shrunk for the ~{s['effective_deals']:.0f} independent outcomes behind it: "
+                      f"{s['scale_to_apply']:.2f}"
+                      + (f", applied to the cached forecast" if apply else
+                         " (--apply widens the cached forecast by it)"))
     out_console.print(s["caution"])
