@@ -187,11 +187,11 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
 
     with timed("forecast", "2/5 fitting the forecasts, replaying past deals (reused when already done)"):
         fc = ensure_forecast(scn)
+        reused_forecast = not bool(fc.fitted_now)
         hindcast = cached_hindcast(scn)
         if hindcast is None:  # replayed deals set the shared factors' scale (pledge forecast hindcast --apply)
             hindcast = hindcast_scenario(scn, apply=True)
             fc = ensure_forecast(scn)
-    reused_forecast = (not bool(fc.fitted_now)) if hasattr(fc, "fitted_now") else bool(getattr(fc, "reused", False))
     say(f"forecast {'reused from' if reused_forecast else 'fitted and saved in'} {folder / 'forecast'}")
     if hindcast.get("deals"):
         c95 = hindcast["claimed_95"]
