@@ -459,8 +459,18 @@ class DaypartForecaster:
         timings["final_fit"] = time.perf_counter() - t0
         progress("plan-week forecasts", (len(origins) + 1) / steps)
         t0 = time.perf_counter()
-        days = np.arange(p0, p0 + horizon + 1)
-        pred = self.model_.predict(days).astype(np.float32)
+        self._predict_plan_weeks(cube, dayparts, p0)
+        timings["predict"] = time.perf_counter() - t0
+        self.timings_ = timings
+        progress("done", 1.0)
+        return self
+
+    def _predict_plan_weeks(self, cube: ProfileCube, dayparts, p0: int) -> None:
+        """The plan weeks' stacked means (``plan_mean_`` and its parts), airing noise and history
+        lengths, from the final model and the candidates at the end of the history (day index p0
+        starts plan week 1)."""
+        T = cube.n_days
+        pred = self.model_.predict(np.arange(p0, p0 + 7 * self.weeks_ + 1)).astype(np.float32)
         self.plan_pred_ = pred  # (S, 7 W + 1, 96) expected quarter-hour ratings, before bias correction
         wd = (cube.day0.day_of_week + p0) % 7
         raw_mean, _ = daypart_week_means(pred, wd, 7 * np.arange(self.weeks_), dayparts)
@@ -479,10 +489,6 @@ class DaypartForecaster:
         pool = pd.factorize(self.info_["network"].astype(str) + "\x1f" + self.info_["demo"].astype(str))[0]
         self.airing_cv_ = airing_cv(sums, sq, cnt, pool)
         self.history_weeks_ = cube.history_days() / 7.0
-        timings["predict"] = time.perf_counter() - t0
-        self.timings_ = timings
-        progress("done", 1.0)
-        return self
 
     def _series_universe(self, universes: pd.DataFrame | None) -> np.ndarray:
         """Universe of each series (people); 1 where unknown (sizes are then ratings)."""
