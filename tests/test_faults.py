@@ -122,3 +122,60 @@ def test_rebalance_chances_before_and_after_match_a_monte_carlo_of_the_error_law
     u2 = _units_of(r.plan, r.forecast, scn.inventory)
     p2, se2 = _mc_probability(u2, u2["spots"].to_numpy(), r.remaining_guarantee, 200_000, seed=6)
     assert r.probability_after == pytest.approx(p2, abs=0.03 + 4 * se2)
+
+
+# --------------------------------------------------------------------------- report tables
+
+def _rows(html: str, header: str) -> list[list[str]]:
+    """The body rows (cell texts) of the first table whose header row contains `header`."""
+    import re
+
+    for t in re.findall(r"<table[^>]*>(.*?)</table>", html, re.S):
+        if header in t:
+            body = re.search(r"<tbody>(.*?)</tbody>", t, re.S).group(1)
+            return [[re.sub(r"<[^>]+>", "", c).strip() for c in re.findall(r"<td>(.*?)</td>", r, re.S)]
+                    for r in re.findall(r"<tr>(.*?)</tr>", body, re.S)]
+    raise AssertionError(f"no table with {header!r}")
+
+
+def _num(text: str) -> float:
+    import re
+
+    return float(re.sub(r"[^0-9.\-]", "", text))
+
+
+def test_report_tables_show_the_shortfall_chance_and_the_cpm_per_thousand():
+    """Faults caught: the report's book table showing 1 - P(shortfall) instead of the stress
+    test's shortfall chance; the zone table's CPM losing the x1000.
+
+    Reference: hand-made inputs. A stress result (stand-in object with the fields
+    `report.book_section` reads) whose deals have shortfall chances 0.123 and 0.9; a plan whose
+    zones cost 5,000 for 250,000 expected impressions and 1,200 for 40,000. CPM = cost /
+    impressions x 1000 (cost per thousand impressions; trade definition, common practice), so
+    20.00 and 30.00. The rendered page's tables are read back as text."""
+    from types import SimpleNamespace
+
+    from planner import report as rp
+
+    deal = lambda name, p: SimpleNamespace(  # noqa: E731
+        deal=name, probability_of_shortfall=p, expected_shortfall=1000.0, expected_liability=50.0,
+        expected_margin=10.0, tail_contribution=5.0)
+    stress = SimpleNamespace(
+        book={"var95": 100.0, "cvar95": 120.0, "expected_liability": 60.0}, book_liability=np.linspace(0, 200, 50),
+        draws=50, seed=1, shocks=[], liability_basis="refund", deal_names=["d-one", "d-two"],
+        deals=[deal("d-one", 0.123), deal("d-two", 0.9)], networks=[])
+    spots = pd.DataFrame({"zone": ["z1", "z1", "z2"], "network": ["n1", "n2", "n1"], "daypart": ["prime"] * 3,
+                          "week": [1, 1, 1], "spots": [6, 4, 4], "rate": [500.0, 500.0, 300.0],
+                          "cost": [3000.0, 2000.0, 1200.0],
+                          "expected_impressions": [150_000.0, 100_000.0, 40_000.0]})
+    section = rp.DealSection(name="d-one", verdict={"deliverable": True, "guarantee": 250_000.0, "cost": 6200.0},
+                             spots=spots)
+    html = rp.render_report(rp.ReportData(scenario_name="invented", scenario_path="/x", currency="USD",
+                                          deals=[section], book=rp.book_section(stress), dayparts=["prime"],
+                                          versions={"pledge": "test"}))
+    book = {r[0]: r for r in _rows(html, "shortfall chance")}
+    assert _num(book["d-one"][1]) == pytest.approx(12.3, abs=0.05)
+    assert _num(book["d-two"][1]) == pytest.approx(90.0, abs=0.05)
+    zones = {r[0]: r for r in _rows(html, "CPM (USD)")}
+    assert _num(zones["z1"][4]) == pytest.approx(5000.0 / 250_000.0 * 1000, abs=0.005)  # 20.00
+    assert _num(zones["z2"][4]) == pytest.approx(1200.0 / 40_000.0 * 1000, abs=0.005)  # 30.00
