@@ -179,3 +179,95 @@ def test_report_tables_show_the_shortfall_chance_and_the_cpm_per_thousand():
     zones = {r[0]: r for r in _rows(html, "CPM (USD)")}
     assert _num(zones["z1"][4]) == pytest.approx(5000.0 / 250_000.0 * 1000, abs=0.005)  # 20.00
     assert _num(zones["z2"][4]) == pytest.approx(1200.0 / 40_000.0 * 1000, abs=0.005)  # 30.00
+
+
+# --------------------------------------------------------------------------- backtest scores
+
+class _KnownForecaster:
+    """A stand-in forecaster whose forecast of the held-out days is known: each series' own
+    constant rating, with a relative level sd of 0.10 (all on the unit-week's own factor)."""
+
+    random_state = 0
+    min_cells = 0.5
+
+    def __init__(self, base, rel_sd=0.10):
+        self.base, self.rel_sd = np.asarray(base, float), rel_sd
+
+    def fit(self, train, info, specs, plan_start, weeks, progress=None, universes=None):
+        S = len(self.base)
+        self.plan_pred_ = np.broadcast_to(self.base[:, None, None], (S, 7 * weeks, 96)).astype(float)
+        self.plan_recent_ = None
+        self.history_weeks_ = np.full(S, 60)
+        self.universe_s_ = np.full(S, 1000.0)
+        self.baseline_spread_ = {"last_year": {"prime": 0.2}, "trailing_8w": {"prime": 0.2}}
+        self.level_ = self
+        return self
+
+    def combine_plan(self, raw):
+        return raw
+
+    def level_factor(self, recent, law=None):
+        return 1.0
+
+    def predict(self, df):
+        out = pd.DataFrame({c: np.zeros(len(df)) for c in
+                            ("rel_sd_common", "rel_sd_network", "rel_sd_network_week", "rel_sd_flight")})
+        out["rel_sd_week"] = self.rel_sd
+        return out
+
+    def fold_scored_days(self):
+        return []
+
+    def summary(self):
+        return {}
+
+
+def test_backtest_scores_a_known_forecast_against_hand_worked_bias_coverage_and_crps():
+    """Fault caught: the backtest scoring a model other than the one fitted (its mean x 1.2:
+    bias, coverage and CRPS all wrong), and any slip in the bias/coverage/CRPS definitions.
+
+    Tiny hand-made cube: 4 series (2 zones x 2 networks), ratings 0.01, 0.02, 0.03, 0.04 every
+    day; in the 2 held-out weeks they deliver x1.05, x0.80, x1.05, x0.80. The forecast (a
+    stand-in forecaster) is the constant rating with relative sd 0.10, universe 1000. Hand-worked:
+    bias = sum actual / sum forecast - 1 = 0.090 / 0.100 - 1 = -0.10; z-scores +0.5 and -2.0,
+    so the 50%, 80% and 95% central intervals (z 0.674, 1.282, 1.960, scipy) each hold half of
+    the unit-weeks; CRPS per row by numerical integration of (F(x) - 1{x >= y})^2 (scipy quad;
+    definition of Gneiting & Raftery 2007, eq. 20), not the closed form the code uses."""
+    from scipy.integrate import quad
+
+    from forecasting.backtest import run_backtest
+    from forecasting.profiles import ProfileCube
+
+    base = np.array([0.01, 0.02, 0.03, 0.04])
+    f = np.array([1.05, 0.80, 1.05, 0.80])
+    T, W = 420, 2
+    values = np.broadcast_to(base[:, None, None], (4, T, 96)).astype(np.float32).copy()
+    values[:, T - 7 * W:, :] *= f[:, None, None].astype(np.float32)
+    series = pd.DataFrame({"zone": ["z1", "z1", "z2", "z2"], "network": ["n1", "n2", "n1", "n2"],
+                           "demo": ["p18+"] * 4})
+    cube = ProfileCube(series, pd.Timestamp("2025-01-06"), values)
+    info = series.assign(genre="drama")
+    from types import SimpleNamespace
+
+    prime = SimpleNamespace(name="prime", days=tuple(range(7)), quarter_hours=tuple(range(80, 88)))
+    universes = pd.DataFrame({"zone": ["z1", "z2"], "demo": ["p18+"] * 2, "universe": [1000.0, 1000.0]})
+    res = run_backtest(cube, info, [prime], universes, holdout_weeks=W, gap_days=0,
+                       forecaster=_KnownForecaster(base))
+    s = res.summary
+    assert s["units"] == 4 * W
+    assert s["bias"] == pytest.approx(0.09 / 0.10 - 1, abs=1e-6)
+    # z = +0.5 lies inside the 50% interval (0.5 < 0.674), z = -2.0 outside the 95% one (1.960 < 2)
+    assert 0.5 < stats.norm.ppf(0.75) and stats.norm.ppf(0.975) < 2.0
+    for lv in ("0.5", "0.8", "0.95"):
+        assert s["coverage"][lv] == pytest.approx(0.5), lv
+
+    def crps(y, mu, sd):
+        F = lambda x: stats.norm.cdf(x, mu, sd)  # noqa: E731
+        lo, hi = mu - 12 * sd, mu + 12 * sd
+        a = quad(lambda x: F(x) ** 2, lo, y, limit=200)[0] if y > lo else 0.0
+        b = quad(lambda x: (1 - F(x)) ** 2, y, hi, limit=200)[0]
+        return a + b
+
+    mu = base * 1000
+    want = np.mean([crps(y, m, 0.1 * m) for y, m in zip(mu * f, mu)])
+    assert s["crps"] == pytest.approx(want, rel=1e-4)
