@@ -271,3 +271,43 @@ def test_backtest_scores_a_known_forecast_against_hand_worked_bias_coverage_and_
     mu = base * 1000
     want = np.mean([crps(y, m, 0.1 * m) for y, m in zip(mu * f, mu)])
     assert s["crps"] == pytest.approx(want, rel=1e-4)
+
+
+# --------------------------------------------------------------------------- fit origin
+
+class _Stop(Exception):
+    pass
+
+
+def test_the_forecast_is_fitted_for_the_plan_weeks_of_scenario_toml(small_scenario, scenario_copy, monkeypatch):
+    """Fault caught: the fit's origin moved (e.g. `first_week + 7 days` in `forecast_job`):
+    forecasts made for the wrong weeks under the right week numbers.
+
+    Reference: `first_week` and `weeks` read straight from the folder's scenario.toml (tomllib),
+    and the history's last day read from history.parquet (pandas). The forecaster's `fit` is
+    intercepted (nothing is fitted): it must be asked for plan week 1 starting on `first_week`,
+    for `weeks` weeks, on a cube ending on the history's last day."""
+    import tomllib
+
+    from forecasting.pipeline import DaypartForecaster
+    from planner.forecast_job import fit_forecast
+    from planner.scenario import load_scenario
+
+    folder = scenario_copy(small_scenario)
+    raw = tomllib.loads((folder / "scenario.toml").read_text())
+    first_week = pd.Timestamp(str(raw.get("first_week") or raw["scenario"]["first_week"]))
+    weeks = int(raw.get("weeks") or raw["scenario"]["weeks"])
+    last_day = pd.Timestamp(pd.read_parquet(folder / "history.parquet", columns=["date"])["date"].max())
+    seen = {}
+
+    def fit(self, cube, info, dayparts, plan_start, n_weeks, **kw):
+        seen.update(plan_start=pd.Timestamp(plan_start), weeks=n_weeks,
+                    cube_end=cube.day0 + pd.Timedelta(days=cube.n_days - 1))
+        raise _Stop
+
+    monkeypatch.setattr(DaypartForecaster, "fit", fit)
+    with pytest.raises(_Stop):
+        fit_forecast(load_scenario(folder))
+    assert seen["plan_start"] == first_week
+    assert seen["weeks"] == weeks
+    assert seen["cube_end"] == last_day
