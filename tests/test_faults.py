@@ -311,3 +311,88 @@ def test_the_forecast_is_fitted_for_the_plan_weeks_of_scenario_toml(small_scenar
     assert seen["plan_start"] == first_week
     assert seen["weeks"] == weeks
     assert seen["cube_end"] == last_day
+
+
+# --------------------------------------------------------------------------- error law in the table
+
+class _KnownLaw:
+    """A stand-in level-error law: the same relative sds for every unit-week."""
+
+    REL = {"rel_sd_common": 0.02, "rel_sd_network": 0.10, "rel_sd_network_week": 0.04,
+           "rel_sd_flight": 0.05, "rel_sd_week": 0.08}
+
+    def predict(self, t):
+        return pd.DataFrame({k: np.full(len(t), v) for k, v in self.REL.items()})
+
+
+def test_forecast_table_carries_the_error_law_at_full_width():
+    """Fault caught: level sds scaled (e.g. x 0.8, bands 20% too narrow) between the error law
+    and the forecast table, with or without the quantiles recomputed.
+
+    Hand-worked case: one unit rating 0.01 of a universe of 100,000, so 1,000 impressions per
+    spot; airing cv 0.30 (300 impressions); a law with relative sds common 0.02, network 0.10,
+    network-week 0.04, flight 0.05, own week 0.08. The contract (DEVELOPERS.md, "Forecast
+    table") gives loadings 20, 100, 40, 50, 80 impressions, level_sd = sqrt(20^2 + 100^2 + 40^2
+    + 50^2 + 80^2) = sqrt(20,900) = 144.57, one spot's sd sqrt(20,900 + 300^2) = sqrt(110,900)
+    = 333.02, q10/q90 = 1000 -/+ z(0.90) x 333.02 with z(0.90) from scipy."""
+    from types import SimpleNamespace
+
+    from forecasting.pipeline import DaypartForecaster
+
+    fc = DaypartForecaster.__new__(DaypartForecaster)
+    fc.info_ = pd.DataFrame({"zone": ["z1"], "network": ["n1"], "demo": ["p18+"], "genre": ["drama"]})
+    fc.dayparts_ = [SimpleNamespace(name="prime")]
+    fc.airing_cv_ = np.array([[0.30]])
+    fc.universe_s_ = np.array([100_000.0])
+    fc.plan_mean_ = np.full((1, 1, 2), 0.01)
+    fc.history_weeks_ = np.array([60.0])
+    fc.level_ = _KnownLaw()
+    t = fc.forecast_table(pd.DataFrame({"zone": ["z1"], "demo": ["p18+"], "universe": [100_000.0]}))
+    assert len(t) == 2
+    r = t.iloc[0]
+    assert r["mean_impressions"] == pytest.approx(1000.0)
+    assert r["airing_sd"] == pytest.approx(300.0)
+    for col, want in (("level_sd_common", 20.0), ("level_sd_network", 100.0), ("level_sd_network_week", 40.0),
+                      ("level_sd_flight", 50.0), ("level_sd_week", 80.0)):
+        assert r[col] == pytest.approx(want, rel=1e-9), col
+    assert r["level_sd"] == pytest.approx(np.sqrt(20_900.0), rel=1e-9)
+    z = stats.norm.ppf(0.90)
+    assert r["q90_impressions"] == pytest.approx(1000.0 + z * np.sqrt(110_900.0), rel=1e-6)
+    assert r["q10_impressions"] == pytest.approx(1000.0 - z * np.sqrt(110_900.0), rel=1e-6)
+
+
+def test_the_fitted_forecast_written_by_the_job_keeps_the_law_width(small_scenario, scenario_copy, monkeypatch):
+    """Fault caught: level sds scaled after the fit, on the way from the forecaster to the table
+    the forecast job writes (`planner.forecast_job.fit_forecast`), e.g. x 0.8 with the
+    quantiles recomputed.
+
+    The forecaster's `fit` is replaced by a stand-in that sets a known state (every unit rating
+    0.01, airing cv 0.30, the `_KnownLaw` relative sds); the written table must give each level
+    loading as that relative sd x mean_impressions (DEVELOPERS.md, "Forecast table") and the
+    total level sd as sqrt(0.0209) x mean (hand-worked: 0.02^2 + 0.10^2 + 0.04^2 + 0.05^2 + 0.08^2)."""
+    from forecasting.pipeline import DaypartForecaster
+    from planner.forecast_job import fit_forecast
+    from planner.scenario import load_scenario
+
+    def fit(self, cube, info, dayparts, plan_start, weeks, progress=None, universes=None):
+        S = len(info)
+        self.info_ = info.reset_index(drop=True)
+        self.dayparts_ = list(dayparts)
+        self.airing_cv_ = np.full((S, len(self.dayparts_)), 0.30)
+        self.universe_s_ = np.full(S, 100_000.0)
+        self.plan_mean_ = np.full((S, len(self.dayparts_), int(weeks)), 0.01)
+        self.history_weeks_ = np.full(S, 60.0)
+        self.level_ = _KnownLaw()
+        return self
+
+    monkeypatch.setattr(DaypartForecaster, "fit", fit)
+    monkeypatch.setattr(DaypartForecaster, "summary", lambda self: {})
+    folder = scenario_copy(small_scenario)
+    t = fit_forecast(load_scenario(folder)).table
+    assert len(t) > 0
+    mu = t["mean_impressions"].to_numpy()
+    for col, rel in _KnownLaw.REL.items():
+        np.testing.assert_allclose(t[col.replace("rel_sd_", "level_sd_")], rel * mu, rtol=1e-6, err_msg=col)
+    np.testing.assert_allclose(t["level_sd"], np.sqrt(0.0209) * mu, rtol=1e-6)
+    z = stats.norm.ppf(0.90)
+    np.testing.assert_allclose(t["q90_impressions"], mu + z * np.sqrt(0.0209 + 0.09) * mu, rtol=1e-6)
