@@ -222,7 +222,8 @@ class _KnownForecaster:
         return {}
 
 
-def test_backtest_scores_a_known_forecast_against_hand_worked_bias_coverage_and_crps():
+@pytest.mark.parametrize("scale", [1.0, 1.2])
+def test_backtest_scores_a_known_forecast_against_hand_worked_bias_coverage_and_crps(scale):
     """Fault caught: the backtest scoring a model other than the one fitted (its mean x 1.2:
     bias, coverage and CRPS all wrong), and any slip in the bias/coverage/CRPS definitions.
 
@@ -232,7 +233,9 @@ def test_backtest_scores_a_known_forecast_against_hand_worked_bias_coverage_and_
     bias = sum actual / sum forecast - 1 = 0.090 / 0.100 - 1 = -0.10; z-scores +0.5 and -2.0,
     so the 50%, 80% and 95% central intervals (z 0.674, 1.282, 1.960, scipy) each hold half of
     the unit-weeks; CRPS per row by numerical integration of (F(x) - 1{x >= y})^2 (scipy quad;
-    definition of Gneiting & Raftery 2007, eq. 20), not the closed form the code uses."""
+    definition of Gneiting & Raftery 2007, eq. 20), not the closed form the code uses.
+    With the forecast 20% high (scale 1.2, sd 0.10 of the scaled mean) the bias is
+    0.090 / 0.120 - 1 = -0.25 and z-scores -1.25 and -3.33: coverage 0, 0.5, 0.5."""
     from scipy.integrate import quad
 
     from forecasting.backtest import run_backtest
@@ -252,14 +255,16 @@ def test_backtest_scores_a_known_forecast_against_hand_worked_bias_coverage_and_
     prime = SimpleNamespace(name="prime", days=tuple(range(7)), quarter_hours=tuple(range(80, 88)))
     universes = pd.DataFrame({"zone": ["z1", "z2"], "demo": ["p18+"] * 2, "universe": [1000.0, 1000.0]})
     res = run_backtest(cube, info, [prime], universes, holdout_weeks=W, gap_days=0,
-                       forecaster=_KnownForecaster(base))
+                       forecaster=_KnownForecaster(scale * base))
     s = res.summary
     assert s["units"] == 4 * W
-    assert s["bias"] == pytest.approx(0.09 / 0.10 - 1, abs=1e-6)
-    # z = +0.5 lies inside the 50% interval (0.5 < 0.674), z = -2.0 outside the 95% one (1.960 < 2)
-    assert 0.5 < stats.norm.ppf(0.75) and stats.norm.ppf(0.975) < 2.0
-    for lv in ("0.5", "0.8", "0.95"):
-        assert s["coverage"][lv] == pytest.approx(0.5), lv
+    assert s["bias"] == pytest.approx(0.09 / (0.10 * scale) - 1, abs=1e-6)
+    z = (f - scale) / (0.10 * scale)  # per series, in sds of the forecast
+    want_cov = {"0.5": (0.5, 0.0), "0.8": (0.5, 0.5), "0.95": (0.5, 0.5)}
+    for lv, (at1, at12) in want_cov.items():
+        # hand-worked above; checked against scipy's quantiles
+        assert np.mean(np.abs(z) <= stats.norm.ppf(0.5 + float(lv) / 2)) == (at1 if scale == 1.0 else at12)
+        assert s["coverage"][lv] == pytest.approx(at1 if scale == 1.0 else at12), lv
 
     def crps(y, mu, sd):
         F = lambda x: stats.norm.cdf(x, mu, sd)  # noqa: E731
@@ -268,8 +273,8 @@ def test_backtest_scores_a_known_forecast_against_hand_worked_bias_coverage_and_
         b = quad(lambda x: (1 - F(x)) ** 2, y, hi, limit=200)[0]
         return a + b
 
-    mu = base * 1000
-    want = np.mean([crps(y, m, 0.1 * m) for y, m in zip(mu * f, mu)])
+    mu = scale * base * 1000
+    want = np.mean([crps(y, m, 0.1 * m) for y, m in zip(base * f * 1000, mu)])
     assert s["crps"] == pytest.approx(want, rel=1e-4)
 
 
