@@ -109,7 +109,7 @@ def test_rebalance_chances_before_and_after_match_a_monte_carlo_of_the_error_law
     Reference: a Monte Carlo (200,000 draws; standard error stated, at most 0.0012) of the error
     model of DEVELOPERS.md on the updated forecast, the held remaining spots (before) and the
     re-plan's spots (after). The code's normal approximation may differ from the exact law by
-    a little (skew of the preemption draw): tolerance 0.03 + 4 SE."""
+    a little (skew of the preemption draw; 0.0007 seen here): tolerance 0.01 + 4 SE."""
     scn, fc = _committed(tmp_path, [("alpha", 0.20, 0.95, 22.0)])
     holds = bk.get_deal(scn, "alpha").holds
     acts = _actuals(holds, fc, range(1, 5), 0.8)
@@ -118,10 +118,10 @@ def test_rebalance_chances_before_and_after_match_a_monte_carlo_of_the_error_law
     u = _units_of(held, r.forecast, scn.inventory)
     p_mc, se = _mc_probability(u, u["spots"].to_numpy(), r.remaining_guarantee, 200_000, seed=5)
     assert 0.02 < p_mc < 0.9, "the case must make the chance before informative"
-    assert r.probability_before == pytest.approx(p_mc, abs=0.03 + 4 * se)
+    assert r.probability_before == pytest.approx(p_mc, abs=0.01 + 4 * se)
     u2 = _units_of(r.plan, r.forecast, scn.inventory)
     p2, se2 = _mc_probability(u2, u2["spots"].to_numpy(), r.remaining_guarantee, 200_000, seed=6)
-    assert r.probability_after == pytest.approx(p2, abs=0.03 + 4 * se2)
+    assert r.probability_after == pytest.approx(p2, abs=0.01 + 4 * se2)
 
 
 # --------------------------------------------------------------------------- report tables
