@@ -55,11 +55,8 @@ from typing import Sequence
 
 import numpy as np
 import pandas as pd
-import pyarrow as pa
-import pyarrow.parquet as pq
 
-from planner.atomic import atomic_path
-from scenarios.generate import HISTORY_SCHEMA, METADATA_KEY, QH
+from scenarios.generate import QH, write_history_parquet
 
 DRIFT_VERSION = "1"
 _HOURS = (np.arange(QH) + 0.5) / 4.0  # centre of each quarter-hour, hours from midnight
@@ -394,42 +391,13 @@ def drift_digest(spec: DriftSpec) -> str:
     return "drift-" + hashlib.sha1(text.encode()).hexdigest()[:16]
 
 
-def _strings(names: Sequence[str], idx: np.ndarray) -> pa.Array:
-    return pa.DictionaryArray.from_arrays(pa.array(idx.astype(np.int32)), pa.array(list(names))).cast(pa.string())
-
-
 def write_drift_history(spec: DriftSpec, path: str | Path) -> Path:
-    """Simulate `spec` and write its history days (start..end, gaps applied) to Parquet at `path`.
-
-    The data contract's history columns with the dtypes of `scenarios.generate` (zone, network,
-    demo string, date date32, quarter_hour int16, rating float32), rows ordered by zone, network,
-    demo, date, quarter-hour; the schema metadata carries `drift_digest(spec)`. Written atomically,
-    one zone at a time.
-    """
-    path = Path(path)
-    sim = DriftSim(spec)
-    n_net, n_dem, H = len(spec.networks), len(spec.demos), spec.history_days
-    net_i = np.repeat(np.arange(n_net), n_dem * H * QH)
-    dem_i = np.tile(np.repeat(np.arange(n_dem), H * QH), n_net)
-    day_i = np.tile(np.repeat(np.arange(H), QH), n_net * n_dem)
-    qh_i = np.tile(np.arange(QH, dtype=np.int16), n_net * n_dem * H)
-    day0 = int((np.datetime64(spec.start, "D") - np.datetime64("1970-01-01", "D")).astype(np.int64))
-    schema = HISTORY_SCHEMA.with_metadata({METADATA_KEY: drift_digest(spec).encode()})
-    with atomic_path(path) as tmp:
-        with pq.ParquetWriter(tmp, schema, compression="zstd") as writer:
-            for zi, zone in enumerate(spec.zones):
-                ratings = sim.zone(zi)[:, :, :H, :].reshape(-1)
-                keep = sim.history_mask(zi).reshape(-1)
-                n = int(keep.sum())
-                writer.write_table(pa.table({
-                    "zone": _strings([zone], np.zeros(n, dtype=np.int32)),
-                    "network": _strings(spec.networks, net_i[keep]),
-                    "demo": _strings(spec.demos, dem_i[keep]),
-                    "date": pa.array((day0 + day_i[keep]).astype(np.int32), type=pa.int32()).cast(pa.date32()),
-                    "quarter_hour": pa.array(qh_i[keep]),
-                    "rating": pa.array(ratings[keep]),
-                }, schema=schema), row_group_size=1 << 20)
-    return path
+    """Simulate `spec` and write its history days (start..end, gaps applied) to Parquet at `path`
+    (`scenarios.generate.write_history_parquet`: the contract's columns and dtypes, rows ordered by
+    zone, network, demo, date, quarter-hour, the schema metadata carrying `drift_digest(spec)`;
+    atomic, one zone at a time)."""
+    return write_history_parquet(path, DriftSim(spec), zones=spec.zones, networks=spec.networks, demos=spec.demos,
+                                 start=spec.start, days=spec.history_days, digest=drift_digest(spec))
 
 
 def drift_spec_from_scenario(scenario) -> DriftSpec:

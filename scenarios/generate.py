@@ -308,28 +308,40 @@ HISTORY_SCHEMA = pa.schema([
 
 def write_spec(spec: HistorySpec, path: str | Path) -> Path:
     """Simulate `spec` and write its history (start..end) to Parquet at `path` atomically."""
+    return write_history_parquet(path, _Sim(spec), zones=spec.zones, networks=spec.networks, demos=spec.demos,
+                                 start=spec.start, days=spec.history_days, digest=spec_digest(spec))
+
+
+def write_history_parquet(path: str | Path, sim, *, zones: Sequence[str], networks: Sequence[str],
+                          demos: Sequence[str], start, days: int, digest: str) -> Path:
+    """Write a simulation's history days to Parquet at `path` atomically, one zone at a time.
+
+    `sim` gives ``zone(zi)`` (ratings, (networks, demos, >= days, 96)) and ``history_mask(zi)``
+    (bool, (networks, demos, days, 96): the cells the history holds). The data contract's columns
+    (zone, network, demo string, date date32, quarter_hour int16, rating float32), rows in zone,
+    network, demo, date, quarter-hour order; the schema metadata carries `digest`.
+    """
     from planner.atomic import atomic_path
 
     path = Path(path)
-    sim = _Sim(spec)
-    n_net, n_dem, days = len(spec.networks), len(spec.demos), spec.history_days
+    n_net, n_dem = len(networks), len(demos)
     # Index grids for one zone in (network, demo, day, qh) C order.
     net_i = np.repeat(np.arange(n_net), n_dem * days * QH)
     dem_i = np.tile(np.repeat(np.arange(n_dem), days * QH), n_net)
     day_i = np.tile(np.repeat(np.arange(days), QH), n_net * n_dem)
     qh_i = np.tile(np.arange(QH, dtype=np.int16), n_net * n_dem * days)
-    day0 = (np.datetime64(spec.start, "D") - np.datetime64("1970-01-01", "D")).astype(int)
+    day0 = (np.datetime64(start, "D") - np.datetime64("1970-01-01", "D")).astype(int)
     with atomic_path(path) as tmp:
-        schema = HISTORY_SCHEMA.with_metadata({METADATA_KEY: spec_digest(spec).encode()})
+        schema = HISTORY_SCHEMA.with_metadata({METADATA_KEY: digest.encode()})
         with pq.ParquetWriter(tmp, schema, compression="zstd") as writer:
-            for zi, zone in enumerate(spec.zones):
+            for zi, zone in enumerate(zones):
                 ratings = sim.zone(zi)[:, :, :days, :].reshape(-1)
                 keep = sim.history_mask(zi).reshape(-1)
                 n = int(keep.sum())
                 table = pa.table({
                     "zone": _dict_column([zone], np.zeros(n, dtype=np.int32)),
-                    "network": _dict_column(spec.networks, net_i[keep]),
-                    "demo": _dict_column(spec.demos, dem_i[keep]),
+                    "network": _dict_column(networks, net_i[keep]),
+                    "demo": _dict_column(demos, dem_i[keep]),
                     "date": pa.array((day0 + day_i[keep]).astype(np.int32), type=pa.int32()).cast(pa.date32()),
                     "quarter_hour": pa.array(qh_i[keep]),
                     "rating": pa.array(ratings[keep]),
