@@ -44,7 +44,7 @@ from forecasting.dayparts import as_specs  # noqa: E402
 from forecasting.scoring import total_bias_sd  # noqa: E402
 from forecasting.uncertainty import COMPONENT_KEYS, factor_components  # noqa: E402
 from planner.forecast_job import ensure_forecast, load_history_cube, load_model  # noqa: E402
-from planner.hindcast import SHARED_COLUMNS, replay_deals, summarise  # noqa: E402
+from planner.hindcast import replay_deals, scale_shared_factors, summarise  # noqa: E402
 from planner.scenario import load_scenario  # noqa: E402
 from scenarios.worlds import make_world, world_truth_levels  # noqa: E402
 
@@ -111,10 +111,7 @@ def run_world(family: str, seed: int, size: str, lead: int, work: Path, apply: b
     table = res.table
     scale = float(replay.summary.get("scale_to_apply", 1.0)) if apply and len(replay.deals) else 1.0
     if scale != 1.0:  # what `pledge forecast hindcast --apply` (and pledge demo) do to the table
-        table = table.copy()
-        for col in SHARED_COLUMNS:
-            table[col] = table[col] * scale
-        table["level_sd"] = np.sqrt(sum(table[c] ** 2 for c in table.columns if c.startswith("level_sd_")))
+        table = scale_shared_factors(table, scale)
     scores = plan_week_scores(sc, table, model)
     deals = replay.deals.assign(family=family, seed=seed, origin=lambda d: f"{family}-{seed}-" + d["origin"])
     fit = res.meta["fit"]

@@ -225,11 +225,11 @@ class LevelRegression:
         """Mean ratings (S, P, n_weeks) of the weeks `gap_weeks` after the end of `grid`."""
         means, counts = grid
         S, P, n = means.shape
+        if self.n_rows_ == 0:  # too short a history to learn from: no forecast (weight 0 when stacked)
+            return np.full((S, P, n_weeks), np.nan)
         logm = np.log(np.maximum(means, LOG_FLOOR))
         feats, l8 = self._features_at(logm, counts, means, n, gap_weeks, n_weeks, n)
         base = np.where(np.isfinite(l8), np.exp(l8), np.nan)[:, :, None]
-        if self.n_rows_ == 0:  # too short a history to learn from: no forecast (weight 0 when stacked)
-            return np.full((S, P, n_weeks), np.nan)
         s, p, w = (a.ravel() for a in np.meshgrid(np.arange(S), np.arange(P), np.arange(n_weeks), indexing="ij"))
         pred = self.model_.predict(self._design(feats, s, p, w)).reshape(S, P, n_weeks)
         return base * np.exp(pred) * self.smear_

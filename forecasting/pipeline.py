@@ -19,7 +19,7 @@ Tashman (2000), rolling-origin evaluation; Gneiting & Raftery (2007), calibratio
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Callable, Sequence
 
 import numpy as np
@@ -46,6 +46,19 @@ CANDIDATES = (PROFILE,) + SIMPLE_CANDIDATES
 SEASONAL_PRIOR = {PROFILE: 0.5, "last_year_scaled": 0.5}
 YEAR_DAYS = 364
 Z90 = norm.ppf(0.90)  # 1.2816 (NIST/SEMATECH table: z(0.90) = 1.2816)
+
+
+def with_level_bands(table: pd.DataFrame) -> pd.DataFrame:
+    """`table` (forecast-table columns) with ``level_sd`` = sqrt(sum of the ``level_sd_*`` loadings
+    squared) and the 10% / 90% quantiles of one spot, ``mean -+ z(0.90) sqrt(level_sd^2 +
+    airing_sd^2)`` (the 10% one floored at 0), all in impressions; columns set in place."""
+    level_cols = [c for c in table.columns if c.startswith("level_sd_")]
+    table["level_sd"] = np.sqrt(sum(table[c] ** 2 for c in level_cols))
+    spot_sd = np.sqrt(table["level_sd"] ** 2 + table["airing_sd"] ** 2)
+    mu = table["mean_impressions"]
+    table["q10_impressions"] = np.maximum(mu - Z90 * spot_sd, 0.0)
+    table["q90_impressions"] = mu + Z90 * spot_sd
+    return table
 
 
 def _noop(message: str, fraction: float) -> None:
@@ -444,8 +457,8 @@ class DaypartForecaster:
         self.combiner_ = self._fit_combiner(folds, dayparts)
         errors, base_errors = self._errors_frame(folds, self.info_, dayparts)
         self.heldout_errors_ = errors
-        self.fold_results_ = [FoldResult(f.origin, f.actual, f.counts, f.forecast, {}, f.truncated, f.history_weeks,
-                                         f.recent, {}, f.combined) for f in folds]
+        # what a hindcast needs of each refit (heldout_table), without the bulky candidate arrays
+        self.fold_results_ = [replace(f, baselines={}, candidates={}) for f in folds]
         self.level_ = LevelErrorModel().fit(errors)
         self.calibration_ = self._calibration(errors)
         shift = self.shift_to_cover(self.calibration_.get("leave_one_fold_out_total") or {}, len(origins))
@@ -586,10 +599,7 @@ class DaypartForecaster:
         level_cols = [col.replace("rel_sd_", "level_sd_") for col, _ in COMPONENT_KEYS]
         for col, level_col in zip((c for c, _ in COMPONENT_KEYS), level_cols):
             t[level_col] = sd[col].to_numpy() * mu
-        t["level_sd"] = np.sqrt(sum(t[c] ** 2 for c in level_cols))
-        spot_sd = np.sqrt(t["level_sd"] ** 2 + t["airing_sd"] ** 2)
-        t["q10_impressions"] = np.maximum(mu - Z90 * spot_sd, 0.0)
-        t["q90_impressions"] = mu + Z90 * spot_sd
+        t = with_level_bands(t)
         if units is not None:
             keys = units[["zone", "network", "daypart", "week"]].drop_duplicates().copy()
             keys["week"] = keys["week"].astype(np.int64)

@@ -214,8 +214,8 @@ class StackedCombiner:
         stack = np.stack([np.asarray(forecasts[c], float) for c in self.candidates], axis=0)  # (K, S, P, ...)
         shape = [1] * stack.ndim
         shape[0], shape[2] = len(self.candidates), len(dayparts)
-        w = self._table(self.weights_, dayparts).T.reshape(shape)
-        b = self._table(self.ratio_, dayparts).T.reshape(shape)
+        w = self._table(self.weights_, dayparts, self.pooled_weights_.to_numpy()).T.reshape(shape)
+        b = self._table(self.ratio_, dayparts, 1.0).T.reshape(shape)
         ok = np.isfinite(stack) & (stack > 0)
         wk = np.where(ok, w, 0.0)
         total = wk.sum(axis=0)
@@ -223,15 +223,12 @@ class StackedCombiner:
             out = (np.where(ok, stack * b, 0.0) * wk).sum(axis=0) / total
         return np.where(total > 0, out, np.nan)
 
-    def _table(self, frame: pd.DataFrame, dayparts: Sequence[str]) -> np.ndarray:
-        """(P, K) values of `frame` for `dayparts`; a daypart never seen gets the pooled weights and
-        ratio 1."""
+    def _table(self, frame: pd.DataFrame, dayparts: Sequence[str], unseen) -> np.ndarray:
+        """(P, K) rows of `frame` for `dayparts`; `unseen` (a (K,) row or a number) for a daypart
+        the fit never saw."""
         out = np.empty((len(dayparts), len(self.candidates)))
         for i, dp in enumerate(dayparts):
-            if dp in frame.index:
-                out[i] = frame.loc[dp, list(self.candidates)].to_numpy(float)
-            else:
-                out[i] = self.pooled_weights_.to_numpy() if frame is self.weights_ else 1.0
+            out[i] = frame.loc[dp, list(self.candidates)].to_numpy(float) if dp in frame.index else unseen
         return out
 
     def summary(self) -> dict:

@@ -37,6 +37,7 @@ import numpy as np
 import pandas as pd
 from scipy.stats import norm
 
+from forecasting.pipeline import with_level_bands
 from planner import allocate as al
 from planner.atomic import write_text_atomic, write_with_atomic
 from planner.deals import rules_of
@@ -232,6 +233,16 @@ HINDCAST_FILE = "hindcast.json"
 SHARED_COLUMNS = ("level_sd_common", "level_sd_network", "level_sd_network_week", "level_sd_flight")
 
 
+def scale_shared_factors(table: pd.DataFrame, factor: float) -> pd.DataFrame:
+    """A copy of forecast `table` with its shared level sds (`SHARED_COLUMNS`) times `factor` and
+    ``level_sd`` and the spot quantiles recomputed (`forecasting.pipeline.with_level_bands`)."""
+    table = table.copy()
+    for col in SHARED_COLUMNS:
+        if col in table:
+            table[col] = table[col] * factor
+    return with_level_bands(table)
+
+
 def hindcast_scenario(scenario, *, seed: int = 0, solver: str = "highs", apply: bool = False,
                       progress: Progress | None = None) -> dict:
     """Replay deals on the scenario's fitted forecast (fitted now when missing or stale) and write
@@ -250,17 +261,7 @@ def hindcast_scenario(scenario, *, seed: int = 0, solver: str = "highs", apply: 
     if apply and summary.get("deals"):
         applied = float(summary["scale_to_apply"])
         previous = float(res.meta.get("hindcast_scale", 1.0))
-        factor = applied / previous
-        table = res.table.copy()
-        for col in SHARED_COLUMNS:
-            if col in table:
-                table[col] = table[col] * factor
-        level_cols = [c for c in table.columns if c.startswith("level_sd_")]
-        table["level_sd"] = np.sqrt(sum(table[c] ** 2 for c in level_cols))
-        spot = np.sqrt(table["level_sd"] ** 2 + table["airing_sd"] ** 2)
-        mu = table["mean_impressions"]
-        table["q10_impressions"] = np.maximum(mu - norm.ppf(0.9) * spot, 0.0)
-        table["q90_impressions"] = mu + norm.ppf(0.9) * spot
+        table = scale_shared_factors(res.table, applied / previous)
         folder = forecast_dir(scenario)
         write_with_atomic(folder / TABLE_FILE, lambda p: table.to_parquet(p, index=False))
         meta = dict(res.meta, hindcast_scale=applied)
