@@ -115,11 +115,11 @@ def replay_deals(scenario, forecaster, *, fractions: Sequence[float] = FRACTIONS
         table = forecaster.heldout_table(j, scenario.universes, units=scenario.inventory)
         rng = np.random.default_rng([seed, 606, j])
         for deal in templates:
+            mix = deal.mix  # the variants differ in their risk margin only: one scope serves them all
+            scope = al.candidate_units(_units(scenario, table, deal), weeks=deal.weeks,
+                                       exclude_networks=mix.exclude_networks, exclude_zones=mix.exclude_zones,
+                                       max_spots_per_unit=mix.max_spots_per_unit)
             for variant in _variants(deal, confidences):
-                mix = variant.mix
-                scope = al.candidate_units(_units(scenario, table, variant), weeks=variant.weeks,
-                                           exclude_networks=mix.exclude_networks, exclude_zones=mix.exclude_zones,
-                                           max_spots_per_unit=mix.max_spots_per_unit)
                 cap = al.max_guarantee(al.make_problem(scope, 1.0, rules_of(variant), variant.weeks)).value
                 if not cap or cap <= 0:
                     continue
