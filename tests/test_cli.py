@@ -11,7 +11,9 @@ from __future__ import annotations
 import json
 import re
 import sqlite3
+import sys
 import tomllib
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -19,6 +21,9 @@ import pytest
 from scipy import stats
 
 from planner.cli import main
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from test_faults import _mc_probability  # noqa: E402
 
 UNIT = ["zone", "network", "daypart", "week"]
 DRAWS = 20_000
@@ -98,6 +103,20 @@ def test_check_plan_commit_stress_report_on_a_fitted_scenario(fitted, capsys, tm
     mine = holds[holds["deal"] == "small-comfortable"].drop(columns="deal").sort_values(UNIT).reset_index(drop=True)
     want = plan[UNIT + ["spots"]].sort_values(UNIT).reset_index(drop=True)
     pd.testing.assert_frame_equal(mine, want, check_dtype=False)
+    # the figures committed with it: cost and expected delivery as computed above, and its chance
+    # of delivery against a Monte Carlo of the documented error model written in the tests
+    # (tests/test_faults.py::_mc_probability, 100,000 draws, standard error stated, at most 0.0016;
+    # the code's normal approximation may differ from the exact law by a little: 0.01 + 4 SE)
+    with sqlite3.connect(folder / "book.sqlite") as con:
+        booked = pd.read_sql_query("SELECT name, cost, expected_impressions, probability FROM deals", con)
+    b = booked.set_index("name").loc["small-comfortable"]
+    assert b["cost"] == pytest.approx(check["cost"], rel=1e-9)
+    assert b["expected_impressions"] == pytest.approx(expected, rel=1e-6)
+    fc = pd.read_parquet(folder / "forecast" / "forecast.parquet")
+    units = plan[UNIT + ["spots"]].merge(fc[fc["demo"] == comfy["demo"]], on=UNIT).assign(
+        preempt_rate=tomllib.loads((folder / "scenario.toml").read_text())["preempt_rate"])
+    p_mc, se = _mc_probability(units, units["spots"].to_numpy(), comfy["impressions"], 100_000, seed=1)
+    assert b["probability"] == pytest.approx(p_mc, abs=0.01 + 4 * se)
     both = holds.groupby(UNIT, as_index=False)["spots"].sum().merge(inv, on=UNIT)
     assert (both["spots"] <= both["avails"]).all()  # the second deal was planned around the first
 

@@ -59,13 +59,24 @@ def test_check_comfortable_deal(scn, fc):
     r = deals.check_deal(scn, "small-comfortable", forecast=fc, held=None, target_margin=0.3, solver="highs")
     assert r.deliverable and r.verdict == "deliverable"
     d = scn.deals["small-comfortable"]
-    assert r.revenue == pytest.approx(d.impressions * d.price_cpm / 1000)  # CPM: common practice
-    assert r.margin == pytest.approx(r.revenue - r.cost)
-    assert r.margin_pct == pytest.approx(r.margin / r.revenue)
+    # Reference: the deal file read by hand (tomllib) and the plan's spots costed at inventory.csv's
+    # rates (pandas); revenue = impressions x CPM / 1000 (CPM: cost per thousand, common practice).
+    import tomllib
+
+    raw = tomllib.loads(d.path.read_text())
+    revenue = raw["impressions"] * raw["price_cpm"] / 1000
+    spots = deals.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs").spots
+    inv = pd.read_csv(scn.path / "inventory.csv")
+    cost = float(spots[["zone", "network", "daypart", "week", "spots"]].merge(inv).eval("spots * rate").sum())
+    assert r.revenue == pytest.approx(revenue)
+    assert r.cost == pytest.approx(cost, rel=1e-9)
+    assert r.margin == pytest.approx(revenue - cost)
+    assert r.margin_pct == pytest.approx((revenue - cost) / revenue)
     assert r.probability_of_delivery >= 0.95 - 1e-9
     assert r.probability_if_independent > r.probability_of_delivery
     assert r.max_guarantee >= d.impressions
-    assert r.cpm_needed == pytest.approx(r.cost / (d.impressions / 1000) / 0.7)
+    # the CPM that leaves a 30% margin on revenue: cost / (1 - 0.3) per thousand impressions
+    assert r.cpm_needed == pytest.approx(cost / 0.7 / (raw["impressions"] / 1000))
     assert r.gap <= 0.005 + 1e-9
     js = r.to_json()
     for k in ("deal", "deliverable", "guarantee", "expected_impressions", "probability_of_delivery", "confidence",
