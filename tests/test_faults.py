@@ -66,11 +66,11 @@ def test_rebalance_replans_against_the_other_deals_holds_only(tmp_path):
     assert (use["spots"] + use["beta"].fillna(0) <= use["avails"]).all()
 
 
-def _mc_probability(units: pd.DataFrame, spots: np.ndarray, guarantee: float, draws: int, seed: int):
-    """P(delivered >= guarantee) by Monte Carlo of the contract's error model (DEVELOPERS.md):
+def _mc_totals(units: pd.DataFrame, spots: np.ndarray, draws: int, seed: int) -> np.ndarray:
+    """Delivered totals (draws,) by Monte Carlo of the contract's error model (DEVELOPERS.md):
     per unit, aired ~ Binomial(spots, 1 - preempt); delivered = aired * (mean + level error)
     + sqrt(aired) * airing_sd * eps; level error = sum of loadings x shared standard normals
-    (common, network, network-week, flight, own week). Returns (p, standard error)."""
+    (common, network, network-week, flight, own week)."""
     rng = np.random.default_rng(seed)
     n = len(units)
     mu = units["mean_impressions"].to_numpy(float)
@@ -89,10 +89,16 @@ def _mc_probability(units: pd.DataFrame, spots: np.ndarray, guarantee: float, dr
     shared("level_sd_network_week", ["network", "week"])
     shared("level_sd_flight", ["zone", "network", "daypart"])
     level += rng.standard_normal((draws, n)) * units["level_sd_week"].to_numpy(float)
-    aired = rng.binomial(np.broadcast_to(spots.astype(np.int64), (draws, n)),
+    aired = rng.binomial(np.broadcast_to(np.asarray(spots).astype(np.int64), (draws, n)),
                          1.0 - units["preempt_rate"].to_numpy(float))
     noise = np.sqrt(aired) * units["airing_sd"].to_numpy(float) * rng.standard_normal((draws, n))
-    total = (aired * (mu + level) + noise).sum(axis=1)
+    return (aired * (mu + level) + noise).sum(axis=1)
+
+
+def _mc_probability(units: pd.DataFrame, spots: np.ndarray, guarantee: float, draws: int, seed: int):
+    """P(delivered >= guarantee) by Monte Carlo of the contract's error model (`_mc_totals`).
+    Returns (p, standard error)."""
+    total = _mc_totals(units, spots, draws, seed)
     p = float((total >= guarantee).mean())
     return p, float(np.sqrt(max(p * (1 - p), 1e-12) / draws))
 
