@@ -373,9 +373,9 @@ def test_forecast_table_carries_the_error_law_at_full_width():
 
 
 def test_the_fitted_forecast_written_by_the_job_keeps_the_law_width(small_scenario, scenario_copy, monkeypatch):
-    """Fault caught: level sds scaled after the fit, on the way from the forecaster to the table
+    """Faults caught: level sds scaled after the fit, on the way from the forecaster to the table
     the forecast job writes (`planner.forecast_job.fit_forecast`), e.g. x 0.8 with the
-    quantiles recomputed.
+    quantiles recomputed; every mean, sd and quantile column scaled alike (x 1.2).
 
     The forecaster's `fit` is replaced by a stand-in that sets a known state (every unit rating
     0.01, airing cv 0.30, the `_KnownLaw` relative sds); the written table must give each level
@@ -401,6 +401,12 @@ def test_the_fitted_forecast_written_by_the_job_keeps_the_law_width(small_scenar
     folder = scenario_copy(small_scenario)
     t = fit_forecast(load_scenario(folder)).table
     assert len(t) > 0
+    # the level itself: rating 0.01 of universes.csv's universe (read by pandas), airing cv 0.30
+    m = t.merge(pd.read_csv(folder / "universes.csv"), on=["zone", "demo"], suffixes=("", "_file"))
+    assert len(m) == len(t)
+    np.testing.assert_allclose(m["mean_rating"], 0.01, rtol=1e-9)
+    np.testing.assert_allclose(m["mean_impressions"], 0.01 * m["universe_file"], rtol=1e-9)
+    np.testing.assert_allclose(m["airing_sd"], 0.30 * 0.01 * m["universe_file"], rtol=1e-9)
     mu = t["mean_impressions"].to_numpy()
     for col, rel in _KnownLaw.REL.items():
         np.testing.assert_allclose(t[col.replace("rel_sd_", "level_sd_")], rel * mu, rtol=1e-6, err_msg=col)
