@@ -162,3 +162,19 @@ def test_refit_total_check_flags_misses_beyond_the_law():
     assert out["total_z_p"] == pytest.approx(chi2.sf(36.0, 4))
     # E[bias^2] = bias_sd^2 + var (1 + 1/3): var = (0.0009 - 0.0001) / (4/3)
     assert out["total_excess_sd"] == pytest.approx(np.sqrt(0.0008 * 0.75))
+
+
+def test_widen_common_adds_the_shift_as_a_forecast_and_a_held_out_refit_see_it():
+    """Hand-worked: a shift s shared by every unit, variance v, independent across refits and the
+    plan weeks; the bias correction subtracts the mean of the J refits' shifts. The plan weeks'
+    error then holds s_0 - mean(s_1..s_J): variance v (1 + 1/J); a held-out refit's holds
+    s_j - mean(s_1..s_J): variance v (1 - 1/J). With v = 0.0016 and J = 4: +0.0020 to the
+    forecast's common variance, +0.0012 to the held-out one. Catches a widening without the
+    (1 + 1/J) of the mean correction."""
+    m = LevelErrorModel().fit(_nested_errors(folds=4, seed=1))
+    before, before_heldout = m.var_common_, m.var_common_heldout_
+    m.widen_common(0.0016, 4)
+    assert m.var_common_ - before == pytest.approx(0.0020, rel=1e-12)
+    assert m.var_common_heldout_ - before_heldout == pytest.approx(0.0012, rel=1e-12)
+    sd = m.predict(pd.DataFrame({"daypart": ["day"], "genre": ["news"], "history_weeks": [60.0]}))
+    assert sd["rel_sd_common"][0] == pytest.approx(np.sqrt(before + 0.0020), rel=1e-12)
