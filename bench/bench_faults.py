@@ -26,6 +26,7 @@ import json
 import os
 import re
 import shutil
+import signal
 import subprocess
 import sys
 import tempfile
@@ -237,6 +238,9 @@ def main(argv=None) -> int:
     ap.add_argument("--no-baseline", action="store_true", help="skip the unpatched run")
     ap.add_argument("--list", action="store_true", help="list the faults and where their snippets are")
     args = ap.parse_args(argv)
+    # a terminated bench stops its test run and removes its copy (SystemExit unwinds through
+    # subprocess.run, which kills the child, and through the temporary folder's cleanup)
+    signal.signal(signal.SIGTERM, lambda *_: sys.exit(143))
     faults = chosen(args.only)
     if args.list:
         return list_faults(faults)
