@@ -66,33 +66,36 @@ def test_rebalance_replans_against_the_other_deals_holds_only(tmp_path):
     assert (use["spots"] + use["beta"].fillna(0) <= use["avails"]).all()
 
 
-def _mc_totals(units: pd.DataFrame, spots: np.ndarray, draws: int, seed: int) -> np.ndarray:
+def _mc_totals(units: pd.DataFrame, spots: np.ndarray, draws: int, seed: int, cells: int = 2_000_000) -> np.ndarray:
     """Delivered totals (draws,) by Monte Carlo of the contract's error model (DEVELOPERS.md):
     per unit, aired ~ Binomial(spots, 1 - preempt); delivered = aired * (mean + level error)
     + sqrt(aired) * airing_sd * eps; level error = sum of loadings x shared standard normals
-    (common, network, network-week, flight, own week)."""
+    (common, network, network-week, flight, own week). Units without spots are left out; draws
+    are made in chunks of about `cells` unit-draws."""
+    keep = np.asarray(spots) > 0
+    units, spots = units[keep].reset_index(drop=True), np.asarray(spots)[keep].astype(np.int64)
     rng = np.random.default_rng(seed)
     n = len(units)
-    mu = units["mean_impressions"].to_numpy(float)
-    level = np.zeros((draws, n))
+    col = lambda c: units[c].to_numpy(float) if c in units.columns else np.zeros(n)  # noqa: E731
 
-    def shared(col, keys):
-        if col not in units.columns:
-            return
-        code, uniq = pd.factorize(pd.MultiIndex.from_frame(units[keys]) if len(keys) > 1 else units[keys[0]])
-        z = rng.standard_normal((draws, len(uniq)))
-        level[:] += z[:, code] * units[col].to_numpy(float)
+    def codes(keys):
+        return pd.factorize(pd.MultiIndex.from_frame(units[keys]) if len(keys) > 1 else units[keys[0]])[0]
 
-    if "level_sd_common" in units.columns:
-        level += rng.standard_normal((draws, 1)) * units["level_sd_common"].to_numpy(float)
-    shared("level_sd_network", ["network"])
-    shared("level_sd_network_week", ["network", "week"])
-    shared("level_sd_flight", ["zone", "network", "daypart"])
-    level += rng.standard_normal((draws, n)) * units["level_sd_week"].to_numpy(float)
-    aired = rng.binomial(np.broadcast_to(np.asarray(spots).astype(np.int64), (draws, n)),
-                         1.0 - units["preempt_rate"].to_numpy(float))
-    noise = np.sqrt(aired) * units["airing_sd"].to_numpy(float) * rng.standard_normal((draws, n))
-    return (aired * (mu + level) + noise).sum(axis=1)
+    factors = [(col("level_sd_network"), codes(["network"])), (col("level_sd_network_week"), codes(["network", "week"])),
+               (col("level_sd_flight"), codes(["zone", "network", "daypart"])), (col("level_sd_week"), np.arange(n)),
+               (col("level_sd_common"), np.zeros(n, dtype=np.int64))]
+    mu, sd, keep_p = col("mean_impressions"), col("airing_sd"), 1.0 - col("preempt_rate")
+    out = np.empty(draws)
+    step = max(1, cells // max(n, 1))
+    for start in range(0, draws, step):
+        k = min(step, draws - start)
+        level = np.zeros((k, n))
+        for load, code in factors:
+            level += rng.standard_normal((k, int(code.max()) + 1 if n else 0))[:, code] * load
+        aired = rng.binomial(np.broadcast_to(spots, (k, n)), keep_p)
+        noise = np.sqrt(aired) * sd * rng.standard_normal((k, n))
+        out[start:start + k] = (aired * (mu + level) + noise).sum(axis=1)
+    return out
 
 
 def _mc_probability(units: pd.DataFrame, spots: np.ndarray, guarantee: float, draws: int, seed: int):
