@@ -301,7 +301,7 @@ def _score_block(cube: ProfileCube, info: pd.DataFrame, specs, universes: pd.Dat
     u = df.merge(uni, on=["zone", "demo"], how="left")["universe"].to_numpy(float)
     u = np.where(np.isfinite(u), u, 1.0)
     df["size"] = np.log10(np.maximum(model_mean[s, p, w] * fc.universe_s_[s], 1e-9))
-    rel = fc.level_.predict(df)
+    rel = fc.plan_law().predict(df)
     for col, _ in COMPONENTS:
         df[col] = rel[col].to_numpy(float)
     rel_sd = np.sqrt(sum(df[col].to_numpy() ** 2 for col, _ in COMPONENTS))

@@ -206,6 +206,9 @@ class _KnownForecaster:
     def combine_plan(self, raw):
         return raw
 
+    def plan_law(self):
+        return self
+
     def level_factor(self, recent, law=None):
         return 1.0
 
@@ -352,6 +355,7 @@ def test_forecast_table_carries_the_error_law_at_full_width():
     fc.plan_mean_ = np.full((1, 1, 2), 0.01)
     fc.history_weeks_ = np.array([60.0])
     fc.level_ = _KnownLaw()
+    fc.plan_law = lambda: fc.level_  # carrying the law to the plan's candidates: test_forecast_uncertainty
     t = fc.forecast_table(pd.DataFrame({"zone": ["z1"], "demo": ["p18+"], "universe": [100_000.0]}))
     assert len(t) == 2
     r = t.iloc[0]
@@ -392,6 +396,7 @@ def test_the_fitted_forecast_written_by_the_job_keeps_the_law_width(small_scenar
 
     monkeypatch.setattr(DaypartForecaster, "fit", fit)
     monkeypatch.setattr(DaypartForecaster, "summary", lambda self: {})
+    monkeypatch.setattr(DaypartForecaster, "plan_law", lambda self: self.level_)
     folder = scenario_copy(small_scenario)
     t = fit_forecast(load_scenario(folder)).table
     assert len(t) > 0

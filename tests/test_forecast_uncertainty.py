@@ -162,3 +162,26 @@ def test_refit_total_check_flags_misses_beyond_the_law():
     assert out["total_z_p"] == pytest.approx(chi2.sf(36.0, 4))
     # E[bias^2] = bias_sd^2 + var (1 + 1/3): var = (0.0009 - 0.0001) / (4/3)
     assert out["total_excess_sd"] == pytest.approx(np.sqrt(0.0008 * 0.75))
+
+
+def test_daypart_scale_and_common_floor_of_the_plan_law():
+    """`with_daypart_scale` multiplies every relative sd but the common one of a daypart's units and
+    leaves the others;
+    `with_common_floor` then raises the common sd to at least the floor (max, not sum); both return
+    copies. Hand-worked on a law fitted to nested errors (its own sds as the unscaled reference).
+    Catches a scale applied to the wrong daypart or component, a floor added instead of maxed, or
+    a fitted law changed in place."""
+    law = LevelErrorModel().fit(_nested_errors(seed=3))
+    units = pd.DataFrame({"daypart": ["day", "prime"], "genre": ["news", "news"], "history_weeks": [60.0, 60.0]})
+    base = law.predict(units)
+    cols = ["rel_sd_network", "rel_sd_network_week", "rel_sd_flight", "rel_sd_week"]
+    half = law.with_daypart_scale({"day": 0.5}).predict(units)
+    np.testing.assert_allclose(half.loc[0, cols].to_numpy(float), 0.5 * base.loc[0, cols].to_numpy(float))
+    np.testing.assert_allclose(half.loc[1, cols].to_numpy(float), base.loc[1, cols].to_numpy(float))
+    floor_sd = 0.04
+    floored = law.with_daypart_scale({"day": 0.5}).with_common_floor(floor_sd ** 2).predict(units)
+    c = float(base.loc[0, "rel_sd_common"])
+    assert half.loc[0, "rel_sd_common"] == pytest.approx(c)  # one fraction of every unit's mean (contract)
+    assert floored.loc[0, "rel_sd_common"] == pytest.approx(max(c, floor_sd))
+    assert floored.loc[1, "rel_sd_common"] == pytest.approx(max(c, floor_sd))
+    pd.testing.assert_frame_equal(law.predict(units), base)  # the fitted law is unchanged

@@ -108,6 +108,15 @@ def fit_cmd(
                               "within it; every chance of delivery includes it")
         if caution:
             out_console.print(f"[yellow]caution: {caution}[/yellow]")
+    scale = le.get("sd_scale_by_daypart") or {}
+    if scale and max(abs(v - 1.0) for v in scale.values()) > 0.01:
+        out_console.print("error law carried from the refits' candidates to the plan weeks' (where a candidate could "
+                          "not forecast in a refit, its combination erred differently): sds x "
+                          + ", ".join(f"{k} {v:.2f}" for k, v in scale.items()))
+    floor = float(le.get("common_floor_sd") or 0.0)
+    if floor > 0 and floor >= float(le.get("rel_sd_common") or 0.0) - 1e-12:
+        out_console.print(f"the candidate forecasts disagree about the plan weeks' total by an sd of {floor:.1%}: the "
+                          "shift shared by all units is at least that, and every chance of delivery includes it")
     out_console.print(CAUTION)
 
 
