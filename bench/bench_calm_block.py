@@ -153,10 +153,9 @@ def main() -> None:
     ap.add_argument("--json", action="store_true")
     args = ap.parse_args()
 
-    from planner.scenario import load_scenario
-    from scenarios.generate import demo_path
+    from scenarios.folders import demo_path, ensure_history
 
-    scenario = load_scenario(demo_path())
+    scenario = ensure_history(demo_path())
     g = scenario.history_generator
     gap = (pd.Timestamp(scenario.first_week) - pd.Timestamp(g["end"])).days - 1
     out = {"lead_gap_days": gap, "truth": truth_part(scenario, gap, args.seeds)}

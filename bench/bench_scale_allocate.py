@@ -82,11 +82,12 @@ def step_allocate(args) -> None:
 
     from planner import allocate as al
     from planner.book import held_spots
-    from planner.deals import check_deal, deal_units, rules_of
+    from planner.deals import deal_units, rules_of
+    from planner.workflows import check_deal
     from planner.scenario import load_scenario
 
     t0 = time.perf_counter()
-    scenario = load_scenario(args.large, generate=False)
+    scenario = load_scenario(args.large)
     forecast = pd.read_parquet(Path(args.large) / "forecast" / "forecast.parquet")
     held = held_spots(scenario)
     load_s = time.perf_counter() - t0

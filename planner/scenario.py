@@ -7,9 +7,10 @@ core) and `load_history(scenario)` reads them. Every problem is reported as a
 not counted) or key, and what is wrong; several problems are collected where that is cheap.
 
 Addition to the data contract: `scenario.toml` may carry a `[history_generator]` table
-(`seed`, `start`, `end`, optional `short_history`, ...). When `history.parquet` and `history.csv`
-are both missing and that table is present, the loader generates `history.parquet` on first use
-and caches it in the folder. Its optional `family` names the generator: "profile" (the default,
+(`seed`, `start`, `end`, optional `short_history`, ...). The loader checks the table and accepts a
+folder whose history is missing when it is present; it never generates: whoever opens a folder
+for work (`planner.workflows.open_scenario`, `scenarios.families.ensure_history`) makes the
+missing history first. Its optional `family` names the generator: "profile" (the default,
 `scenarios.generate`) or "drift" (`scenarios.drift`, with its knobs); dispatch in
 `scenarios.families`.
 
@@ -599,10 +600,12 @@ def _parse_mix(f: str, raw: Any, *, zones, networks, dayparts, problems: _Proble
 
 # ----------------------------------------------------------------------------- the loader
 
-def load_scenario(path: str | Path, *, generate: bool = True, allow_empty_inventory: bool = False) -> Scenario:
+def load_scenario(path: str | Path, *, allow_empty_inventory: bool = False) -> Scenario:
     """Load and validate the scenario folder at `path` (all files except the history rows).
 
-    With `generate` (default) a missing history is generated from `[history_generator]`.
+    A missing history is accepted when `[history_generator]` can make it (the scenario's
+    `history_path` is then the `history.parquet` to come; `scenarios.families.ensure_history`
+    writes it); the loader never generates.
     `allow_empty_inventory` accepts an inventory.csv with no rows (the demo builder's placeholder,
     written before the real inventory is computed); otherwise it is a problem.
     Raises `ScenarioError` naming the file, row or key and what is wrong.
@@ -762,18 +765,9 @@ def load_scenario(path: str | Path, *, generate: bool = True, allow_empty_invent
                         preempt_rate=float(preempt), dayparts=dayparts, zones=zones_df, universes=universes,
                         networks=networks_df, inventory=inventory, deals=deals, demos=demos,
                         history_path=history_path, history_generator=generator)
-    if generate and generator is not None and history_path == hp and hp.is_file() and _stale(hp, scenario):
-        hp.unlink(missing_ok=True)  # made by the generator from other settings: make it again
-    if not _history_exists(history_path):
-        if generator is None:
-            raise ScenarioError("history.parquet: file is missing (no history.csv, and scenario.toml has no "
-                                "[history_generator] table to make one)")
-        if generate:
-            from planner.cli.common import info
-            from scenarios.families import write_scenario_history
-
-            info(f"{folder.name}: generating the invented history into history.parquet (first use, seconds) ...")
-            write_scenario_history(scenario, hp)
+    if not _history_exists(history_path) and generator is None:
+        raise ScenarioError("history.parquet: file is missing (no history.csv, and scenario.toml has no "
+                            "[history_generator] table to make one)")
     if _history_exists(history_path):
         _check_history_columns(history_path)
     return scenario
@@ -797,21 +791,6 @@ def _check_drift_calendar(g: dict, first_week: date, networks: Sequence[str], pr
         if day > g["end"]:
             problems.add(f"{f}: launch_months {months} puts the launch of {launch} on {day}, after the history's "
                          f"end {g['end']} (the network would have no history)")
-
-
-def _stale(path: Path, scenario: Scenario) -> bool:
-    """True when `path` was written by the generator from settings other than the scenario's."""
-    import pyarrow.parquet as pq
-
-    from scenarios.families import history_digest
-    from scenarios.generate import METADATA_KEY
-
-    try:
-        meta = pq.read_schema(path).metadata or {}
-    except Exception:  # noqa: BLE001 - unreadable: the column check reports it
-        return False
-    made = meta.get(METADATA_KEY)
-    return made is not None and made.decode() != history_digest(scenario)
 
 
 def _history_parts(path: Path) -> list[Path]:

@@ -49,8 +49,10 @@ import pandas as pd
 from scipy import sparse
 from scipy.special import ndtr
 
+from planner.book import over_avails_warning
 from planner.delivery import FLIGHT_KEY, OPTIONAL_LEVEL_COLS, UNIT_KEY, DeliveryModel, common_sd, network_week_sd
 from planner.errors import InputError
+from planner.posterior import fold_actuals
 
 ALPHA = 0.95
 #: Monte Carlo draws of every stress of the book unless asked otherwise (pledge stress, report,
@@ -675,7 +677,7 @@ def fold_rebalanced(deals: Sequence[Any], units: pd.DataFrame,
     returned by `book_units` (one per deal x held unit, impressions per spot). For each deal whose
     summary has `rebalanced_after_week` and whose stored postings are not empty, its rows' forecast
     columns are replaced by the posterior update from those postings
-    (`planner.rebalance.fold_actuals`, the very step `rebalance_deal` takes: `level_posterior` on
+    (`planner.posterior.fold_actuals`, the very step `rebalance_deal` takes: `level_posterior` on
     the postings joined with the demo's forecast rows, then `update_forecast`). Returns (units,
     cautions): a caution per rebalanced deal without stored postings (a book written before they
     were stored; its rows keep the prior forecast).
@@ -688,8 +690,6 @@ def fold_rebalanced(deals: Sequence[Any], units: pd.DataFrame,
     rebalanced deal's own mean and variance are exactly its rebalance's (on the same forecast
     table, before shocks). Cost: one demo filter of `forecast` per rebalanced deal.
     """
-    from planner.rebalance import fold_actuals
-
     cautions: list[str] = []
     out = None
     for d in deals:
@@ -712,27 +712,21 @@ def fold_rebalanced(deals: Sequence[Any], units: pd.DataFrame,
     return (units if out is None else out), cautions
 
 
-def load_book_model(scenario: Any, book: str | os.PathLike | None = None, *, forecast: pd.DataFrame | None = None,
-                    shocks: Sequence[str | Shock] = (), preempt_multiplier: float = 1.0):
-    """Read the book and the forecast and build the (shocked) `BookModel`. Returns (model, shocks).
+def book_model(scenario: Any, deals: Sequence[Any], holds: pd.DataFrame, forecast: pd.DataFrame, *,
+               shocks: Sequence[str | Shock] = (), preempt_multiplier: float = 1.0) -> tuple[BookModel, list[Shock]]:
+    """The (shocked) `BookModel` of committed `deals` and their `holds` (as `planner.book.read_book`
+    returns them) on `forecast`. Returns (model, shocks parsed).
 
     A deal rebalanced with `--commit` counts its posted impressions as delivered (`fixed`) and
     only its holds after the last posted week as uncertain; those holds are valued on the
     forecast updated from its stored postings, as the rebalance valued them
     (`fold_rebalanced`, which says what is approximated). A rebalanced deal without stored
     postings (a book from before they were stored) keeps the prior forecast, and
-    `model.warnings` says so.
+    `model.warnings` says so, after the book's own warnings (units held over their avails).
     """
-    from planner.book import read_book
-
-    deals, holds = read_book(scenario, book, hold_columns=["zone", "network", "daypart", "week", "spots"])
     if not deals:
         raise InputError(f"{getattr(scenario, 'path', scenario)}: the book has no committed deals "
                          f"(pledge book commit SCENARIO DEAL first)")
-    if forecast is None:
-        from planner.forecast_job import ensure_forecast
-
-        forecast = ensure_forecast(scenario).table
     inv = scenario.inventory
     parsed = [s if isinstance(s, Shock) else parse_shock(
         s, networks=inv["network"].astype(str).unique().tolist(),
@@ -753,29 +747,5 @@ def load_book_model(scenario: Any, book: str | os.PathLike | None = None, *, for
     if fixed.any():
         model.mean = model.mean + fixed
         model.fixed = fixed
-    from planner.book import over_avails_warning
-
     model.warnings = over_avails_warning(holds.groupby(UNIT_KEY, as_index=False)["spots"].sum(), inv) + cautions
     return model, parsed
-
-
-def stress_book(scenario: Any, book: str | os.PathLike | None = None, *, draws: int = DEFAULT_DRAWS, seed: int = 0,
-                shocks: Sequence[str | Shock] = (), preempt_multiplier: float = 1.0, liability: str = "refund",
-                method: str = "fast", forecast: pd.DataFrame | None = None, keep_draws: bool = True,
-                advance: Callable[[float], Any] | None = None) -> StressResult:
-    """Monte Carlo stress of every deal committed in the scenario's book.
-
-    Per deal: probability of under-delivery, expected shortfall (impressions), expected liability
-    and margin (currency), each with its Monte Carlo standard error; for the book: expected
-    liability, VaR95, CVaR95, the deals' contributions to CVaR and the networks whose level
-    factor drives the tail. `shocks` are strings like "network=NAME:-0.15" or `Shock`s.
-
-    References
-    ----------
-    Rockafellar & Uryasev (2000), J. Risk 2(3).
-    """
-    model, parsed = load_book_model(scenario, book, forecast=forecast, shocks=shocks,
-                                    preempt_multiplier=preempt_multiplier)
-    return stress_model(model, draws=draws, seed=seed, method=method, liability=liability, shocks=parsed,
-                        preempt_multiplier=preempt_multiplier, currency=getattr(scenario, "currency", "USD"),
-                        keep_draws=keep_draws, advance=advance)

@@ -19,8 +19,9 @@ import numpy as np
 import pandas as pd
 from scipy.optimize import linprog
 
-from scenarios.families import simulate_scenario_truth
-from scenarios.generate import QH
+from planner.scenario import load_scenario
+from scenarios.families import ensure_history, simulate_scenario_truth
+from scenarios.generate import QH, demo_path
 
 # Seven dayparts, every day of the week; late fringe wraps past midnight.
 DAYPARTS = [
@@ -270,14 +271,12 @@ def finish_scenario(dest: Path, deal_specs: list[DealSpec], *, seed: int, genera
 
     Returns {deal name: (impressions, capacity, price_cpm)}.
     """
-    from planner.scenario import load_scenario
-
     # Inventory placeholder so the loader accepts the folder while we compute the real one.
     (dest / "inventory.csv").write_text("zone,network,daypart,week,avails,rate\n")
     deals_dir = dest / "deals"
     if deals_dir.exists():
         shutil.rmtree(deals_dir)
-    sc = load_scenario(dest, generate=False, allow_empty_inventory=True)
+    sc = load_scenario(dest, allow_empty_inventory=True)
     truth = unit_truth(sc)
     inv = make_inventory(truth, sc, seed)
     inv.to_csv(dest / "inventory.csv", index=False)
@@ -293,7 +292,7 @@ def finish_scenario(dest: Path, deal_specs: list[DealSpec], *, seed: int, genera
         (deals_dir / spec.file).write_text(deal_toml(spec, g, price, cap))
         sized[spec.name] = (g, cap, price)
     if generate:
-        load_scenario(dest)  # generates and caches history.parquet
+        ensure_history(dest)  # generates and caches history.parquet
     return sized
 
 
@@ -305,7 +304,7 @@ SMALL_MARKETS = {
 
 def write_scenario(dest, *, seed: int = 0, n_zones: int = 3, n_networks: int = 3, history_days: int = 420,
                    weeks: int = 8) -> Path:
-    """A complete small invented scenario folder (for tests); see `scenarios.generate.make_small_scenario`."""
+    """A complete small invented scenario folder (for tests); see `scenarios.folders.make_small_scenario`."""
     dest = Path(dest)
     dest.mkdir(parents=True, exist_ok=True)
     zones = [z for zs in SMALL_MARKETS.values() for z in zs]
@@ -365,9 +364,7 @@ DEMO_DEALS = [
 
 
 def build_demo(dest: Path | None = None) -> dict:
-    """Rewrite the demo scenario folder (tables, inventory, deals); history is left to the loader."""
-    from scenarios.generate import demo_path
-
+    """Rewrite the demo scenario folder (tables, inventory, deals); history is made on first use."""
     dest = Path(dest) if dest else demo_path()
     dest.mkdir(parents=True, exist_ok=True)
     write_tables(dest, markets=DEMO_MARKETS, networks=DEMO_NETWORKS, seed=DEMO_SEED)
