@@ -174,22 +174,25 @@ def _timer(stage: Callable[..., ContextManager], seconds: dict[str, float]) -> C
     return timed
 
 
-def _fit_and_replay(scn: Any, say: Callable[[str], None]) -> tuple[Any, bool]:
+def _fit_and_replay(scn: Any) -> tuple[Any, bool, dict]:
     """The folder's forecast (fitted, or reused) widened by replayed deals when it has no hindcast
-    of that fit (`pledge forecast hindcast --apply`). Returns (ForecastResult, reused)."""
+    of that fit (`pledge forecast hindcast --apply`). Returns (ForecastResult, reused, hindcast)."""
     fc = forecast_job.ensure_forecast(scn)
     reused = not bool(fc.fitted_now)
     hindcast = cached_hindcast(scn)
     if hindcast is None:  # replayed deals set the shared factors' scale (pledge forecast hindcast --apply)
         hindcast = hindcast_scenario(scn, apply=True)
         fc = forecast_job.ensure_forecast(scn)
-    say(f"forecast {'reused from' if reused else 'fitted and saved in'} {Path(scn.path) / 'forecast'}")
+    return fc, reused, hindcast
+
+
+def _say_forecast(folder: Path, reused: bool, hindcast: dict, say: Callable[[str], None]) -> None:
+    say(f"forecast {'reused from' if reused else 'fitted and saved in'} {folder / 'forecast'}")
     if hindcast.get("deals"):
         c95 = hindcast["claimed_95"]
         came = f"claims of 95% came true in {c95['realised']:.0%}; " if c95.get("realised") is not None else ""
         say(f"replayed {hindcast['deals']} deals at {hindcast['origins']} past origins: {came}shared level factors "
             f"widened x{hindcast['applied_scale']:.2f} (pledge forecast hindcast)")
-    return fc, reused
 
 
 def _release_demo_deals(scn: Any, say: Callable[[str], None]) -> list[str]:
@@ -242,7 +245,8 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
         scn = load_scenario(folder)
     say(f"{'reusing' if reused_folder else 'created'} demo folder {folder}")
     with timed("forecast", "2/5 fitting the forecasts, replaying past deals (reused when already done)"):
-        fc, reused_forecast = _fit_and_replay(scn, say)
+        fc, reused_forecast, hindcast = _fit_and_replay(scn)
+    _say_forecast(folder, reused_forecast, hindcast, say)
     released = _release_demo_deals(scn, say)
     names = list(scn.deals)
     with timed("check_commit", f"3/5 checking {len(names)} demo deals, committing the deliverable ones",
