@@ -19,6 +19,7 @@ from scipy.special import ndtr
 from planner import allocate as al
 from planner.delivery import UNIT_KEY, DeliveryModel
 from planner.errors import InputError
+from planner.rules import EXCLUSIONS, RISK, SPOT_CAP, Rules, Scope, row_rules
 
 CAUTIONS = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
             "under-delivery; check the plan against posted actuals as the flight airs and have the "
@@ -200,28 +201,14 @@ def validate_deal(deal, scenario) -> None:
     where = f"deal {deal.name!r}"
     if not (deal.impressions > 0):
         raise InputError(f"{where}: impressions (the guarantee) must be positive, got {deal.impressions!r}")
-    if deal.confidence is not None and deal.pad is not None:
-        raise InputError(f"{where}: give either confidence or pad, not both")
-    if deal.confidence is None and deal.pad is None:
-        raise InputError(f"{where}: neither confidence nor pad is set")
-    if deal.confidence is not None and not 0.5 < deal.confidence < 0.999:
-        raise InputError(f"{where}: confidence must be in (0.5, 0.999), got {deal.confidence!r}")
-    if deal.pad is not None and deal.pad < 0:
-        raise InputError(f"{where}: pad must be >= 0, got {deal.pad!r}")
-    if not 1 <= deal.first_week <= deal.last_week <= scenario.weeks:
-        raise InputError(f"{where}: weeks {deal.first_week}..{deal.last_week} are outside the inventory's "
-                         f"plan weeks 1..{scenario.weeks}")
-    mix = deal.mix
-    shares = [("max_network_share", mix.max_network_share)]
-    shares += [(f"daypart_min_share.{k}", v) for k, v in mix.daypart_min_share.items()]
-    shares += [(f"daypart_max_share.{k}", v) for k, v in mix.daypart_max_share.items()]
-    for k, v in shares:
-        if v is not None and not 0 <= v <= 1:
-            raise InputError(f"{where}: [mix] {k} must be a share in [0, 1], got {v!r}")
-    if sum(mix.daypart_min_share.values()) > 1 + 1e-9:
-        raise InputError(f"{where}: [mix] daypart_min_share shares sum past 1")
-    if mix.weekly_tolerance is not None and mix.weekly_tolerance < 0:
-        raise InputError(f"{where}: [mix] weekly_tolerance must be >= 0")
+    rules = replace(rules_of(deal), confidence=deal.confidence)  # both given is a problem too
+    said = RISK.check(rules, where)
+    if not said and not 1 <= deal.first_week <= deal.last_week <= scenario.weeks:
+        said = [f"{where}: weeks {deal.first_week}..{deal.last_week} are outside the inventory's "
+                f"plan weeks 1..{scenario.weeks}"]
+    said = said or [p for f in row_rules(rules) for p in f.check(rules, where)]
+    if said:
+        raise InputError(said[0])
 
 
 def _get_deal(scenario, deal_name: str):
@@ -252,11 +239,12 @@ def deal_units(scenario, forecast: pd.DataFrame, deal) -> pd.DataFrame:
     return units
 
 
-def rules_of(deal) -> al.Rules:
+def rules_of(deal) -> Rules:
+    """The allocator's `Rules` of a deal: its mix rules and its risk margin (confidence or pad)."""
     mix = deal.mix
-    return al.Rules(max_network_share=mix.max_network_share, daypart_min_share=dict(mix.daypart_min_share),
-                    daypart_max_share=dict(mix.daypart_max_share), weekly_tolerance=mix.weekly_tolerance,
-                    confidence=deal.confidence if deal.pad is None else None, pad=deal.pad)
+    return Rules(max_network_share=mix.max_network_share, daypart_min_share=dict(mix.daypart_min_share),
+                 daypart_max_share=dict(mix.daypart_max_share), weekly_tolerance=mix.weekly_tolerance,
+                 confidence=deal.confidence if deal.pad is None else None, pad=deal.pad)
 
 
 def check_solver(solver: str) -> None:
@@ -290,19 +278,17 @@ def run_deal(scenario, deal_name: str, *, forecast: pd.DataFrame, held: pd.DataF
                    warnings=list(warnings or []), caution=caution, caution_full=caution_full)
 
 
+def _scope_of(mix) -> Scope:
+    return Scope(tuple(mix.exclude_networks), tuple(mix.exclude_zones), mix.max_spots_per_unit)
+
+
 def _scope_items(mix) -> list[tuple[str, dict]]:
     """The deal's exclusions and spot cap, each as (label as in the deal file, candidate_units
-    arguments without it)."""
-    base = dict(exclude_networks=mix.exclude_networks, exclude_zones=mix.exclude_zones,
-                max_spots_per_unit=mix.max_spots_per_unit)
-    out = []
-    if mix.exclude_zones:
-        out.append((f"exclude_zones {', '.join(mix.exclude_zones)}", {**base, "exclude_zones": ()}))
-    if mix.exclude_networks:
-        out.append((f"exclude_networks {', '.join(mix.exclude_networks)}", {**base, "exclude_networks": ()}))
-    if mix.max_spots_per_unit:
-        out.append((f"max_spots_per_unit {mix.max_spots_per_unit}", {**base, "max_spots_per_unit": None}))
-    return out
+    arguments without it): each scope rule relaxes itself (`planner.rules`)."""
+    scope = _scope_of(mix)
+    return [(label, dict(exclude_networks=s.exclude_networks, exclude_zones=s.exclude_zones,
+                         max_spots_per_unit=s.max_spots_per_unit))
+            for label, s in EXCLUSIONS.scope_items(scope) + SPOT_CAP.scope_items(scope)]
 
 
 def scope_levers(run: DealRun, current: float) -> list[tuple[float, str]]:

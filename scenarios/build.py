@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 from scipy.optimize import linprog
 
+from planner.rules import Rules, linear_rows
 from planner.scenario import load_scenario
 from scenarios.families import ensure_history, simulate_scenario_truth
 from scenarios.generate import QH, demo_path
@@ -179,31 +180,15 @@ def make_inventory(truth: pd.DataFrame, scenario, seed: int) -> pd.DataFrame:
 
 
 def _lp_rows(units: pd.DataFrame, spec: DealSpec, dayparts: list[str]):
-    """Inequality rows A x <= b of the deal's mix rules, in terms of expected impressions."""
-    m = units["impressions"].to_numpy()
-    rows, rhs = [], []
+    """Inequality rows A x <= b of the deal's mix rules, in terms of expected impressions: the
+    allocator's own rule rows (`planner.rules.linear_rows`) with the plan total substituted."""
     mix = spec.mix
-    share = mix.get("max_network_share")
-    if share is not None:
-        for n in units["network"].unique():
-            rows.append(np.where(units["network"] == n, m, 0.0) - share * m)
-            rhs.append(0.0)
-    for dp, lo in mix.get("daypart_min_share", {}).items():
-        rows.append(lo * m - np.where(units["daypart"] == dp, m, 0.0))
-        rhs.append(0.0)
-    for dp, hi in mix.get("daypart_max_share", {}).items():
-        rows.append(np.where(units["daypart"] == dp, m, 0.0) - hi * m)
-        rhs.append(0.0)
-    tol = mix.get("weekly_tolerance")
-    if tol is not None:
-        nw = spec.last_week - spec.first_week + 1
-        for w in range(spec.first_week, spec.last_week + 1):
-            inw = np.where(units["week"] == w, m, 0.0)
-            rows.append(inw - (1 + tol) / nw * m)
-            rhs.append(0.0)
-            rows.append((1 - tol) / nw * m - inw)
-            rhs.append(0.0)
-    return (np.array(rows) if rows else None), (np.array(rhs) if rhs else None)
+    rules = Rules(max_network_share=mix.get("max_network_share"),
+                  daypart_min_share=dict(mix.get("daypart_min_share", {})),
+                  daypart_max_share=dict(mix.get("daypart_max_share", {})),
+                  weekly_tolerance=mix.get("weekly_tolerance"))
+    weeks = list(range(spec.first_week, spec.last_week + 1))
+    return linear_rows(rules, units, weeks, units["impressions"].to_numpy())
 
 
 def deal_units(truth: pd.DataFrame, inventory: pd.DataFrame, spec: DealSpec) -> pd.DataFrame:
