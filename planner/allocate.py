@@ -254,7 +254,12 @@ class _Model:
         self.active = np.asarray(columns, dtype=np.int64)
         self.pos = np.full(n, -1, dtype=np.int64)
         self.pos[self.active] = np.arange(self.active.size)
-        # T (and G) columns then the active x columns, column-wise.
+        self._pass_model(t_rows, t_vals, g_entry, nrow, time_limit)
+        self.build_seconds = time.perf_counter() - t0
+
+    def _pass_model(self, t_rows: list, t_vals: list, g_entry, nrow: int, time_limit: float) -> None:
+        """Hand the LP to HiGHS: the T (and G) columns, then the active x columns, column-wise."""
+        prob, mode = self.prob, self.mode
         tcol = sp.csc_matrix((np.concatenate(t_vals), (np.concatenate(t_rows), np.zeros(sum(map(len, t_rows)), int))),
                              shape=(nrow, 1))
         blocks = [tcol]
@@ -281,7 +286,6 @@ class _Model:
         self.h.passModel(lp)
         self.ncol = ncol
         self.warm = False  # a basis from the last optimal solve is still a good start
-        self.build_seconds = time.perf_counter() - t0
 
     # -- columns -------------------------------------------------------------------------------
     @property
@@ -678,6 +682,53 @@ class Allocation:
     lp_gap: float | None = None  # (cost - lp_bound) / cost
 
 
+def _search_all(model: _Model, prob: AllocationProblem, lp_x: np.ndarray, x: np.ndarray, mip: MIPResult,
+                cost: float, solver: str, gap: float, time_limit: float) -> tuple[np.ndarray, MIPResult]:
+    """Search every column after a neighbourhood plan (`x`, `mip`, cost `cost`) missed the stated
+    gap against the LP bound; keep the cheaper plan that meets the chance constraint."""
+    best = (x, mip)
+    _fix_outside(model, np.ones(prob.n, bool), lp_x)
+    full = solve_mip(model, solver, gap, time_limit)
+    if full.ok:
+        xf = np.rint(full.x[: prob.n])
+        ok_f = prob.rules.confidence is None or _slack(prob, xf, None, prob.guarantee) >= -1e-9 * prob.guarantee
+        if ok_f and float(np.dot(prob.rate, xf)) < cost:
+            return xf, full
+    return best
+
+
+def _integer_plan(model: _Model, prob: AllocationProblem, lp: LPResult, lp_x: np.ndarray, *, solver: str,
+                  gap: float, time_limit: float, restricted: bool):
+    """Whole-spot plan from the MIP (in the LP neighbourhood when `restricted`), a cut added and
+    the MIP re-solved while the plan misses the exact chance constraint. Returns (x or None, the
+    last MIPResult, rounds, restricted)."""
+    rounds, mip, x = 0, None, None
+    l0 = lp.linear_variance
+    while rounds < 10:
+        rounds += 1
+        mip = solve_mip(model, solver, gap, time_limit)
+        if not mip.ok:
+            if restricted:  # the neighbourhood holds no integer plan: search every column
+                _fix_outside(model, np.ones(prob.n, bool), lp_x)
+                restricted = False
+                continue
+            break
+        x = np.rint(mip.x[: prob.n])
+        if prob.rules.confidence is not None and _slack(prob, x, None, prob.guarantee) < -1e-9 * prob.guarantee:
+            l0 = max(l0, prob.model.linear_variance(x))
+            model.add_cut(np.concatenate([x, mip.x[prob.n:]]), l0)
+            x = None
+            continue
+        cost = float(np.dot(prob.rate, x))
+        if restricted and cost > 0 and (cost - lp.objective) / cost > gap:
+            # the neighbourhood plan misses the stated gap against the LP bound: search every column
+            x, mip = _search_all(model, prob, lp_x, x, mip, cost, solver, gap, time_limit)
+            restricted = False
+            rounds += 1
+        break
+    return x, mip, rounds, restricted
+
+
 def allocate(prob: AllocationProblem, *, solver: str = "cbc", gap: float = DEFAULT_GAP,
              time_limit: float = DEFAULT_TIME_LIMIT, integer: bool = True, tol: float = 1e-5) -> Allocation:
     """Minimum-cost whole-spot plan meeting the guarantee under the deal's rules and risk margin.
@@ -712,43 +763,8 @@ def allocate(prob: AllocationProblem, *, solver: str = "cbc", gap: float = DEFAU
     restricted = not bool(free[model.active].all())
     if restricted:
         _fix_outside(model, free, lp_x)
-    rounds, mip, x = 0, None, None
-    l0 = lp.linear_variance
-    escalated = False
-    while rounds < 10:
-        rounds += 1
-        mip = solve_mip(model, solver, gap, time_limit)
-        if not mip.ok:
-            if restricted:  # the neighbourhood holds no integer plan: search every column
-                _fix_outside(model, np.ones(prob.n, bool), lp_x)
-                restricted = False
-                continue
-            break
-        x = np.rint(mip.x[: prob.n])
-        if prob.rules.confidence is not None and _slack(prob, x, None, prob.guarantee) < -1e-9 * prob.guarantee:
-            l0 = max(l0, prob.model.linear_variance(x))
-            model.add_cut(np.concatenate([x, mip.x[prob.n:]]), l0)
-            x = None
-            continue
-        cost = float(np.dot(prob.rate, x))
-        if restricted and not escalated and cost > 0 and (cost - lp.objective) / cost > gap:
-            # the neighbourhood plan misses the stated gap against the LP bound: search every column
-            escalated = True
-            best = (x, mip)
-            _fix_outside(model, np.ones(prob.n, bool), lp_x)
-            restricted = False
-            full = solve_mip(model, solver, gap, time_limit)
-            rounds += 1
-            if full.ok:
-                xf = np.rint(full.x[: prob.n])
-                ok_f = prob.rules.confidence is None or _slack(prob, xf, None, prob.guarantee) >= -1e-9 * prob.guarantee
-                if ok_f and float(np.dot(prob.rate, xf)) < cost:
-                    x, mip = xf, full
-                else:
-                    x, mip = best
-            else:
-                x, mip = best
-        break
+    x, mip, rounds, restricted = _integer_plan(model, prob, lp, lp_x, solver=solver, gap=gap,
+                                               time_limit=time_limit, restricted=restricted)
     base["cuts"] = model.n_cuts_total
     if x is None:
         why = mip.status if mip else "no run"

@@ -6,7 +6,6 @@ import json
 import sys
 from pathlib import Path
 
-import pandas as pd
 import pytest
 
 from planner import workflows as wf

@@ -13,7 +13,7 @@ from rich.markup import escape
 from rich.table import Table
 
 from planner.cli import app
-from planner.cli.common import book_option, count, info, money, out_console, print_json, progress
+from planner.cli.common import book_option, count, money, out_console, print_json, progress
 from planner.cli.output import open_folder, print_table, print_warnings, short, write_plan_files
 from planner.errors import InputError
 

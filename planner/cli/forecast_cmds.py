@@ -306,6 +306,6 @@ def hindcast_cmd(
     out_console.print(f"scale of the shared level factors that makes the PIT uniform: {s['shared_scale']:.2f}; "
                       f"shrunk for the ~{s['effective_deals']:.0f} independent outcomes behind it: "
                       f"{s['scale_to_apply']:.2f}"
-                      + (f", applied to the cached forecast" if apply else
+                      + (", applied to the cached forecast" if apply else
                          " (--apply widens the cached forecast by it)"))
     out_console.print(s["caution"])
