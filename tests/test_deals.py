@@ -12,6 +12,7 @@ import pytest
 import planner.deals as deals
 from planner.cli import main
 from planner.errors import InputError
+from planner import workflows as wf
 
 DP_RATING = {"prime": 0.010, "prime_access": 0.007, "late_fringe": 0.005, "early_fringe": 0.005,
              "daytime": 0.004, "early_morning": 0.003, "overnight": 0.001}
@@ -56,7 +57,7 @@ def fc(scn):
 
 
 def test_check_comfortable_deal(scn, fc):
-    r = deals.check_deal(scn, "small-comfortable", forecast=fc, held=None, target_margin=0.3, solver="highs")
+    r = wf.check_deal(scn, "small-comfortable", forecast=fc, held=None, target_margin=0.3, solver="highs")
     assert r.deliverable and r.verdict == "deliverable"
     d = scn.deals["small-comfortable"]
     assert r.revenue == pytest.approx(d.impressions * d.price_cpm / 1000)  # CPM: common practice
@@ -76,7 +77,7 @@ def test_check_comfortable_deal(scn, fc):
 
 
 def test_default_confidence_is_stated(scn, fc):
-    r = deals.check_deal(scn, "small-tight", forecast=fc, held=None, solver="highs")
+    r = wf.check_deal(scn, "small-tight", forecast=fc, held=None, solver="highs")
     assert r.default_confidence_used and r.confidence == 0.95
     assert any("default confidence" in c for c in r.cautions)
     # the forecast's own caution on errors shared by all units, exactly when its check calls for it
@@ -89,7 +90,7 @@ def test_default_confidence_is_stated(scn, fc):
 
 
 def test_too_big_deal_is_an_answer(scn, fc):
-    r = deals.check_deal(scn, "small-too-big", forecast=fc, held=None, solver="highs")
+    r = wf.check_deal(scn, "small-too-big", forecast=fc, held=None, solver="highs")
     d = scn.deals["small-too-big"]
     if r.deliverable:
         pytest.skip("the invented forecast happens to carry this deal")
@@ -99,7 +100,7 @@ def test_too_big_deal_is_an_answer(scn, fc):
 
 
 def test_plan_tables(scn, fc):
-    p = deals.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs")
+    p = wf.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs")
     assert p.deliverable
     s = p.spots
     assert list(s.columns[:8]) == ["zone", "network", "daypart", "week", "spots", "rate", "cost", "expected_impressions"]
@@ -119,9 +120,9 @@ def test_plan_tables(scn, fc):
 
 
 def test_holds_reduce_avails(scn, fc):
-    p = deals.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs")
+    p = wf.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs")
     held = p.spots[["zone", "network", "daypart", "week", "spots"]]
-    q = deals.plan_deal(scn, "small-comfortable", forecast=fc, held=held, solver="highs")
+    q = wf.plan_deal(scn, "small-comfortable", forecast=fc, held=held, solver="highs")
     if q.deliverable:
         both = held.merge(q.spots, on=["zone", "network", "daypart", "week"], suffixes=("_h", "_q"))
         both = both.merge(scn.inventory, on=["zone", "network", "daypart", "week"])
@@ -158,7 +159,7 @@ def test_diagnosis_names_what_the_exclusions_cost(scn, fc):
     everything = float(expected.sum())
     s = _with_deal(scn, impressions=(inside + everything) / 2, confidence=None, pad=0.0, mix=type(deal.mix)(),
                    mix_exclude_zones=[z for z in units["zone"].unique() if z != keep_zone])
-    r = deals.check_deal(s, "x", forecast=fc, held=None, solver="highs")
+    r = wf.check_deal(s, "x", forecast=fc, held=None, solver="highs")
     assert not r.deliverable
     excluded = ", ".join(s.deals["x"].mix.exclude_zones)
     lever = next(b for b in r.binding if b.startswith(f"exclude_zones {excluded}: without it alone"))
@@ -182,24 +183,24 @@ def test_diagnosis_names_what_the_exclusions_cost(scn, fc):
 ])
 def test_bad_input(scn, fc, changes, words):
     with pytest.raises(InputError, match=None) as e:
-        deals.check_deal(_with_deal(scn, **changes), "x", forecast=fc, held=None)
+        wf.check_deal(_with_deal(scn, **changes), "x", forecast=fc, held=None)
     assert words in str(e.value)
 
 
 def test_unknown_deal_and_solver_and_margin(scn, fc):
     with pytest.raises(InputError, match="unknown deal"):
-        deals.check_deal(scn, "nope", forecast=fc, held=None)
+        wf.check_deal(scn, "nope", forecast=fc, held=None)
     with pytest.raises(InputError, match="--solver"):
-        deals.check_deal(scn, "small-comfortable", forecast=fc, held=None, solver="glpk")
+        wf.check_deal(scn, "small-comfortable", forecast=fc, held=None, solver="glpk")
     with pytest.raises(InputError, match="target-margin"):
-        deals.check_deal(scn, "small-comfortable", forecast=fc, held=None, target_margin=1.2)
+        wf.check_deal(scn, "small-comfortable", forecast=fc, held=None, target_margin=1.2)
 
 
 # ---------------------------------------------------------------------------------------------- CLI
 @pytest.fixture()
 def cli_forecast(monkeypatch, fc):
-    monkeypatch.setattr(deals, "_forecast_table", lambda scenario, forecast, progress: (fc, True))
-    monkeypatch.setattr(deals, "_held", lambda scenario, held, book, deal_name: None)
+    monkeypatch.setattr(wf.deal, "forecast_table", lambda scenario, forecast, progress: (fc, True))
+    monkeypatch.setattr(wf.deal, "_held", lambda scenario, held, book, deal_name: None)
 
 
 def test_cli_check_json(small_scenario, cli_forecast, capsys):
@@ -352,13 +353,13 @@ def test_plan_notes_pacing_astray_without_a_rule_and_a_pad_below_95_percent(scn,
     s.inventory = inv
     s.deals = {**scn.deals}
     s = _with_deal(s, pad=0.0, confidence=None, mix_weekly_tolerance=None, mix_max_network_share=None)
-    p = deals.plan_deal(s, "x", forecast=fc, held=None, solver="highs")
+    p = wf.plan_deal(s, "x", forecast=fc, held=None, solver="highs")
     assert p.deliverable
     weekly = p.spots.groupby("week")["expected_impressions"].sum().reindex(s.deals["x"].weeks, fill_value=0.0)
     dev = weekly / weekly.mean() - 1
     assert dev.abs().max() > 0.25  # the case
     assert any(n.startswith(f"weekly pacing strays up to {dev[dev.abs().idxmax()]:+.0%} from even") for n in p.notes)
     assert p.probability < 0.95 and any("below 95% under the pad of 0%" in n for n in p.notes)
-    ruled = deals.plan_deal(_with_deal(s, mix_weekly_tolerance=0.2, pad=None, confidence=0.95), "x", forecast=fc,
+    ruled = wf.plan_deal(_with_deal(s, mix_weekly_tolerance=0.2, pad=None, confidence=0.95), "x", forecast=fc,
                             held=None, solver="highs")
     assert ruled.deliverable and ruled.notes == []
