@@ -106,6 +106,22 @@ def test_combine_renormalises_over_candidates_that_have_a_forecast():
     np.testing.assert_allclose(out[0, 0], [0.25 * 10 + 0.75 * 20, 10.0])
 
 
+def test_combine_puts_each_candidate_on_its_level_ratio_by_daypart():
+    """Hand-worked (DEVELOPERS.md: the shipped mean is sum_k w_k b_k m_k): prime weights 0.4 / 0.6,
+    ratios 0.9 / 1.2: 0.4 x 0.9 x 10 + 0.6 x 1.2 x 20 = 3.6 + 14.4 = 18.0; daytime weights 1 / 0,
+    ratio 1.1 for A: 11.0; a daypart the fit never saw takes the pooled weights 0.5 / 0.5 and no
+    ratio (1): 15.0; with B missing in a prime cell: 0.9 x 10 = 9.0 (A alone, on its ratio)."""
+    comb = StackedCombiner(["A", "B"])
+    comb.weights_ = pd.DataFrame({"A": [0.4, 1.0], "B": [0.6, 0.0]}, index=["prime", "daytime"])
+    comb.ratio_ = pd.DataFrame({"A": [0.9, 1.1], "B": [1.2, 0.8]}, index=["prime", "daytime"])
+    comb.pooled_weights_ = pd.Series({"A": 0.5, "B": 0.5})
+    a = np.full((1, 3, 2), 10.0)
+    b = np.full((1, 3, 2), 20.0)
+    b[0, 0, 1] = np.nan
+    out = comb.combine({"A": a, "B": b}, ["prime", "daytime", "overnight"])
+    np.testing.assert_allclose(out[0], [[18.0, 9.0], [11.0, 11.0], [15.0, 15.0]])
+
+
 def _grid_from_levels(levels: np.ndarray):
     """A one-daypart weekly grid (means, counts) of given levels (S, n_weeks)."""
     return levels[:, None, :], np.full(levels[:, None, :].shape, 10.0)

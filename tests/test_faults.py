@@ -67,33 +67,42 @@ def test_rebalance_replans_against_the_other_deals_holds_only(tmp_path):
     assert (use["spots"] + use["beta"].fillna(0) <= use["avails"]).all()
 
 
-def _mc_probability(units: pd.DataFrame, spots: np.ndarray, guarantee: float, draws: int, seed: int):
-    """P(delivered >= guarantee) by Monte Carlo of the contract's error model (DEVELOPERS.md):
+def _mc_totals(units: pd.DataFrame, spots: np.ndarray, draws: int, seed: int, cells: int = 2_000_000) -> np.ndarray:
+    """Delivered totals (draws,) by Monte Carlo of the contract's error model (DEVELOPERS.md):
     per unit, aired ~ Binomial(spots, 1 - preempt); delivered = aired * (mean + level error)
     + sqrt(aired) * airing_sd * eps; level error = sum of loadings x shared standard normals
-    (common, network, network-week, flight, own week). Returns (p, standard error)."""
+    (common, network, network-week, flight, own week). Units without spots are left out; draws
+    are made in chunks of about `cells` unit-draws."""
+    keep = np.asarray(spots) > 0
+    units, spots = units[keep].reset_index(drop=True), np.asarray(spots)[keep].astype(np.int64)
     rng = np.random.default_rng(seed)
     n = len(units)
-    mu = units["mean_impressions"].to_numpy(float)
-    level = np.zeros((draws, n))
+    col = lambda c: units[c].to_numpy(float) if c in units.columns else np.zeros(n)  # noqa: E731
 
-    def shared(col, keys):
-        if col not in units.columns:
-            return
-        code, uniq = pd.factorize(pd.MultiIndex.from_frame(units[keys]) if len(keys) > 1 else units[keys[0]])
-        z = rng.standard_normal((draws, len(uniq)))
-        level[:] += z[:, code] * units[col].to_numpy(float)
+    def codes(keys):
+        return pd.factorize(pd.MultiIndex.from_frame(units[keys]) if len(keys) > 1 else units[keys[0]])[0]
 
-    if "level_sd_common" in units.columns:
-        level += rng.standard_normal((draws, 1)) * units["level_sd_common"].to_numpy(float)
-    shared("level_sd_network", ["network"])
-    shared("level_sd_network_week", ["network", "week"])
-    shared("level_sd_flight", ["zone", "network", "daypart"])
-    level += rng.standard_normal((draws, n)) * units["level_sd_week"].to_numpy(float)
-    aired = rng.binomial(np.broadcast_to(spots.astype(np.int64), (draws, n)),
-                         1.0 - units["preempt_rate"].to_numpy(float))
-    noise = np.sqrt(aired) * units["airing_sd"].to_numpy(float) * rng.standard_normal((draws, n))
-    total = (aired * (mu + level) + noise).sum(axis=1)
+    factors = [(col("level_sd_network"), codes(["network"])), (col("level_sd_network_week"), codes(["network", "week"])),
+               (col("level_sd_flight"), codes(["zone", "network", "daypart"])), (col("level_sd_week"), np.arange(n)),
+               (col("level_sd_common"), np.zeros(n, dtype=np.int64))]
+    mu, sd, keep_p = col("mean_impressions"), col("airing_sd"), 1.0 - col("preempt_rate")
+    out = np.empty(draws)
+    step = max(1, cells // max(n, 1))
+    for start in range(0, draws, step):
+        k = min(step, draws - start)
+        level = np.zeros((k, n))
+        for load, code in factors:
+            level += rng.standard_normal((k, int(code.max()) + 1 if n else 0))[:, code] * load
+        aired = rng.binomial(np.broadcast_to(spots, (k, n)), keep_p)
+        noise = np.sqrt(aired) * sd * rng.standard_normal((k, n))
+        out[start:start + k] = (aired * (mu + level) + noise).sum(axis=1)
+    return out
+
+
+def _mc_probability(units: pd.DataFrame, spots: np.ndarray, guarantee: float, draws: int, seed: int):
+    """P(delivered >= guarantee) by Monte Carlo of the contract's error model (`_mc_totals`).
+    Returns (p, standard error)."""
+    total = _mc_totals(units, spots, draws, seed)
     p = float((total >= guarantee).mean())
     return p, float(np.sqrt(max(p * (1 - p), 1e-12) / draws))
 
@@ -372,9 +381,9 @@ def test_forecast_table_carries_the_error_law_at_full_width():
 
 
 def test_the_fitted_forecast_written_by_the_job_keeps_the_law_width(small_scenario, scenario_copy, monkeypatch):
-    """Fault caught: level sds scaled after the fit, on the way from the forecaster to the table
+    """Faults caught: level sds scaled after the fit, on the way from the forecaster to the table
     the forecast job writes (`planner.forecast_job.fit_forecast`), e.g. x 0.8 with the
-    quantiles recomputed.
+    quantiles recomputed; every mean, sd and quantile column scaled alike (x 1.2).
 
     The forecaster's `fit` is replaced by a stand-in that sets a known state (every unit rating
     0.01, airing cv 0.30, the `_KnownLaw` relative sds); the written table must give each level
@@ -401,6 +410,12 @@ def test_the_fitted_forecast_written_by_the_job_keeps_the_law_width(small_scenar
     folder = scenario_copy(small_scenario)
     t = fit_forecast(load_scenario(folder)).table
     assert len(t) > 0
+    # the level itself: rating 0.01 of universes.csv's universe (read by pandas), airing cv 0.30
+    m = t.merge(pd.read_csv(folder / "universes.csv"), on=["zone", "demo"], suffixes=("", "_file"))
+    assert len(m) == len(t)
+    np.testing.assert_allclose(m["mean_rating"], 0.01, rtol=1e-9)
+    np.testing.assert_allclose(m["mean_impressions"], 0.01 * m["universe_file"], rtol=1e-9)
+    np.testing.assert_allclose(m["airing_sd"], 0.30 * 0.01 * m["universe_file"], rtol=1e-9)
     mu = t["mean_impressions"].to_numpy()
     for col, rel in _KnownLaw.REL.items():
         np.testing.assert_allclose(t[col.replace("rel_sd_", "level_sd_")], rel * mu, rtol=1e-6, err_msg=col)

@@ -166,8 +166,7 @@ def test_refit_total_check_flags_misses_beyond_the_law():
 
 def test_daypart_scale_and_common_floor_of_the_plan_law():
     """`with_daypart_scale` multiplies every relative sd but the common one of a daypart's units and
-    leaves the others;
-    `with_common_floor` then raises the common sd to at least the floor (max, not sum); both return
+    leaves the others; `with_common_floor` then raises the common sd to at least the floor (max, not sum); both return
     copies. Hand-worked on a law fitted to nested errors (its own sds as the unscaled reference).
     Catches a scale applied to the wrong daypart or component, a floor added instead of maxed, or
     a fitted law changed in place."""
@@ -185,3 +184,19 @@ def test_daypart_scale_and_common_floor_of_the_plan_law():
     assert floored.loc[0, "rel_sd_common"] == pytest.approx(max(c, floor_sd))
     assert floored.loc[1, "rel_sd_common"] == pytest.approx(max(c, floor_sd))
     pd.testing.assert_frame_equal(law.predict(units), base)  # the fitted law is unchanged
+
+
+def test_widen_common_adds_the_shift_as_a_forecast_and_a_held_out_refit_see_it():
+    """Hand-worked: a shift s shared by every unit, variance v, independent across refits and the
+    plan weeks; the bias correction subtracts the mean of the J refits' shifts. The plan weeks'
+    error then holds s_0 - mean(s_1..s_J): variance v (1 + 1/J); a held-out refit's holds
+    s_j - mean(s_1..s_J): variance v (1 - 1/J). With v = 0.0016 and J = 4: +0.0020 to the
+    forecast's common variance, +0.0012 to the held-out one. Catches a widening without the
+    (1 + 1/J) of the mean correction."""
+    m = LevelErrorModel().fit(_nested_errors(folds=4, seed=1))
+    before, before_heldout = m.var_common_, m.var_common_heldout_
+    m.widen_common(0.0016, 4)
+    assert m.var_common_ - before == pytest.approx(0.0020, rel=1e-12)
+    assert m.var_common_heldout_ - before_heldout == pytest.approx(0.0012, rel=1e-12)
+    sd = m.predict(pd.DataFrame({"daypart": ["day"], "genre": ["news"], "history_weeks": [60.0]}))
+    assert sd["rel_sd_common"][0] == pytest.approx(np.sqrt(before + 0.0020), rel=1e-12)

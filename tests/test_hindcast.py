@@ -184,3 +184,49 @@ def test_applied_scale_is_shrunk_by_the_evidence_and_never_narrows():
     assert applied_scale(2.0, 4.0) == pytest.approx(np.sqrt(2.0))
     assert applied_scale(2.0, 4000.0) == pytest.approx(2.0, rel=1e-3)
     assert applied_scale(0.7, 50.0) == 1.0
+
+
+def test_reliability_bins_take_claims_on_their_lower_edge_and_count_clustered_outcomes_once():
+    """Hand-made deals: 4 origins of 10 deals, each origin's z identical (an origin's shared shock
+    moves all its deals: rho = 1, so 40 deals are 4 independent outcomes, Kish 1965: design
+    effect 10); claims exactly on the bin edges 0.80 (3 per origin), 0.90 (3) and 0.97 (4), lower
+    edges inclusive (DEVELOPERS.md). By hand: bins 80-90 and 90-97 hold 12 deals each (1.2
+    effective), 97+ holds 16 (1.6), 50-80 none; se = sqrt(c (1 - c) / max(effective, 1)).
+    Catches edges taken as exclusive and a count that ignores the shared shocks."""
+    claims = np.tile(np.r_[[0.8] * 3, [0.9] * 3, [0.97] * 4], 4)
+    origin = np.repeat(["a", "b", "c", "d"], 10)
+    z = np.repeat([-1.0, 0.5, 2.0, -0.3], 10)
+    deals = pd.DataFrame({"origin": origin, "claimed": claims, "met": z > -0.5, "delivered": 1.0, "expected": 1.0,
+                          "sd": 1.0, "shared_var": 0.5, "other_var": 0.5, "z": z, "pit": norm.cdf(z)})
+    s = summarise(deals)
+    assert s["effective_deals"] == pytest.approx(4.0)
+    by = {b["low"]: b for b in s["reliability"]}
+    assert by[0.5]["deals"] == 0
+    for low, n, claim in ((0.8, 12, 0.8), (0.9, 12, 0.9), (0.97, 16, 0.97)):
+        b = by[low]
+        assert b["deals"] == n and b["mean_claimed"] == pytest.approx(claim)
+        assert b["effective_deals"] == pytest.approx(n / 10)
+        assert b["se"] == pytest.approx(np.sqrt(claim * (1 - claim) / max(n / 10, 1.0)))
+        assert b["realised"] == pytest.approx(0.75)  # origins a (z -1) short, b, c, d met
+    assert reliability_for(s, 0.9)["low"] == 0.9 and reliability_for(s, 0.8)["low"] == 0.8
+
+
+def test_scale_shared_factors_widens_every_shared_sd_and_recomputes_the_bands():
+    """Hand-worked: one unit, mean 1,000, airing sd 50, loadings common 10, network 20,
+    network-week 5, flight 8, own week 30; factor 2 doubles the four shared ones (DEVELOPERS.md:
+    `--apply` multiplies the common/network/network-week/flight sds), the own week's stays:
+    level_sd = sqrt(20^2 + 40^2 + 10^2 + 16^2 + 30^2) = sqrt(3,256); q90 = 1,000 + z(0.90) x
+    sqrt(3,256 + 2,500), z(0.90) from scipy. Catches a shared factor left out of the widening."""
+    from planner.hindcast import scale_shared_factors
+
+    t = pd.DataFrame({"mean_impressions": [1000.0], "airing_sd": [50.0], "level_sd_common": [10.0],
+                      "level_sd_network": [20.0], "level_sd_network_week": [5.0], "level_sd_flight": [8.0],
+                      "level_sd_week": [30.0], "level_sd": [0.0], "q10_impressions": [0.0], "q90_impressions": [0.0]})
+    r = scale_shared_factors(t, 2.0).iloc[0]
+    for col, want in (("level_sd_common", 20.0), ("level_sd_network", 40.0), ("level_sd_network_week", 10.0),
+                      ("level_sd_flight", 16.0), ("level_sd_week", 30.0), ("airing_sd", 50.0)):
+        assert r[col] == pytest.approx(want), col
+    assert r["level_sd"] == pytest.approx(np.sqrt(3256.0))
+    assert r["q90_impressions"] == pytest.approx(1000.0 + norm.ppf(0.9) * np.sqrt(3256.0 + 2500.0))
+    assert r["q10_impressions"] == pytest.approx(1000.0 - norm.ppf(0.9) * np.sqrt(3256.0 + 2500.0))
+    assert t["level_sd_common"].iloc[0] == 10.0  # a copy: the caller's table unchanged

@@ -77,6 +77,68 @@ def assert_verdict_equal(fields: dict, deal: str, check: dict) -> None:
             assert float(shown) == pytest.approx(float(check[key]), rel=1e-12, abs=1e-9), (deal, key)
 
 
+UNIT = ["zone", "network", "daypart", "week"]
+
+
+def deal_file(folder: Path, name: str) -> dict:
+    """The deal file named `name` in `folder/deals`, read by hand (tomllib)."""
+    import tomllib
+
+    for p in sorted((Path(folder) / "deals").glob("*.toml")):
+        raw = tomllib.loads(p.read_text())
+        if raw["name"] == name:
+            return raw
+    raise AssertionError(f"no deal file for {name}")
+
+
+def booked_units(folder: Path, name: str) -> pd.DataFrame:
+    """A booked deal's holds read from book.sqlite (sqlite3), joined with inventory.csv's rate and
+    preemption (scenario.toml's when the file has none) and forecast.parquet's rows of its demo."""
+    import sqlite3
+    import tomllib
+
+    folder = Path(folder)
+    with sqlite3.connect(folder / "book.sqlite") as con:
+        holds = pd.read_sql_query("SELECT zone, network, daypart, week, spots FROM holds WHERE deal = ?", con,
+                                  params=(name,))
+    inv = pd.read_csv(folder / "inventory.csv")
+    if "preempt_rate" not in inv:
+        inv["preempt_rate"] = tomllib.loads((folder / "scenario.toml").read_text()).get("preempt_rate", 0.0)
+    inv["preempt_rate"] = inv["preempt_rate"].fillna(tomllib.loads((folder / "scenario.toml").read_text())
+                                                     .get("preempt_rate", 0.0))
+    fc = pd.read_parquet(folder / "forecast" / "forecast.parquet")
+    fc = fc[fc["demo"] == deal_file(folder, name)["demo"]]
+    return holds.merge(inv[UNIT + ["rate", "preempt_rate"]], on=UNIT).merge(fc, on=UNIT)
+
+
+def assert_verdict_facts(fields: dict, folder: Path, deal: str, booked: bool, draws: int = 20_000) -> None:
+    """The report's figures for `deal` against facts read independently: guarantee, revenue
+    (impressions x CPM / 1000, common practice) and risk rule from the deal file; for a booked
+    deal, cost (holds x inventory.csv rates), expected delivery (holds x (1 - preemption) x
+    forecast mean per spot) and margin from the book's holds, and the chance of delivery against
+    a Monte Carlo of the documented error law (tests/test_faults.py::_mc_probability; standard
+    error at most 0.5 / sqrt(draws) = 0.0035 at 20,000 draws; the normal approximation may differ
+    from the exact law by a little: tolerance 0.01 + 4 SE)."""
+    from test_faults import _mc_probability
+
+    f = deal_file(folder, deal)
+    assert float(fields[(deal, "guarantee")]) == pytest.approx(f["impressions"])
+    revenue = f["impressions"] * f["price_cpm"] / 1000
+    assert float(fields[(deal, "revenue")]) == pytest.approx(revenue)
+    if "pad" not in f:  # DEVELOPERS.md: neither given -> the default confidence 0.95
+        assert float(fields[(deal, "confidence")]) == pytest.approx(f.get("confidence", 0.95))
+    if not booked:
+        return
+    u = booked_units(folder, deal)
+    cost = float((u["spots"] * u["rate"]).sum())
+    assert float(fields[(deal, "cost")]) == pytest.approx(cost, rel=1e-9)
+    assert float(fields[(deal, "margin")]) == pytest.approx(revenue - cost, rel=1e-9)
+    expected = float((u["spots"] * (1 - u["preempt_rate"]) * u["mean_impressions"]).sum())
+    assert float(fields[(deal, "expected_impressions")]) == pytest.approx(expected, rel=1e-6)
+    p, se = _mc_probability(u, u["spots"].to_numpy(), f["impressions"], draws, seed=2)
+    assert float(fields[(deal, "probability_of_delivery")]) == pytest.approx(p, abs=0.01 + 4 * se)
+
+
 # ----------------------------------------------------------------------------------------------
 @pytest.fixture(scope="module")
 def booked_report(small_scenario, tmp_path_factory):
@@ -110,6 +172,7 @@ def test_report_numbers_equal_check_json(booked_report):
     parsed = report_fields(out)
     for deal, check in checks.items():
         assert_verdict_equal(parsed.fields, deal, check)
+        assert_verdict_facts(parsed.fields, folder, deal, booked=deal == first)
     assert not parsed.external, f"the report refers to outside resources: {parsed.external[:3]}"
 
 
@@ -135,6 +198,18 @@ def test_report_stress_matches_stress_command(booked_report):
     st = pledge_json("stress", folder, "--draws", "4000", "--seed", "3")
     for key in ("expected_liability", "var95", "cvar95"):
         assert float(fields[("_book", key)]) == pytest.approx(st["book"][key], rel=1e-9, abs=1e-6)
+    # Reference: the one booked deal's refund liability, E[(G - D)+] x CPM / 1000 (common practice),
+    # by a Monte Carlo of the documented error law on its holds (tests/test_faults.py::_mc_totals,
+    # 20,000 draws, its standard error computed here) against the report's 4,000 draws (its own
+    # standard error, shown in the report): tolerance 4 combined standard errors.
+    from test_faults import _mc_totals
+
+    f = deal_file(folder, first)
+    u = booked_units(folder, first)
+    loss = np.maximum(f["impressions"] - _mc_totals(u, u["spots"].to_numpy(), 20_000, seed=4), 0.0) \
+        * f["price_cpm"] / 1000
+    se = np.hypot(loss.std() / np.sqrt(loss.size), float(fields[("_book", "expected_liability_se")]))
+    assert float(fields[("_book", "expected_liability")]) == pytest.approx(loss.mean(), abs=4 * se)
 
 
 def test_rendering_is_deterministic(booked_report):

@@ -187,6 +187,9 @@ BAD_INPUTS = [
      "load", r"deals/comfortable\.toml: demo 'w18-34' is unknown"),
     ("deal-week-outside", lambda f: _edit_text(f, "deals/comfortable.toml", "last_week = 8", "last_week = 14"),
      "load", r"deals/comfortable\.toml: last_week must be a plan week 1\.\.8 of the inventory, got 14"),
+    # the edge: scenario.toml says weeks = 8, so week 9 is one past the plan (catches an off-by-one bound)
+    ("deal-week-one-past-end", lambda f: _edit_text(f, "deals/comfortable.toml", "last_week = 8", "last_week = 9"),
+     "load", r"deals/comfortable\.toml: last_week must be a plan week 1\.\.8 of the inventory, got 9"),
     ("deal-weeks-reversed", lambda f: _edit_text(f, "deals/comfortable.toml", "first_week = 1", "first_week = 6")
      or _edit_text(f, "deals/comfortable.toml", "last_week = 8", "last_week = 3"), "load",
      r"deals/comfortable\.toml: first_week 6 is after last_week 3"),
