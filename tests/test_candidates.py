@@ -260,3 +260,22 @@ def test_prior_weights_are_inverse_variance_among_the_prior_candidates():
     rows = pd.DataFrame({"fold": [0, 0]})
     w = comb._toward_prior(pd.Series({"A": 0.0, "B": 1.0}), rows, pd.Series({"A": 0.2, "B": 0.4}))
     np.testing.assert_allclose(w[["A", "B"]].to_numpy(), [0.4, 0.6], rtol=1e-12)
+
+
+def test_law_scale_hand_worked():
+    """`DaypartForecaster.law_scale`: sqrt(the target's mean mixture variance over the refits'
+    pooled one), by daypart, within [1/2, 2], 1 where unknown. Hand-worked: refits' (sum, count)
+    day (0.4, 10) and (1.2, 10) -> 0.08, prime (0.1, 10) twice -> 0.01; target day 0.02 -> x0.5,
+    prime 0.04 -> x2; a target of 0.001 is clipped to x0.5; a daypart with no target unit -> 1.
+    Catches an inverted ratio, a missing square root or an unpooled mean."""
+    from types import SimpleNamespace
+
+    fc = DaypartForecaster.__new__(DaypartForecaster)
+    fc.dayparts_ = [SimpleNamespace(name="day"), SimpleNamespace(name="prime")]
+    fc.fold_results_ = [SimpleNamespace(mixture_var=np.array([[0.4, 10.0], [0.1, 10.0]])),
+                        SimpleNamespace(mixture_var=np.array([[1.2, 10.0], [0.1, 10.0]]))]
+    k = fc.law_scale(np.array([[0.02, 1.0], [0.04, 1.0]]), [0, 1])
+    assert k["day"] == pytest.approx(0.5) and k["prime"] == pytest.approx(2.0)
+    k = fc.law_scale(np.array([[0.001, 1.0], [0.0, 0.0]]), [0, 1])
+    assert k["day"] == pytest.approx(0.5) and k["prime"] == 1.0
+    assert fc.law_scale(np.array([[0.02, 1.0], [0.04, 1.0]]), [0])["day"] == pytest.approx(np.sqrt(0.02 / 0.04))

@@ -66,7 +66,7 @@ def test_check_comfortable_deal(scn, fc):
 
     raw = tomllib.loads(d.path.read_text())
     revenue = raw["impressions"] * raw["price_cpm"] / 1000
-    spots = deals.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs").spots
+    spots = wf.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs").spots
     inv = pd.read_csv(scn.path / "inventory.csv")
     cost = float(spots[["zone", "network", "daypart", "week", "spots"]].merge(inv).eval("spots * rate").sum())
     assert r.revenue == pytest.approx(revenue)
@@ -295,7 +295,7 @@ def test_demo_deals_verdicts_gap_and_monte_carlo(demo_fitted):
     scn = load_scenario(demo_fitted)
     fc = ensure_forecast(scn).table
     for name, deliverable in DEMO_VERDICTS.items():
-        run = deals.run_deal(scn, name, forecast=fc, held=None)
+        run = wf.run_deal(scn, name, forecast=fc, held=None)
         a, prob = run.allocation, run.problem
         assert a.feasible == deliverable, name
         if not deliverable:
@@ -429,7 +429,7 @@ def test_a_paced_plan_buys_every_week_of_the_deal_files_flight(small_scenario, s
 
 def test_a_booked_deal_is_planned_against_avails_less_the_other_deals_holds(tmp_path):
     """Faults caught: a booked deal re-planned against its own holds as well
-    (`deals._held` with `exclude=()`), and holds subtracted twice (`avails - 2 x held`).
+    (`workflows.deal._held` with `exclude=()`), and holds subtracted twice (`avails - 2 x held`).
 
     Reference: two deals committed to a book; the book's `holds` rows read by hand with sqlite3;
     for every unit, spots the re-plan of `alpha` may buy = inventory avails - beta's held spots
@@ -441,14 +441,11 @@ def test_a_booked_deal_is_planned_against_avails_less_the_other_deals_holds(tmp_
     sys.path.insert(0, str(Path(__file__).resolve().parent))
     from test_book import make_synthetic
 
-    from planner import book as bk
-    from planner import rebalance as rb
-
     unit = ["zone", "network", "daypart", "week"]
     scn, synth = make_synthetic(tmp_path / "s", deals=[("alpha", 0.35, 0.95, 22.0), ("beta", 0.30, 0.90, 18.0)])
-    planner = rb.plan_for_commit(synth, solver="highs")
+    planner = wf.plan_for_commit(synth, solver="highs")
     for name in scn.deals:
-        assert bk.commit_deal(scn, name, planner=planner).committed, name
+        assert wf.commit_deal(scn, name, planner=planner).committed, name
     with sqlite3.connect(scn.path / "book.sqlite") as con:
         holds = pd.read_sql_query("SELECT deal, zone, network, daypart, week, spots FROM holds", con)
     held = holds.pivot_table(index=unit, columns="deal", values="spots", aggfunc="sum", fill_value=0)
@@ -458,6 +455,6 @@ def test_a_booked_deal_is_planned_against_avails_less_the_other_deals_holds(tmp_
     want = (inv - beta).clip(lower=0)
     assert ((alpha > 0) & (want > 0)).sum() > 5  # the case: alpha holds units beta leaves open
     assert ((beta > 0) & (inv - 2 * beta < want)).sum() > 5  # and beta's holds are not zero
-    run = deals.run_deal(scn, "alpha", forecast=synth, solver="highs")  # held=None: reads the book
+    run = wf.run_deal(scn, "alpha", forecast=synth, solver="highs")  # held=None: reads the book
     got = run.problem.scope.set_index(unit)["ub"]
     pd.testing.assert_series_equal(got.sort_index(), want.astype(float).sort_index(), check_names=False)
