@@ -91,7 +91,7 @@ FAULTS: tuple[Fault, ...] = (
           "plan law: the candidates' disagreement about the total not put under the common factor",
           "return self.level_.with_daypart_scale(scale).with_common_floor(self.plan_disagreement_var_)",
           "return self.level_.with_daypart_scale(scale)",
-          ("tests/test_hindcast.py", "tests/test_candidates.py")),
+          ("tests/test_candidates.py",)),
     Fault("common-floor-added",
           "error law: the common floor added to the common variance instead of taken as a minimum",
           '"rel_sd_common": np.full(len(units), np.sqrt(max(self.var_common_, self.common_floor_var_))),',

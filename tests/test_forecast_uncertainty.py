@@ -170,19 +170,21 @@ def test_daypart_scale_and_common_floor_of_the_plan_law():
     copies. Hand-worked on a law fitted to nested errors (its own sds as the unscaled reference).
     Catches a scale applied to the wrong daypart or component, a floor added instead of maxed, or
     a fitted law changed in place."""
-    law = LevelErrorModel().fit(_nested_errors(seed=3))
+    df = _nested_errors(folds=12, seed=3)
+    shift = np.random.default_rng(7).normal(0.0, 0.06, 12)  # a common factor of its own
+    law = LevelErrorModel().fit(df.assign(rel_error=df["rel_error"] + shift[df["fold"]]))
     units = pd.DataFrame({"daypart": ["day", "prime"], "genre": ["news", "news"], "history_weeks": [60.0, 60.0]})
     base = law.predict(units)
     cols = ["rel_sd_network", "rel_sd_network_week", "rel_sd_flight", "rel_sd_week"]
     half = law.with_daypart_scale({"day": 0.5}).predict(units)
     np.testing.assert_allclose(half.loc[0, cols].to_numpy(float), 0.5 * base.loc[0, cols].to_numpy(float))
     np.testing.assert_allclose(half.loc[1, cols].to_numpy(float), base.loc[1, cols].to_numpy(float))
-    floor_sd = 0.04
-    floored = law.with_daypart_scale({"day": 0.5}).with_common_floor(floor_sd ** 2).predict(units)
     c = float(base.loc[0, "rel_sd_common"])
+    assert c > 0.02  # the case: a common factor the floor must not add to
     assert half.loc[0, "rel_sd_common"] == pytest.approx(c)  # one fraction of every unit's mean (contract)
-    assert floored.loc[0, "rel_sd_common"] == pytest.approx(max(c, floor_sd))
-    assert floored.loc[1, "rel_sd_common"] == pytest.approx(max(c, floor_sd))
+    for floor_sd in (0.5 * c, 2.0 * c):  # below the law's own: no change; above: the floor
+        floored = law.with_daypart_scale({"day": 0.5}).with_common_floor(floor_sd ** 2).predict(units)
+        assert floored["rel_sd_common"].to_numpy() == pytest.approx([max(c, floor_sd)] * 2)
     pd.testing.assert_frame_equal(law.predict(units), base)  # the fitted law is unchanged
 
 
