@@ -20,6 +20,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 from planner import deals as dl  # noqa: E402
+from planner import workflows as wf  # noqa: E402
 from planner.scenario import load_scenario  # noqa: E402
 
 TARGET_SECONDS = 10.0
@@ -34,7 +35,7 @@ def main(argv=None) -> int:
 
     tmp = None
     if args.scenario is None:
-        from scenarios.generate import copy_demo
+        from scenarios.folders import copy_demo
 
         tmp = tempfile.TemporaryDirectory(prefix="pledge-bench-")
         args.scenario = copy_demo(Path(tmp.name) / "demo")
@@ -47,10 +48,10 @@ def main(argv=None) -> int:
     rows, worst = [], 0.0
     for name in sorted(scn.deals):
         t = time.perf_counter()
-        chk = dl.check_deal(scn, name, solver=args.solver, forecast=fc, held=None)
+        chk = wf.check_deal(scn, name, solver=args.solver, forecast=fc, held=None)
         t_check = time.perf_counter() - t
         t = time.perf_counter()
-        run = dl.run_deal(scn, name, solver=args.solver, forecast=fc, held=None)
+        run = wf.run_deal(scn, name, solver=args.solver, forecast=fc, held=None)
         plan = dl.plan_result(run)
         t_plan = time.perf_counter() - t
         worst = max(worst, t_check, t_plan)

@@ -44,7 +44,7 @@ def _seeded_demo(dest: Path, seed: int) -> Path:
     """A copy of the demo whose [history_generator] seed is `seed` (history generated here)."""
     import shutil
 
-    from scenarios.generate import demo_path, ensure_history
+    from scenarios.folders import demo_path, ensure_history
 
     src = demo_path()
     shutil.copytree(src, dest, ignore=shutil.ignore_patterns("history.parquet", "forecast", "book.sqlite*",

@@ -153,10 +153,9 @@ def main() -> None:
     ap.add_argument("--json", action="store_true")
     args = ap.parse_args()
 
-    from planner.scenario import load_scenario
-    from scenarios.generate import demo_path
+    from scenarios.folders import demo_path, ensure_history
 
-    scenario = load_scenario(demo_path())
+    scenario = ensure_history(demo_path())
     g = scenario.history_generator
     gap = (pd.Timestamp(scenario.first_week) - pd.Timestamp(g["end"])).days - 1
     out = {"lead_gap_days": gap, "truth": truth_part(scenario, gap, args.seeds)}
@@ -170,7 +169,7 @@ def main() -> None:
     print(f"Generator truth over {t['seeds']} histories (network shocks' week-to-week sd in a 13-week window):")
     print(f"  corr(block, 13 weeks before the cut-off) = {t['corr_block_vs_13w_before_cutoff']:+.3f}; "
           f"corr(block, RMS of the training windows) = {t['corr_block_vs_training_rms']:+.3f}")
-    print(f"  block sd quantiles 5/25/50/75/95%: " + " / ".join(f"{v:.4f}" for v in t["block_sd_quantiles"].values()))
+    print("  block sd quantiles 5/25/50/75/95%: " + " / ".join(f"{v:.4f}" for v in t["block_sd_quantiles"].values()))
     print(f"  demo: block {d['block_sd']:.4f} (percentile {d['block_sd_percentile']:.1%}), before the cut-off "
           f"{d['before_cutoff_sd']:.4f}, training RMS {d['training_rms_sd']:.4f}; block / training "
           f"{d['ratio_block_to_training']:.3f} (percentile {d['ratio_percentile']:.1%})")

@@ -82,7 +82,7 @@ def main() -> None:
     with tempfile.TemporaryDirectory(prefix="pledge-bench-fit-", dir="/tmp") as tmp:
         scenario = args.scenario
         if scenario is None:
-            from scenarios.generate import copy_demo
+            from scenarios.folders import copy_demo
 
             scenario = str(copy_demo(Path(tmp) / "demo"))
         fit = M.run_step([Path(__file__), "--step", "fit", "--scenario", scenario])

@@ -28,7 +28,7 @@ def _step_generate(folder: Path) -> dict:
     from planner.scenario import load_scenario
     from scenarios.generate import spec_from_scenario, write_spec
 
-    sc = load_scenario(folder, generate=False)
+    sc = load_scenario(folder)
     t0 = time.perf_counter()
     write_spec(spec_from_scenario(sc), folder / "history.parquet")
     import pyarrow.parquet as pq

@@ -34,14 +34,15 @@ TARGET_BUILD = 15.0
 
 
 def build_pulp(prob):
-    """The LP of `planner.allocate._Model` (cost mode) in pulp, one variable and one term at a time."""
+    """The LP of `planner.allocate._Model` (cost mode) in pulp, one variable and one term at a time,
+    its rows from the same rule objects (`planner.rules.row_blocks`)."""
     import numpy as np
     import pulp
 
     from planner.allocate import SCALE, pulp_variable
+    from planner.rules import RISK, row_blocks
 
     r = prob.rules
-    u = prob.units
     n = prob.n
     m = (prob.model.m * SCALE).tolist()
     ub, rate = prob.ub.tolist(), prob.rate.tolist()
@@ -52,28 +53,15 @@ def build_pulp(prob):
     T = pulp_variable(lp, "T", 0)
     lp += pulp.lpSum(rate[i] * x[i] for i in range(n))
     lp += pulp.lpSum(m[i] * x[i] for i in range(n)) - T == 0, "total"
-    if r.max_network_share is not None:
-        nets = u["network"].to_numpy()
-        for net in sorted(set(nets)):
-            idx = np.flatnonzero(nets == net)
-            lp += pulp.lpSum(m[i] * x[i] for i in idx) - r.max_network_share * T <= 0, f"network_{net}"
-    dps = u["daypart"].to_numpy()
-    for d, s in r.daypart_min_share.items():
-        idx = np.flatnonzero(dps == d)
-        lp += pulp.lpSum(m[i] * x[i] for i in idx) - s * T >= 0, f"dmin_{d}"
-    for d, s in r.daypart_max_share.items():
-        idx = np.flatnonzero(dps == d)
-        lp += pulp.lpSum(m[i] * x[i] for i in idx) - s * T <= 0, f"dmax_{d}"
-    if r.weekly_tolerance is not None:
-        W = len(prob.weeks)
-        wk = u["week"].to_numpy()
-        for w in prob.weeks:
-            idx = np.flatnonzero(wk == w)
-            y = pulp.lpSum(m[i] * x[i] for i in idx)
-            lp += y - (1 + r.weekly_tolerance) / W * T <= 0, f"pmax_{w}"
-            lp += y - (1 - r.weekly_tolerance) / W * T >= 0, f"pmin_{w}"
-    factor = 1.0 + r.pad if r.pad is not None else 1.0
-    lp += T >= factor * prob.guarantee * SCALE, "risk_base"
+    for b in row_blocks(r, prob.units, prob.weeks):
+        for j, key in enumerate(b.keys):
+            e = pulp.lpSum(m[i] * x[i] for i in np.flatnonzero(b.group == j)) + float(b.t_coef[j]) * T
+            if np.isfinite(b.upper[j]):
+                lp += e <= float(b.upper[j]), f"{b.kind}_{key}_hi"
+            if np.isfinite(b.lower[j]):
+                lp += e >= float(b.lower[j]), f"{b.kind}_{key}_lo"
+    factor, label = RISK.base_row(r)
+    lp += T >= factor * prob.guarantee * SCALE, label
     return lp
 
 
@@ -82,11 +70,12 @@ def step_allocate(args) -> None:
 
     from planner import allocate as al
     from planner.book import held_spots
-    from planner.deals import check_deal, deal_units, rules_of
+    from planner.deals import deal_units, rules_of
+    from planner.workflows import check_deal
     from planner.scenario import load_scenario
 
     t0 = time.perf_counter()
-    scenario = load_scenario(args.large, generate=False)
+    scenario = load_scenario(args.large)
     forecast = pd.read_parquet(Path(args.large) / "forecast" / "forecast.parquet")
     held = held_spots(scenario)
     load_s = time.perf_counter() - t0

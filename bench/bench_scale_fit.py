@@ -48,7 +48,7 @@ def step_fit(args) -> None:
     from planner.scenario import load_scenario
 
     t0 = time.perf_counter()
-    scenario = load_scenario(args.large, generate=False)
+    scenario = load_scenario(args.large)
     prof = pd.read_parquet(args.profiles_file)
     t_read = time.perf_counter()
     cube = ProfileCube.from_profiles(prof)

@@ -33,13 +33,14 @@ def _load(folder):
 
     from planner.scenario import load_scenario
 
-    scenario = load_scenario(folder, generate=False)
+    scenario = load_scenario(folder)
     forecast = pd.read_parquet(Path(folder) / "forecast" / "forecast.parquet")
     return scenario, forecast
 
 
 def step_stress(args) -> None:
-    from planner.stress import load_book_model, stress_model
+    from planner.stress import stress_model
+    from planner.workflows import load_book_model
 
     scenario, forecast = _load(args.large)
     t0 = time.perf_counter()
@@ -67,7 +68,8 @@ def step_stress(args) -> None:
 
 
 def step_compare(args) -> None:
-    from planner.stress import load_book_model, stress_model
+    from planner.stress import stress_model
+    from planner.workflows import load_book_model
 
     scenario, forecast = _load(args.small)
     model, _ = load_book_model(scenario, forecast=forecast)

@@ -31,10 +31,11 @@ TARGET_SECONDS = 5.0
 
 def demo_book(folder: Path, solver: str = "cbc"):
     """The demo scenario in `folder` with its forecast fitted and deliverable deals committed."""
-    from planner.book import commit_deal, list_deals
+    from planner.book import list_deals
+    from planner.workflows import commit_deal
     from planner.forecast_job import ensure_forecast
     from planner.scenario import load_scenario
-    from scenarios.generate import copy_demo
+    from scenarios.folders import copy_demo
 
     if not (folder / "scenario.toml").exists():
         copy_demo(folder)
@@ -58,7 +59,8 @@ def main(argv=None) -> dict:
     ap.add_argument("--repeat", type=int, default=3, help="timed repetitions (best is reported)")
     args = ap.parse_args(argv)
 
-    from planner.stress import load_book_model, stress_book, stress_model
+    from planner.stress import stress_model
+    from planner.workflows import load_book_model, stress_book
 
     tmp = None
     if args.scenario is not None:

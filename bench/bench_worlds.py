@@ -113,11 +113,14 @@ def run_world(family: str, seed: int, size: str, lead: int, work: Path, apply: b
     if scale != 1.0:  # what `pledge forecast hindcast --apply` (and pledge demo) do to the table
         table = scale_shared_factors(table, scale)
     scores = plan_week_scores(sc, table, model)
+    unapplied = plan_week_scores(sc, res.table, model) if scale != 1.0 else scores
     deals = replay.deals.assign(family=family, seed=seed, origin=lambda d: f"{family}-{seed}-" + d["origin"])
     fit = res.meta["fit"]
     row = {"family": family, "seed": seed, "lead_days": lead, "fit_seconds": round(t_fit, 1),
            "seconds": round(time.perf_counter() - t0, 1), "bias": scores["bias"], "bias_sd": scores["bias_sd"],
-           "bias_z": scores["bias_z"], "crps_skill": scores["crps_skill"], "coverage": scores["coverage"],
+           "bias_z": scores["bias_z"], "bias_z_unapplied": unapplied["bias_z"],
+           "crps_skill": scores["crps_skill"], "coverage": scores["coverage"],
+           "disagreement_sd": fit["candidates"].get("disagreement_sd", 0.0),
            "baseline_bias": {n: b["bias"] for n, b in scores["baselines"].items()},
            "weights": fit["candidates"]["pooled_weights"],
            "common_widened_by_sd": fit["level_error"]["common_widened_by_sd"],
@@ -130,6 +133,7 @@ def family_summary(rows: list[dict], deals: pd.DataFrame) -> dict:
     out = {"worlds": int(len(df)), "mean_bias": float(df["bias"].mean()),
            "bias_se": float(df["bias"].std(ddof=1) / np.sqrt(len(df))) if len(df) > 1 else float("nan"),
            "bias_z_rms": float(np.sqrt(np.mean(df["bias_z"] ** 2))),
+           "bias_z_rms_unapplied": float(np.sqrt(np.mean(df.get("bias_z_unapplied", df["bias_z"]) ** 2))),
            "mean_crps_skill": float(df["crps_skill"].mean()), "min_crps_skill": float(df["crps_skill"].min()),
            "coverage": {lv: float(np.mean([c[lv] for c in df["coverage"]])) for lv in ("0.5", "0.8", "0.95")}}
     if len(deals):

@@ -181,12 +181,12 @@ def write_history_and_baseline(out: Path, layout: dict, *, seed: int, history: b
     spec = gen.make_spec(zones=zones, networks=nets, genres=layout["genres"], demos=demos,
                          universes=layout["universes"], start=start, end=end, seed=seed,
                          horizon_days=horizon)
-    sim = gen._Sim(spec)
+    sim = gen.ProfileSim(spec)
     n_hist = len(zones) if history_zones is None else max(0, min(int(history_zones), len(zones)))
     short_start = end - timedelta(days=7 * TRAIL_WEEKS - 1)
     short = None
     if n_hist < len(zones):
-        short = gen._Sim(gen.make_spec(zones=zones, networks=nets, genres=layout["genres"], demos=demos,
+        short = gen.ProfileSim(gen.make_spec(zones=zones, networks=nets, genres=layout["genres"], demos=demos,
                                        universes=layout["universes"], start=short_start, end=end,
                                        seed=seed, horizon_days=2))
     n_net, n_dem = len(nets), len(demos)
@@ -393,12 +393,13 @@ class _FixedPlan:
 
 def commit_book(out: Path, plans: list[dict]) -> float:
     """Commit every plan through planner.book.commit_deal; returns seconds."""
-    from planner.book import book_path, commit_deal
+    from planner.book import book_path
+    from planner.workflows import commit_deal
     from planner.delivery import DeliveryModel
     from planner.scenario import load_scenario
 
     t0 = time.perf_counter()
-    scenario = load_scenario(out, generate=False)
+    scenario = load_scenario(out)
     path = book_path(scenario)
     for f in (path, Path(str(path) + "-wal"), Path(str(path) + "-shm")):
         if f.exists():
@@ -459,7 +460,7 @@ def main(argv=None) -> int:
         from planner.book import held_spots
         from planner.scenario import load_scenario
 
-        write_check_deal(out, layout, forecast, inventory, held_spots(load_scenario(out, generate=False)))
+        write_check_deal(out, layout, forecast, inventory, held_spots(load_scenario(out)))
     held = sum(int(p["spots"]["spots"].sum()) for p in plans)
     facts = {"out": str(out), "zones": args.zones, "networks": args.networks, "dayparts": len(DAYPARTS),
              "weeks": args.weeks, "demos": args.demos, "days": args.days,

@@ -69,6 +69,28 @@ def _scores(y, mu, sd) -> dict:
     }
 
 
+def _pooled_summary(df: pd.DataFrame, per_window: list[dict], seed: int, W: int, K: int, gap_days: int) -> dict:
+    """The backtest's summary over every scored unit-week of the K blocks (`df`), with each block's
+    own entry under ``windows`` (latest first)."""
+    if K == 1:  # the pooled scores are the one block's
+        summary = {k: v for k, v in per_window[0].items() if k not in ("holdout", "units", "law_estimated_on")}
+    else:
+        summary = _block_scores(df, seed)
+    summary["pit_histogram"] = pit_histogram(df["actual"], df["mean"], df["sd"]).tolist()
+    summary["by_daypart"] = {
+        dp: _scores(g["actual"], g["mean"], g["sd"]) for dp, g in df.groupby("daypart", sort=False)}
+    if K == 1:
+        summary["holdout"] = per_window[0]["holdout"]
+    else:
+        summary["holdout"] = {
+            "first_day": per_window[-1]["holdout"]["first_day"], "last_day": per_window[0]["holdout"]["last_day"],
+            "weeks": W * K, "blocks": K, "weeks_per_block": W,
+            "cutoff_day": per_window[0]["holdout"]["cutoff_day"], "lead_gap_days": int(gap_days)}
+    summary["units"] = int(len(df))
+    summary["windows"] = per_window
+    return summary
+
+
 def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.DataFrame, *,
                  holdout_weeks: int = 13, gap_days: int = 0, windows: int = 1,
                  forecaster: DaypartForecaster | None = None,
@@ -135,22 +157,7 @@ def run_backtest(cube: ProfileCube, info: pd.DataFrame, dayparts, universes: pd.
         entry.update(_block_scores(df, seed))
         per_window.append(entry)
     df = pd.concat(frames, ignore_index=True)
-    if K == 1:  # the pooled scores are the one block's
-        summary = {k: v for k, v in per_window[0].items() if k not in ("holdout", "units", "law_estimated_on")}
-    else:
-        summary = _block_scores(df, seed)
-    summary["pit_histogram"] = pit_histogram(df["actual"], df["mean"], df["sd"]).tolist()
-    summary["by_daypart"] = {
-        dp: _scores(g["actual"], g["mean"], g["sd"]) for dp, g in df.groupby("daypart", sort=False)}
-    if K == 1:
-        summary["holdout"] = per_window[0]["holdout"]
-    else:
-        summary["holdout"] = {
-            "first_day": per_window[-1]["holdout"]["first_day"], "last_day": per_window[0]["holdout"]["last_day"],
-            "weeks": W * K, "blocks": K, "weeks_per_block": W,
-            "cutoff_day": per_window[0]["holdout"]["cutoff_day"], "lead_gap_days": int(gap_days)}
-    summary["units"] = int(len(df))
-    summary["windows"] = per_window
+    summary = _pooled_summary(df, per_window, seed, W, K, gap_days)
     summary["fit"] = latest_fit
     return BacktestResult(summary=summary, scored=df)
 
@@ -301,7 +308,7 @@ def _score_block(cube: ProfileCube, info: pd.DataFrame, specs, universes: pd.Dat
     u = df.merge(uni, on=["zone", "demo"], how="left")["universe"].to_numpy(float)
     u = np.where(np.isfinite(u), u, 1.0)
     df["size"] = np.log10(np.maximum(model_mean[s, p, w] * fc.universe_s_[s], 1e-9))
-    rel = fc.level_.predict(df)
+    rel = fc.plan_law().predict(df)
     for col, _ in COMPONENTS:
         df[col] = rel[col].to_numpy(float)
     rel_sd = np.sqrt(sum(df[col].to_numpy() ** 2 for col, _ in COMPONENTS))

@@ -4,7 +4,8 @@ Besides the quarter-hour profile model (`forecasting.models.ProfileForecaster`),
 structurally different forecasters of a daypart-week mean rating are made at every origin, from
 the history before it only:
 
-- ``last_year_scaled``: the same weeks one year (364 days) earlier, scaled by half the recent
+- ``last_year_scaled``: the same weeks one year (364 days) earlier (each averaged with its two
+  neighbours), scaled by half the recent
   year-over-year change pooled over every series (up to 26 weeks before the origin over the same
   weeks a year earlier); it carries each unit's seasonality and, partly, erosion.
 - ``trailing``: the mean of the last `recent_weeks` weeks before the origin; it carries level
@@ -43,6 +44,8 @@ SIMPLE_CANDIDATES = ("last_year_scaled", "trailing", "regression")
 #: smallest daypart-week mean rating taken to logs (a measurement floor reads as zero)
 LOG_FLOOR = 1e-6
 YEAR_WEEKS = 52
+#: half-width (weeks) of the window around last year's week that `last_year_scaled` averages
+SMOOTH_WEEKS = 1
 
 
 def weekly_grid(values: np.ndarray, day0_weekday: int, origin: int, dayparts: Sequence[DaypartSpec]):
@@ -70,6 +73,22 @@ def _window_mean(means: np.ndarray, counts: np.ndarray, lo: int, hi: int) -> np.
         return np.where(n > 0, s / np.maximum(n, 1), np.nan)
 
 
+def _centred_mean(means: np.ndarray, counts: np.ndarray, idx: np.ndarray, half_width: int) -> np.ndarray:
+    """Cell-weighted mean of weeks ``idx - half_width .. idx + half_width`` of a weekly grid (those
+    inside it), (S, P, len(idx)); NaN without cells."""
+    n = means.shape[2]
+    total = np.zeros(means.shape[:2] + (len(idx),))
+    cells = np.zeros_like(total)
+    for d in range(-half_width, half_width + 1):
+        j = idx + d
+        inside = (j >= 0) & (j < n)
+        c = np.where(inside[None, None, :], counts[:, :, np.clip(j, 0, n - 1)], 0.0)
+        total += np.where(c > 0, np.nan_to_num(means[:, :, np.clip(j, 0, n - 1)]) * c, 0.0)
+        cells += c
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(cells > 0, total / np.maximum(cells, 1e-300), np.nan)
+
+
 def trailing(grid: tuple[np.ndarray, np.ndarray], n_weeks: int, recent_weeks: int = 8) -> np.ndarray:
     """Mean of the last `recent_weeks` weeks of the grid, repeated for `n_weeks` target weeks."""
     means, counts = grid
@@ -78,7 +97,7 @@ def trailing(grid: tuple[np.ndarray, np.ndarray], n_weeks: int, recent_weeks: in
 
 
 def last_year_scaled(grid: tuple[np.ndarray, np.ndarray], gap_weeks: int, n_weeks: int,
-                     max_ratio_weeks: int = 26, shrink: float = 0.5) -> np.ndarray:
+                     max_ratio_weeks: int = 26, shrink: float = 0.5, smooth_weeks: int = SMOOTH_WEEKS) -> np.ndarray:
     """Last year's same weeks x the recent year-over-year ratio, (S, P, W) ratings.
 
     Target week w (0-based) starts `gap_weeks + w` weeks after the origin; its last-year week is 52
@@ -86,13 +105,15 @@ def last_year_scaled(grid: tuple[np.ndarray, np.ndarray], gap_weeks: int, n_week
     the sum of the same weeks a year earlier (k the longest window up to `max_ratio_weeks` the
     history holds, at least 4), its log times `shrink`. A series' own ratio, or its network's, is
     measured on a few weeks of shocks and adds more noise than the erosion it would carry.
+    Last year's week is the cell-weighted mean of the weeks within `smooth_weeks` of it (those the
+    history holds): one week of last year carries that week's passing shocks, which will not recur.
     """
     means, counts = grid
     S, P, n = means.shape
     ly_idx = n + gap_weeks + np.arange(n_weeks) - YEAR_WEEKS
     out = np.full((S, P, n_weeks), np.nan)
     ok = (ly_idx >= 0) & (ly_idx < n)
-    out[:, :, ok] = means[:, :, ly_idx[ok]]
+    out[:, :, ok] = _centred_mean(means, counts, ly_idx[ok], smooth_weeks)
     k = min(max_ratio_weeks, n - YEAR_WEEKS)
     if k < 4:
         return out

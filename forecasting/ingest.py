@@ -15,8 +15,11 @@ from datetime import date
 from pathlib import Path
 from typing import Iterable, Sequence
 
+import duckdb
 import numpy as np
 import pandas as pd
+
+from forecasting.spark_engine import run_reduction_spark
 
 QUARTER_HOURS = 96
 KEYS = ["zone", "network", "demo", "date"]
@@ -126,7 +129,6 @@ def run_reduction_duckdb(sql: str, source: str | os.PathLike, *, memory_limit: s
     -------
     DataFrame : the query result.
     """
-    import duckdb
 
     _check_source(source)
     con = duckdb.connect(database=":memory:")
@@ -146,8 +148,6 @@ def _run(sql: str, source, engine: str, **engine_options) -> pd.DataFrame:
     if engine == "duckdb":
         return run_reduction_duckdb(sql, source, **engine_options)
     if engine == "spark":
-        from forecasting.spark_engine import run_reduction_spark  # written by the scale work
-
         return run_reduction_spark(sql, source, **engine_options)
     raise ValueError(f"unknown engine {engine!r} (use 'duckdb' or 'spark')")
 
@@ -203,7 +203,6 @@ def profiles_from_frame(history: pd.DataFrame, dtype=np.float64) -> pd.DataFrame
     -------
     DataFrame : as `daily_profiles`.
     """
-    import duckdb
 
     con = duckdb.connect(database=":memory:")
     try:

@@ -140,6 +140,44 @@ class ProfileForecaster:
         self.categorical_mask_ = np.array(
             [len(self.categories_[c]) <= 250 for c in CATEGORY_COLUMNS] + [False] * n_cal)
 
+        s_idx, t_idx, rows, rows_obs, scores, X = self._fit_scores(rng, values)
+        n = len(s_idx)
+
+        # Offsets, second stage and smearing use the recent year only (recency-weighted anyway),
+        # sampled to at most `offset_rows` days so their cost does not grow with the history.
+        recent = np.nonzero(t_idx >= T - 365)[0]
+        if len(recent) > self.offset_rows:
+            recent = np.sort(rng.choice(recent, size=self.offset_rows, replace=False))
+        rs, rt = s_idx[recent], t_idx[recent]
+        Xr = X[recent]
+        pred = np.column_stack([m.predict(Xr) for m in self.score_models_])
+        self._fit_offsets(rs, rt, scores[recent] - pred, S, T)
+        pred += self.offsets_[rs]
+
+        level = self.pca_.inverse_transform(pred)  # (n_recent, 96) stage-1 fit
+        rows_r = rows[recent]
+        resid = rows_r - level
+        cell_r, cell_q, dow = self._fit_second_stage(rng, rows_obs[recent], rs, rt, resid, S)
+
+        # Smearing factors from a fresh sample of cells (not the one the second stage saw).
+        pick = np.sort(rng.choice(len(cell_r), size=min(len(cell_r), self.residual_rows), replace=False))
+        r, q = cell_r[pick], cell_q[pick]
+        fitted = level[r, q] + self.residual_table_[rs[r], dow[r], q]
+        err = rows_r[r, q] - fitted
+        self._fit_smear(rs[r], q // BLOCK_QH, np.power(10.0, err), S)
+        self.n_train_rows_ = n
+        return self
+
+    def _cell_features(self, s: np.ndarray, dow: np.ndarray, q: np.ndarray) -> np.ndarray:
+        """Quarter-hour cell features (n, 4 + 5): series categories, weekday and clock on the circle."""
+        ang = 2 * np.pi * dow / 7.0
+        return np.column_stack([self.series_codes_[s], np.sin(ang), np.cos(ang), (dow >= 5).astype(float),
+                                clock_features(q)])
+
+    def _fit_scores(self, rng: np.random.Generator, values: np.ndarray):
+        """Stage 1: the profile PCA on observed days and one regression per score (log10 ratings).
+        Returns (series index, day index, day rows (n, 96) NaN = missing, observed mask, scores (n, k),
+        features X)."""
         Y = to_log(values).astype(np.float32)
         observed = np.isfinite(Y)
         per_day = observed.sum(axis=2)
@@ -172,23 +210,16 @@ class ProfileForecaster:
             model.fit(X[take], scores[take, j])
             self.score_models_.append(model)
 
-        # Offsets, second stage and smearing use the recent year only (recency-weighted anyway),
-        # sampled to at most `offset_rows` days so their cost does not grow with the history.
-        recent = np.nonzero(t_idx >= T - 365)[0]
-        if len(recent) > self.offset_rows:
-            recent = np.sort(rng.choice(recent, size=self.offset_rows, replace=False))
-        rs, rt = s_idx[recent], t_idx[recent]
-        Xr = X[recent]
-        pred = np.column_stack([m.predict(Xr) for m in self.score_models_])
-        self._fit_offsets(rs, rt, scores[recent] - pred, S, T)
-        pred += self.offsets_[rs]
+        return s_idx, t_idx, rows, rows_obs, scores, X
 
-        level = self.pca_.inverse_transform(pred)  # (n_recent, 96) stage-1 fit
-        rows_r = rows[recent]
-        resid = rows_r - level
+    def _fit_second_stage(self, rng: np.random.Generator, observed: np.ndarray, rs: np.ndarray, rt: np.ndarray,
+                          resid: np.ndarray, S: int):
+        """Stage 2: the residual model by series x day-of-week x quarter-hour on recent cells, as a
+        table (S, 7, 96) of log10 corrections. Returns the recent observed cells (row, qh) and each
+        recent row's day of week."""
         self.residual_model_ = None
         self.residual_table_ = np.zeros((S, 7, 96))
-        cell_r, cell_q = np.nonzero(rows_obs[recent])
+        cell_r, cell_q = np.nonzero(observed)
         dow = (self.day0_.day_of_week + rt) % 7
         if self.residual_max_iter > 0 and len(cell_r) > 1000:
             pick = np.sort(rng.choice(len(cell_r), size=min(len(cell_r), self.residual_rows), replace=False))
@@ -200,21 +231,7 @@ class ProfileForecaster:
             gs, gd, gq = np.meshgrid(np.arange(S), np.arange(7), np.arange(96), indexing="ij")
             self.residual_table_ = self.residual_model_.predict(
                 self._cell_features(gs.ravel(), gd.ravel(), gq.ravel())).reshape(S, 7, 96)
-
-        # Smearing factors from a fresh sample of cells (not the one the second stage saw).
-        pick = np.sort(rng.choice(len(cell_r), size=min(len(cell_r), self.residual_rows), replace=False))
-        r, q = cell_r[pick], cell_q[pick]
-        fitted = level[r, q] + self.residual_table_[rs[r], dow[r], q]
-        err = rows_r[r, q] - fitted
-        self._fit_smear(rs[r], q // BLOCK_QH, np.power(10.0, err), S)
-        self.n_train_rows_ = n
-        return self
-
-    def _cell_features(self, s: np.ndarray, dow: np.ndarray, q: np.ndarray) -> np.ndarray:
-        """Quarter-hour cell features (n, 4 + 5): series categories, weekday and clock on the circle."""
-        ang = 2 * np.pi * dow / 7.0
-        return np.column_stack([self.series_codes_[s], np.sin(ang), np.cos(ang), (dow >= 5).astype(float),
-                                clock_features(q)])
+        return cell_r, cell_q, dow
 
     def _fit_offsets(self, s_idx, t_idx, resid, S, T) -> None:
         """Series offsets: recency-weighted mean residual, shrunk by the random-effects ratio.

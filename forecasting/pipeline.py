@@ -79,6 +79,8 @@ class FoldResult:
     recent: np.ndarray | None = None  # (S, P) log(actual / fitted) over the last weeks before the origin
     candidates: dict = field(default_factory=dict)  # name -> (S, P, W) other candidates' means
     combined: np.ndarray | None = None  # (S, P, W) the stacked combination (set after the stacking fit)
+    disagreement: float = 0.0  # variance (fraction^2) of the candidates' totals around the combination's
+    mixture_var: np.ndarray | None = None  # (P, 2) sum and count of the mixture's relative variance over law rows
 
     def all_candidates(self) -> dict:
         """{candidate: (S, P, W) mean ratings}, the profile model's first."""
@@ -280,6 +282,10 @@ class DaypartForecaster:
             others = rows[rows["fold"] != j]
             comb_j = self._new_combiner().fit(others) if len(others) >= 50 and len(folds) > 1 else comb
             f.combined = comb_j.combine(f.all_candidates(), list(names))
+            f.disagreement = comb_j.disagreement(f.all_candidates(), list(names), self.universe_s_)
+            mv = comb.mixture_variance(f.all_candidates(), list(names))  # one set of spreads for every refit and the plan
+            law_rows = (f.counts >= need) & np.isfinite(f.actual) & ~f.truncated[:, None, None] & np.isfinite(mv)
+            f.mixture_var = np.stack([np.where(law_rows, mv, 0.0).sum(axis=(0, 2)), law_rows.sum(axis=(0, 2))], axis=1)
         return comb
 
     def _new_combiner(self) -> StackedCombiner:
@@ -291,12 +297,14 @@ class DaypartForecaster:
         names = [dp.name for dp in self.dayparts_]
         return self.combiner_.combine({PROFILE: profile_mean, **self.plan_candidates_}, names)
 
-    def _calibration(self, errors: pd.DataFrame) -> dict:
+    def _calibration(self, errors: pd.DataFrame, results: Sequence[FoldResult] | None = None) -> dict:
         """Leave-one-refit-out checks of the error law on the full-history units of each refit.
 
         For each refit j the level model is fitted on the other refits' errors, then on refit j:
         the coverage of the unit-week level bands, and the miss of the refit's total against the
-        sd the law gives it (`_total_miss`, summed up by `_total_check`).
+        sd the law gives it (`_total_miss`, summed up by `_total_check`); with the refits' results
+        (`results`) the law is carried to refit j's candidates as the shipped one is to the plan's
+        (`law_scale`, the common factor at least refit j's candidate disagreement).
         """
         out = {}
         folds = sorted(errors["fold"].unique())
@@ -309,6 +317,10 @@ class DaypartForecaster:
                 lm = LevelErrorModel().fit(errors[errors["fold"] != j])
             except ValueError:
                 continue
+            if results is not None:
+                others = [i for i in folds if i != j]
+                lm = lm.with_daypart_scale(self.law_scale(results[int(j)].mixture_var, others, results))
+                lm = lm.with_common_floor(results[int(j)].disagreement)
             held = errors[(errors["fold"] == j) & ~errors["truncated"]]
             sd = lm.predict(held)
             tot = np.sqrt(sum(sd[col] ** 2 for col, _ in COMPONENT_KEYS))
@@ -460,7 +472,7 @@ class DaypartForecaster:
         # what a hindcast needs of each refit (heldout_table), without the bulky candidate arrays
         self.fold_results_ = [replace(f, baselines={}, candidates={}) for f in folds]
         self.level_ = LevelErrorModel().fit(errors)
-        self.calibration_ = self._calibration(errors)
+        self.calibration_ = self._calibration(errors, folds)
         shift = self.shift_to_cover(self.calibration_.get("leave_one_fold_out_total") or {}, len(origins))
         if shift > 0:
             self.level_.widen_common(shift, len(origins))
@@ -493,6 +505,12 @@ class DaypartForecaster:
                                                   random_state=self.random_state)
         self.plan_raw_mean_ = raw_mean
         self.plan_combined_ = self.combine_plan(raw_mean)
+        names = [dp.name for dp in dayparts]
+        plan_cands = {PROFILE: raw_mean, **self.plan_candidates_}
+        self.plan_disagreement_var_ = self.combiner_.disagreement(plan_cands, names, self.universe_s_)
+        mv = self.combiner_.mixture_variance(plan_cands, names)
+        have = np.isfinite(mv)
+        self.plan_mixture_var_ = np.stack([np.where(have, mv, 0.0).sum(axis=(0, 2)), have.sum(axis=(0, 2))], axis=1)
         self.plan_mean_ = self.plan_combined_ * self.level_factor(self.plan_recent_)
         # Airing noise: dispersion of cells within daypart weeks of the recent history.
         a_start = max(T - 7 * self.airing_weeks, 0)
@@ -539,6 +557,8 @@ class DaypartForecaster:
         law = LevelErrorModel().fit(self.heldout_errors_[self.heldout_errors_["fold"] != j])
         if self.level_.widened_common_var_ > 0:
             law.widen_common(self.level_.widened_common_var_, J - 1)
+        others = [i for i in range(J) if i != int(j)]
+        law = law.with_daypart_scale(self.law_scale(f.mixture_var, others)).with_common_floor(f.disagreement)
         mean = f.combined * self.level_factor(f.recent, law)
         need = (self.min_cells if min_cells is None else min_cells) * self._expected_cells(self.dayparts_)
         ok = (f.counts >= need[None, :, None]) & np.isfinite(f.actual) & np.isfinite(mean) & (mean > 0)
@@ -566,8 +586,31 @@ class DaypartForecaster:
         mean_impressions, airing_sd, level_sd, level_sd_network, level_sd_flight, level_sd_week,
         q10_impressions, q90_impressions, history_weeks, level_sd_network_week, level_sd_common``.
         """
-        t = self._table(self.plan_mean_, self.history_weeks_, universes, units, self.level_)
+        t = self._table(self.plan_mean_, self.history_weeks_, universes, units, self.plan_law())
         return t.drop(columns="series")
+
+    def plan_law(self) -> LevelErrorModel:
+        """The error law of the plan weeks: the fitted (and widened) law, scaled by daypart to the
+        plan's candidates (`law_scale`), its common factor at least the candidates' disagreement
+        about the plan weeks' total (`StackedCombiner.disagreement`)."""
+        scale = self.law_scale(self.plan_mixture_var_, range(len(self.fold_results_)))
+        return self.level_.with_daypart_scale(scale).with_common_floor(self.plan_disagreement_var_)
+
+    def law_scale(self, target: np.ndarray, folds, results: Sequence[FoldResult] | None = None) -> dict:
+        """{daypart: sd multiplier} carrying a law learned on refits `folds` to a forecast whose
+        mixture has relative variance `target` ((P, 2) sum and count, `StackedCombiner.mixture_variance`):
+        ``sqrt(target mean / the refits' mean)``, within [1/2, 2]; 1 where either is unknown.
+
+        The law is learned from the errors of the refits' combinations. Where a candidate could not
+        forecast in the refits (last year's weeks before the history began) their combinations
+        leaned on the others and erred more than the shipped one will, or less where the plan
+        lacks one; the candidates' own held-out spreads say by how much."""
+        results = self.fold_results_ if results is None else results
+        pooled = np.sum([results[int(i)].mixture_var for i in folds], axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ratio = (target[:, 0] / target[:, 1]) / (pooled[:, 0] / pooled[:, 1])
+        k = np.where(np.isfinite(ratio) & (ratio > 0), np.sqrt(np.clip(ratio, 0.25, 4.0)), 1.0)
+        return {dp.name: float(v) for dp, v in zip(self.dayparts_, k)}
 
     def _table(self, mean: np.ndarray, history_weeks: np.ndarray, universes: pd.DataFrame,
                units: pd.DataFrame | None, law: LevelErrorModel) -> pd.DataFrame:
@@ -621,8 +664,11 @@ class DaypartForecaster:
             "lead_gap_days": int(self.gap_days_),
             "pca_components": int(self.model_.pca_.components_.shape[0]),
             "pca_explained": float(self.model_.pca_.explained_variance_ratio_.sum()),
-            "level_error": self.level_.summary(),
-            "candidates": self.combiner_.summary(),
+            "level_error": self.plan_law().summary(),
+            "candidates": {**self.combiner_.summary(),
+                           "disagreement_sd": float(np.sqrt(self.plan_disagreement_var_)),
+                           "disagreement_sd_by_refit": {self._fold_date(j): float(np.sqrt(f.disagreement))
+                                                        for j, f in enumerate(self.fold_results_)}},
             "calibration": self.calibration_,
             "baseline_spread": self.baseline_spread_,
             "timings_seconds": {k: round(v, 2) for k, v in self.timings_.items()},

@@ -13,8 +13,10 @@ from __future__ import annotations
 
 import glob as _glob
 import os
+import shutil
 from pathlib import Path
 
+import duckdb
 import pandas as pd
 
 #: Environment variable naming the Spark master (e.g. ``spark://host:7077``); default local mode.
@@ -33,15 +35,13 @@ def spark_available() -> tuple[bool, str]:
     (bool, str) : availability and, when unavailable, the reason in words.
     """
     try:
-        import pyspark  # noqa: F401
+        import pyspark  # noqa: F401, PLC0415 - optional heavy dependency (the 'spark' extra), imported on use
     except ImportError as exc:
         return False, f"pyspark is not installed ({exc}); install the 'spark' extra"
     java_home = os.environ.get("JAVA_HOME")
     if java_home and (Path(java_home) / "bin" / "java").exists():
         return True, ""
-    from shutil import which
-
-    if which("java") is None:
+    if shutil.which("java") is None:
         return False, "no Java runtime found (java not on PATH and JAVA_HOME unset)"
     return True, ""
 
@@ -62,7 +62,7 @@ def get_spark_session(master: str | None = None, *, app_name: str = "pledge-hist
     -------
     pyspark.sql.SparkSession
     """
-    from pyspark.sql import SparkSession
+    from pyspark.sql import SparkSession  # noqa: PLC0415 - optional heavy dependency, imported on use
 
     active = SparkSession.getActiveSession()
     if active is not None and master is None:
@@ -157,6 +157,4 @@ def run_reduction_spark(sql: str, source: str | os.PathLike, *, master: str | No
         spark.catalog.dropTempView(view)
     # Same Arrow -> pandas conversion as the DuckDB engine's `.df()` (dates to datetime64,
     # strings to the string dtype), so the two engines hand the tidy step identical inputs.
-    import duckdb
-
     return duckdb.from_arrow(table).df()

@@ -15,8 +15,9 @@ mixture's mean, ``sum_k w_k b_k m_k``; where a candidate has no forecast its wei
 out among the others. The CRPS rows count by their refit's resemblance to the plan weeks in
 season (plus a floor), and the fitted weights are pulled toward a prior by one refit's worth
 (a fixed average: estimated weights rarely beat one by much, Smith & Wallis 2009; the pipeline's
-averages the two candidates that carry the season), so when the held-out weeks say little about
-weeks like the plan weeks the combination stays close to that average.
+weighs the two candidates that carry the season by their inverse held-out variance, each measured
+where it could forecast), so when the held-out weeks say little about weeks like the plan weeks
+the combination stays close to that average.
 
 References
 ----------
@@ -160,23 +161,27 @@ class StackedCombiner:
         parts = {dp: self._weight_rows(g, dp) for dp, g in rows.groupby("daypart", sort=True)}
         pooled = [np.concatenate(x) for x in zip(*parts.values())]
         self.pooled_weights_ = self._toward_prior(self._full_weights(_simplex_weights(*pooled) if len(pooled[0]) else None),
-                                                  rows)
-        weights = {dp: (self._toward_prior(self._full_weights(_simplex_weights(*p)), rows).to_numpy()
+                                                  rows, self.spread_.mean())
+        weights = {dp: (self._toward_prior(self._full_weights(_simplex_weights(*p)), rows, self.spread_.loc[dp]).to_numpy()
                         if len(p[0]) >= self.min_rows else self.pooled_weights_.to_numpy()) for dp, p in parts.items()}
         self.weights_ = pd.DataFrame(weights, index=cands).T
         self.scores_ = pd.DataFrame({dp: self._scores(*p[:3], self.weights_.loc[dp, self.usable_].to_numpy(float))
                                      for dp, p in parts.items() if len(p[0])}).T
         return self
 
-    def _toward_prior(self, w: pd.Series, rows: pd.DataFrame) -> pd.Series:
-        """``(S w + prior w0) / (S + prior)``: the fitted weights pulled toward `prior_weights` (w0)
-        by `ratio_prior` refits' worth, S the refits' summed season weights (how much of the held-out
-        evidence is about weeks like the plan weeks)."""
+    def _toward_prior(self, w: pd.Series, rows: pd.DataFrame, spread: pd.Series) -> pd.Series:
+        """``(S w + prior w0) / (S + prior)``: the fitted weights pulled toward w0 by `ratio_prior`
+        refits' worth, S the refits' summed season weights (how much of the held-out evidence is
+        about weeks like the plan weeks). w0 is `prior_weights` over each candidate's held-out
+        variance (`spread`^2, measured where that candidate could forecast), normalised: the
+        inverse-variance combination of Bates & Granger (1969) among the prior's candidates."""
         if self.prior_weights is None:
             return w
         S = float(rows.groupby("fold")["season_weight"].first().sum()) if "season_weight" in rows \
             else float(rows["fold"].nunique())
         w0 = pd.Series(self.prior_weights, dtype=float).reindex(w.index).fillna(0.0)
+        w0 = w0 / np.maximum(spread.reindex(w.index).astype(float).fillna(1.0), 1e-3) ** 2
+        w0 = w0 / w0.sum() if w0.sum() > 0 else w0
         return (S * w + self.ratio_prior * w0) / (S + self.ratio_prior)
 
     def _weight_rows(self, g: pd.DataFrame, dp: str):
@@ -222,6 +227,55 @@ class StackedCombiner:
         with np.errstate(invalid="ignore", divide="ignore"):
             out = (np.where(ok, stack * b, 0.0) * wk).sum(axis=0) / total
         return np.where(total > 0, out, np.nan)
+
+    def mixture_variance(self, forecasts: Mapping[str, np.ndarray], dayparts: Sequence[str]) -> np.ndarray:
+        """Expected relative variance (fraction^2) of the combination each unit gets, from the
+        candidates that have a forecast there: ``sum_k w_k s_k^2 / sum_k w_k`` over them, s_k the
+        candidate's held-out spread (after its ratio), w_k its weight. Same shape as `combine`'s
+        result; NaN where none has one. It differs between units only by which candidates could
+        forecast them: where a good one is missing (last year's weeks before the history began)
+        it is larger. (The candidates' disagreement unit by unit is left out: a few units where
+        one candidate is far off would dominate it.)"""
+        stack = np.stack([np.asarray(forecasts[c], float) for c in self.candidates], axis=0)  # (K, S, P, ...)
+        shape = [1] * stack.ndim
+        shape[0], shape[2] = len(self.candidates), len(dayparts)
+        w = self._table(self.weights_, dayparts, self.pooled_weights_.to_numpy()).T.reshape(shape)
+        s = self._table(self.spread_, dayparts, self.spread_.mean().to_numpy()).T.reshape(shape)
+        wk = np.where(np.isfinite(stack) & (stack > 0), w, 0.0)
+        total = wk.sum(axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            out = (wk * s * s).sum(axis=0) / total
+        return np.where(total > 0, out, np.nan)
+
+    def disagreement(self, forecasts: Mapping[str, np.ndarray], dayparts: Sequence[str], size) -> float:
+        """Variance (fraction^2) of the candidates' totals around the mixture's: the between-component
+        part of the mixture's law of one total shared by every unit.
+
+        Each candidate's total ``T_k = sum b_k m_k size`` over the units where every usable candidate
+        has a forecast (`forecasts` as in `combine`, (S, P, ...) arrays; `size` (S,) per-series
+        multiplier such as the universe), then ``sum_k w_k (log T_k - sum_j w_j log T_j)^2`` with
+        the pooled weights w. By the law of total variance, a mixture whose component is one model
+        for every unit gives its total at least this variance, whatever each component's own
+        spread. 0 with fewer than two usable candidates or no unit.
+        """
+        use = [c for c in self.candidates if c in self.usable_]
+        if len(use) < 2:
+            return 0.0
+        stack = np.stack([np.asarray(forecasts[c], float) for c in use], axis=0)  # (K, S, P, ...)
+        ok = np.all(np.isfinite(stack) & (stack > 0), axis=0)
+        if not ok.any():
+            return 0.0
+        shape = [1] * (stack.ndim - 1)
+        shape[1] = len(dayparts)
+        b = self._table(self.ratio_, dayparts, 1.0)[:, [self.candidates.index(c) for c in use]]  # (P, K)
+        u = np.asarray(size, float).reshape([-1] + [1] * (stack.ndim - 2))
+        totals = np.array([np.sum(np.where(ok, stack[k] * b[:, k].reshape(shape) * u, 0.0)) for k in range(len(use))])
+        w = self.pooled_weights_.reindex(use).to_numpy(float)
+        if w.sum() <= 0:
+            return 0.0
+        w = w / w.sum()
+        log_t = np.log(totals)
+        return float(w @ (log_t - w @ log_t) ** 2)
 
     def _table(self, frame: pd.DataFrame, dayparts: Sequence[str], unseen) -> np.ndarray:
         """(P, K) rows of `frame` for `dayparts`; `unseen` (a (K,) row or a number) for a daypart

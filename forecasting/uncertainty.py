@@ -37,6 +37,8 @@ Tashman, L. J. (2000). Out-of-sample tests of forecasting accuracy: an analysis 
 """
 from __future__ import annotations
 
+import copy
+
 import numpy as np
 import pandas as pd
 from scipy.stats import norm
@@ -93,6 +95,8 @@ class LevelErrorModel:
     var_common_ : float, variance of the common factor in a forecast (the shift and the error of
         its mean over the refits); var_common_heldout_ : the part of it the bias-corrected
         held-out errors hold.
+    common_floor_var_ : float, the floor `with_common_floor` put under the forecasts' common
+        variance (0 when none); daypart_scale_ : {daypart: multiplier of every sd} (`with_daypart_scale`).
     var_network_ : float, variance of the network factor.
     var_network_week_ : float, variance of the network-week factor.
     var_cells_ : DataFrame indexed by (daypart, size_bin, genre), columns ``flight, week``.
@@ -150,6 +154,8 @@ class LevelErrorModel:
         self._fit_history(df[df["truncated"]], full)  # ratios to the unscaled full-history variance
         self._apply_scale(self._fit_scale(full))
         self.widened_common_var_ = 0.0
+        self.common_floor_var_ = 0.0
+        self.daypart_scale_ = {}
         return self
 
     def _weighted_bias(self, full: pd.DataFrame) -> dict:
@@ -177,6 +183,22 @@ class LevelErrorModel:
         self.widened_common_var_ = float(var_shift)
         self.var_common_ += (1.0 + 1.0 / n_refits) * var_shift
         self.var_common_heldout_ += (1.0 - 1.0 / n_refits) * var_shift
+
+    def with_common_floor(self, var_floor: float) -> "LevelErrorModel":
+        """A copy whose forecasts' common factor has at least variance `var_floor` (fraction^2), e.g.
+        the candidates' disagreement about the total (`StackedCombiner.disagreement`): the shared
+        error a combination of forecasts claims for itself. The fitted components are unchanged."""
+        law = copy.copy(self)
+        law.common_floor_var_ = float(max(var_floor, 0.0))
+        return law
+
+    def with_daypart_scale(self, scale: dict) -> "LevelErrorModel":
+        """A copy whose relative sds are multiplied by ``scale[daypart]`` (1 where absent): the law
+        learned on the refits' forecasts carried to a forecast whose candidates err more or less
+        (`forecasting.pipeline.DaypartForecaster.law_scale`). The common factor is not scaled."""
+        law = copy.copy(self)
+        law.daypart_scale_ = {str(k): float(v) for k, v in scale.items()}
+        return law
 
     # ------------------------------------------------------------------ components
     @staticmethod
@@ -434,25 +456,30 @@ class LevelErrorModel:
         Returns
         -------
         DataFrame ``bias, rel_sd_common, rel_sd_network, rel_sd_network_week, rel_sd_flight,
-        rel_sd_week`` (fractions of the mean), aligned with `units`.
+        rel_sd_week`` (fractions of the mean), aligned with `units`; each but the common one times
+        the daypart's scale (`with_daypart_scale`: the common factor stays one fraction of every
+        unit's mean, as the table's contract says), the common one at least the floor
+        (`with_common_floor`).
         """
         dp = units["daypart"].astype(str)
         vf, vw = self._cell_vars(units)
         total = self.var_common_heldout_ + self.var_network_ + self.var_network_week_ + vf + vw
         extra = (self.history_factor(units["history_weeks"].to_numpy(float)) - 1.0) * total
+        k = dp.map(self.daypart_scale_).astype(float).fillna(1.0).to_numpy() if self.daypart_scale_ \
+            else np.ones(len(units))
         return pd.DataFrame({
             "bias": dp.map(self.bias_).astype(float).fillna(0.0).to_numpy(),
-            "rel_sd_common": np.full(len(units), np.sqrt(self.var_common_)),
-            "rel_sd_network": np.full(len(units), np.sqrt(self.var_network_)),
-            "rel_sd_network_week": np.full(len(units), np.sqrt(self.var_network_week_)),
-            "rel_sd_flight": np.sqrt(vf + extra),
-            "rel_sd_week": np.sqrt(vw),
+            "rel_sd_common": np.full(len(units), np.sqrt(max(self.var_common_, self.common_floor_var_))),
+            "rel_sd_network": k * np.sqrt(self.var_network_),
+            "rel_sd_network_week": k * np.sqrt(self.var_network_week_),
+            "rel_sd_flight": k * np.sqrt(vf + extra),
+            "rel_sd_week": k * np.sqrt(vw),
         }, index=units.index)
 
     def summary(self) -> dict:
         """Plain figures for meta.json."""
         return {
-            "rel_sd_common": float(np.sqrt(self.var_common_)),
+            "rel_sd_common": float(np.sqrt(max(self.var_common_, self.common_floor_var_))),
             "rel_sd_network": float(np.sqrt(self.var_network_)),
             "rel_sd_network_week": float(np.sqrt(self.var_network_week_)),
             "rel_sd_flight_by_daypart": {k: float(np.sqrt(v)) for k, v in self.var_flight_daypart_.items()},
@@ -464,6 +491,8 @@ class LevelErrorModel:
             "heldout_unit_weeks": int(self.n_rows_),
             "quantile_scale": float(self.scale_),
             "common_widened_by_sd": float(np.sqrt(self.widened_common_var_)),
+            "common_floor_sd": float(np.sqrt(self.common_floor_var_)),
+            "sd_scale_by_daypart": dict(self.daypart_scale_),
         }
 
 

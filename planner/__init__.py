@@ -3,9 +3,9 @@
 The command line (`pledge`) is a thin layer over the functions exported here, so everything it
 does can be done from a notebook::
 
-    from planner import load_scenario, ensure_forecast, check_deal, commit_deal, stress_book, build_report
+    from planner import open_scenario, ensure_forecast, check_deal, commit_deal, stress_book, build_report
 
-    scn = load_scenario("pledge-demo")
+    scn = open_scenario("pledge-demo")         # load_scenario too, once the folder has its history
     ensure_forecast(scn)                       # fits once, then reuses <scenario>/forecast/
     result = check_deal(scn, "some-deal", frontier=True)
 
@@ -19,6 +19,7 @@ from typing import Any
 # public name -> module that defines it
 _EXPORTS = {
     "load_scenario": "planner.scenario",
+    "open_scenario": "planner.workflows",
     "load_history": "planner.scenario",
     "validate_history": "planner.scenario",
     "Scenario": "planner.scenario",
@@ -27,20 +28,20 @@ _EXPORTS = {
     "load_forecast": "planner.forecast_job",
     "fit_forecast": "planner.forecast_job",
     "DeliveryModel": "planner.delivery",
-    "check_deal": "planner.deals",
-    "plan_deal": "planner.deals",
-    "commit_deal": "planner.book",
+    "check_deal": "planner.workflows",
+    "plan_deal": "planner.workflows",
+    "commit_deal": "planner.workflows",
     "release_deal": "planner.book",
     "list_deals": "planner.book",
     "read_book": "planner.book",
     "held_spots": "planner.book",
-    "stress_book": "planner.stress",
-    "rebalance_deal": "planner.rebalance",
-    "build_report": "planner.report",
+    "stress_book": "planner.workflows",
+    "rebalance_deal": "planner.workflows",
+    "build_report": "planner.workflows",
     "render_report": "planner.report",
     "write_report": "planner.report",
-    "run_demo": "planner.demo",
-    "copy_demo": "scenarios.generate",
+    "run_demo": "planner.workflows",
+    "copy_demo": "scenarios.folders",
     "InputError": "planner.errors",
 }
 

@@ -36,11 +36,13 @@ Linear Algebra Appl. 284.
 """
 from __future__ import annotations
 
+import ctypes
 import math
 import os
 import re
 import shutil
 import subprocess
+import sys
 import tempfile
 import time
 from dataclasses import dataclass, field, replace
@@ -49,11 +51,15 @@ from typing import Sequence
 import highspy
 import numpy as np
 import pandas as pd
+import pulp
 import scipy.sparse as sp
+from pulp.apis import coin_api
 from scipy.special import ndtri
 
 from planner.delivery import DeliveryModel
 from planner.errors import InputError
+from planner.rules import EXCLUSIONS, RISK, SPOT_CAP, PlanView, Rules, Scope, explainer, row_blocks
+from planner.rules import relaxations as _rule_relaxations
 
 SCALE = 1e-3  # impressions -> thousands inside the model
 INF = highspy.kHighsInf
@@ -70,9 +76,6 @@ def _new_highs() -> highspy.Highs:
     if _BANNER_DONE:
         h = highspy.Highs()
     else:
-        import ctypes
-        import sys
-
         sys.stdout.flush()
         saved = os.dup(1)
         try:
@@ -104,22 +107,6 @@ def z_value(confidence: float) -> float:
     Standard normal table, NIST/SEMATECH e-Handbook of Statistical Methods, 1.3.6.7.1.
     """
     return float(ndtri(confidence))
-
-
-@dataclass
-class Rules:
-    """Mix rules and the risk margin of one deal (shares are fractions of expected impressions)."""
-
-    max_network_share: float | None = None
-    daypart_min_share: dict = field(default_factory=dict)
-    daypart_max_share: dict = field(default_factory=dict)
-    weekly_tolerance: float | None = None
-    confidence: float | None = None
-    pad: float | None = None
-
-    @property
-    def risk_rule(self) -> str:
-        return "pad" if self.pad is not None else "confidence"
 
 
 @dataclass
@@ -159,9 +146,8 @@ def candidate_units(units: pd.DataFrame, *, weeks, exclude_networks=(), exclude_
     `preempt_rate`). `held`: spots held by committed deals, `zone,network,daypart,week,spots`.
     Returns all in-scope rows (ub may be 0), index reset.
     """
-    u = units[units["week"].isin(list(weeks))
-              & ~units["network"].isin(list(exclude_networks))
-              & ~units["zone"].isin(list(exclude_zones))].copy()
+    scope = Scope(tuple(exclude_networks), tuple(exclude_zones), max_spots_per_unit)
+    u = units[units["week"].isin(list(weeks)).to_numpy() & EXCLUSIONS.keep(scope, units)].copy()
     avail = u["avails"].to_numpy(float)
     if held is not None and len(held):
         h = held.groupby(["zone", "network", "daypart", "week"], as_index=False)["spots"].sum()
@@ -169,11 +155,7 @@ def candidate_units(units: pd.DataFrame, *, weeks, exclude_networks=(), exclude_
         avail = avail - u["spots"].fillna(0).to_numpy(float)
         u = u.drop(columns="spots")
     avail = np.maximum(np.floor(avail + 1e-9), 0.0)
-    ub = avail
-    capped = np.zeros(len(u), dtype=bool)
-    if max_spots_per_unit is not None:
-        capped = avail > max_spots_per_unit
-        ub = np.minimum(avail, float(max_spots_per_unit))
+    ub, capped = SPOT_CAP.cap(scope, avail)
     u["ub"] = ub
     u["capped"] = capped
     return u.reset_index(drop=True)
@@ -237,36 +219,11 @@ class _Model:
 
         # T definition: sum m x - T = 0
         block(np.zeros(n, dtype=np.int64), 1, [-1.0], [0.0], [0.0], [("total", None)])
-        if r.max_network_share is not None:
-            code, nets = pd.factorize(u["network"], sort=True)
-            k = len(nets)
-            block(code, k, np.full(k, -r.max_network_share), np.full(k, -INF), np.zeros(k),
-                  [("network", str(v)) for v in nets])
-        dps = sorted(set(r.daypart_min_share) | set(r.daypart_max_share))
-        for kind, shares, sign in (("daypart_min", r.daypart_min_share, 1), ("daypart_max", r.daypart_max_share, -1)):
-            names = [d for d in dps if d in shares and shares[d] is not None]
-            if not names:
-                continue
-            pos = {d: j for j, d in enumerate(names)}
-            code = u["daypart"].map(pos).fillna(-1).to_numpy(np.int64)
-            sh = np.array([shares[d] for d in names], float)
-            k = len(names)
-            if sign > 0:  # y_d - s T >= 0
-                block(code, k, -sh, np.zeros(k), np.full(k, INF), [(kind, d) for d in names])
-            else:
-                block(code, k, -sh, np.full(k, -INF), np.zeros(k), [(kind, d) for d in names])
-        if r.weekly_tolerance is not None:
-            W = len(prob.weeks)
-            pos = {w: j for j, w in enumerate(prob.weeks)}
-            code = u["week"].map(pos).fillna(-1).to_numpy(np.int64)
-            tol = r.weekly_tolerance
-            block(code, W, np.full(W, -(1 + tol) / W), np.full(W, -INF), np.zeros(W),
-                  [("pacing_max", w) for w in prob.weeks])
-            block(code, W, np.full(W, -(1 - tol) / W), np.zeros(W), np.full(W, INF),
-                  [("pacing_min", w) for w in prob.weeks])
+        for b in row_blocks(r, u, prob.weeks):  # every rule's rows (planner.rules), in rule order
+            block(b.group, len(b.keys), b.t_coef, b.lower, b.upper, b.labels)
         # Risk base row on T (and G in max mode).
         G = prob.guarantee * SCALE
-        factor = 1.0 + r.pad if r.pad is not None else 1.0
+        factor, risk_label = RISK.base_row(r)
         t_rows.append(np.array([nrow])); t_vals.append(np.array([1.0]))
         g_entry = None
         if mode == "cost":
@@ -275,7 +232,7 @@ class _Model:
             lo.append(np.array([0.0]))
             g_entry = (nrow, -factor)
         hi.append(np.array([INF]))
-        labels.append(("pad" if r.pad is not None else "risk_base", None))
+        labels.append((risk_label, None))
         nrow += 1
         self.A = sp.csc_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(nrow, n))
         self.A.sum_duplicates()
@@ -297,7 +254,12 @@ class _Model:
         self.active = np.asarray(columns, dtype=np.int64)
         self.pos = np.full(n, -1, dtype=np.int64)
         self.pos[self.active] = np.arange(self.active.size)
-        # T (and G) columns then the active x columns, column-wise.
+        self._pass_model(t_rows, t_vals, g_entry, nrow, time_limit)
+        self.build_seconds = time.perf_counter() - t0
+
+    def _pass_model(self, t_rows: list, t_vals: list, g_entry, nrow: int, time_limit: float) -> None:
+        """Hand the LP to HiGHS: the T (and G) columns, then the active x columns, column-wise."""
+        prob, mode = self.prob, self.mode
         tcol = sp.csc_matrix((np.concatenate(t_vals), (np.concatenate(t_rows), np.zeros(sum(map(len, t_rows)), int))),
                              shape=(nrow, 1))
         blocks = [tcol]
@@ -324,7 +286,6 @@ class _Model:
         self.h.passModel(lp)
         self.ncol = ncol
         self.warm = False  # a basis from the last optimal solve is still a good start
-        self.build_seconds = time.perf_counter() - t0
 
     # -- columns -------------------------------------------------------------------------------
     @property
@@ -631,8 +592,6 @@ def cbc_path() -> str:
     """Path of a CBC binary: `cbc` on the PATH (as `pip install 'pulp[cbc]'` or a system package
     installs it for pulp's `COIN_CMD`), else the binary pulp < 4 ships (`pulp.apis.coin_api.
     pulp_cbc_path`). Uses none of pulp's deprecated classes (`PULP_CBC_CMD` goes in pulp 4)."""
-    from pulp.apis import coin_api
-
     found = shutil.which("cbc")
     if found:
         return found
@@ -723,6 +682,53 @@ class Allocation:
     lp_gap: float | None = None  # (cost - lp_bound) / cost
 
 
+def _search_all(model: _Model, prob: AllocationProblem, lp_x: np.ndarray, x: np.ndarray, mip: MIPResult,
+                cost: float, solver: str, gap: float, time_limit: float) -> tuple[np.ndarray, MIPResult]:
+    """Search every column after a neighbourhood plan (`x`, `mip`, cost `cost`) missed the stated
+    gap against the LP bound; keep the cheaper plan that meets the chance constraint."""
+    best = (x, mip)
+    _fix_outside(model, np.ones(prob.n, bool), lp_x)
+    full = solve_mip(model, solver, gap, time_limit)
+    if full.ok:
+        xf = np.rint(full.x[: prob.n])
+        ok_f = prob.rules.confidence is None or _slack(prob, xf, None, prob.guarantee) >= -1e-9 * prob.guarantee
+        if ok_f and float(np.dot(prob.rate, xf)) < cost:
+            return xf, full
+    return best
+
+
+def _integer_plan(model: _Model, prob: AllocationProblem, lp: LPResult, lp_x: np.ndarray, *, solver: str,
+                  gap: float, time_limit: float, restricted: bool):
+    """Whole-spot plan from the MIP (in the LP neighbourhood when `restricted`), a cut added and
+    the MIP re-solved while the plan misses the exact chance constraint. Returns (x or None, the
+    last MIPResult, rounds, restricted)."""
+    rounds, mip, x = 0, None, None
+    l0 = lp.linear_variance
+    while rounds < 10:
+        rounds += 1
+        mip = solve_mip(model, solver, gap, time_limit)
+        if not mip.ok:
+            if restricted:  # the neighbourhood holds no integer plan: search every column
+                _fix_outside(model, np.ones(prob.n, bool), lp_x)
+                restricted = False
+                continue
+            break
+        x = np.rint(mip.x[: prob.n])
+        if prob.rules.confidence is not None and _slack(prob, x, None, prob.guarantee) < -1e-9 * prob.guarantee:
+            l0 = max(l0, prob.model.linear_variance(x))
+            model.add_cut(np.concatenate([x, mip.x[prob.n:]]), l0)
+            x = None
+            continue
+        cost = float(np.dot(prob.rate, x))
+        if restricted and cost > 0 and (cost - lp.objective) / cost > gap:
+            # the neighbourhood plan misses the stated gap against the LP bound: search every column
+            x, mip = _search_all(model, prob, lp_x, x, mip, cost, solver, gap, time_limit)
+            restricted = False
+            rounds += 1
+        break
+    return x, mip, rounds, restricted
+
+
 def allocate(prob: AllocationProblem, *, solver: str = "cbc", gap: float = DEFAULT_GAP,
              time_limit: float = DEFAULT_TIME_LIMIT, integer: bool = True, tol: float = 1e-5) -> Allocation:
     """Minimum-cost whole-spot plan meeting the guarantee under the deal's rules and risk margin.
@@ -757,43 +763,8 @@ def allocate(prob: AllocationProblem, *, solver: str = "cbc", gap: float = DEFAU
     restricted = not bool(free[model.active].all())
     if restricted:
         _fix_outside(model, free, lp_x)
-    rounds, mip, x = 0, None, None
-    l0 = lp.linear_variance
-    escalated = False
-    while rounds < 10:
-        rounds += 1
-        mip = solve_mip(model, solver, gap, time_limit)
-        if not mip.ok:
-            if restricted:  # the neighbourhood holds no integer plan: search every column
-                _fix_outside(model, np.ones(prob.n, bool), lp_x)
-                restricted = False
-                continue
-            break
-        x = np.rint(mip.x[: prob.n])
-        if prob.rules.confidence is not None and _slack(prob, x, None, prob.guarantee) < -1e-9 * prob.guarantee:
-            l0 = max(l0, prob.model.linear_variance(x))
-            model.add_cut(np.concatenate([x, mip.x[prob.n:]]), l0)
-            x = None
-            continue
-        cost = float(np.dot(prob.rate, x))
-        if restricted and not escalated and cost > 0 and (cost - lp.objective) / cost > gap:
-            # the neighbourhood plan misses the stated gap against the LP bound: search every column
-            escalated = True
-            best = (x, mip)
-            _fix_outside(model, np.ones(prob.n, bool), lp_x)
-            restricted = False
-            full = solve_mip(model, solver, gap, time_limit)
-            rounds += 1
-            if full.ok:
-                xf = np.rint(full.x[: prob.n])
-                ok_f = prob.rules.confidence is None or _slack(prob, xf, None, prob.guarantee) >= -1e-9 * prob.guarantee
-                if ok_f and float(np.dot(prob.rate, xf)) < cost:
-                    x, mip = xf, full
-                else:
-                    x, mip = best
-            else:
-                x, mip = best
-        break
+    x, mip, rounds, restricted = _integer_plan(model, prob, lp, lp_x, solver=solver, gap=gap,
+                                               time_limit=time_limit, restricted=restricted)
     base["cuts"] = model.n_cuts_total
     if x is None:
         why = mip.status if mip else "no run"
@@ -968,10 +939,6 @@ def cpm_needed(cost: float, guarantee: float, target_margin: float) -> float:
 # ---------------------------------------------------------------------------------------------
 # Explaining a plan: what binds, and what limits an undeliverable deal
 # ---------------------------------------------------------------------------------------------
-def _pct(v: float) -> str:
-    return f"{100 * v:.0f}%" if abs(100 * v - round(100 * v)) < 0.05 else f"{100 * v:.1f}%"
-
-
 def exhausted_avails(prob: AllocationProblem, x: np.ndarray | None) -> list[str]:
     """Weeks in which every spot left to buy of a network is used by plan x, in words.
 
@@ -1003,7 +970,9 @@ def exhausted_avails(prob: AllocationProblem, x: np.ndarray | None) -> list[str]
 
 
 def binding_constraints(prob: AllocationProblem, alloc: Allocation, *, dual_tol: float = 1e-7) -> list[str]:
-    """The rules that bind at the optimum, in seller words (from the LP duals and the plan)."""
+    """The rules that bind at the optimum, in seller words (from the LP duals and the plan): each
+    binding row as its rule explains it (`planner.rules`), the risk margin, the spot cap, the
+    weeks whose avails run out."""
     out: list[str] = []
     r = prob.rules
     if alloc.row_duals is None:
@@ -1012,37 +981,26 @@ def binding_constraints(prob: AllocationProblem, alloc: Allocation, *, dual_tol:
     scale_d = max(float(np.max(np.abs(duals))) if duals.size else 0.0, 1e-12)
     x = alloc.x if alloc.x is not None else alloc.lp_x
     dm = prob.model
-    T = dm.mean(x)
+    plan = PlanView(prob.units, x, dm.mean)
     risk_binds = False
     for k, (kind, key) in enumerate(labels):
         if k >= duals.size or abs(duals[k]) <= dual_tol * scale_d:
             continue
-        if kind == "network":
-            share = dm.mean(x * (prob.units["network"] == key).to_numpy()) / T if T > 0 else 0.0
-            out.append(f"network {key} share: at the {_pct(r.max_network_share)} cap (plan {_pct(share)})")
-        elif kind in ("daypart_min", "daypart_max"):
-            share = dm.mean(x * (prob.units["daypart"] == key).to_numpy()) / T if T > 0 else 0.0
-            lim = (r.daypart_min_share if kind == "daypart_min" else r.daypart_max_share)[key]
-            word = "minimum" if kind == "daypart_min" else "maximum"
-            out.append(f"{key} share: held at the {_pct(lim)} {word} (plan {_pct(share)})")
-        elif kind in ("pacing_max", "pacing_min"):
-            sign = "+" if kind == "pacing_max" else "-"
-            out.append(f"week {key} pacing: at the {sign}{_pct(r.weekly_tolerance)} limit of even pacing")
-        elif kind in ("pad", "risk_base", "cut"):
+        rule = explainer(r, kind)
+        if rule is RISK:
             risk_binds = True
+        elif rule is not None:
+            text = rule.explain(kind, key, r, plan)
+            if text:
+                out.append(text)
     if len(duals) > len(labels) and np.any(np.abs(duals[len(labels):]) > dual_tol * scale_d):
         risk_binds = True
     if risk_binds:
-        if r.pad is not None:
-            out.append(f"pad: expected delivery held at {_pct(1 + r.pad)} of the guarantee "
-                       f"({T:,.0f} for {prob.guarantee:,.0f})")
-        else:
-            out.append(f"confidence: a {_pct(r.confidence)} chance of delivery needs {T:,.0f} expected "
-                       f"impressions for {prob.guarantee:,.0f} guaranteed (sd {dm.sd(x):,.0f})")
+        out.append(RISK.explain_plan(r, plan.total, prob.guarantee, dm.sd(x)))
     capped = prob.units["capped"].to_numpy(bool) if "capped" in prob.units else np.zeros(prob.n, bool)
-    at_cap = int(np.sum(capped & (np.asarray(x) >= prob.ub - 1e-6)))
+    at_cap = SPOT_CAP.explain_plan(int(np.sum(capped & (np.asarray(x) >= prob.ub - 1e-6))))
     if at_cap:
-        out.append(f"max spots per unit: {at_cap} units bought up to the cap")
+        out.append(at_cap)
     out.extend(exhausted_avails(prob, x))
     return out
 
@@ -1050,17 +1008,6 @@ def binding_constraints(prob: AllocationProblem, alloc: Allocation, *, dual_tol:
 def _feasible_at(prob: AllocationProblem) -> bool:
     """Whether a plan (continuous spots) reaches the guarantee, to 0.1%."""
     return max_guarantee(prob, tol=2e-3, max_iter=40).at_plan >= prob.guarantee * (1 - 1e-3)
-
-
-def _bisect(lo: float, hi: float, ok_at, steps: int = 5) -> float:
-    """The feasible end of [lo, hi] closest to the infeasible end (lo feasible, hi not)."""
-    for _ in range(steps):
-        mid = 0.5 * (lo + hi)
-        if ok_at(mid):
-            lo = mid
-        else:
-            hi = mid
-    return lo
 
 
 def no_rules_no_margin(rules: Rules) -> Rules:
@@ -1072,46 +1019,12 @@ def no_rules_no_margin(rules: Rules) -> Rules:
 def _relaxations(prob: AllocationProblem, steps: int):
     """Each rule of the deal alone, as named in its deal file: (label, the change that removes it,
     a function giving the loosest setting of it that meets the guarantee with every other rule
-    kept, in words; bisection on max-guarantee LPs)."""
-    r = prob.rules
+    kept, in words; bisection on max-guarantee LPs). Each rule relaxes itself (`planner.rules`)."""
 
     def ok(**changes) -> bool:
         return _feasible_at(with_rules(prob, **changes))
 
-    out = []
-    if r.max_network_share is not None:
-        out.append((f"max_network_share {_pct(r.max_network_share)}", dict(max_network_share=None),
-                    lambda: f"network share: capped at {_pct(r.max_network_share)}, needs "
-                            f"{_pct(1.0 - _bisect(0.0, 1.0 - r.max_network_share, lambda t: ok(max_network_share=1.0 - t), steps))}"))
-    for d, s in r.daypart_min_share.items():
-        if s:
-            out.append((f"daypart_min_share {d} {_pct(s)}",
-                        dict(daypart_min_share={k: v for k, v in r.daypart_min_share.items() if k != d}),
-                        lambda d=d, s=s: f"{d} share: needs {_pct(s)}, can reach "
-                        f"{_pct(_bisect(0.0, s, lambda t: ok(daypart_min_share={**r.daypart_min_share, d: t}), steps))}"))
-    for d, s in r.daypart_max_share.items():
-        if s < 1:
-            out.append((f"daypart_max_share {d} {_pct(s)}",
-                        dict(daypart_max_share={k: v for k, v in r.daypart_max_share.items() if k != d}),
-                        lambda d=d, s=s: f"{d} share: capped at {_pct(s)}, needs "
-                        f"{_pct(1.0 - _bisect(0.0, 1.0 - s, lambda t: ok(daypart_max_share={**r.daypart_max_share, d: 1.0 - t}), steps))}"))
-    if r.weekly_tolerance is not None:
-        def pacing() -> str:
-            hi = max(1.0, r.weekly_tolerance)
-            while not ok(weekly_tolerance=hi) and hi < 64:
-                hi *= 2
-            v = hi - _bisect(0.0, hi - r.weekly_tolerance, lambda t: ok(weekly_tolerance=hi - t), steps)
-            return f"weekly pacing: within +-{_pct(r.weekly_tolerance)} of even pacing, needs +-{_pct(v)}"
-        out.append((f"weekly_tolerance {_pct(r.weekly_tolerance)}", dict(weekly_tolerance=None), pacing))
-    if r.confidence is not None:
-        out.append((f"confidence {_pct(r.confidence)}", dict(confidence=0.5 + 1e-9),
-                    lambda: f"confidence: needs {_pct(r.confidence)}, can reach "
-                            f"{_pct(_bisect(0.5 + 1e-9, r.confidence, lambda t: ok(confidence=t), steps))} at this guarantee"))
-    if r.pad is not None and r.pad > 0:
-        out.append((f"pad {_pct(r.pad)}", dict(pad=0.0),
-                    lambda: f"pad: needs {_pct(r.pad)}, can reach "
-                            f"{_pct(_bisect(0.0, r.pad, lambda t: ok(pad=t), steps))} at this guarantee"))
-    return out
+    return _rule_relaxations(prob.rules, ok, steps)
 
 
 def lever_text(label: str, allowed: float, current: float) -> str:
@@ -1164,45 +1077,32 @@ def diagnose(prob: AllocationProblem, steps: int = 5, current: float | None = No
 def pulp_variable(lp, name: str, low: float | None = None, up: float | None = None, cat: str = "Continuous"):
     """A pulp variable of model `lp`: `lp.add_variable` where pulp has it (constructing
     `LpVariable` directly is deprecated for pulp 4), `pulp.LpVariable` before."""
-    import pulp
-
     add = getattr(lp, "add_variable", None)
     return add(name, low, up, cat=cat) if add is not None else pulp.LpVariable(name, low, up, cat)
 
 
 def pulp_reference_model(prob: AllocationProblem, *, integer: bool = True, cuts=()):
-    """The min-cost model (rules, pacing, pad or the chance constraint's base row plus given cuts)
-    built one pulp variable and one expression at a time. Kept as the reference for the benchmark
-    of model-building time; `allocate` builds from arrays instead.
+    """The min-cost model (every rule's rows from `planner.rules`, pad or the chance constraint's
+    base row plus given cuts) built one pulp variable and one expression at a time. Kept as the
+    reference for the benchmark of model-building time; `allocate` builds from arrays instead.
 
     cuts: iterable of (coef (n,), lower) rows in impressions, `coef @ x >= lower`.
     """
-    import pulp
-
-    r, u, dm = prob.rules, prob.units, prob.model
+    r, dm = prob.rules, prob.model
     lp = pulp.LpProblem("allocation", pulp.LpMinimize)
     cat = pulp.LpInteger if integer else pulp.LpContinuous
     x = [pulp_variable(lp, f"x{i}", 0, float(prob.ub[i]), cat) for i in range(prob.n)]
     m = dm.m * SCALE
     lp += pulp.lpSum(float(prob.rate[i]) * x[i] for i in range(prob.n))
     T = pulp.lpSum(float(m[i]) * x[i] for i in range(prob.n))
-    groups = lambda col: u.groupby(col, sort=True).indices  # noqa: E731
-    if r.max_network_share is not None:
-        for _, idx in groups("network").items():
-            lp += pulp.lpSum(float(m[i]) * x[i] for i in idx) <= r.max_network_share * T
-    dp = groups("daypart")
-    for d, s in r.daypart_min_share.items():
-        lp += pulp.lpSum(float(m[i]) * x[i] for i in dp.get(d, [])) >= s * T
-    for d, s in r.daypart_max_share.items():
-        lp += pulp.lpSum(float(m[i]) * x[i] for i in dp.get(d, [])) <= s * T
-    if r.weekly_tolerance is not None:
-        W = len(prob.weeks)
-        wk = groups("week")
-        for w in prob.weeks:
-            e = pulp.lpSum(float(m[i]) * x[i] for i in wk.get(w, []))
-            lp += e <= (1 + r.weekly_tolerance) / W * T
-            lp += e >= (1 - r.weekly_tolerance) / W * T
-    factor = 1.0 + r.pad if r.pad is not None else 1.0
+    for b in row_blocks(r, prob.units, prob.weeks):
+        for j in range(len(b.keys)):
+            e = pulp.lpSum(float(m[i]) * x[i] for i in np.flatnonzero(b.group == j)) + float(b.t_coef[j]) * T
+            if np.isfinite(b.upper[j]):
+                lp += e <= float(b.upper[j])
+            if np.isfinite(b.lower[j]):
+                lp += e >= float(b.lower[j])
+    factor, _ = RISK.base_row(r)
     lp += T >= factor * prob.guarantee * SCALE
     for coef, lower in cuts:
         lp += pulp.lpSum(float(coef[i]) * SCALE * x[i] for i in range(prob.n) if coef[i] != 0) >= lower * SCALE

@@ -11,6 +11,8 @@ import tempfile
 from pathlib import Path
 from typing import Callable, Iterator
 
+from planner.errors import InputError
+
 
 def current_umask() -> int:
     """The process umask (read from /proc on Linux; elsewhere set and restored at once)."""
@@ -34,7 +36,6 @@ def ordinary_mode(path: str | os.PathLike) -> None:
 def check_writable(folder: str | os.PathLike, what: str) -> Path:
     """Make `folder` if needed and check a file can be created in it; InputError naming the
     folder and `what` would be written there otherwise (a read-only scenario folder)."""
-    from planner.errors import InputError
 
     folder = Path(folder)
     try:

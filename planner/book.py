@@ -18,6 +18,9 @@ Safety properties (what the design rests on):
   when a book is opened.
 
 Books are read without being created: reading a book that does not exist yet gives an empty book.
+
+The book is a store: it plans nothing. `commit_plan` takes the planner that makes (and, under the
+lock, re-makes) the plan from its caller (`planner.workflows.commit_deal`).
 """
 from __future__ import annotations
 
@@ -37,6 +40,7 @@ from typing import Any, Callable, Iterable, Iterator
 import numpy as np
 import pandas as pd
 
+from planner.atomic import ordinary_mode
 from planner.errors import InputError
 from planner.scenario import Deal, Mix
 
@@ -210,8 +214,6 @@ def _create_book(path: Path) -> None:
     """Make a new book at `path` whole: the schema is written to a file beside it, which is then
     linked into place (a concurrent reader never sees a half-made, 0-byte book). When another
     process made the book meanwhile, its book is kept."""
-    from planner.atomic import ordinary_mode
-
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".new", dir=path.parent)
     os.close(fd)
@@ -678,12 +680,6 @@ class CommitResult:
                 "reason": self.reason, "replanned_under_lock": self.replanned, **self.summary}
 
 
-def _default_planner(scenario, deal_name, *, held, **kwargs):
-    from planner.deals import plan_deal
-
-    return plan_deal(scenario, deal_name, held=held, **kwargs)
-
-
 def _insert_deal(conn: sqlite3.Connection, scenario: Any, deal: Any, spots: pd.DataFrame,
                  summary: dict, action: str = "commit", committed_at: str | None = None) -> None:
     conn.execute(
@@ -774,8 +770,8 @@ def _sleep_hook() -> None:
         time.sleep(float(delay))
 
 
-def commit_deal(scenario: Any, deal_name: str, book: str | os.PathLike | None = None, *,
-                planner: Callable[..., Any] | None = None, **plan_kwargs) -> CommitResult:
+def commit_plan(scenario: Any, deal_name: str, book: str | os.PathLike | None = None, *,
+                planner: Callable[..., Any], **plan_kwargs) -> CommitResult:
     """Plan `deal_name` against the avails not already held and commit it with its spots.
 
     The plan is made first against a snapshot of the holds (no lock held while solving); then,
@@ -785,14 +781,13 @@ def commit_deal(scenario: Any, deal_name: str, book: str | os.PathLike | None = 
     holds. Only a plan that fits is written, together with its deal row, before COMMIT.
 
     `planner(scenario, deal_name, held=DataFrame, **plan_kwargs)` returns a plan with `.spots`
-    (default `planner.deals.plan_deal`). An undeliverable deal is not committed: the result says
+    (`planner.workflows.commit_deal` passes its planner on the forecast). An undeliverable deal is not committed: the result says
     so (`committed=False`, `reason`); a deal already in the book raises InputError.
     """
     if deal_name not in scenario.deals:
         raise InputError(f"{getattr(scenario, 'path', '')}: no deal named {deal_name!r} in deals/ "
                          f"(known: {', '.join(sorted(scenario.deals)) or 'none'})")
     deal = scenario.deals[deal_name]
-    planner = planner or _default_planner
     path = book_path(scenario, book)
     conn = open_book(path)
     try:

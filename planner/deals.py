@@ -1,27 +1,33 @@
-"""Sales-desk check and buyer plan of one deal: orchestration over the allocator.
+"""Sales-desk check and buyer plan of one deal, computed over the allocator.
 
-`check_deal` answers "is it deliverable, at what cost, margin and chance, how big could it be,
-what CPM to ask"; `plan_deal` gives the whole-spot buy plan with its weekly pacing. Both fit the
-forecast first when it is missing or stale (`planner.forecast_job.ensure_forecast`) and say so.
+`run_deal` builds and solves the deal's allocation problem from a forecast table and the spots
+other deals hold (both passed in: this module reads neither the book nor the forecast cache);
+`check_result` answers "is it deliverable, at what cost, margin and chance, how big could it be,
+what CPM to ask"; `plan_result` gives the whole-spot buy plan with its weekly pacing. The
+workflows (`planner.workflows.check_deal`, `plan_deal`) read the book and the forecast and call them.
 """
 from __future__ import annotations
 
-import inspect
 import math
-from dataclasses import dataclass, field, replace
-from typing import Any, Callable
+from dataclasses import asdict, dataclass, field, replace
+from typing import Any
 
 import numpy as np
 import pandas as pd
+from scipy.special import ndtr
 
 from planner import allocate as al
 from planner.delivery import UNIT_KEY, DeliveryModel
 from planner.errors import InputError
+from planner.rules import EXCLUSIONS, RISK, SPOT_CAP, Rules, Scope, row_rules
 
 CAUTIONS = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
             "under-delivery; check the plan against posted actuals as the flight airs and have the "
             "people accountable for the money review it before committing.")
+#: frontier sizes as fractions of the deal's guarantee (`check --frontier` and the report)
 FRONTIER_SIZES = (0.5, 0.75, 0.9, 1.0, 1.1, 1.25, 1.5)
+#: the report's frontier adds these fractions of the largest deliverable guarantee
+FRONTIER_MAX_SHARES = (0.25, 0.5, 0.75, 1.0)
 Z10 = 1.2815515655446004  # standard normal 90% quantile (p10/p90 band)
 #: a plan with no pacing rule whose weekly expected delivery strays further than this from even
 #: pacing says so (a buyer expects delivery spread over the flight)
@@ -82,6 +88,8 @@ class DealRun:
     units: pd.DataFrame | None = None    # the deal's demo and weeks, before its exclusions and spot cap
     held: pd.DataFrame | None = None     # other deals' holds the avails were reduced by
     warnings: list = field(default_factory=list)  # about the book read (`planner.book.book_warnings`)
+    caution: str | None = None           # the forecast's caution on shared errors, brief form
+    caution_full: str | None = None      # the same, whole text (for --json)
 
 
 @dataclass
@@ -184,8 +192,6 @@ class CheckResult:
 
     def to_json(self) -> dict:
         """Plain dict for `--json` (the documented keys first)."""
-        from dataclasses import asdict
-
         return asdict(self)
 
 
@@ -195,28 +201,14 @@ def validate_deal(deal, scenario) -> None:
     where = f"deal {deal.name!r}"
     if not (deal.impressions > 0):
         raise InputError(f"{where}: impressions (the guarantee) must be positive, got {deal.impressions!r}")
-    if deal.confidence is not None and deal.pad is not None:
-        raise InputError(f"{where}: give either confidence or pad, not both")
-    if deal.confidence is None and deal.pad is None:
-        raise InputError(f"{where}: neither confidence nor pad is set")
-    if deal.confidence is not None and not 0.5 < deal.confidence < 0.999:
-        raise InputError(f"{where}: confidence must be in (0.5, 0.999), got {deal.confidence!r}")
-    if deal.pad is not None and deal.pad < 0:
-        raise InputError(f"{where}: pad must be >= 0, got {deal.pad!r}")
-    if not 1 <= deal.first_week <= deal.last_week <= scenario.weeks:
-        raise InputError(f"{where}: weeks {deal.first_week}..{deal.last_week} are outside the inventory's "
-                         f"plan weeks 1..{scenario.weeks}")
-    mix = deal.mix
-    shares = [("max_network_share", mix.max_network_share)]
-    shares += [(f"daypart_min_share.{k}", v) for k, v in mix.daypart_min_share.items()]
-    shares += [(f"daypart_max_share.{k}", v) for k, v in mix.daypart_max_share.items()]
-    for k, v in shares:
-        if v is not None and not 0 <= v <= 1:
-            raise InputError(f"{where}: [mix] {k} must be a share in [0, 1], got {v!r}")
-    if sum(mix.daypart_min_share.values()) > 1 + 1e-9:
-        raise InputError(f"{where}: [mix] daypart_min_share shares sum past 1")
-    if mix.weekly_tolerance is not None and mix.weekly_tolerance < 0:
-        raise InputError(f"{where}: [mix] weekly_tolerance must be >= 0")
+    rules = replace(rules_of(deal), confidence=deal.confidence)  # both given is a problem too
+    said = RISK.check(rules, where)
+    if not said and not 1 <= deal.first_week <= deal.last_week <= scenario.weeks:
+        said = [f"{where}: weeks {deal.first_week}..{deal.last_week} are outside the inventory's "
+                f"plan weeks 1..{scenario.weeks}"]
+    said = said or [p for f in row_rules(rules) for p in f.check(rules, where)]
+    if said:
+        raise InputError(said[0])
 
 
 def _get_deal(scenario, deal_name: str):
@@ -226,40 +218,6 @@ def _get_deal(scenario, deal_name: str):
     deal = scenario.deals[deal_name]
     validate_deal(deal, scenario)
     return deal
-
-
-def _forecast_table(scenario, forecast, progress):
-    if forecast is not None:
-        return forecast, False
-    from planner.forecast_job import ensure_forecast
-
-    kwargs = {}
-    try:
-        if progress is not None and "progress" in inspect.signature(ensure_forecast).parameters:
-            kwargs["progress"] = progress
-    except (TypeError, ValueError):
-        pass
-    res = ensure_forecast(scenario, **kwargs)
-    return res.table, bool(getattr(res, "fitted_now", False))
-
-
-def _held(scenario, held, book, deal_name: str):
-    """Spots held by the book's committed deals, the deal's own holds left out (a booked deal
-    re-checked or re-planned competes only with the others)."""
-    if held is not None:
-        return held
-    try:
-        from planner.book import held_spots
-    except ImportError:  # the book module is optional for check/plan
-        return None
-    return held_spots(scenario, book, exclude=(deal_name,))
-
-
-def _book_warnings(scenario, book) -> list[str]:
-    """`planner.book.book_warnings` of the book a check or plan read."""
-    from planner.book import book_warnings
-
-    return book_warnings(scenario, book)
 
 
 def deal_units(scenario, forecast: pd.DataFrame, deal) -> pd.DataFrame:
@@ -281,11 +239,12 @@ def deal_units(scenario, forecast: pd.DataFrame, deal) -> pd.DataFrame:
     return units
 
 
-def rules_of(deal) -> al.Rules:
+def rules_of(deal) -> Rules:
+    """The allocator's `Rules` of a deal: its mix rules and its risk margin (confidence or pad)."""
     mix = deal.mix
-    return al.Rules(max_network_share=mix.max_network_share, daypart_min_share=dict(mix.daypart_min_share),
-                    daypart_max_share=dict(mix.daypart_max_share), weekly_tolerance=mix.weekly_tolerance,
-                    confidence=deal.confidence if deal.pad is None else None, pad=deal.pad)
+    return Rules(max_network_share=mix.max_network_share, daypart_min_share=dict(mix.daypart_min_share),
+                 daypart_max_share=dict(mix.daypart_max_share), weekly_tolerance=mix.weekly_tolerance,
+                 confidence=deal.confidence if deal.pad is None else None, pad=deal.pad)
 
 
 def check_solver(solver: str) -> None:
@@ -294,39 +253,42 @@ def check_solver(solver: str) -> None:
         raise InputError(f"--solver {solver!r}: choose one of {', '.join(al.SOLVERS)}")
 
 
-def run_deal(scenario, deal_name: str, *, solver: str = "cbc", held=None, book=None, forecast=None,
-             gap: float = al.DEFAULT_GAP, time_limit: float = al.DEFAULT_TIME_LIMIT,
-             progress: Callable | None = None, guarantee: float | None = None) -> DealRun:
-    """Build the deal's allocation problem and solve it (whole spots)."""
+def run_deal(scenario, deal_name: str, *, forecast: pd.DataFrame, held: pd.DataFrame | None = None,
+             solver: str = "cbc", gap: float = al.DEFAULT_GAP, time_limit: float = al.DEFAULT_TIME_LIMIT,
+             guarantee: float | None = None, fitted_now: bool = False, warnings: list | None = None,
+             caution: str | None = None, caution_full: str | None = None) -> DealRun:
+    """Build the deal's allocation problem and solve it (whole spots).
+
+    `forecast`: the forecast table; `held`: spots other deals hold (zone, network, daypart, week,
+    spots; None: nothing held); `guarantee` replaces the deal's (impressions). `fitted_now`,
+    `warnings` (about the book read) and the forecast's `caution` (brief, and in full) are what the
+    caller read, carried into the results.
+    """
     check_solver(solver)
     deal = _get_deal(scenario, deal_name)
-    table, fitted = _forecast_table(scenario, forecast, progress)
-    units = deal_units(scenario, table, deal)
-    held_df = _held(scenario, held, book, deal.name)
+    units = deal_units(scenario, forecast, deal)
     mix = deal.mix
     scope = al.candidate_units(units, weeks=deal.weeks, exclude_networks=mix.exclude_networks,
                                exclude_zones=mix.exclude_zones, max_spots_per_unit=mix.max_spots_per_unit,
-                               held=held_df)
+                               held=held)
     prob = al.make_problem(scope, deal.impressions if guarantee is None else guarantee, rules_of(deal), deal.weeks)
     alloc = al.allocate(prob, solver=solver, gap=gap, time_limit=time_limit)
-    n_held = int(held_df["spots"].sum()) if held_df is not None and len(held_df) else 0
-    warnings = _book_warnings(scenario, book) if held is None else []
-    return DealRun(scenario, deal, prob, alloc, fitted, n_held, units=units, held=held_df, warnings=warnings)
+    n_held = int(held["spots"].sum()) if held is not None and len(held) else 0
+    return DealRun(scenario, deal, prob, alloc, fitted_now, n_held, units=units, held=held,
+                   warnings=list(warnings or []), caution=caution, caution_full=caution_full)
+
+
+def _scope_of(mix) -> Scope:
+    return Scope(tuple(mix.exclude_networks), tuple(mix.exclude_zones), mix.max_spots_per_unit)
 
 
 def _scope_items(mix) -> list[tuple[str, dict]]:
     """The deal's exclusions and spot cap, each as (label as in the deal file, candidate_units
-    arguments without it)."""
-    base = dict(exclude_networks=mix.exclude_networks, exclude_zones=mix.exclude_zones,
-                max_spots_per_unit=mix.max_spots_per_unit)
-    out = []
-    if mix.exclude_zones:
-        out.append((f"exclude_zones {', '.join(mix.exclude_zones)}", {**base, "exclude_zones": ()}))
-    if mix.exclude_networks:
-        out.append((f"exclude_networks {', '.join(mix.exclude_networks)}", {**base, "exclude_networks": ()}))
-    if mix.max_spots_per_unit:
-        out.append((f"max_spots_per_unit {mix.max_spots_per_unit}", {**base, "max_spots_per_unit": None}))
-    return out
+    arguments without it): each scope rule relaxes itself (`planner.rules`)."""
+    scope = _scope_of(mix)
+    return [(label, dict(exclude_networks=s.exclude_networks, exclude_zones=s.exclude_zones,
+                         max_spots_per_unit=s.max_spots_per_unit))
+            for label, s in EXCLUSIONS.scope_items(scope) + SPOT_CAP.scope_items(scope)]
 
 
 def scope_levers(run: DealRun, current: float) -> list[tuple[float, str]]:
@@ -380,19 +342,9 @@ def _cautions(run: DealRun) -> list[str]:
                    f"{100 * run.deal.confidence:.0f}% was used.")
     if run.fitted_now:
         out.append("The forecast was missing or stale and was fitted first.")
-    from planner.forecast_job import forecast_caution
-
-    shared = forecast_caution(run.scenario, brief=True)
-    if shared:
-        out.append(shared)
+    if run.caution:
+        out.append(run.caution)
     return out
-
-
-def _shared_caution(run: DealRun) -> str | None:
-    """The whole text of the forecast's caution on errors shared by all units (for --json)."""
-    from planner.forecast_job import forecast_caution
-
-    return forecast_caution(run.scenario)
 
 
 def _spots_frame(run: DealRun) -> pd.DataFrame:
@@ -465,8 +417,6 @@ def _summary(run: DealRun) -> dict:
     dm, x, G = prob.model, a.x, prob.guarantee
     mean, sd = dm.mean(x), dm.sd(x)
     ind_sd = math.sqrt(dm.independent_variance(x))
-    from scipy.special import ndtr
-
     p_ind = float(ndtr((mean - G) / ind_sd)) if ind_sd > 0 else float(mean >= G)
     margin = revenue - a.cost
     return dict(cost=a.cost, revenue=revenue, margin=margin, margin_pct=margin / revenue if revenue > 0 else None,
@@ -481,19 +431,6 @@ def _verdict(run: DealRun, binding_reason: str = "") -> str:
     if str(a.status).startswith(al.UNDECIDED):
         return f"undecided: {a.status[len(al.UNDECIDED) + 2:]} (raise the time limit)"
     return "not deliverable" + (f": {binding_reason}" if binding_reason else "")
-
-
-def plan_deal(scenario, deal_name: str, *, solver: str = "cbc", held=None, book=None, forecast=None,
-              gap: float = al.DEFAULT_GAP, time_limit: float = al.DEFAULT_TIME_LIMIT,
-              progress: Callable | None = None, explain: bool = True) -> PlanResult:
-    """Whole-spot buy plan of one deal at least cost (see `planner.allocate`).
-
-    held: spots held by committed deals (DataFrame zone,network,daypart,week,spots); when None the
-    scenario's book is read (`planner.book.held_spots`). Money in the scenario's currency.
-    """
-    run = run_deal(scenario, deal_name, solver=solver, held=held, book=book, forecast=forecast, gap=gap,
-                   time_limit=time_limit, progress=progress)
-    return plan_result(run, explain=explain)
 
 
 def _weeks_text(weeks) -> str:
@@ -560,8 +497,17 @@ def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
         solver=a.solver, gap=a.gap, lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts,
         iterations=a.iterations, build_seconds=a.build_seconds, solve_seconds=a.solve_seconds,
         fitted_forecast_first=run.fitted_now, held_spots_excluded=run.held_spots, binding=binding,
-        cautions=_cautions(run), warnings=list(run.warnings), shared_error_caution=_shared_caution(run),
+        cautions=_cautions(run), warnings=list(run.warnings), shared_error_caution=run.caution_full,
         notes=plan_notes(run, pacing, s["probability"]))
+
+
+def report_frontier_sizes(guarantee: float, max_guarantee: float) -> list[float]:
+    """The report's frontier sizes (impressions, whole): `guarantee` x `FRONTIER_SIZES` and
+    `max_guarantee` x `FRONTIER_MAX_SHARES`, ascending."""
+    sizes = {round(guarantee * f) for f in FRONTIER_SIZES}
+    if max_guarantee > 0:
+        sizes |= {round(max_guarantee * f) for f in FRONTIER_MAX_SHARES}
+    return sorted(float(v) for v in sizes if v > 0)
 
 
 def frontier(prob: al.AllocationProblem, sizes, *, solver: str = "cbc", gap: float = al.DEFAULT_GAP,
@@ -587,21 +533,6 @@ def frontier(prob: al.AllocationProblem, sizes, *, solver: str = "cbc", gap: flo
         rows.append(dict(guarantee=g, deliverable=True, cost=a.cost, cost_cpm=1000 * a.cost / g,
                          expected_impressions=dm.mean(a.x), probability_of_delivery=dm.probability(a.x, g)))
     return rows
-
-
-def check_deal(scenario, deal_name: str, *, solver: str = "cbc", target_margin: float | None = None,
-               frontier: bool = False, held=None, book=None, forecast=None, gap: float = al.DEFAULT_GAP,
-               time_limit: float = al.DEFAULT_TIME_LIMIT, progress: Callable | None = None) -> CheckResult:
-    """Sales-desk check of one deal: verdict, cost, revenue, margin, chance of delivery, max guarantee,
-    CPM needed for `target_margin` (a fraction of revenue, 0 <= m < 1), binding rules, optional frontier.
-
-    Money in the scenario's currency, impressions in the deal's demo.
-    """
-    if target_margin is not None and not (0 <= target_margin < 1):
-        raise InputError(f"--target-margin {target_margin!r}: a margin is a fraction of revenue in [0, 1)")
-    run = run_deal(scenario, deal_name, solver=solver, held=held, book=book, forecast=forecast, gap=gap,
-                   time_limit=time_limit, progress=progress)
-    return check_result(run, target_margin=target_margin, with_frontier=frontier, gap=gap, time_limit=time_limit)
 
 
 def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=al.DEFAULT_GAP,
@@ -638,4 +569,4 @@ def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=a
         lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts, iterations=a.iterations,
         build_seconds=a.build_seconds, solve_seconds=a.solve_seconds, fitted_forecast_first=run.fitted_now,
         held_spots_excluded=run.held_spots, frontier=fr, cautions=_cautions(run), warnings=list(run.warnings),
-        shared_error_caution=_shared_caution(run), notes=plan_notes(run, pacing_table(run), s["probability"]))
+        shared_error_caution=run.caution_full, notes=plan_notes(run, pacing_table(run), s["probability"]))

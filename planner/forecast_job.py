@@ -21,18 +21,27 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
 
+import duckdb
 import numpy as np
 import pandas as pd
+import sklearn
+
+from forecasting.backtest import run_backtest
+from forecasting.ingest import daily_profiles
+from forecasting.pipeline import DaypartForecaster
+from forecasting.profiles import ProfileCube
+from forecasting.spark_engine import spark_available
 
 from planner.atomic import check_writable, write_text_atomic, write_with_atomic
 from planner.errors import InputError
+from planner.scenario import history_fingerprint
 
 FORECAST_DIR = "forecast"
 TABLE_FILE = "forecast.parquet"
 MODEL_FILE = "model.pkl"
 META_FILE = "meta.json"
 #: bump when the model or the table changes meaning (old caches are then refitted)
-MODEL_VERSION = "5"  # 3: network-week factor; 4: common factor; 5: stacked candidates, widened law
+MODEL_VERSION = "6"  # 3: network-week factor; 4: common factor; 5: stacked candidates, widened law; 6: disagreement floor
 
 Progress = Callable[[str, float], None]
 
@@ -52,8 +61,6 @@ def forecast_dir(scenario) -> Path:
 
 
 def _versions() -> dict:
-    import duckdb
-    import sklearn
 
     return {"model": MODEL_VERSION, "numpy": np.__version__, "pandas": pd.__version__,
             "scikit-learn": sklearn.__version__, "duckdb": duckdb.__version__,
@@ -62,7 +69,6 @@ def _versions() -> dict:
 
 def fit_key(scenario, *, demo: str | None = None, seed: int = 0) -> dict:
     """What the forecast depends on; a change in any of it means a refit."""
-    from planner.scenario import history_fingerprint
 
     inv = scenario.inventory[["zone", "network", "daypart", "week"]].astype(str)
     inv_hash = hashlib.sha1(pd.util.hash_pandas_object(
@@ -94,8 +100,6 @@ def _read_meta(folder: Path) -> dict | None:
 
 def load_history_cube(scenario, *, demos=None, engine: str = "duckdb", progress: Progress | None = None):
     """History -> (ProfileCube, series info with genre). Raises InputError when there is none."""
-    from forecasting.ingest import daily_profiles
-    from forecasting.profiles import ProfileCube
 
     progress = progress or (lambda m, f: None)
     progress("reading history into daily profiles", 0.0)
@@ -104,8 +108,6 @@ def load_history_cube(scenario, *, demos=None, engine: str = "duckdb", progress:
     if not path.exists():
         raise InputError(f"{path.name}: history file is missing in {scenario.path}")
     if engine == "spark":
-        from forecasting.spark_engine import spark_available
-
         ok, why = spark_available()
         if not ok:
             raise InputError(f"--engine spark: {why}")
@@ -133,7 +135,6 @@ def fit_forecast(scenario, *, demo: str | None = None, engine: str = "duckdb", s
     -------
     ForecastResult with the table of every inventory unit x demo for the plan weeks.
     """
-    from forecasting.pipeline import DaypartForecaster
 
     progress = progress or (lambda m, f: None)
     if demo is not None and demo not in scenario.demos:
@@ -264,8 +265,6 @@ def backtest_scenario(scenario, *, holdout_weeks: int = 13, demo: str | None = N
     With `windows` > 1, that many successive blocks of `holdout_weeks` weeks ending the history
     are each scored by their own refit and the scores pooled. Returns the JSON-able summary.
     """
-    from forecasting.backtest import run_backtest
-    from forecasting.pipeline import DaypartForecaster
 
     if holdout_weeks < 1:
         raise InputError(f"--holdout-weeks {holdout_weeks}: must be at least 1")

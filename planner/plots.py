@@ -10,6 +10,7 @@ from __future__ import annotations
 import io
 
 import matplotlib
+import matplotlib.dates as mdates
 import numpy as np
 import pandas as pd
 from matplotlib.colors import LinearSegmentedColormap
@@ -329,8 +330,6 @@ def forecast_band_svg(history: pd.DataFrame, forecast: pd.DataFrame, title: str)
         _style(ax)
         for label in ax.get_xticklabels():
             label.set_rotation(0)
-        import matplotlib.dates as mdates
-
         ax.xaxis.set_major_locator(mdates.MonthLocator(bymonth=(1, 4, 7, 10)))
         ax.xaxis.set_major_formatter(mdates.DateFormatter("%b %y"))
         fig.legend(loc="lower center", bbox_to_anchor=(0.5, 0.0), ncols=3, fontsize=7.5)

@@ -1,24 +1,7 @@
 """Mid-flight rebalancing: update the forecast from posted actuals and re-plan the remaining weeks.
 
-Evidence. A posted unit-week (k aired spots, y impressions in the deal's demo) says, per aired
-spot, y / k = mu_i + u_i Z_com + a_i Z_net[network] + b_i Z_flight[zone, network, daypart] + e, with
-e ~ N(0, c_i^2 + s_i^2 / k) (the unit-week's own factor and the airing noise averaged over k
-spots; loadings u, a, b, c and airing sd s from the forecast table; Z_com is the factor shared
-by every unit). With the level factors' prior
-N(0, I) this is a linear-Gaussian model, so their posterior is Gaussian (a conditional, or
-shrinkage, update: the evidence is weighed against the forecast's prior uncertainty):
-
-    precision  P = I + H' R^-1 H,   mean  m = P^-1 H' R^-1 (y - mu),   covariance  V = P^-1.
-
-The remaining weeks' forecast rows then get mean mu_i + u_i m_com + a_i m_net + b_i m_flight,
-common loading u_i sqrt(V_cc), network loading sqrt(a_i^2 V_nn + 2 a_i u_i V_nc) and flight
-loading sqrt(b_i^2 V_ff + 2 a_i b_i V_nf + 2 b_i u_i V_fc) (keeping each unit's posterior level
-variance exact; a negative flight part is absorbed by the unit's network loading, a negative
-network part by its common loading; cross-unit posterior correlations beyond the shared factors
-are approximated). Units that posted move, and so, through the network factor, do units of the
-same network in other zones and dayparts that did not post, and through the common factor every
-unit a little. The unit-week factors of future weeks are
-independent of the past and keep their prior.
+Evidence: the posted actuals update the forecast's level factors (`planner.posterior`,
+`fold_actuals`), the same step the stress test values a rebalanced deal with.
 
 Re-plan. Aired weeks are fixed and their posted impressions counted; the remaining weeks are
 re-planned with the allocator (`planner.allocate`) against the avails less every other deal's
@@ -33,19 +16,22 @@ re-plan: Charnes & Cooper (1959), Management Science 6(1).
 """
 from __future__ import annotations
 
+import copy
 import os
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any
+from typing import Any, Sequence
 
 import numpy as np
 import pandas as pd
-from scipy import sparse
 
-from planner.delivery import FLIGHT_KEY, UNIT_KEY, DeliveryModel, common_sd, network_week_sd
+from planner import allocate as al
+from planner import deals as dl
+from planner.deals import deal_units
+from planner.delivery import UNIT_KEY, DeliveryModel
 from planner.errors import InputError
+from planner.posterior import ACTUALS_COLUMNS, FoldedActuals, LevelPosterior, fold_actuals
 
-ACTUALS_COLUMNS = ["zone", "network", "daypart", "week", "spots_aired", "impressions"]
 _Z90 = 1.2815515655446004  # standard normal 0.90 quantile (NIST/SEMATECH e-Handbook table)
 #: a posting further than this many sds of the forecast's own error law from its forecast (one
 #: unit-week, or the deal's posted total) is taken for a data error: a commit is refused. Under
@@ -118,176 +104,6 @@ def read_actuals(path: str | os.PathLike, scenario: Any = None, deal: Any = None
     return df.reset_index(drop=True)
 
 
-# --------------------------------------------------------------------------- the update
-
-@dataclass
-class LevelPosterior:
-    """Posterior of the network, flight and common level factors (standard-normal prior).
-
-    `networks` (Index) and `flights` (MultiIndex zone,network,daypart) order the factor vector
-    [networks..., flights..., common] (the common factor last, when `common`); `mean` (K,) and
-    `cov` (K, K) dimensionless (factor units)."""
-
-    networks: pd.Index
-    flights: pd.MultiIndex
-    mean: np.ndarray
-    cov: np.ndarray
-    observations: int
-    common: bool = False
-
-
-def level_posterior(obs: pd.DataFrame) -> LevelPosterior:
-    """Gaussian posterior of the level factors given posted unit-weeks.
-
-    `obs`: posted rows joined with their forecast rows: `zone, network, daypart, week,
-    spots_aired, impressions, mean_impressions, airing_sd, level_sd_network, level_sd_flight,
-    level_sd_week` and optionally `level_sd_network_week`, `level_sd_common` (impressions per
-    spot). Rows with 0
-    aired spots carry no evidence. The network-week factors of the posted weeks are integrated
-    out (they are shared by the posted units of a network in one week and say nothing of later
-    weeks): their covariance joins the noise's, inverted by the Woodbury identity (each row
-    loads on one of them, so the inner matrix is diagonal).
-
-    References
-    ----------
-    Bishop (2006), PRML, eq. 3.50-3.51 (posterior of a linear-Gaussian model); Woodbury
-    matrix identity (e.g. Golub & Van Loan, Matrix Computations, 4th ed., sec. 2.1.4).
-    """
-    obs = obs[obs["spots_aired"] > 0].reset_index(drop=True)
-    net_c, nets = pd.factorize(obs["network"], sort=True)
-    flt_c, flts = pd.factorize(pd.MultiIndex.from_frame(obs[FLIGHT_KEY]), sort=True)
-    J, Nn, Nf = len(obs), len(nets), len(flts)
-    u = common_sd(obs)
-    has_common = bool(np.any(u > 0))
-    K = Nn + Nf + int(has_common)
-    if J == 0:
-        return LevelPosterior(pd.Index([], name="network"),
-                              pd.MultiIndex.from_tuples([], names=FLIGHT_KEY), np.zeros(0), np.zeros((0, 0)), 0)
-    k = obs["spots_aired"].to_numpy(float)
-    y = obs["impressions"].to_numpy(float) / k
-    resid = y - obs["mean_impressions"].to_numpy(float)
-    r = obs["level_sd_week"].to_numpy(float) ** 2 + obs["airing_sd"].to_numpy(float) ** 2 / k
-    r = np.maximum(r, 1e-12 * np.maximum(obs["mean_impressions"].to_numpy(float) ** 2, 1.0))
-    H = np.zeros((J, K))
-    H[np.arange(J), net_c] = obs["level_sd_network"].to_numpy(float)
-    H[np.arange(J), Nn + flt_c] = obs["level_sd_flight"].to_numpy(float)
-    if has_common:
-        H[:, K - 1] = u
-    Hw = H / r[:, None]
-    precision = np.eye(K) + H.T @ Hw
-    rhs = Hw.T @ resid
-    g = network_week_sd(obs)
-    if np.any(g > 0):
-        nw_c, nw_u = pd.factorize(pd.MultiIndex.from_frame(obs[["network", "week"]]))
-        Gr = sparse.csr_matrix((g / r, (nw_c, np.arange(J))), shape=(len(nw_u), J))  # G' R^-1
-        A = np.asarray(Gr @ H)  # (n_nw, K)
-        d = 1.0 + np.bincount(nw_c, g * g / r, minlength=len(nw_u))
-        precision -= A.T @ (A / d[:, None])
-        rhs -= A.T @ (np.asarray(Gr @ resid) / d)
-    cov = np.linalg.inv(precision)
-    cov = (cov + cov.T) / 2
-    mean = cov @ rhs
-    return LevelPosterior(pd.Index(nets, name="network"),
-                          pd.MultiIndex.from_tuples(list(flts), names=FLIGHT_KEY), mean, cov, J, has_common)
-
-
-def update_forecast(forecast: pd.DataFrame, post: LevelPosterior) -> pd.DataFrame:
-    """Forecast rows with the level factors' posterior folded in (module docstring).
-
-    Changes `mean_impressions`, `level_sd_common`, `level_sd_network`, `level_sd_flight`,
-    `level_sd`, `mean_rating` and the normal-approximation `q10_impressions`/`q90_impressions`;
-    impressions per spot.
-    """
-    out = forecast.copy()
-    Nn = len(post.networks)
-    ni = post.networks.get_indexer(out["network"]) if Nn else np.full(len(out), -1)
-    fi = (post.flights.get_indexer(pd.MultiIndex.from_frame(out[FLIGHT_KEY]))
-          if len(post.flights) else np.full(len(out), -1))
-    a = out["level_sd_network"].to_numpy(float)
-    b = out["level_sd_flight"].to_numpy(float)
-    c = out["level_sd_week"].to_numpy(float)
-    u = common_sd(out)
-    m = post.mean
-    V = post.cov
-    hn, hf = ni >= 0, fi >= 0
-    gi = np.where(hf, Nn + fi, 0)
-    nidx = np.where(hn, ni, 0)
-    shift = np.where(hn, a * m[nidx] if Nn else 0.0, 0.0) + np.where(hf, b * m[gi] if len(m) else 0.0, 0.0)
-    vnn = np.where(hn, V[nidx, nidx] if Nn else 1.0, 1.0)
-    vff = np.where(hf, V[gi, gi] if len(m) else 1.0, 1.0)
-    vnf = np.where(hn & hf, V[nidx, gi] if len(m) else 0.0, 0.0)
-    vcc, vnc, vfc = 1.0, 0.0, 0.0
-    if post.common:
-        shift = shift + u * m[-1]
-        vcc = V[-1, -1]
-        vnc = np.where(hn, V[nidx, -1] if Nn else 0.0, 0.0)
-        vfc = np.where(hf, V[gi, -1], 0.0)
-    # Keep each unit's posterior level variance exact: the flight part takes b^2 Vff + 2ab Vnf
-    # + 2bu Vfc, the network part a^2 Vnn + 2au Vnc, the common part u^2 Vcc; a negative part
-    # (evidence pins the sum, not its parts) is absorbed by the next one (flight -> network ->
-    # common).
-    flt_part = b * b * vff + 2 * a * b * vnf + 2 * b * u * vfc
-    net_part = a * a * vnn + 2 * a * u * vnc + np.minimum(flt_part, 0.0)
-    com_part = np.maximum(u * u * vcc + np.minimum(net_part, 0.0), 0.0)
-    new_b2, new_a2 = np.maximum(flt_part, 0.0), np.maximum(net_part, 0.0)
-    out["mean_impressions"] = np.maximum(out["mean_impressions"].to_numpy(float) + shift, 0.0)
-    out["level_sd_network"] = np.sqrt(new_a2)
-    out["level_sd_flight"] = np.sqrt(new_b2)
-    if "level_sd_common" in out:
-        out["level_sd_common"] = np.sqrt(com_part)
-    g = network_week_sd(out)
-    level_sd = np.sqrt(new_a2 + new_b2 + com_part + c ** 2 + g ** 2)
-    out["level_sd"] = level_sd
-    if "universe" in out.columns and "mean_rating" in out.columns:
-        with np.errstate(divide="ignore", invalid="ignore"):
-            out["mean_rating"] = np.where(out["universe"] > 0, out["mean_impressions"] / out["universe"],
-                                          out["mean_rating"])
-    total_sd = np.sqrt(level_sd ** 2 + out["airing_sd"].to_numpy(float) ** 2)
-    if "q10_impressions" in out.columns:
-        out["q10_impressions"] = np.maximum(out["mean_impressions"] - _Z90 * total_sd, 0.0)
-    if "q90_impressions" in out.columns:
-        out["q90_impressions"] = out["mean_impressions"] + _Z90 * total_sd
-    return out
-
-
-@dataclass
-class FoldedActuals:
-    """Posted actuals folded into a forecast (impressions per spot in the forecast columns).
-
-    `observed`: the postings joined with their forecast rows (one row per posting, the forecast
-    columns NaN where the unit-week has no forecast row); `unmatched`: boolean array (postings,)
-    of postings without a forecast row (no evidence); `posterior`: the level factors' posterior;
-    `forecast`: the rows asked for with the posterior folded in (`update_forecast`)."""
-
-    observed: pd.DataFrame
-    unmatched: np.ndarray
-    posterior: LevelPosterior
-    forecast: pd.DataFrame
-
-
-def fold_actuals(forecast: pd.DataFrame, actuals: pd.DataFrame, demo: str, *,
-                 rows: pd.DataFrame | None = None) -> FoldedActuals:
-    """Update forecast rows from posted actuals of one deal: the posterior of the level factors
-    given the postings (`level_posterior` on the postings joined with the forecast rows of the
-    deal's `demo`), folded into `rows` (default: every row of `forecast`) by `update_forecast`.
-
-    `actuals`: DataFrame `zone, network, daypart, week, spots_aired, impressions` (whole aired
-    spots; impressions in `demo`). `rows`: forecast-like rows (the level-sd columns, keyed by
-    zone, network, daypart) to update; each row's update depends only on its own columns and
-    the posterior, so updating a subset gives the same values as updating the whole table and
-    taking the subset. The one step shared by `rebalance_deal` and the stress test
-    (`planner.stress.load_book_model`), so both value a rebalanced deal on the same forecast.
-    """
-    fc_demo = forecast[forecast["demo"] == demo].copy()
-    fc_demo["week"] = fc_demo["week"].astype("int64")
-    acts = actuals[ACTUALS_COLUMNS].astype({"week": "int64"})
-    obs = acts.merge(fc_demo, on=UNIT_KEY, how="left")
-    unmatched = obs["mean_impressions"].isna().to_numpy()
-    post = level_posterior(obs[~unmatched])
-    updated = update_forecast(forecast if rows is None else rows, post)
-    return FoldedActuals(observed=obs, unmatched=unmatched, posterior=post, forecast=updated)
-
-
 # --------------------------------------------------------------------------- planning helpers
 
 def replan(scenario: Any, deal: Any, *, guarantee: float, first_week: int, forecast: pd.DataFrame,
@@ -298,12 +114,6 @@ def replan(scenario: Any, deal: Any, *, guarantee: float, first_week: int, forec
     Returns (PlanResult, max_deliverable): when no plan meets the guarantee, `max_deliverable` is
     the largest guarantee the avails left can meet at the deal's risk margin (LP bound, impressions).
     """
-    import copy
-    from dataclasses import replace
-
-    from planner import allocate as al
-    from planner import deals as dl
-
     sub = replace(deal, impressions=float(guarantee), first_week=int(first_week))
     scn = copy.copy(scenario)
     scn.deals = {**scenario.deals, deal.name: sub}
@@ -311,17 +121,6 @@ def replan(scenario: Any, deal: Any, *, guarantee: float, first_week: int, forec
     res = dl.plan_result(run)
     most = float("nan") if res.deliverable else float(al.max_guarantee(run.problem).value)
     return res, most
-
-
-def plan_for_commit(forecast: pd.DataFrame, *, solver: str = "cbc"):
-    """A `planner` for `planner.book.commit_deal` planning on a given forecast table (no fitting)."""
-
-    def _planner(scenario, deal_name, *, held, **kw):
-        from planner.deals import plan_deal
-
-        return plan_deal(scenario, deal_name, held=held, forecast=forecast, solver=kw.get("solver", solver))
-
-    return _planner
 
 
 # --------------------------------------------------------------------------- checks of the postings
@@ -474,129 +273,141 @@ class RebalanceResult:
         return out
 
 
-def rebalance_deal(scenario: Any, deal_name: str, actuals: str | os.PathLike | pd.DataFrame,
-                   book: str | os.PathLike | None = None, *, commit: bool = False, solver: str = "cbc",
-                   forecast: pd.DataFrame | None = None, unposted_as_zero: bool = False) -> RebalanceResult:
-    """Update the forecast from posted actuals and re-plan the deal's remaining weeks.
+@dataclass
+class _Evidence:
+    """The postings of one deal against its holds and the forecast (`_evidence`)."""
 
-    `actuals`: a CSV path (validated by `read_actuals`) or an already-valid DataFrame. Aired weeks
-    are first_week .. the last posted week; their posted impressions count toward the guarantee.
-    With `commit=True` and a deliverable re-plan, the deal's holds in the remaining weeks are
-    replaced by the re-plan in one checked transaction (aired weeks' holds are kept), and the
-    posted actuals used are stored with them (the book's `postings`), so the stress test values
-    the remaining holds on the same updated forecast (`fold_actuals`).
+    acts: pd.DataFrame
+    folded: FoldedActuals
+    last_aired: int
+    aired: list[int]
+    remaining: list[int]
+    delivered: float
+    expected_aired: float
+    problems: list[str]
+    warnings: list[str]
 
-    Postings that look wrong (`posting_problems`: held unit-weeks up to the last posted week
-    without a row, postings outside the held plan or airing more than held, figures beyond
-    `PLAUSIBLE_SDS` sds of the forecast's error law) are listed in `problems`; with `commit=True`
-    they raise InputError before anything is planned or written. `unposted_as_zero` accepts
-    held unit-weeks without a row as delivering nothing (said in `warnings`).
-    """
-    from planner.book import book_warnings, get_deal, held_spots, replace_holds
 
-    if deal_name not in scenario.deals:
-        raise InputError(f"{scenario.path}: no deal named {deal_name!r} in deals/")
-    deal = scenario.deals[deal_name]
-    booked = get_deal(scenario, deal_name, book)  # InputError when not committed
-    acts = actuals if isinstance(actuals, pd.DataFrame) else read_actuals(actuals, scenario, deal)
-    if forecast is None:
-        from planner.forecast_job import ensure_forecast
-
-        forecast = ensure_forecast(scenario).table
-    warnings: list[str] = book_warnings(scenario, book)
+def _evidence(deal: Any, acts: pd.DataFrame, holds: pd.DataFrame, forecast: pd.DataFrame, *,
+              unposted_as_zero: bool) -> _Evidence:
+    """Fold the postings into the forecast (`fold_actuals`) and check them against the holds."""
     folded = fold_actuals(forecast, acts, deal.demo)
-    obs, no_fc, post, updated = folded.observed, folded.unmatched, folded.posterior, folded.forecast
+    obs, no_fc = folded.observed, folded.unmatched
+    warnings = []
     if no_fc.any():
         warnings.append(f"{int(no_fc.sum())} posted unit-week(s) have no forecast row; counted as delivered, "
                         f"not used as evidence")
-
     last_aired = int(acts["week"].max()) if len(acts) else deal.first_week - 1
-    aired = list(range(deal.first_week, last_aired + 1))
-    remaining = list(range(last_aired + 1, deal.last_week + 1))
-    delivered = float(acts["impressions"].sum())
-    holds = booked.holds
-    held_aired = holds[holds["week"] <= last_aired]
     problems, said = posting_problems(acts, holds, obs, no_fc, first_week=deal.first_week,
                                       unposted_as_zero=unposted_as_zero)
-    warnings += said
-    if commit and problems:
-        where = actuals if not isinstance(actuals, pd.DataFrame) else "posted actuals"
-        raise InputError(f"{where}: re-plan of {deal_name!r} not committed, the postings look wrong: "
-                         + "; ".join(problems) + " (nothing was written to the book)")
-    # Expected delivery of what aired, under the prior forecast (per aired spot, no preemption).
-    ok = obs[~no_fc]
-    expected_aired = float((ok["spots_aired"] * ok["mean_impressions"]).sum())
-    ratio = delivered / expected_aired - 1.0 if expected_aired > 0 else float("nan")
-    G_left = max(float(deal.impressions) - delivered, 0.0)
+    ok = obs[~no_fc]  # expected delivery of what aired, under the prior forecast (per aired spot)
+    return _Evidence(acts=acts, folded=folded, last_aired=last_aired, aired=list(range(deal.first_week, last_aired + 1)),
+                     remaining=list(range(last_aired + 1, deal.last_week + 1)),
+                     delivered=float(acts["impressions"].sum()),
+                     expected_aired=float((ok["spots_aired"] * ok["mean_impressions"]).sum()),
+                     problems=problems, warnings=warnings + said)
 
-    held_rem = holds[holds["week"] > last_aired]
-    # The current holds' chance of meeting what is left, on the updated forecast.
-    p_before = _probability_of(scenario, deal, updated, held_rem, G_left)
-    others = held_spots(scenario, book, exclude=[deal_name])
-    max_del = float("nan")
-    if remaining and G_left > 0:
-        plan, max_del = replan(scenario, deal, guarantee=G_left, first_week=remaining[0], forecast=updated,
-                               held=others, solver=solver)
-        deliverable, status = bool(plan.deliverable), (plan.verdict if plan.deliverable else plan.reason)
-        new_plan = plan.spots if deliverable else plan.spots.iloc[:0]
-        p_after = float(plan.probability) if deliverable else 0.0
-        exp_rem, sd_rem = float(plan.expected_impressions or 0.0), float(plan.sd or 0.0)
-        new_cost_val = float(plan.cost or 0.0)
-    else:
-        deliverable = G_left <= 0
-        status = "guarantee already delivered" if deliverable else "flight over: nothing left to re-plan"
-        new_plan = held_rem.iloc[:0]
-        p_after, exp_rem, sd_rem, new_cost_val = float(deliverable), 0.0, 0.0, 0.0
-        if not deliverable:
-            max_del = 0.0
-    held_spots_n = int(held_rem["spots"].sum())
-    held_cost = float(held_rem["cost"].fillna(0).sum())
-    new_spots = int(new_plan["spots"].sum()) if deliverable else 0
-    new_cost = new_cost_val if deliverable else 0.0
-    label = (f"confidence {deal.confidence:.0%}" if deal.pad is None else f"pad {deal.pad:.0%}")
-    unmet = 0.0 if deliverable else max(G_left - max_del, 0.0)
-    catch = _catch_up(held_rem, new_plan) if deliverable else None
-    order = (buy_order(held_rem, new_plan, scenario.inventory)
-             if deliverable and remaining and G_left > 0 else None)
+
+def _replan_remaining(scenario: Any, deal: Any, ev: _Evidence, g_left: float, others: pd.DataFrame | None,
+                      solver: str) -> dict:
+    """Re-plan the remaining weeks for what is left of the guarantee (`replan`), or say why not."""
+    if ev.remaining and g_left > 0:
+        plan, max_del = replan(scenario, deal, guarantee=g_left, first_week=ev.remaining[0],
+                               forecast=ev.folded.forecast, held=others, solver=solver)
+        ok = bool(plan.deliverable)
+        return dict(deliverable=ok, status=plan.verdict if ok else plan.reason,
+                    new_plan=plan.spots if ok else plan.spots.iloc[:0], max_del=max_del,
+                    p_after=float(plan.probability) if ok else 0.0,
+                    exp_rem=float(plan.expected_impressions or 0.0), sd_rem=float(plan.sd or 0.0),
+                    new_cost=float(plan.cost or 0.0) if ok else 0.0)
+    ok = g_left <= 0
+    return dict(deliverable=ok, status="guarantee already delivered" if ok else "flight over: nothing left to re-plan",
+                new_plan=None, max_del=float("nan") if ok else 0.0, p_after=float(ok), exp_rem=0.0, sd_rem=0.0,
+                new_cost=0.0)
+
+
+def _network_moves(ev: _Evidence) -> tuple[dict, dict]:
+    """Per network that posted: its level factor's posterior mean (sds) and its units' level change."""
+    post, obs = ev.folded.posterior, ev.folded.observed
     net_shift = {str(n): float(post.mean[i]) for i, n in enumerate(post.networks)}
-    ev = obs[~no_fc]  # the posted rows the posterior used: every network in it posted
-    rel_sd = (ev["level_sd_network"] / ev["mean_impressions"]).groupby(ev["network"].astype(str)).median()
-    net_change = {n: z * float(rel_sd.get(n, np.nan)) for n, z in net_shift.items()}
-    committed = False
-    not_committed = ("" if not commit else
-                     "the guarantee is already delivered: nothing to re-plan" if G_left <= 0 else
-                     "the flight is over: nothing left to re-plan" if not remaining else
-                     "" if deliverable else "no re-plan meets the remaining guarantee")
-    if commit and deliverable and remaining and G_left > 0:
-        cols = UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "sd"]
-        keep = held_aired[cols]
-        new_holds = pd.concat([keep, new_plan[cols]], ignore_index=True)
-        replace_holds(scenario, deal_name, new_holds, {
-            "expected_impressions": delivered + exp_rem, "sd": sd_rem, "probability": p_after,
-            "cost": float(keep["cost"].fillna(0).sum()) + new_cost,
-            "rebalanced_after_week": last_aired, "delivered": delivered,
-            "posted_unit_weeks": int(len(acts))}, book,
-            postings=acts[ACTUALS_COLUMNS])
-        committed = True
+    used = obs[~ev.folded.unmatched]  # the posted rows the posterior used: every network in it posted
+    rel_sd = (used["level_sd_network"] / used["mean_impressions"]).groupby(used["network"].astype(str)).median()
+    return net_shift, {n: z * float(rel_sd.get(n, np.nan)) for n, z in net_shift.items()}
+
+
+def _not_committed(commit: bool, g_left: float, remaining: list[int], deliverable: bool) -> str:
+    if not commit:
+        return ""
+    if g_left <= 0:
+        return "the guarantee is already delivered: nothing to re-plan"
+    if not remaining:
+        return "the flight is over: nothing left to re-plan"
+    return "" if deliverable else "no re-plan meets the remaining guarantee"
+
+
+def rebalance_on(scenario: Any, deal: Any, acts: pd.DataFrame, holds: pd.DataFrame, *, forecast: pd.DataFrame,
+                 others: pd.DataFrame | None, solver: str = "cbc", commit: bool = False,
+                 unposted_as_zero: bool = False, where: Any = "posted actuals",
+                 warnings: Sequence[str] = ()) -> RebalanceResult:
+    """Update the forecast from a deal's valid posted actuals `acts` and re-plan its remaining weeks
+    against the avails less `others` (the other deals' holds); `holds` are the deal's own.
+
+    Computes everything `planner.workflows.rebalance_deal` answers; writes nothing (`committed`
+    False). With `commit` the postings' `problems` raise InputError (naming `where`) before any
+    planning, and `not_committed_reason` says why a commit would write nothing.
+    """
+    ev = _evidence(deal, acts, holds, forecast, unposted_as_zero=unposted_as_zero)
+    if commit and ev.problems:
+        raise InputError(f"{where}: re-plan of {deal.name!r} not committed, the postings look wrong: "
+                         + "; ".join(ev.problems) + " (nothing was written to the book)")
+    g_left = max(float(deal.impressions) - ev.delivered, 0.0)
+    held_rem = holds[holds["week"] > ev.last_aired]
+    p_before = _probability_of(scenario, deal, ev.folded.forecast, held_rem, g_left)
+    r = _replan_remaining(scenario, deal, ev, g_left, others, solver)
+    ok = r["deliverable"]
+    new_plan = held_rem.iloc[:0] if r["new_plan"] is None else r["new_plan"]
+    held_n, held_cost = int(held_rem["spots"].sum()), float(held_rem["cost"].fillna(0).sum())
+    new_spots = int(new_plan["spots"].sum()) if ok else 0
+    net_shift, net_change = _network_moves(ev)
     return RebalanceResult(
-        deal=deal_name, guarantee=float(deal.impressions), confidence_label=label, aired_weeks=aired,
-        remaining_weeks=remaining, delivered=delivered, expected_aired=expected_aired, posted_vs_forecast=ratio,
-        remaining_guarantee=G_left, probability_before=p_before, deliverable=deliverable,
-        probability_after=p_after, expected_remaining=exp_rem, sd_remaining=sd_rem,
-        held_remaining_spots=held_spots_n, new_spots=new_spots,
-        added_spots=new_spots - held_spots_n if deliverable else 0, held_remaining_cost=held_cost,
-        new_cost=new_cost, added_cost=new_cost - held_cost if deliverable else 0.0,
-        max_deliverable=max_del, unmet=unmet, committed=committed, status=status,
-        not_committed_reason="" if committed else not_committed, problems=problems,
-        network_shift=net_shift, network_level_change=net_change, warnings=warnings, plan=new_plan, catch_up=catch,
-        order=order, forecast=updated,
-        posterior=post)
+        deal=deal.name, guarantee=float(deal.impressions),
+        confidence_label=f"confidence {deal.confidence:.0%}" if deal.pad is None else f"pad {deal.pad:.0%}",
+        aired_weeks=ev.aired, remaining_weeks=ev.remaining, delivered=ev.delivered,
+        expected_aired=ev.expected_aired,
+        posted_vs_forecast=ev.delivered / ev.expected_aired - 1.0 if ev.expected_aired > 0 else float("nan"),
+        remaining_guarantee=g_left, probability_before=p_before, deliverable=ok, probability_after=r["p_after"],
+        expected_remaining=r["exp_rem"], sd_remaining=r["sd_rem"], held_remaining_spots=held_n,
+        new_spots=new_spots, added_spots=new_spots - held_n if ok else 0, held_remaining_cost=held_cost,
+        new_cost=r["new_cost"], added_cost=r["new_cost"] - held_cost if ok else 0.0, max_deliverable=r["max_del"],
+        unmet=0.0 if ok else max(g_left - r["max_del"], 0.0), committed=False, status=r["status"],
+        not_committed_reason=_not_committed(commit, g_left, ev.remaining, ok), problems=ev.problems,
+        network_shift=net_shift, network_level_change=net_change, warnings=list(warnings) + ev.warnings,
+        plan=new_plan, catch_up=_catch_up(held_rem, new_plan) if ok else None,
+        order=(buy_order(held_rem, new_plan, scenario.inventory) if ok and ev.remaining and g_left > 0 else None),
+        forecast=ev.folded.forecast, posterior=ev.folded.posterior)
+
+
+def committable(result: RebalanceResult) -> bool:
+    """True when a `--commit` of `result` writes: a deliverable re-plan of weeks left to deliver."""
+    return bool(result.deliverable and result.remaining_weeks and result.remaining_guarantee > 0)
+
+
+def rebalanced_holds(result: RebalanceResult, holds: pd.DataFrame, acts: pd.DataFrame) -> tuple[pd.DataFrame, dict]:
+    """The deal's holds after a committed rebalance (aired weeks' holds kept, the re-plan after
+    them) and the summary stored with them (`planner.book.replace_holds`)."""
+    last_aired = result.remaining_weeks[0] - 1
+    cols = UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "sd"]
+    keep = holds[holds["week"] <= last_aired][cols]
+    new_holds = pd.concat([keep, result.plan[cols]], ignore_index=True)
+    summary = {"expected_impressions": result.delivered + result.expected_remaining, "sd": result.sd_remaining,
+               "probability": result.probability_after,
+               "cost": float(keep["cost"].fillna(0).sum()) + result.new_cost,
+               "rebalanced_after_week": last_aired, "delivered": result.delivered, "posted_unit_weeks": int(len(acts))}
+    return new_holds, summary
 
 
 def _probability_of(scenario: Any, deal: Any, forecast: pd.DataFrame, held: pd.DataFrame, guarantee: float) -> float:
     """Normal-approximation chance that the held spots deliver `guarantee` on `forecast`."""
-    from planner.deals import deal_units
-
     if guarantee <= 0:
         return 1.0
     if held.empty:

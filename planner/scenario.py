@@ -7,9 +7,10 @@ core) and `load_history(scenario)` reads them. Every problem is reported as a
 not counted) or key, and what is wrong; several problems are collected where that is cheap.
 
 Addition to the data contract: `scenario.toml` may carry a `[history_generator]` table
-(`seed`, `start`, `end`, optional `short_history`, ...). When `history.parquet` and `history.csv`
-are both missing and that table is present, the loader generates `history.parquet` on first use
-and caches it in the folder. Its optional `family` names the generator: "profile" (the default,
+(`seed`, `start`, `end`, optional `short_history`, ...). The loader checks the table and accepts a
+folder whose history is missing when it is present; it never generates: whoever opens a folder
+for work (`planner.workflows.open_scenario`, `scenarios.families.ensure_history`) makes the
+missing history first. Its optional `family` names the generator: "profile" (the default,
 `scenarios.generate`) or "drift" (`scenarios.drift`, with its knobs); dispatch in
 `scenarios.families`.
 
@@ -30,8 +31,13 @@ from datetime import date, timedelta
 from pathlib import Path
 from typing import Any, Sequence
 
+import duckdb
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.dataset as ds
+import pyarrow.parquet as pq
 
 from planner.errors import ScenarioError
 
@@ -599,23 +605,11 @@ def _parse_mix(f: str, raw: Any, *, zones, networks, dayparts, problems: _Proble
 
 # ----------------------------------------------------------------------------- the loader
 
-def load_scenario(path: str | Path, *, generate: bool = True, allow_empty_inventory: bool = False) -> Scenario:
-    """Load and validate the scenario folder at `path` (all files except the history rows).
-
-    With `generate` (default) a missing history is generated from `[history_generator]`.
-    `allow_empty_inventory` accepts an inventory.csv with no rows (the demo builder's placeholder,
-    written before the real inventory is computed); otherwise it is a problem.
-    Raises `ScenarioError` naming the file, row or key and what is wrong.
-    """
-    folder = Path(path)
-    if not folder.is_dir():
-        raise ScenarioError(f"{folder}: not a scenario folder (no such directory)")
-    problems = _Problems()
+def _read_header(folder: Path, problems: _Problems) -> dict:
+    """scenario.toml's keys, checked: name, first_week, weeks, currency, preempt_rate, dayparts,
+    generator (the [history_generator] table or None), demos (the list given, or None)."""
     f = "scenario.toml"
-    if not (folder / f).is_file():
-        raise ScenarioError(f"{folder}: not a scenario folder ({f} is missing)")
     cfg = _read_toml(folder / f, f)
-
     name = cfg.get("name", folder.name)
     if not isinstance(name, str):
         problems.add(f"{f}: name must be a string, got {name!r}")
@@ -647,9 +641,12 @@ def load_scenario(path: str | Path, *, generate: bool = True, allow_empty_invent
     if demos_cfg is not None and (not isinstance(demos_cfg, list) or not all(isinstance(x, str) for x in demos_cfg)):
         problems.add(f"{f}: demos must be a list of demo names")
         demos_cfg = None
-    problems.raise_if_any()
+    return dict(name=name, first_week=first_week, weeks=weeks, currency=currency, preempt=preempt,
+                dayparts=dayparts, generator=generator, demos=demos_cfg)
 
-    # zones.csv / networks.csv
+
+def _read_zones_networks(folder: Path, problems: _Problems) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """zones.csv and networks.csv, checked (blank cells, duplicates, none at all)."""
     zones = _read_csv(folder, "zones.csv", ["zone", "market"])
     _blank(zones, "zones.csv", ["zone", "market"], problems)
     _duplicates(zones, "zones.csv", ["zone"], problems)
@@ -660,12 +657,13 @@ def load_scenario(path: str | Path, *, generate: bool = True, allow_empty_invent
         problems.add("zones.csv: no zones")
     if not len(networks):
         problems.add("networks.csv: no networks")
-    problems.raise_if_any()
-    zone_names = list(zones["zone"])
-    network_names = list(networks["network"])
-    dp_names = [d.name for d in dayparts]
+    return zones, networks
 
-    # universes.csv
+
+def _read_universes(folder: Path, zone_names: list, demos_cfg: list | None,
+                    problems: _Problems) -> tuple[pd.DataFrame, list[str]]:
+    """universes.csv, checked, as the DataFrame zone, demo, universe (float); and the demos
+    (scenario.toml's list, else the universes' in file order)."""
     uni = _read_csv(folder, "universes.csv", ["zone", "demo", "universe"])
     blank = _blank(uni, "universes.csv", ["zone", "demo", "universe"], problems)
     _unknown(uni, "universes.csv", "zone", zone_names, "zone", problems, skip=blank)
@@ -676,9 +674,13 @@ def load_scenario(path: str | Path, *, generate: bool = True, allow_empty_invent
     problems.rows("universes.csv", (~(u > 0) & ~blank).to_numpy(), "universe must be a positive number", uni["universe"])
     _duplicates(uni, "universes.csv", ["zone", "demo"], problems)
     demos = list(demos_cfg) if demos_cfg is not None else list(dict.fromkeys(uni.loc[~blank, "demo"]))
-    problems.raise_if_any()
+    universes = pd.DataFrame({"zone": uni["zone"].astype(str), "demo": uni["demo"].astype(str),
+                              "universe": u.astype(float)})
+    return universes, demos
 
-    # deals/*.toml (deal demos must be in universes; collect before the coverage check)
+
+def _read_deals(folder: Path, problems: _Problems, **context) -> dict[str, Deal]:
+    """deals/*.toml, each checked against `context` (weeks, demos, zones, networks, dayparts)."""
     deals: dict[str, Deal] = {}
     deal_dir = folder / "deals"
     if deal_dir.exists() and not deal_dir.is_dir():
@@ -690,23 +692,29 @@ def load_scenario(path: str | Path, *, generate: bool = True, allow_empty_invent
         except ScenarioError as exc:
             problems.add(str(exc))
             continue
-        deal = _parse_deal(p, raw, weeks=weeks, demos=demos, zones=zone_names, networks=network_names,
-                           dayparts=dp_names, problems=problems)
+        deal = _parse_deal(p, raw, problems=problems, **context)
         if deal is None:
             continue
         if deal.name in deals:
             problems.add(f"deals/{p.name}: duplicate deal name {deal.name!r} (also in deals/{deals[deal.name].path.name})")
             continue
         deals[deal.name] = deal
+    return deals
 
-    # every zone has a universe for every demo used anywhere
-    have = set(zip(uni["zone"], uni["demo"]))
+
+def _check_universe_coverage(universes: pd.DataFrame, zone_names: list, demos: list, problems: _Problems) -> None:
+    """Every zone has a universe for every demo used anywhere."""
+    have = set(zip(universes["zone"], universes["demo"]))
     for z in zone_names:
         lacking = [d for d in demos if (z, d) not in have]
         if lacking:
             problems.add(f"universes.csv: zone {z!r} has no row for demo(s) {', '.join(lacking)}")
 
-    # inventory.csv
+
+def _read_inventory(folder: Path, problems: _Problems, *, weeks: int, preempt: float, zone_names: list,
+                    network_names: list, dp_names: list, allow_empty: bool) -> pd.DataFrame:
+    """inventory.csv, checked, as zone, network, daypart, week, avails, rate, preempt_rate (the
+    scenario's default where a row gives none); raises every problem collected so far."""
     inv_file = "inventory.csv"
     inv = _read_csv(folder, inv_file, ["zone", "network", "daypart", "week", "avails", "rate"])
     blank = _blank(inv, inv_file, ["zone", "network", "daypart", "week", "avails", "rate"], problems)
@@ -733,47 +741,77 @@ def load_scenario(path: str | Path, *, generate: bool = True, allow_empty_invent
     else:
         pr = pd.Series(float(preempt), index=inv.index)
     _duplicates(inv, inv_file, ["zone", "network", "daypart", "week"], problems)
-    if inv.empty and not allow_empty_inventory:
+    if inv.empty and not allow_empty:
         problems.add(f"{inv_file}: no rows (nothing can be bought)")
     problems.raise_if_any()
-    inventory = pd.DataFrame({
+    return pd.DataFrame({
         "zone": inv["zone"].astype(str), "network": inv["network"].astype(str),
         "daypart": inv["daypart"].astype(str), "week": wk.astype("int64"),
         "avails": av.astype("int64"), "rate": rate.astype(float), "preempt_rate": pr.astype(float),
     })
-    zones_df = zones.copy()
+
+
+def _check_generator_names(generator: dict | None, first_week, zone_names: list, network_names: list,
+                           problems: _Problems) -> None:
+    """The [history_generator] table's zones and networks exist; the drift family's calendar holds."""
+    if generator is None:
+        return
+    for z, n in generator.get("short_history", []):
+        if z not in zone_names or n not in network_names:
+            problems.add(f"scenario.toml [history_generator]: short_history [{z!r}, {n!r}] names an unknown "
+                         "zone or network")
+    if generator.get("family") == "drift":
+        _check_drift_calendar(generator, first_week, network_names, problems)
+    problems.raise_if_any()
+
+
+def _find_history(folder: Path) -> Path:
+    """history.parquet, else history.csv, else a history/ folder of parts, else history.parquet (to come)."""
+    hp, hc, hd = folder / "history.parquet", folder / "history.csv", folder / "history"
+    return hp if hp.is_file() else (hc if hc.is_file() else (hd if _history_exists(hd) else hp))
+
+
+def load_scenario(path: str | Path, *, allow_empty_inventory: bool = False) -> Scenario:
+    """Load and validate the scenario folder at `path` (all files except the history rows).
+
+    A missing history is accepted when `[history_generator]` can make it (the scenario's
+    `history_path` is then the `history.parquet` to come; `scenarios.families.ensure_history`
+    writes it); the loader never generates.
+    `allow_empty_inventory` accepts an inventory.csv with no rows (the demo builder's placeholder,
+    written before the real inventory is computed); otherwise it is a problem.
+    Raises `ScenarioError` naming the file, row or key and what is wrong.
+    """
+    folder = Path(path)
+    if not folder.is_dir():
+        raise ScenarioError(f"{folder}: not a scenario folder (no such directory)")
+    if not (folder / "scenario.toml").is_file():
+        raise ScenarioError(f"{folder}: not a scenario folder (scenario.toml is missing)")
+    problems = _Problems()
+    h = _read_header(folder, problems)
+    problems.raise_if_any()
+    zones, networks = _read_zones_networks(folder, problems)
+    problems.raise_if_any()
+    zone_names, network_names = list(zones["zone"]), list(networks["network"])
+    dp_names = [d.name for d in h["dayparts"]]
+    universes, demos = _read_universes(folder, zone_names, h["demos"], problems)
+    problems.raise_if_any()
+    # deal demos must be in universes; collected before the coverage check
+    deals = _read_deals(folder, problems, weeks=h["weeks"], demos=demos, zones=zone_names, networks=network_names,
+                        dayparts=dp_names)
+    _check_universe_coverage(universes, zone_names, demos, problems)
+    inventory = _read_inventory(folder, problems, weeks=h["weeks"], preempt=h["preempt"], zone_names=zone_names,
+                                network_names=network_names, dp_names=dp_names, allow_empty=allow_empty_inventory)
     networks_df = networks.copy()
     networks_df["genre"] = networks_df["genre"].str.lower()
-    universes = pd.DataFrame({"zone": uni["zone"].astype(str), "demo": uni["demo"].astype(str),
-                              "universe": u.astype(float)})
-
-    # history
-    if generator is not None:
-        for z, n in generator.get("short_history", []):
-            if z not in zone_names or n not in network_names:
-                problems.add(f"scenario.toml [history_generator]: short_history [{z!r}, {n!r}] names an unknown "
-                             "zone or network")
-        if generator.get("family") == "drift":
-            _check_drift_calendar(generator, first_week, network_names, problems)
-        problems.raise_if_any()
-    hp, hc, hd = folder / "history.parquet", folder / "history.csv", folder / "history"
-    history_path = hp if hp.is_file() else (hc if hc.is_file() else (hd if _history_exists(hd) else hp))
-    scenario = Scenario(path=folder, name=name, first_week=first_week, weeks=int(weeks), currency=currency.strip(),
-                        preempt_rate=float(preempt), dayparts=dayparts, zones=zones_df, universes=universes,
-                        networks=networks_df, inventory=inventory, deals=deals, demos=demos,
-                        history_path=history_path, history_generator=generator)
-    if generate and generator is not None and history_path == hp and hp.is_file() and _stale(hp, scenario):
-        hp.unlink(missing_ok=True)  # made by the generator from other settings: make it again
-    if not _history_exists(history_path):
-        if generator is None:
-            raise ScenarioError("history.parquet: file is missing (no history.csv, and scenario.toml has no "
-                                "[history_generator] table to make one)")
-        if generate:
-            from planner.cli.common import info
-            from scenarios.families import write_scenario_history
-
-            info(f"{folder.name}: generating the invented history into history.parquet (first use, seconds) ...")
-            write_scenario_history(scenario, hp)
+    _check_generator_names(h["generator"], h["first_week"], zone_names, network_names, problems)
+    history_path = _find_history(folder)
+    scenario = Scenario(path=folder, name=h["name"], first_week=h["first_week"], weeks=int(h["weeks"]),
+                        currency=h["currency"].strip(), preempt_rate=float(h["preempt"]), dayparts=h["dayparts"],
+                        zones=zones.copy(), universes=universes, networks=networks_df, inventory=inventory,
+                        deals=deals, demos=demos, history_path=history_path, history_generator=h["generator"])
+    if not _history_exists(history_path) and h["generator"] is None:
+        raise ScenarioError("history.parquet: file is missing (no history.csv, and scenario.toml has no "
+                            "[history_generator] table to make one)")
     if _history_exists(history_path):
         _check_history_columns(history_path)
     return scenario
@@ -799,21 +837,6 @@ def _check_drift_calendar(g: dict, first_week: date, networks: Sequence[str], pr
                          f"end {g['end']} (the network would have no history)")
 
 
-def _stale(path: Path, scenario: Scenario) -> bool:
-    """True when `path` was written by the generator from settings other than the scenario's."""
-    import pyarrow.parquet as pq
-
-    from scenarios.families import history_digest
-    from scenarios.generate import METADATA_KEY
-
-    try:
-        meta = pq.read_schema(path).metadata or {}
-    except Exception:  # noqa: BLE001 - unreadable: the column check reports it
-        return False
-    made = meta.get(METADATA_KEY)
-    return made is not None and made.decode() != history_digest(scenario)
-
-
 def _history_parts(path: Path) -> list[Path]:
     """The Parquet parts of a `history/` folder, sorted."""
     return sorted(p for p in Path(path).rglob("*.parquet") if p.is_file())
@@ -834,8 +857,6 @@ def _check_history_columns(path: Path) -> None:
         name = f"{name}/{parts[0].relative_to(path)}"
         path = parts[0]
     if path.suffix == ".parquet":
-        import pyarrow.parquet as pq
-
         try:
             cols = [c.lower() for c in pq.read_schema(path).names]
         except Exception as exc:  # noqa: BLE001 - any unreadable file is bad input
@@ -906,7 +927,6 @@ def validate_history(scenario: Scenario) -> HistorySummary:
     known, key (zone, network, demo, date, quarter_hour) unique. `completeness` is rows over
     series x days of the whole span x 96; `short_series` lists series starting > 28 days late.
     """
-    import duckdb
 
     path = Path(scenario.history_path)
     name = path.name
@@ -989,9 +1009,6 @@ def _parquet_keys_unique(path: Path, scenario: Scenario) -> bool:
     after sorting. False means "look closer" (DuckDB then locates the duplicate). Assumes
     zone/network/demo/date/quarter_hour already checked (known and valid).
     """
-    import pyarrow as pa
-    import pyarrow.compute as pc
-    import pyarrow.parquet as pq
 
     cols = ["zone", "network", "demo", "date", "quarter_hour"]
     known = [scenario.zone_names, scenario.network_names, list(scenario.demos)]
@@ -1030,7 +1047,6 @@ def load_history(scenario: Scenario, columns: Sequence[str] | None = None, *, fi
     filter expression or list of tuples, e.g. [("demo", "=", "hh")]. `date` is datetime64,
     `quarter_hour` int16, `rating` float32 (fraction of the universe).
     """
-    import pyarrow.parquet as pq
 
     path = Path(scenario.history_path)
     cols = list(columns) if columns is not None else list(HISTORY_COLUMNS)
@@ -1040,9 +1056,6 @@ def load_history(scenario: Scenario, columns: Sequence[str] | None = None, *, fi
     else:
         df = pd.read_csv(path, usecols=cols)
         if filters is not None:
-            import pyarrow as pa
-            import pyarrow.dataset as ds
-
             table = pa.Table.from_pandas(df, preserve_index=False)
             df = ds.dataset(table).to_table(filter=pq.filters_to_expression(filters)).to_pandas()
         if "date" in df:

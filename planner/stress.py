@@ -41,7 +41,7 @@ from __future__ import annotations
 
 import os
 import re
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from typing import Any, Callable, Sequence
 
 import numpy as np
@@ -49,8 +49,10 @@ import pandas as pd
 from scipy import sparse
 from scipy.special import ndtr
 
+from planner.book import over_avails_warning
 from planner.delivery import FLIGHT_KEY, OPTIONAL_LEVEL_COLS, UNIT_KEY, DeliveryModel, common_sd, network_week_sd
 from planner.errors import InputError
+from planner.posterior import fold_actuals
 
 ALPHA = 0.95
 #: Monte Carlo draws of every stress of the book unless asked otherwise (pledge stress, report,
@@ -449,7 +451,6 @@ class StressResult:
 
     def as_dict(self) -> dict:
         """JSON-ready summary (no per-draw arrays)."""
-        from dataclasses import asdict
 
         return {
             "draws": self.draws, "seed": self.seed, "method": self.method,
@@ -481,31 +482,33 @@ def _most_correlated_pair(model: BookModel) -> tuple[int, int] | None:
     return int(i), int(j)
 
 
-def run_stress(model: BookModel, chunks, draws: int, *, seed: int, method: str, liability_basis: str = "refund",
-               alpha: float = ALPHA, shocks: Sequence[Shock] = (), preempt_multiplier: float = 1.0,
-               currency: str = "USD", keep_draws: bool = True,
-               advance: Callable[[float], Any] | None = None) -> StressResult:
-    """Consume chunks of draws (from `fast_chunks`/`exact_chunks`) into the stress figures.
+@dataclass
+class _Sums:
+    """Draws consumed by `_consume`: kept arrays and per-deal sums (`n` draws)."""
 
-    Per-deal moments are accumulated chunk by chunk; the book's liability per draw (draws,), the
-    deviations of the deliveries from their means (float32) and the network factors (float32) are
-    kept for the risk measures and the tail attribution.
-    """
+    n: int
+    dev: np.ndarray          # (draws, deals) float32 deviation of delivery from the mean
+    znet: np.ndarray         # (draws, networks) float32 network factors
+    book_liab: np.ndarray    # (draws,) book liability
+    n_short: np.ndarray
+    s_sf: np.ndarray
+    s_sf2: np.ndarray
+    s_dev: np.ndarray
+    s_dev2: np.ndarray
+    any_short: float
+    deals_short: float
+    both: float
+
+
+def _consume(model: BookModel, chunks, draws: int, w: np.ndarray, pair, advance) -> _Sums:
+    """Accumulate chunks of (delivery (k, deals), network factors (k, networks)) draws."""
     D, N = len(model.deals), len(model.networks)
     G = model.guarantee
-    w = (model.price_cpm / 1000.0) if liability_basis == "refund" else model.cost_per_impression
     dev = np.empty((draws, D), dtype=np.float32)
     znet = np.empty((draws, N), dtype=np.float32)
     book_liab = np.empty(draws)
-    n_short = np.zeros(D)
-    s_sf = np.zeros(D)
-    s_sf2 = np.zeros(D)
-    s_dev = np.zeros(D)
-    s_dev2 = np.zeros(D)
-    any_short = 0.0
-    deals_short = 0.0
-    pair = _most_correlated_pair(model)
-    both = 0.0
+    n_short, s_sf, s_sf2, s_dev, s_dev2 = (np.zeros(D) for _ in range(5))
+    any_short = deals_short = both = 0.0
     pos = 0
     for delivery, z in chunks:
         k = delivery.shape[0]
@@ -528,8 +531,13 @@ def run_stress(model: BookModel, chunks, draws: int, *, seed: int, method: str, 
         pos += k
         if advance:
             advance(k)
-    n = pos
-    var, cvar = var_cvar(book_liab, alpha)
+    return _Sums(pos, dev, znet, book_liab, n_short, s_sf, s_sf2, s_dev, s_dev2, any_short, deals_short, both)
+
+
+def _tail(model: BookModel, sums: _Sums, var: float, alpha: float, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(each deal's contribution to CVaR, each network's liability-weighted level move in the tail)."""
+    D, N = len(model.deals), len(model.networks)
+    book_liab, n = sums.book_liab, sums.n
     # Rockafellar-Uryasev tail weights: draws above VaR count fully, the atom at VaR fractionally,
     # so the deals' contributions add up to CVaR exactly.
     above = np.flatnonzero(book_liab > var)
@@ -538,24 +546,29 @@ def run_stress(model: BookModel, chunks, draws: int, *, seed: int, method: str, 
     w_at = max(n_tail - above.size, 0.0) / at.size if at.size and var > 0 else 0.0
     idx = np.concatenate([above, at]) if w_at > 0 else above
     weights = np.concatenate([np.ones(above.size), np.full(at.size, w_at)]) if w_at > 0 else np.ones(above.size)
-    tail_delivery = model.mean + dev[idx].astype(np.float64)
-    tail_sf = np.maximum(G - tail_delivery, 0.0)
+    tail_delivery = model.mean + sums.dev[idx].astype(np.float64)
+    tail_sf = np.maximum(model.guarantee - tail_delivery, 0.0)
     contrib = (weights @ (tail_sf * w)) / n_tail if idx.size else np.zeros(D)
     # Network attribution: liability-weighted level move of each network in the tail draws.
     if N and idx.size:
         short_w = (tail_sf > 0) * w  # money per impression of each deal that is short
-        net_move = (short_w @ -model.net_loadings) * znet[idx].astype(np.float64)
+        net_move = (short_w @ -model.net_loadings) * sums.znet[idx].astype(np.float64)
         net_tail = (weights @ net_move) / weights.sum()
     else:
         net_tail = np.zeros(N)
-    exposure = np.abs(model.net_loadings).sum(axis=0)
+    return contrib, net_tail
+
+
+def _deal_figures(model: BookModel, sums: _Sums, w: np.ndarray, contrib: np.ndarray) -> list[DealStress]:
+    """Each deal's stress figures with their Monte Carlo standard errors."""
+    D, n, G = len(model.deals), sums.n, model.guarantee
     p_norm = model.probability_of_shortfall_normal()
-    p = n_short / n
-    e_sf = s_sf / n
-    var_sf = np.maximum(s_sf2 / n - e_sf ** 2, 0.0) * n / max(n - 1, 1)
-    mean_dev = s_dev / n
-    sd_del = np.sqrt(np.maximum(s_dev2 / n - mean_dev ** 2, 0.0) * n / max(n - 1, 1))
-    q05 = np.quantile(dev, 1 - 0.95, axis=0).astype(np.float64) if n else np.zeros(D)
+    p = sums.n_short / n
+    e_sf = sums.s_sf / n
+    var_sf = np.maximum(sums.s_sf2 / n - e_sf ** 2, 0.0) * n / max(n - 1, 1)
+    mean_dev = sums.s_dev / n
+    sd_del = np.sqrt(np.maximum(sums.s_dev2 / n - mean_dev ** 2, 0.0) * n / max(n - 1, 1))
+    q05 = np.quantile(sums.dev, 1 - 0.95, axis=0).astype(np.float64) if n else np.zeros(D)
     liab_p95 = w * np.maximum(G - (model.mean + q05), 0.0)  # liability falls as delivery rises
     deals = []
     for j, name in enumerate(model.deals):
@@ -570,36 +583,66 @@ def run_stress(model: BookModel, chunks, draws: int, *, seed: int, method: str, 
             expected_margin=float(model.revenue[j] - model.cost[j] - el),
             tail_contribution=float(contrib[j]), probability_of_shortfall_normal=float(p_norm[j]),
         ))
+    return deals
+
+
+def _book_figures(model: BookModel, sums: _Sums, var: float, cvar: float, alpha: float) -> dict:
+    """The book's figures: expected liability, VaR and CVaR with standard errors, margins."""
+    book_liab, n = sums.book_liab, sums.n
     el_book = float(book_liab.mean())
-    book = {
+    return {
         "expected_liability": el_book,
         "expected_liability_se": float(book_liab.std(ddof=1) / np.sqrt(n)) if n > 1 else 0.0,
         "var95": var, "var95_se": _se_var(book_liab, alpha), "cvar95": cvar,
         "cvar95_se": _se_cvar(book_liab, var, alpha) if n > 1 else 0.0,
-        "probability_any_shortfall": any_short / n, "expected_deals_short": deals_short / n,
+        "probability_any_shortfall": sums.any_short / n, "expected_deals_short": sums.deals_short / n,
         "revenue": float(model.revenue.sum()), "cost": float(model.cost.sum()),
         "expected_margin": float(model.revenue.sum() - model.cost.sum() - el_book),
         "liability_p99": float(np.quantile(book_liab, 0.99)),
     }
+
+
+def _joint(model: BookModel, pair, sums: _Sums) -> dict:
+    """The most correlated pair of deals: their correlation and chance of falling short together."""
+    if pair is None:
+        return {}
+    i, j = pair
+    cov = model.covariance
+    p = sums.n_short / sums.n
+    return {"deals": [model.deals[i], model.deals[j]],
+            "correlation": float(cov[i, j] / np.sqrt(cov[i, i] * cov[j, j])) if cov[i, i] * cov[j, j] > 0 else 0.0,
+            "probability_both_short": sums.both / sums.n, "product_if_independent": float(p[i] * p[j])}
+
+
+def run_stress(model: BookModel, chunks, draws: int, *, seed: int, method: str, liability_basis: str = "refund",
+               alpha: float = ALPHA, shocks: Sequence[Shock] = (), preempt_multiplier: float = 1.0,
+               currency: str = "USD", keep_draws: bool = True,
+               advance: Callable[[float], Any] | None = None) -> StressResult:
+    """Consume chunks of draws (from `fast_chunks`/`exact_chunks`) into the stress figures.
+
+    Per-deal moments are accumulated chunk by chunk; the book's liability per draw (draws,), the
+    deviations of the deliveries from their means (float32) and the network factors (float32) are
+    kept for the risk measures and the tail attribution.
+    """
+    w = (model.price_cpm / 1000.0) if liability_basis == "refund" else model.cost_per_impression
+    pair = _most_correlated_pair(model)
+    sums = _consume(model, chunks, draws, w, pair, advance)
+    var, cvar = var_cvar(sums.book_liab, alpha)
+    contrib, net_tail = _tail(model, sums, var, alpha, w)
+    exposure = np.abs(model.net_loadings).sum(axis=0)
     networks = sorted(
         ({"network": net, "tail_liability": float(net_tail[i]), "exposure_sd": float(exposure[i])}
          for i, net in enumerate(model.networks)), key=lambda r: -r["tail_liability"])
-    joint = {}
-    if pair is not None:
-        i, j = pair
-        cov = model.covariance
-        joint = {"deals": [model.deals[i], model.deals[j]],
-                 "correlation": float(cov[i, j] / np.sqrt(cov[i, i] * cov[j, j])) if cov[i, i] * cov[j, j] > 0 else 0.0,
-                 "probability_both_short": both / n, "product_if_independent": float(p[i] * p[j])}
     delivery = liability = None
     if keep_draws:
-        delivery = model.mean + dev.astype(np.float64)
-        liability = np.maximum(G - delivery, 0.0) * w
+        delivery = model.mean + sums.dev.astype(np.float64)
+        liability = np.maximum(model.guarantee - delivery, 0.0) * w
     return StressResult(
-        draws=n, seed=seed, method=method, liability_basis=liability_basis, alpha=alpha,
+        draws=sums.n, seed=seed, method=method, liability_basis=liability_basis, alpha=alpha,
         shocks=[s.label() for s in shocks], preempt_multiplier=preempt_multiplier, currency=currency,
-        deals=deals, book=book, networks=networks, joint=joint, deal_names=list(model.deals),
-        warnings=list(model.warnings), delivery=delivery, liability=liability, book_liability=book_liab)
+        deals=_deal_figures(model, sums, w, contrib), book=_book_figures(model, sums, var, cvar, alpha),
+        networks=networks, joint=_joint(model, pair, sums), deal_names=list(model.deals),
+        warnings=list(model.warnings), delivery=delivery, liability=liability, book_liability=sums.book_liab)
 
 
 def available_memory() -> int:
@@ -675,7 +718,7 @@ def fold_rebalanced(deals: Sequence[Any], units: pd.DataFrame,
     returned by `book_units` (one per deal x held unit, impressions per spot). For each deal whose
     summary has `rebalanced_after_week` and whose stored postings are not empty, its rows' forecast
     columns are replaced by the posterior update from those postings
-    (`planner.rebalance.fold_actuals`, the very step `rebalance_deal` takes: `level_posterior` on
+    (`planner.posterior.fold_actuals`, the very step `rebalance_deal` takes: `level_posterior` on
     the postings joined with the demo's forecast rows, then `update_forecast`). Returns (units,
     cautions): a caution per rebalanced deal without stored postings (a book written before they
     were stored; its rows keep the prior forecast).
@@ -688,8 +731,6 @@ def fold_rebalanced(deals: Sequence[Any], units: pd.DataFrame,
     rebalanced deal's own mean and variance are exactly its rebalance's (on the same forecast
     table, before shocks). Cost: one demo filter of `forecast` per rebalanced deal.
     """
-    from planner.rebalance import fold_actuals
-
     cautions: list[str] = []
     out = None
     for d in deals:
@@ -712,27 +753,21 @@ def fold_rebalanced(deals: Sequence[Any], units: pd.DataFrame,
     return (units if out is None else out), cautions
 
 
-def load_book_model(scenario: Any, book: str | os.PathLike | None = None, *, forecast: pd.DataFrame | None = None,
-                    shocks: Sequence[str | Shock] = (), preempt_multiplier: float = 1.0):
-    """Read the book and the forecast and build the (shocked) `BookModel`. Returns (model, shocks).
+def book_model(scenario: Any, deals: Sequence[Any], holds: pd.DataFrame, forecast: pd.DataFrame, *,
+               shocks: Sequence[str | Shock] = (), preempt_multiplier: float = 1.0) -> tuple[BookModel, list[Shock]]:
+    """The (shocked) `BookModel` of committed `deals` and their `holds` (as `planner.book.read_book`
+    returns them) on `forecast`. Returns (model, shocks parsed).
 
     A deal rebalanced with `--commit` counts its posted impressions as delivered (`fixed`) and
     only its holds after the last posted week as uncertain; those holds are valued on the
     forecast updated from its stored postings, as the rebalance valued them
     (`fold_rebalanced`, which says what is approximated). A rebalanced deal without stored
     postings (a book from before they were stored) keeps the prior forecast, and
-    `model.warnings` says so.
+    `model.warnings` says so, after the book's own warnings (units held over their avails).
     """
-    from planner.book import read_book
-
-    deals, holds = read_book(scenario, book, hold_columns=["zone", "network", "daypart", "week", "spots"])
     if not deals:
         raise InputError(f"{getattr(scenario, 'path', scenario)}: the book has no committed deals "
                          f"(pledge book commit SCENARIO DEAL first)")
-    if forecast is None:
-        from planner.forecast_job import ensure_forecast
-
-        forecast = ensure_forecast(scenario).table
     inv = scenario.inventory
     parsed = [s if isinstance(s, Shock) else parse_shock(
         s, networks=inv["network"].astype(str).unique().tolist(),
@@ -753,29 +788,5 @@ def load_book_model(scenario: Any, book: str | os.PathLike | None = None, *, for
     if fixed.any():
         model.mean = model.mean + fixed
         model.fixed = fixed
-    from planner.book import over_avails_warning
-
     model.warnings = over_avails_warning(holds.groupby(UNIT_KEY, as_index=False)["spots"].sum(), inv) + cautions
     return model, parsed
-
-
-def stress_book(scenario: Any, book: str | os.PathLike | None = None, *, draws: int = DEFAULT_DRAWS, seed: int = 0,
-                shocks: Sequence[str | Shock] = (), preempt_multiplier: float = 1.0, liability: str = "refund",
-                method: str = "fast", forecast: pd.DataFrame | None = None, keep_draws: bool = True,
-                advance: Callable[[float], Any] | None = None) -> StressResult:
-    """Monte Carlo stress of every deal committed in the scenario's book.
-
-    Per deal: probability of under-delivery, expected shortfall (impressions), expected liability
-    and margin (currency), each with its Monte Carlo standard error; for the book: expected
-    liability, VaR95, CVaR95, the deals' contributions to CVaR and the networks whose level
-    factor drives the tail. `shocks` are strings like "network=NAME:-0.15" or `Shock`s.
-
-    References
-    ----------
-    Rockafellar & Uryasev (2000), J. Risk 2(3).
-    """
-    model, parsed = load_book_model(scenario, book, forecast=forecast, shocks=shocks,
-                                    preempt_multiplier=preempt_multiplier)
-    return stress_model(model, draws=draws, seed=seed, method=method, liability=liability, shocks=parsed,
-                        preempt_multiplier=preempt_multiplier, currency=getattr(scenario, "currency", "USD"),
-                        keep_draws=keep_draws, advance=advance)

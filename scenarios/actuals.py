@@ -14,6 +14,10 @@ from typing import Iterable
 import numpy as np
 import pandas as pd
 
+from forecasting.backtest import score_levels
+from forecasting.dayparts import as_specs, daypart_week_means
+from forecasting.scoring import total_bias_sd
+from forecasting.uncertainty import COMPONENT_KEYS, factor_components
 from scenarios.families import simulate_scenario_truth
 from scenarios.generate import QH
 
@@ -93,7 +97,6 @@ def true_unit_week_levels(scenario, demos: Iterable[str] | None = None) -> pd.Da
     Returns a DataFrame zone, network, daypart, week, demo, true_impressions (people or homes per
     spot), one row per series x daypart x plan week.
     """
-    from forecasting.dayparts import as_specs, daypart_week_means
 
     if scenario.history_generator is None:
         raise ValueError("true_unit_week_levels needs a scenario with a [history_generator] table")
@@ -130,10 +133,6 @@ def plan_week_scores(scenario, table: pd.DataFrame) -> dict:
     level_sd^2), plus ``units``, ``bias`` (sum actual / sum forecast - 1, fraction), ``bias_sd``
     (the sd the table's error law gives that total: `forecasting.scoring.total_bias_sd` with
     each level factor shared as the table's columns say) and ``bias_z`` (bias / bias_sd)."""
-    from forecasting.backtest import score_levels
-    from forecasting.scoring import total_bias_sd
-    from forecasting.uncertainty import COMPONENT_KEYS, factor_components
-
     m = table.merge(true_unit_week_levels(scenario), on=["zone", "network", "daypart", "week", "demo"], how="inner")
     out = score_levels(m["true_impressions"], m["mean_impressions"], m["level_sd"])
     out["units"] = int(len(m))

@@ -19,8 +19,10 @@ import numpy as np
 import pandas as pd
 from scipy.optimize import linprog
 
-from scenarios.families import simulate_scenario_truth
-from scenarios.generate import QH
+from planner.rules import Rules, linear_rows
+from planner.scenario import load_scenario
+from scenarios.families import ensure_history, simulate_scenario_truth
+from scenarios.generate import QH, demo_path
 
 # Seven dayparts, every day of the week; late fringe wraps past midnight.
 DAYPARTS = [
@@ -178,31 +180,15 @@ def make_inventory(truth: pd.DataFrame, scenario, seed: int) -> pd.DataFrame:
 
 
 def _lp_rows(units: pd.DataFrame, spec: DealSpec, dayparts: list[str]):
-    """Inequality rows A x <= b of the deal's mix rules, in terms of expected impressions."""
-    m = units["impressions"].to_numpy()
-    rows, rhs = [], []
+    """Inequality rows A x <= b of the deal's mix rules, in terms of expected impressions: the
+    allocator's own rule rows (`planner.rules.linear_rows`) with the plan total substituted."""
     mix = spec.mix
-    share = mix.get("max_network_share")
-    if share is not None:
-        for n in units["network"].unique():
-            rows.append(np.where(units["network"] == n, m, 0.0) - share * m)
-            rhs.append(0.0)
-    for dp, lo in mix.get("daypart_min_share", {}).items():
-        rows.append(lo * m - np.where(units["daypart"] == dp, m, 0.0))
-        rhs.append(0.0)
-    for dp, hi in mix.get("daypart_max_share", {}).items():
-        rows.append(np.where(units["daypart"] == dp, m, 0.0) - hi * m)
-        rhs.append(0.0)
-    tol = mix.get("weekly_tolerance")
-    if tol is not None:
-        nw = spec.last_week - spec.first_week + 1
-        for w in range(spec.first_week, spec.last_week + 1):
-            inw = np.where(units["week"] == w, m, 0.0)
-            rows.append(inw - (1 + tol) / nw * m)
-            rhs.append(0.0)
-            rows.append((1 - tol) / nw * m - inw)
-            rhs.append(0.0)
-    return (np.array(rows) if rows else None), (np.array(rhs) if rhs else None)
+    rules = Rules(max_network_share=mix.get("max_network_share"),
+                  daypart_min_share=dict(mix.get("daypart_min_share", {})),
+                  daypart_max_share=dict(mix.get("daypart_max_share", {})),
+                  weekly_tolerance=mix.get("weekly_tolerance"))
+    weeks = list(range(spec.first_week, spec.last_week + 1))
+    return linear_rows(rules, units, weeks, units["impressions"].to_numpy())
 
 
 def deal_units(truth: pd.DataFrame, inventory: pd.DataFrame, spec: DealSpec) -> pd.DataFrame:
@@ -270,14 +256,12 @@ def finish_scenario(dest: Path, deal_specs: list[DealSpec], *, seed: int, genera
 
     Returns {deal name: (impressions, capacity, price_cpm)}.
     """
-    from planner.scenario import load_scenario
-
     # Inventory placeholder so the loader accepts the folder while we compute the real one.
     (dest / "inventory.csv").write_text("zone,network,daypart,week,avails,rate\n")
     deals_dir = dest / "deals"
     if deals_dir.exists():
         shutil.rmtree(deals_dir)
-    sc = load_scenario(dest, generate=False, allow_empty_inventory=True)
+    sc = load_scenario(dest, allow_empty_inventory=True)
     truth = unit_truth(sc)
     inv = make_inventory(truth, sc, seed)
     inv.to_csv(dest / "inventory.csv", index=False)
@@ -293,7 +277,7 @@ def finish_scenario(dest: Path, deal_specs: list[DealSpec], *, seed: int, genera
         (deals_dir / spec.file).write_text(deal_toml(spec, g, price, cap))
         sized[spec.name] = (g, cap, price)
     if generate:
-        load_scenario(dest)  # generates and caches history.parquet
+        ensure_history(dest)  # generates and caches history.parquet
     return sized
 
 
@@ -305,7 +289,7 @@ SMALL_MARKETS = {
 
 def write_scenario(dest, *, seed: int = 0, n_zones: int = 3, n_networks: int = 3, history_days: int = 420,
                    weeks: int = 8) -> Path:
-    """A complete small invented scenario folder (for tests); see `scenarios.generate.make_small_scenario`."""
+    """A complete small invented scenario folder (for tests); see `scenarios.folders.make_small_scenario`."""
     dest = Path(dest)
     dest.mkdir(parents=True, exist_ok=True)
     zones = [z for zs in SMALL_MARKETS.values() for z in zs]
@@ -365,9 +349,7 @@ DEMO_DEALS = [
 
 
 def build_demo(dest: Path | None = None) -> dict:
-    """Rewrite the demo scenario folder (tables, inventory, deals); history is left to the loader."""
-    from scenarios.generate import demo_path
-
+    """Rewrite the demo scenario folder (tables, inventory, deals); history is made on first use."""
     dest = Path(dest) if dest else demo_path()
     dest.mkdir(parents=True, exist_ok=True)
     write_tables(dest, markets=DEMO_MARKETS, networks=DEMO_NETWORKS, seed=DEMO_SEED)

@@ -2,18 +2,21 @@
 
 A scenario's `[history_generator]` table names the family that makes its invented history
 (`family = "drift"`; absent: "profile", `scenarios.generate`). Everything that needs the
-generator of a scenario, the loader writing a missing history and checking a cached one, and the
-truth helpers (`scenarios.build.unit_truth`, `scenarios.actuals`), goes through the functions
+generator of a scenario, writing a missing history and checking a cached one
+(`ensure_history`, which the workflows and the CLI call before they load a folder; the loader
+`planner.scenario` itself never generates), and the truth helpers (`scenarios.build.unit_truth`, `scenarios.actuals`), goes through the functions
 here. Invented data only.
 """
 from __future__ import annotations
 
 from datetime import date
 from pathlib import Path
+from typing import Callable
 
 import numpy as np
+import pyarrow.parquet as pq
 
-from planner.scenario import GENERATOR_FAMILIES
+from planner.scenario import GENERATOR_FAMILIES, Scenario, load_scenario
 from scenarios import drift, generate
 
 #: the history families a [history_generator] table may name (the loader's list)
@@ -48,6 +51,40 @@ def write_scenario_history(scenario, path: str | Path) -> Path:
     return generate.write_spec(spec, path)
 
 
+def _stale(path: Path, scenario) -> bool:
+    """True when `path` was written by the generator from settings other than the scenario's."""
+    try:
+        meta = pq.read_schema(path).metadata or {}
+    except Exception:  # noqa: BLE001 - unreadable: the loader's column check reports it
+        return False
+    made = meta.get(generate.METADATA_KEY)
+    return made is not None and made.decode() != history_digest(scenario)
+
+
+def ensure_history(folder: str | Path, *, info: Callable[[str], None] | None = None,
+                   allow_empty_inventory: bool = False) -> Scenario:
+    """Make the folder's invented history when it is missing or was made from other settings, then
+    return the loaded scenario (`planner.scenario.load_scenario`).
+
+    A folder without a `[history_generator]` table is only loaded. `history.parquet` is written
+    from the table (its family, its seed; seconds for the demo) when no history file or folder
+    exists, and made again when its metadata digest differs from the table's settings. `info`
+    receives a one-line note before a history is generated.
+    """
+    folder = Path(folder)
+    scenario = load_scenario(folder, allow_empty_inventory=allow_empty_inventory)
+    if scenario.history_generator is None:
+        return scenario
+    target = folder / "history.parquet"
+    if scenario.history_path == target and target.is_file() and _stale(target, scenario):
+        target.unlink(missing_ok=True)  # made by the generator from other settings: make it again
+    if scenario.history_path == target and not target.is_file():
+        if info is not None:
+            info(f"{folder.name}: generating the invented history into history.parquet (first use, seconds) ...")
+        write_scenario_history(scenario, target)
+    return scenario
+
+
 class ScenarioTruth:
     """The simulated ratings of a generated scenario over its history and plan weeks, without gaps.
 
@@ -60,7 +97,7 @@ class ScenarioTruth:
 
     def __init__(self, family: str, spec):
         self.family, self.spec = family, spec
-        self._sim = drift.DriftSim(spec) if family == "drift" else generate._Sim(spec)
+        self._sim = drift.DriftSim(spec) if family == "drift" else generate.ProfileSim(spec)
 
     @property
     def zones(self) -> list[str]:

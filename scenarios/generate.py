@@ -1,4 +1,4 @@
-"""Seeded generator of invented quarter-hour rating history (and small test scenarios).
+"""Seeded generator of invented quarter-hour rating history (the "profile" family).
 
 Everything this module makes is invented: zones, networks, advertisers and audiences.
 
@@ -37,7 +37,8 @@ References
 """
 from __future__ import annotations
 
-import shutil
+import hashlib
+import json
 from dataclasses import dataclass, field
 from datetime import date
 from pathlib import Path
@@ -47,6 +48,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 from scipy.signal import lfilter
+
+from planner.atomic import atomic_path
 
 QH = 96
 _QH_HOURS = (np.arange(QH) + 0.5) / 4.0  # centre of each quarter-hour, hours from midnight
@@ -170,7 +173,7 @@ def _genre(name: str) -> dict:
     return _GENRES.get(str(name).lower(), _GENRES["general"])
 
 
-class _Sim:
+class ProfileSim:
     """Shared parts of the simulation (network-level, calendar) and per-zone generation."""
 
     def __init__(self, spec: HistorySpec):
@@ -292,9 +295,6 @@ METADATA_KEY = b"pledge.history_generator"
 
 def spec_digest(spec: HistorySpec) -> str:
     """Short digest of everything that determines the generated history (and the code version)."""
-    import hashlib
-    import json
-
     d = {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in spec.__dict__.items()}
     text = json.dumps({"version": GENERATOR_VERSION, **d}, sort_keys=True, default=str)
     return hashlib.sha1(text.encode()).hexdigest()[:16]
@@ -308,7 +308,7 @@ HISTORY_SCHEMA = pa.schema([
 
 def write_spec(spec: HistorySpec, path: str | Path) -> Path:
     """Simulate `spec` and write its history (start..end) to Parquet at `path` atomically."""
-    return write_history_parquet(path, _Sim(spec), zones=spec.zones, networks=spec.networks, demos=spec.demos,
+    return write_history_parquet(path, ProfileSim(spec), zones=spec.zones, networks=spec.networks, demos=spec.demos,
                                  start=spec.start, days=spec.history_days, digest=spec_digest(spec))
 
 
@@ -321,8 +321,6 @@ def write_history_parquet(path: str | Path, sim, *, zones: Sequence[str], networ
     (zone, network, demo string, date date32, quarter_hour int16, rating float32), rows in zone,
     network, demo, date, quarter-hour order; the schema metadata carries `digest`.
     """
-    from planner.atomic import atomic_path
-
     path = Path(path)
     n_net, n_dem = len(networks), len(demos)
     # Index grids for one zone in (network, demo, day, qh) C order.
@@ -424,7 +422,7 @@ def simulate_truth(spec: HistorySpec):
     Returns (dates, array) with array float32 of shape (zones, networks, demos, total_days, 96).
     Used to size the demo's deals and by tests; several hundred MB for the full demo.
     """
-    sim = _Sim(spec)
+    sim = ProfileSim(spec)
     return sim.dates, np.stack([sim.zone(zi) for zi in range(len(spec.zones))])
 
 
@@ -433,46 +431,3 @@ def simulate_truth(spec: HistorySpec):
 def demo_path() -> Path:
     """The shipped demo scenario folder (its history is generated on first use)."""
     return Path(__file__).resolve().parent / "demo"
-
-
-def ensure_history(folder: str | Path) -> Path:
-    """Generate `<folder>/history.parquet` from its `[history_generator]` table if missing."""
-    from planner.scenario import load_scenario
-
-    return load_scenario(folder).history_path
-
-
-def copy_demo(dest: str | Path) -> Path:
-    """Copy the demo scenario (without generated files) to `dest`, generate its history; return dest."""
-    from planner.scenario import load_scenario
-
-    dest = Path(dest)
-    src = demo_path()
-    ignore = shutil.ignore_patterns("history.parquet", "forecast", "book.sqlite*", "__pycache__", ".*.tmp")
-    shutil.copytree(src, dest, ignore=ignore, dirs_exist_ok=True)
-    cached = src / "history.parquet"
-    if cached.is_file() and _made_from(cached, spec_from_scenario(load_scenario(dest, generate=False))):
-        shutil.copyfile(cached, dest / "history.parquet")  # the same seeded history: copy, do not remake
-    ensure_history(dest)
-    return dest
-
-
-def _made_from(path: Path, spec: HistorySpec) -> bool:
-    """True when the Parquet file at `path` was generated from exactly `spec` (metadata digest)."""
-    try:
-        meta = pq.read_schema(path).metadata or {}
-    except Exception:  # noqa: BLE001 - unreadable cache: regenerate
-        return False
-    return meta.get(METADATA_KEY) == spec_digest(spec).encode()
-
-
-def make_small_scenario(dest: str | Path, *, seed: int = 0, n_zones: int = 3, n_networks: int = 3,
-                        history_days: int = 420, weeks: int = 8) -> Path:
-    """Write a complete small invented scenario folder (history, inventory, 3 deals); return it.
-
-    Made by the same generator as the demo; meant for tests (about a second).
-    """
-    from scenarios.build import write_scenario
-
-    return write_scenario(dest, seed=seed, n_zones=n_zones, n_networks=n_networks,
-                          history_days=history_days, weeks=weeks)

@@ -17,14 +17,14 @@ os.environ.setdefault("OMP_NUM_THREADS", "2")
 
 @pytest.fixture(scope="session")
 def small_scenario(tmp_path_factory):
-    from scenarios.generate import make_small_scenario
+    from scenarios.folders import make_small_scenario
 
     return make_small_scenario(tmp_path_factory.mktemp("small") / "small", seed=11)
 
 
 @pytest.fixture(scope="session")
 def demo_scenario(tmp_path_factory):
-    from scenarios.generate import copy_demo
+    from scenarios.folders import copy_demo
 
     return copy_demo(tmp_path_factory.mktemp("demo") / "demo")
 

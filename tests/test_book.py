@@ -19,6 +19,7 @@ import pytest
 
 from planner import book as bk
 from planner.errors import InputError
+from planner import workflows as wf
 
 PY = sys.executable
 TESTS = Path(__file__).resolve().parent
@@ -204,7 +205,7 @@ def test_version_2_book_gains_the_postings_table_with_cascade(tmp_path):
 
 def test_replace_holds_stores_postings_and_refuses_bad_ones(tmp_path):
     scn, _ = make_synthetic(tmp_path / "s")
-    bk.commit_deal(scn, "alpha", planner=greedy_planner(3))
+    wf.commit_deal(scn, "alpha", planner=greedy_planner(3))
     holds = bk.get_deal(scn, "alpha").holds
     posted = holds[UNIT].assign(spots_aired=holds["spots"], impressions=1000.0 * holds["spots"])
     bad = posted.assign(impressions=-1.0)
@@ -253,9 +254,9 @@ def test_not_a_database_is_input_error(tmp_path):
 def test_commit_list_show_release_roundtrip(tmp_path):
     scn, _ = make_synthetic(tmp_path / "s")
     plan = greedy_planner(10)
-    r = bk.commit_deal(scn, "alpha", planner=plan)
+    r = wf.commit_deal(scn, "alpha", planner=plan)
     assert r.committed and r.summary["spots"] == 10
-    r2 = bk.commit_deal(scn, "beta", planner=plan)
+    r2 = wf.commit_deal(scn, "beta", planner=plan)
     assert r2.committed
     deals = bk.list_deals(scn)
     assert [d.name for d in deals] == ["alpha", "beta"]
@@ -268,7 +269,7 @@ def test_commit_list_show_release_roundtrip(tmp_path):
     # the second deal was planned against the first one's holds: never over avails
     assert bk.check_book(scn)["over_avails"] == 0
     with pytest.raises(InputError, match="already in the book"):
-        bk.commit_deal(scn, "alpha", planner=plan)
+        wf.commit_deal(scn, "alpha", planner=plan)
     removed = bk.release_deal(scn, "alpha")
     assert removed.spots == 10
     assert [d.name for d in bk.list_deals(scn)] == ["beta"]
@@ -282,13 +283,13 @@ def test_commit_list_show_release_roundtrip(tmp_path):
 def test_unknown_deal_is_input_error(tmp_path):
     scn, _ = make_synthetic(tmp_path / "s")
     with pytest.raises(InputError, match="no deal named"):
-        bk.commit_deal(scn, "gamma", planner=greedy_planner(1))
+        wf.commit_deal(scn, "gamma", planner=greedy_planner(1))
 
 
 def test_undeliverable_deal_is_not_committed(tmp_path):
     scn, _ = make_synthetic(tmp_path / "s")
     total = int(scn.inventory["avails"].sum())
-    r = bk.commit_deal(scn, "alpha", planner=greedy_planner(total + 1))
+    r = wf.commit_deal(scn, "alpha", planner=greedy_planner(total + 1))
     assert not r.committed and "not enough" in r.reason
     assert bk.list_deals(scn) == [] and bk.held_spots(scn).empty
 
@@ -296,7 +297,7 @@ def test_undeliverable_deal_is_not_committed(tmp_path):
 def test_book_option_points_elsewhere(tmp_path):
     scn, _ = make_synthetic(tmp_path / "s")
     other = tmp_path / "elsewhere" / "desk.sqlite"
-    bk.commit_deal(scn, "alpha", other, planner=greedy_planner(4))
+    wf.commit_deal(scn, "alpha", other, planner=greedy_planner(4))
     assert other.exists() and not (scn.path / "book.sqlite").exists()
     assert [d.name for d in bk.list_deals(scn, other)] == ["alpha"]
 
@@ -313,10 +314,10 @@ def test_stale_plan_is_replanned_under_the_lock(tmp_path):
         plan = inner(scenario, deal_name, held=held)
         calls["n"] += 1
         if calls["n"] == 1:  # the other desk commits right after our (now stale) plan
-            assert bk.commit_deal(scenario, "beta", planner=greedy_planner(4, scarce)).committed
+            assert wf.commit_deal(scenario, "beta", planner=greedy_planner(4, scarce)).committed
         return plan
 
-    r = bk.commit_deal(scn, "alpha", planner=racing_planner)
+    r = wf.commit_deal(scn, "alpha", planner=racing_planner)
     assert calls["n"] == 2  # planned again inside the transaction
     assert not r.committed and "another desk" in r.reason  # only 2 spots left of the 6
     assert bk.check_book(scn)["over_avails"] == 0
@@ -325,18 +326,18 @@ def test_stale_plan_is_replanned_under_the_lock(tmp_path):
     calls["n"] = 0
     bk.release_deal(scn, "beta")
     inner = greedy_planner(2, scarce)
-    r = bk.commit_deal(scn, "alpha", planner=racing_planner)
+    r = wf.commit_deal(scn, "alpha", planner=racing_planner)
     assert r.committed and r.replanned
     assert bk.check_book(scn)["over_avails"] == 0
 
 
 def test_commit_with_the_real_allocator_respects_holds(tmp_path):
-    from planner.rebalance import plan_for_commit
+    from planner.workflows import plan_for_commit
 
     scn, fc = make_synthetic(tmp_path / "s", avails=(1, 3),
                              deals=[("alpha", 0.30, 0.95, 22.0), ("beta", 0.30, 0.95, 20.0), ("gamma", 0.30, 0.9, 20.0)])
     planner = plan_for_commit(fc, solver="highs")
-    results = [bk.commit_deal(scn, n, planner=planner) for n in ("alpha", "beta", "gamma")]
+    results = [wf.commit_deal(scn, n, planner=planner) for n in ("alpha", "beta", "gamma")]
     assert results[0].committed and results[1].committed
     assert not results[2].committed  # 90% of capacity at 95%+ confidence cannot all fit
     assert bk.check_book(scn)["over_avails"] == 0
@@ -358,7 +359,7 @@ def _race_worker(folder: str, worker: int, n_deals: int, need: int, sleep: float
                             mix=Mix(), path=Path(folder) / f"{n}.toml")
     plan = greedy_planner(need, _scarce_units(), sleep=sleep)
     for n in names:
-        r = bk.commit_deal(scn, n, planner=plan)
+        r = wf.commit_deal(scn, n, planner=plan)
         print(json.dumps({"deal": n, "committed": r.committed, "replanned": r.replanned,
                           "spots": r.summary.get("spots")}), flush=True)
 
@@ -409,11 +410,11 @@ def _locked(path: Path) -> bool:
 def test_commit_killed_midway_leaves_the_book_as_before(tmp_path):
     folder = tmp_path / "kill"
     scn, _ = make_synthetic(folder, avails=(2, 2))
-    bk.commit_deal(scn, "alpha", planner=greedy_planner(2, _scarce_units()))
+    wf.commit_deal(scn, "alpha", planner=greedy_planner(2, _scarce_units()))
     before = bk.held_spots(scn)
     code = (f"import sys; sys.path.insert(0, {str(TESTS)!r}); import test_book as t; "
-            f"from planner import book as bk; scn, _ = t.make_synthetic({str(folder)!r}, avails=(2, 2)); "
-            f"bk.commit_deal(scn, 'beta', planner=t.greedy_planner(3, t._scarce_units()))")
+            f"from planner import workflows as wf; scn, _ = t.make_synthetic({str(folder)!r}, avails=(2, 2)); "
+            f"wf.commit_deal(scn, 'beta', planner=t.greedy_planner(3, t._scarce_units()))")
     env = {**os.environ, "PYTHONPATH": str(ROOT), bk._SLEEP_ENV: "300"}
     p = subprocess.Popen([PY, "-c", code], env=env, cwd=ROOT, stderr=subprocess.PIPE)
     path = folder / "book.sqlite"
@@ -429,7 +430,7 @@ def test_commit_killed_midway_leaves_the_book_as_before(tmp_path):
     chk = bk.check_book(scn)
     assert chk["integrity"] == "ok" and chk["orphan_holds"] == 0 and chk["spot_count_mismatch"] == 0
     # the book still works: the same commit now goes through
-    assert bk.commit_deal(scn, "beta", planner=greedy_planner(3, _scarce_units())).committed
+    assert wf.commit_deal(scn, "beta", planner=greedy_planner(3, _scarce_units())).committed
     assert int(bk.held_spots(scn)["spots"].sum()) == 5
 
 
@@ -437,8 +438,8 @@ def test_killed_after_commit_keeps_the_deal(tmp_path):
     folder = tmp_path / "kill2"
     make_synthetic(folder)
     code = (f"import sys, os, signal; sys.path.insert(0, {str(TESTS)!r}); import test_book as t; "
-            f"from planner import book as bk; scn, _ = t.make_synthetic({str(folder)!r}); "
-            f"bk.commit_deal(scn, 'alpha', planner=t.greedy_planner(5)); os.kill(os.getpid(), signal.SIGKILL)")
+            f"from planner import workflows as wf; scn, _ = t.make_synthetic({str(folder)!r}); "
+            f"wf.commit_deal(scn, 'alpha', planner=t.greedy_planner(5)); os.kill(os.getpid(), signal.SIGKILL)")
     p = subprocess.run([PY, "-c", code], env={**os.environ, "PYTHONPATH": str(ROOT)}, cwd=ROOT)
     assert p.returncode == -signal.SIGKILL
     scn, _ = make_synthetic(folder)
@@ -458,7 +459,7 @@ def _cli(capsys, *argv):
 
 def test_cli_book_list_show_release(tmp_path, capsys):
     scn, _ = make_synthetic(tmp_path / "s")
-    bk.commit_deal(scn, "alpha", planner=greedy_planner(6))
+    wf.commit_deal(scn, "alpha", planner=greedy_planner(6))
     code, out, _ = _cli(capsys, "book", "list", str(scn.path), "--json")
     assert code == 0
     listed = json.loads(out)
@@ -482,7 +483,7 @@ def test_cli_book_list_show_release(tmp_path, capsys):
 def test_cli_book_option(tmp_path, capsys):
     scn, _ = make_synthetic(tmp_path / "s")
     other = tmp_path / "desk.sqlite"
-    bk.commit_deal(scn, "alpha", other, planner=greedy_planner(2))
+    wf.commit_deal(scn, "alpha", other, planner=greedy_planner(2))
     code, out, _ = _cli(capsys, "book", "list", str(scn.path), "--book", str(other), "--json")
     assert code == 0 and [d["name"] for d in json.loads(out)["deals"]] == ["alpha"]
     code, out, _ = _cli(capsys, "book", "list", str(scn.path), "--json")
@@ -492,8 +493,8 @@ def test_cli_book_option(tmp_path, capsys):
 def test_replace_holds_refuses_to_overhold(tmp_path):
     scn, _ = make_synthetic(tmp_path / "s", avails=(2, 2))
     scarce = _scarce_units()
-    bk.commit_deal(scn, "alpha", planner=greedy_planner(2, scarce))
-    bk.commit_deal(scn, "beta", planner=greedy_planner(2, scarce))
+    wf.commit_deal(scn, "alpha", planner=greedy_planner(2, scarce))
+    wf.commit_deal(scn, "beta", planner=greedy_planner(2, scarce))
     before = bk.held_spots(scn)
     too_many = scarce.assign(spots=2)  # alpha would take all 6 scarce spots while beta holds 2
     with pytest.raises(InputError, match="exceed the avails"):
@@ -507,12 +508,12 @@ def test_replace_holds_refuses_to_overhold(tmp_path):
 
 def test_check_of_a_booked_deal_counts_its_own_holds_as_available(tmp_path):
     """Re-checking a committed deal competes only with the other deals' holds."""
-    from planner.deals import check_deal
-    from planner.rebalance import plan_for_commit
+    from planner.workflows import check_deal
+    from planner.workflows import plan_for_commit
 
     scn, fc = make_synthetic(tmp_path / "s", avails=(1, 3), deals=[("alpha", 0.60, 0.95, 22.0)])
     before = check_deal(scn, "alpha", solver="highs", forecast=fc)
-    assert bk.commit_deal(scn, "alpha", planner=plan_for_commit(fc, solver="highs")).committed
+    assert wf.commit_deal(scn, "alpha", planner=plan_for_commit(fc, solver="highs")).committed
     after = check_deal(scn, "alpha", solver="highs", forecast=fc)
     assert after.deliverable and before.deliverable
     assert after.cost == pytest.approx(before.cost, rel=0.01)
@@ -555,7 +556,7 @@ def test_a_zero_byte_book_is_refused_not_read_as_empty(tmp_path, capsys):
     empty = scn.path / "book.sqlite"
     empty.write_bytes(b"")
     for call in (lambda: bk.held_spots(scn), lambda: bk.list_deals(scn), lambda: bk.check_book(scn),
-                 lambda: bk.commit_deal(scn, "alpha", planner=greedy_planner(2))):
+                 lambda: wf.commit_deal(scn, "alpha", planner=greedy_planner(2))):
         with pytest.raises(InputError, match="not a book"):
             call()
     assert empty.stat().st_size == 0
@@ -612,7 +613,7 @@ def test_a_read_only_folder_still_answers_reads(tmp_path):
     (unable to open database file)" (WAL needs its index file beside the book). Reads now work
     from a read-only connection with the same answers; a write says the folder is read-only."""
     scn, _ = make_synthetic(tmp_path / "s")
-    bk.commit_deal(scn, "alpha", planner=greedy_planner(5))
+    wf.commit_deal(scn, "alpha", planner=greedy_planner(5))
     before = (bk.held_spots(scn), [d.name for d in bk.list_deals(scn)], bk.get_deal(scn, "alpha").holds,
               bk.check_book(scn), bk.events(scn)[["deal", "action"]])
     listing = sorted(p.name for p in scn.path.iterdir())
@@ -624,7 +625,7 @@ def test_a_read_only_folder_still_answers_reads(tmp_path):
         pd.testing.assert_frame_equal(after[2], before[2])
         pd.testing.assert_frame_equal(after[4], before[4])
         with pytest.raises(InputError, match="read-only"):
-            bk.commit_deal(scn, "beta", planner=greedy_planner(5))
+            wf.commit_deal(scn, "beta", planner=greedy_planner(5))
         with pytest.raises(InputError, match="read-only"):
             bk.release_deal(scn, "alpha")
         assert sorted(p.name for p in scn.path.iterdir()) == listing
@@ -685,7 +686,7 @@ def test_events_record_the_os_user_and_book_events_shows_the_audit_trail(tmp_pat
 
     monkeypatch.setattr(getpass, "getuser", lambda: "desk-tester")
     scn, _ = make_synthetic(tmp_path / "s")
-    bk.commit_deal(scn, "alpha", planner=greedy_planner(4))
+    wf.commit_deal(scn, "alpha", planner=greedy_planner(4))
     holds = bk.get_deal(scn, "alpha").holds
     bk.replace_holds(scn, "alpha", holds, {"note": "re-plan"})
     bk.release_deal(scn, "alpha")
@@ -731,7 +732,7 @@ def test_a_deal_file_that_differs_from_its_commit_is_named_key_by_key(tmp_path):
     from planner.scenario import Mix
 
     scn, _ = make_synthetic(tmp_path / "s")
-    bk.commit_deal(scn, "alpha", planner=greedy_planner(4))
+    wf.commit_deal(scn, "alpha", planner=greedy_planner(4))
     booked = bk.get_deal(scn, "alpha")
     deal = scn.deals["alpha"]
     assert bk.terms_differ(booked, deal) == []

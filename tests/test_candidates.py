@@ -131,7 +131,9 @@ def test_last_year_scaled_recovers_a_seasonal_series_with_erosion():
     """Synthetic series: level = seasonal(week of year) x 0.9^(years): last year's same week times
     the pooled year-over-year ratio is exactly right at full strength (generating formula: the
     ratio of two windows a year apart is 0.9 whatever the season), and by default the ratio is
-    taken at half strength (x 0.9^0.5). Catches a misaligned last-year week or an inverted ratio."""
+    taken at half strength (x 0.9^0.5). By default last year's week is the mean of it and its two
+    neighbours (equal cells), checked against numpy's mean of those three levels. Catches a
+    misaligned last-year week, an inverted ratio or an off-centre window."""
     n = 120
     t = np.arange(n + 30)
     season = 1.0 + 0.3 * np.sin(2 * np.pi * t / 52.0)
@@ -139,10 +141,15 @@ def test_last_year_scaled_recovers_a_seasonal_series_with_erosion():
     grid = _grid_from_levels(np.vstack([level[:n], 2 * level[:n]]))
     gap, W = 4, 13
     truth = level[n + gap:n + gap + W]
-    full = last_year_scaled(grid, gap, W, shrink=1.0)
+    full = last_year_scaled(grid, gap, W, shrink=1.0, smooth_weeks=0)
     np.testing.assert_allclose(full[0, 0], truth, rtol=1e-9)
     np.testing.assert_allclose(full[1, 0], 2 * truth, rtol=1e-9)
-    np.testing.assert_allclose(last_year_scaled(grid, gap, W)[0, 0], truth / 0.9 * 0.9 ** 0.5, rtol=1e-9)
+    np.testing.assert_allclose(last_year_scaled(grid, gap, W, smooth_weeks=0)[0, 0], truth / 0.9 * 0.9 ** 0.5,
+                               rtol=1e-9)
+    ly = n + gap + np.arange(W) - 52
+    window = np.array([np.mean(level[i - 1:i + 2]) for i in ly])
+    ratio = np.sum(level[n - 26:n]) / np.sum(level[n - 26 - 52:n - 52])
+    np.testing.assert_allclose(last_year_scaled(grid, gap, W)[0, 0], window * ratio ** 0.5, rtol=1e-9)
     np.testing.assert_allclose(trailing(grid, W, 8)[0, 0], np.mean(level[n - 8:n]), rtol=1e-12)
 
 
@@ -208,3 +215,101 @@ def test_stacking_weights_minimise_the_mixture_crps():
 
     grid = [np.array([a, b, 1 - a - b]) for a in np.arange(0, 1.0001, 0.05) for b in np.arange(0, 1.0001 - a, 0.05)]
     assert score(w) <= min(score(g) for g in grid) + 1e-9
+
+
+def test_disagreement_is_the_weighted_variance_of_the_candidates_log_totals():
+    """Hand-worked case against numpy's weighted variance (`np.cov(..., aweights=w, ddof=0)`):
+    two series x two dayparts x two weeks; candidate B has no forecast in one cell, so that cell
+    leaves every candidate's total; ratios scale each candidate per daypart; sizes weigh series.
+    Catches totals over cells some candidate lacks, ratios or sizes ignored, unweighted variance."""
+    comb = StackedCombiner(["A", "B", "C"])
+    comb.usable_ = ["A", "B", "C"]
+    comb.pooled_weights_ = pd.Series({"A": 0.5, "B": 0.3, "C": 0.2})
+    comb.ratio_ = pd.DataFrame({"A": [1.0, 1.0], "B": [1.1, 0.9], "C": [1.0, 1.2]}, index=["day", "prime"])
+    rng = np.random.default_rng(4)
+    f = {k: rng.uniform(1.0, 3.0, (2, 2, 2)) for k in "ABC"}
+    f["B"][1, 0, 1] = np.nan
+    size = np.array([100.0, 300.0])
+    keep = np.ones((2, 2, 2), bool)
+    keep[1, 0, 1] = False
+    ratio = {"A": [1.0, 1.0], "B": [1.1, 0.9], "C": [1.0, 1.2]}
+    totals = []
+    for k in "ABC":  # hand-written loop over the cells
+        t = 0.0
+        for s in range(2):
+            for p in range(2):
+                for w in range(2):
+                    if keep[s, p, w]:
+                        t += f[k][s, p, w] * ratio[k][p] * size[s]
+        totals.append(t)
+    want = float(np.cov(np.log(totals), aweights=[0.5, 0.3, 0.2], ddof=0))
+    assert comb.disagreement(f, ["day", "prime"], size) == pytest.approx(want, rel=1e-12)
+    assert want > 0
+    # candidates that agree on the total: no disagreement
+    same = {k: f["A"] for k in "ABC"}
+    comb.ratio_ = pd.DataFrame({k: [1.0, 1.0] for k in "ABC"}, index=["day", "prime"])
+    assert comb.disagreement(same, ["day", "prime"], size) == pytest.approx(0.0, abs=1e-15)
+
+
+def test_prior_weights_are_inverse_variance_among_the_prior_candidates():
+    """Hand-worked: prior 0.5 / 0.5 on A and B, held-out spreads 0.2 and 0.4: w0 = (0.5 / 0.04,
+    0.5 / 0.16) normalised = (0.8, 0.2) (Bates & Granger 1969); fitted weights (0, 1) from one
+    refit pulled by one refit's worth: (0.4, 0.6). Catches a prior that ignores the spreads or
+    weighs by sd instead of variance."""
+    comb = StackedCombiner(["A", "B"], prior_weights={"A": 0.5, "B": 0.5}, ratio_prior=1.0)
+    rows = pd.DataFrame({"fold": [0, 0]})
+    w = comb._toward_prior(pd.Series({"A": 0.0, "B": 1.0}), rows, pd.Series({"A": 0.2, "B": 0.4}))
+    np.testing.assert_allclose(w[["A", "B"]].to_numpy(), [0.4, 0.6], rtol=1e-12)
+
+
+def test_law_scale_hand_worked():
+    """`DaypartForecaster.law_scale`: sqrt(the target's mean mixture variance over the refits'
+    pooled one), by daypart, within [1/2, 2], 1 where unknown. Hand-worked: refits' (sum, count)
+    day (0.4, 10) and (1.2, 10) -> 0.08, prime (0.1, 10) twice -> 0.01; target day 0.02 -> x0.5,
+    prime 0.04 -> x2; a target of 0.001 is clipped to x0.5; a daypart with no target unit -> 1.
+    Catches an inverted ratio, a missing square root or an unpooled mean."""
+    from types import SimpleNamespace
+
+    fc = DaypartForecaster.__new__(DaypartForecaster)
+    fc.dayparts_ = [SimpleNamespace(name="day"), SimpleNamespace(name="prime")]
+    fc.fold_results_ = [SimpleNamespace(mixture_var=np.array([[0.4, 10.0], [0.1, 10.0]])),
+                        SimpleNamespace(mixture_var=np.array([[1.2, 10.0], [0.1, 10.0]]))]
+    k = fc.law_scale(np.array([[0.02, 1.0], [0.04, 1.0]]), [0, 1])
+    assert k["day"] == pytest.approx(0.5) and k["prime"] == pytest.approx(2.0)
+    k = fc.law_scale(np.array([[0.001, 1.0], [0.0, 0.0]]), [0, 1])
+    assert k["day"] == pytest.approx(0.5) and k["prime"] == 1.0
+    assert fc.law_scale(np.array([[0.02, 1.0], [0.04, 1.0]]), [0])["day"] == pytest.approx(np.sqrt(0.02 / 0.04))
+
+
+def test_forecast_table_carries_the_disagreement_floor():
+    """The plan table's common loading is max(the law's own common sd, the candidates'
+    disagreement sd) x mean, one fraction for every unit (DEVELOPERS.md, "Forecast table"):
+    hand-worked with a disagreement sd of 0.05 over a law whose own common sd is below it, and of
+    0.001 under it. Catches the floor dropped on the way from the law to the table, or added."""
+    import sys
+    from pathlib import Path
+    from types import SimpleNamespace
+
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from test_forecast_uncertainty import _nested_errors
+
+    from forecasting.uncertainty import LevelErrorModel
+
+    fc = DaypartForecaster.__new__(DaypartForecaster)
+    fc.info_ = pd.DataFrame({"zone": ["z1"], "network": ["n1"], "demo": ["p18+"], "genre": ["news"]})
+    fc.dayparts_ = [SimpleNamespace(name="day")]
+    fc.airing_cv_ = np.array([[0.30]])
+    fc.universe_s_ = np.array([100_000.0])
+    fc.plan_mean_ = np.full((1, 1, 2), 0.01)
+    fc.history_weeks_ = np.array([60.0])
+    fc.level_ = LevelErrorModel().fit(_nested_errors(folds=6, seed=5))
+    fc.fold_results_ = [SimpleNamespace(mixture_var=np.array([[0.4, 10.0]]))]
+    fc.plan_mixture_var_ = np.array([[0.04, 1.0]])  # the same mean: scale 1
+    own = float(np.sqrt(fc.level_.var_common_))
+    assert own < 0.03
+    uni = pd.DataFrame({"zone": ["z1"], "demo": ["p18+"], "universe": [100_000.0]})
+    for dis_sd in (0.05, 0.001):
+        fc.plan_disagreement_var_ = dis_sd ** 2
+        t = fc.forecast_table(uni)
+        rel = (t["level_sd_common"] / t["mean_impressions"]).to_numpy()
+        np.testing.assert_allclose(rel, max(own, dis_sd), rtol=1e-9)

@@ -34,7 +34,7 @@ def fitted(tmp_path_factory):
     """A small scenario folder fitted for real (about 5-15 s on 2 cores)."""
     from planner.forecast_job import ensure_forecast
     from planner.scenario import load_scenario
-    from scenarios.generate import make_small_scenario
+    from scenarios.folders import make_small_scenario
 
     folder = make_small_scenario(tmp_path_factory.mktemp("cli") / "small", seed=5, n_zones=2, n_networks=2,
                                  weeks=6)

@@ -6,8 +6,9 @@ import json
 import sys
 from pathlib import Path
 
-import pandas as pd
 import pytest
+
+from planner import workflows as wf
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from test_book import synthetic_forecast, use_forecast  # noqa: E402
@@ -27,7 +28,6 @@ def _cli(capsys, *argv):
 def cautioned(small_scenario, scenario_copy, monkeypatch):
     """A copy of the small scenario whose (invented) fit calls for the shared-error caution, with
     one deal committed; the forecast table is the invented synthetic one."""
-    from planner import book as bk
     from planner.scenario import load_scenario
 
     folder = scenario_copy(small_scenario)
@@ -40,7 +40,7 @@ def cautioned(small_scenario, scenario_copy, monkeypatch):
                                     "leave_one_fold_out_total": {"a": {}, "b": {}, "c": {}}},
                     "level_error": {"rel_sd_common": 0.065}}}
     (folder / "forecast" / "meta.json").write_text(json.dumps(meta))
-    assert bk.commit_deal(scn, "small-comfortable", forecast=fc, solver="highs").committed
+    assert wf.commit_deal(scn, "small-comfortable", forecast=fc, solver="highs").committed
     return folder, scn, fc
 
 
@@ -89,9 +89,10 @@ def test_one_default_draw_count_for_stress_report_and_demo():
     import typer
 
     from planner.cli import app
-    from planner.demo import run_demo
-    from planner.report import build_report
-    from planner.stress import DEFAULT_DRAWS, stress_book
+    from planner.workflows import run_demo
+    from planner.workflows import build_report
+    from planner.stress import DEFAULT_DRAWS
+    from planner.workflows import stress_book
 
     cmd = typer.main.get_command(app)
     defaults = {name: next(p.default for p in cmd.commands[name].params if p.name == "draws")

@@ -12,6 +12,7 @@ import pytest
 import planner.deals as deals
 from planner.cli import main
 from planner.errors import InputError
+from planner import workflows as wf
 
 DP_RATING = {"prime": 0.010, "prime_access": 0.007, "late_fringe": 0.005, "early_fringe": 0.005,
              "daytime": 0.004, "early_morning": 0.003, "overnight": 0.001}
@@ -56,7 +57,7 @@ def fc(scn):
 
 
 def test_check_comfortable_deal(scn, fc):
-    r = deals.check_deal(scn, "small-comfortable", forecast=fc, held=None, target_margin=0.3, solver="highs")
+    r = wf.check_deal(scn, "small-comfortable", forecast=fc, held=None, target_margin=0.3, solver="highs")
     assert r.deliverable and r.verdict == "deliverable"
     d = scn.deals["small-comfortable"]
     # Reference: the deal file read by hand (tomllib) and the plan's spots costed at inventory.csv's
@@ -65,7 +66,7 @@ def test_check_comfortable_deal(scn, fc):
 
     raw = tomllib.loads(d.path.read_text())
     revenue = raw["impressions"] * raw["price_cpm"] / 1000
-    spots = deals.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs").spots
+    spots = wf.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs").spots
     inv = pd.read_csv(scn.path / "inventory.csv")
     cost = float(spots[["zone", "network", "daypart", "week", "spots"]].merge(inv).eval("spots * rate").sum())
     assert r.revenue == pytest.approx(revenue)
@@ -87,7 +88,7 @@ def test_check_comfortable_deal(scn, fc):
 
 
 def test_default_confidence_is_stated(scn, fc):
-    r = deals.check_deal(scn, "small-tight", forecast=fc, held=None, solver="highs")
+    r = wf.check_deal(scn, "small-tight", forecast=fc, held=None, solver="highs")
     assert r.default_confidence_used and r.confidence == 0.95
     assert any("default confidence" in c for c in r.cautions)
     # the forecast's own caution on errors shared by all units, exactly when its check calls for it
@@ -100,7 +101,7 @@ def test_default_confidence_is_stated(scn, fc):
 
 
 def test_too_big_deal_is_an_answer(scn, fc):
-    r = deals.check_deal(scn, "small-too-big", forecast=fc, held=None, solver="highs")
+    r = wf.check_deal(scn, "small-too-big", forecast=fc, held=None, solver="highs")
     d = scn.deals["small-too-big"]
     if r.deliverable:
         pytest.skip("the invented forecast happens to carry this deal")
@@ -110,7 +111,7 @@ def test_too_big_deal_is_an_answer(scn, fc):
 
 
 def test_plan_tables(scn, fc):
-    p = deals.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs")
+    p = wf.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs")
     assert p.deliverable
     s = p.spots
     assert list(s.columns[:8]) == ["zone", "network", "daypart", "week", "spots", "rate", "cost", "expected_impressions"]
@@ -130,9 +131,9 @@ def test_plan_tables(scn, fc):
 
 
 def test_holds_reduce_avails(scn, fc):
-    p = deals.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs")
+    p = wf.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs")
     held = p.spots[["zone", "network", "daypart", "week", "spots"]]
-    q = deals.plan_deal(scn, "small-comfortable", forecast=fc, held=held, solver="highs")
+    q = wf.plan_deal(scn, "small-comfortable", forecast=fc, held=held, solver="highs")
     if q.deliverable:
         both = held.merge(q.spots, on=["zone", "network", "daypart", "week"], suffixes=("_h", "_q"))
         both = both.merge(scn.inventory, on=["zone", "network", "daypart", "week"])
@@ -169,7 +170,7 @@ def test_diagnosis_names_what_the_exclusions_cost(scn, fc):
     everything = float(expected.sum())
     s = _with_deal(scn, impressions=(inside + everything) / 2, confidence=None, pad=0.0, mix=type(deal.mix)(),
                    mix_exclude_zones=[z for z in units["zone"].unique() if z != keep_zone])
-    r = deals.check_deal(s, "x", forecast=fc, held=None, solver="highs")
+    r = wf.check_deal(s, "x", forecast=fc, held=None, solver="highs")
     assert not r.deliverable
     excluded = ", ".join(s.deals["x"].mix.exclude_zones)
     lever = next(b for b in r.binding if b.startswith(f"exclude_zones {excluded}: without it alone"))
@@ -193,24 +194,24 @@ def test_diagnosis_names_what_the_exclusions_cost(scn, fc):
 ])
 def test_bad_input(scn, fc, changes, words):
     with pytest.raises(InputError, match=None) as e:
-        deals.check_deal(_with_deal(scn, **changes), "x", forecast=fc, held=None)
+        wf.check_deal(_with_deal(scn, **changes), "x", forecast=fc, held=None)
     assert words in str(e.value)
 
 
 def test_unknown_deal_and_solver_and_margin(scn, fc):
     with pytest.raises(InputError, match="unknown deal"):
-        deals.check_deal(scn, "nope", forecast=fc, held=None)
+        wf.check_deal(scn, "nope", forecast=fc, held=None)
     with pytest.raises(InputError, match="--solver"):
-        deals.check_deal(scn, "small-comfortable", forecast=fc, held=None, solver="glpk")
+        wf.check_deal(scn, "small-comfortable", forecast=fc, held=None, solver="glpk")
     with pytest.raises(InputError, match="target-margin"):
-        deals.check_deal(scn, "small-comfortable", forecast=fc, held=None, target_margin=1.2)
+        wf.check_deal(scn, "small-comfortable", forecast=fc, held=None, target_margin=1.2)
 
 
 # ---------------------------------------------------------------------------------------------- CLI
 @pytest.fixture()
 def cli_forecast(monkeypatch, fc):
-    monkeypatch.setattr(deals, "_forecast_table", lambda scenario, forecast, progress: (fc, True))
-    monkeypatch.setattr(deals, "_held", lambda scenario, held, book, deal_name: None)
+    monkeypatch.setattr(wf.deal, "forecast_table", lambda scenario, forecast, progress: (fc, True))
+    monkeypatch.setattr(wf.deal, "_held", lambda scenario, held, book, deal_name: None)
 
 
 def test_cli_check_json(small_scenario, cli_forecast, capsys):
@@ -294,7 +295,7 @@ def test_demo_deals_verdicts_gap_and_monte_carlo(demo_fitted):
     scn = load_scenario(demo_fitted)
     fc = ensure_forecast(scn).table
     for name, deliverable in DEMO_VERDICTS.items():
-        run = deals.run_deal(scn, name, forecast=fc, held=None)
+        run = wf.run_deal(scn, name, forecast=fc, held=None)
         a, prob = run.allocation, run.problem
         assert a.feasible == deliverable, name
         if not deliverable:
@@ -366,14 +367,14 @@ def test_plan_notes_pacing_astray_without_a_rule_and_a_pad_below_95_percent(scn,
     s.inventory = inv
     s.deals = {**scn.deals}
     s = _with_deal(s, pad=0.0, confidence=None, mix_weekly_tolerance=None, mix_max_network_share=None)
-    p = deals.plan_deal(s, "x", forecast=fc, held=None, solver="highs")
+    p = wf.plan_deal(s, "x", forecast=fc, held=None, solver="highs")
     assert p.deliverable
     weekly = p.spots.groupby("week")["expected_impressions"].sum().reindex(s.deals["x"].weeks, fill_value=0.0)
     dev = weekly / weekly.mean() - 1
     assert dev.abs().max() > 0.25  # the case
     assert any(n.startswith(f"weekly pacing strays up to {dev[dev.abs().idxmax()]:+.0%} from even") for n in p.notes)
     assert p.probability < 0.95 and any("below 95% under the pad of 0%" in n for n in p.notes)
-    ruled = deals.plan_deal(_with_deal(s, mix_weekly_tolerance=0.2, pad=None, confidence=0.95), "x", forecast=fc,
+    ruled = wf.plan_deal(_with_deal(s, mix_weekly_tolerance=0.2, pad=None, confidence=0.95), "x", forecast=fc,
                             held=None, solver="highs")
     assert ruled.deliverable and ruled.notes == []
 
@@ -428,7 +429,7 @@ def test_a_paced_plan_buys_every_week_of_the_deal_files_flight(small_scenario, s
 
 def test_a_booked_deal_is_planned_against_avails_less_the_other_deals_holds(tmp_path):
     """Faults caught: a booked deal re-planned against its own holds as well
-    (`deals._held` with `exclude=()`), and holds subtracted twice (`avails - 2 x held`).
+    (`workflows.deal._held` with `exclude=()`), and holds subtracted twice (`avails - 2 x held`).
 
     Reference: two deals committed to a book; the book's `holds` rows read by hand with sqlite3;
     for every unit, spots the re-plan of `alpha` may buy = inventory avails - beta's held spots
@@ -440,14 +441,11 @@ def test_a_booked_deal_is_planned_against_avails_less_the_other_deals_holds(tmp_
     sys.path.insert(0, str(Path(__file__).resolve().parent))
     from test_book import make_synthetic
 
-    from planner import book as bk
-    from planner import rebalance as rb
-
     unit = ["zone", "network", "daypart", "week"]
     scn, synth = make_synthetic(tmp_path / "s", deals=[("alpha", 0.35, 0.95, 22.0), ("beta", 0.30, 0.90, 18.0)])
-    planner = rb.plan_for_commit(synth, solver="highs")
+    planner = wf.plan_for_commit(synth, solver="highs")
     for name in scn.deals:
-        assert bk.commit_deal(scn, name, planner=planner).committed, name
+        assert wf.commit_deal(scn, name, planner=planner).committed, name
     with sqlite3.connect(scn.path / "book.sqlite") as con:
         holds = pd.read_sql_query("SELECT deal, zone, network, daypart, week, spots FROM holds", con)
     held = holds.pivot_table(index=unit, columns="deal", values="spots", aggfunc="sum", fill_value=0)
@@ -457,6 +455,6 @@ def test_a_booked_deal_is_planned_against_avails_less_the_other_deals_holds(tmp_
     want = (inv - beta).clip(lower=0)
     assert ((alpha > 0) & (want > 0)).sum() > 5  # the case: alpha holds units beta leaves open
     assert ((beta > 0) & (inv - 2 * beta < want)).sum() > 5  # and beta's holds are not zero
-    run = deals.run_deal(scn, "alpha", forecast=synth, solver="highs")  # held=None: reads the book
+    run = wf.run_deal(scn, "alpha", forecast=synth, solver="highs")  # held=None: reads the book
     got = run.problem.scope.set_index(unit)["ub"]
     pd.testing.assert_series_equal(got.sort_index(), want.astype(float).sort_index(), check_names=False)

@@ -17,6 +17,7 @@ from scipy import stats
 
 from planner import book as bk
 from planner import rebalance as rb
+from planner import workflows as wf
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from test_book import make_synthetic  # noqa: E402
@@ -26,9 +27,9 @@ UNIT = ["zone", "network", "daypart", "week"]
 
 def _committed(tmp_path, deals):
     scn, fc = make_synthetic(tmp_path / "s", deals=deals)
-    planner = rb.plan_for_commit(fc, solver="highs")
+    planner = wf.plan_for_commit(fc, solver="highs")
     for name in scn.deals:
-        assert bk.commit_deal(scn, name, planner=planner).committed, name
+        assert wf.commit_deal(scn, name, planner=planner).committed, name
     return scn, fc
 
 
@@ -53,7 +54,7 @@ def test_rebalance_replans_against_the_other_deals_holds_only(tmp_path):
     alpha = bk.get_deal(scn, "alpha").holds
     beta = bk.get_deal(scn, "beta").holds
     acts = _actuals(alpha, fc, range(1, 5), 0.8)
-    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
+    r = wf.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
     assert r.deliverable
     others = beta[UNIT + ["spots"]].reset_index(drop=True)
     fresh, _ = rb.replan(scn, scn.deals["alpha"], guarantee=r.remaining_guarantee, first_week=5,
@@ -122,7 +123,7 @@ def test_rebalance_chances_before_and_after_match_a_monte_carlo_of_the_error_law
     scn, fc = _committed(tmp_path, [("alpha", 0.20, 0.95, 22.0)])
     holds = bk.get_deal(scn, "alpha").holds
     acts = _actuals(holds, fc, range(1, 5), 0.8)
-    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
+    r = wf.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
     held = holds[holds["week"] > 4]
     u = _units_of(held, r.forecast, scn.inventory)
     p_mc, se = _mc_probability(u, u["spots"].to_numpy(), r.remaining_guarantee, 200_000, seed=5)
@@ -214,6 +215,9 @@ class _KnownForecaster:
 
     def combine_plan(self, raw):
         return raw
+
+    def plan_law(self):
+        return self
 
     def level_factor(self, recent, law=None):
         return 1.0
@@ -361,6 +365,7 @@ def test_forecast_table_carries_the_error_law_at_full_width():
     fc.plan_mean_ = np.full((1, 1, 2), 0.01)
     fc.history_weeks_ = np.array([60.0])
     fc.level_ = _KnownLaw()
+    fc.plan_law = lambda: fc.level_  # carrying the law to the plan's candidates: test_forecast_uncertainty
     t = fc.forecast_table(pd.DataFrame({"zone": ["z1"], "demo": ["p18+"], "universe": [100_000.0]}))
     assert len(t) == 2
     r = t.iloc[0]
@@ -401,6 +406,7 @@ def test_the_fitted_forecast_written_by_the_job_keeps_the_law_width(small_scenar
 
     monkeypatch.setattr(DaypartForecaster, "fit", fit)
     monkeypatch.setattr(DaypartForecaster, "summary", lambda self: {})
+    monkeypatch.setattr(DaypartForecaster, "plan_law", lambda self: self.level_)
     folder = scenario_copy(small_scenario)
     t = fit_forecast(load_scenario(folder)).table
     assert len(t) > 0

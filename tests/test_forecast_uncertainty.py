@@ -164,6 +164,30 @@ def test_refit_total_check_flags_misses_beyond_the_law():
     assert out["total_excess_sd"] == pytest.approx(np.sqrt(0.0008 * 0.75))
 
 
+def test_daypart_scale_and_common_floor_of_the_plan_law():
+    """`with_daypart_scale` multiplies every relative sd but the common one of a daypart's units and
+    leaves the others; `with_common_floor` then raises the common sd to at least the floor (max, not sum); both return
+    copies. Hand-worked on a law fitted to nested errors (its own sds as the unscaled reference).
+    Catches a scale applied to the wrong daypart or component, a floor added instead of maxed, or
+    a fitted law changed in place."""
+    df = _nested_errors(folds=12, seed=3)
+    shift = np.random.default_rng(7).normal(0.0, 0.06, 12)  # a common factor of its own
+    law = LevelErrorModel().fit(df.assign(rel_error=df["rel_error"] + shift[df["fold"]]))
+    units = pd.DataFrame({"daypart": ["day", "prime"], "genre": ["news", "news"], "history_weeks": [60.0, 60.0]})
+    base = law.predict(units)
+    cols = ["rel_sd_network", "rel_sd_network_week", "rel_sd_flight", "rel_sd_week"]
+    half = law.with_daypart_scale({"day": 0.5}).predict(units)
+    np.testing.assert_allclose(half.loc[0, cols].to_numpy(float), 0.5 * base.loc[0, cols].to_numpy(float))
+    np.testing.assert_allclose(half.loc[1, cols].to_numpy(float), base.loc[1, cols].to_numpy(float))
+    c = float(base.loc[0, "rel_sd_common"])
+    assert c > 0.02  # the case: a common factor the floor must not add to
+    assert half.loc[0, "rel_sd_common"] == pytest.approx(c)  # one fraction of every unit's mean (contract)
+    for floor_sd in (0.5 * c, 2.0 * c):  # below the law's own: no change; above: the floor
+        floored = law.with_daypart_scale({"day": 0.5}).with_common_floor(floor_sd ** 2).predict(units)
+        assert floored["rel_sd_common"].to_numpy() == pytest.approx([max(c, floor_sd)] * 2)
+    pd.testing.assert_frame_equal(law.predict(units), base)  # the fitted law is unchanged
+
+
 def test_widen_common_adds_the_shift_as_a_forecast_and_a_held_out_refit_see_it():
     """Hand-worked: a shift s shared by every unit, variance v, independent across refits and the
     plan weeks; the bias correction subtracts the mean of the J refits' shifts. The plan weeks'

@@ -10,7 +10,8 @@ import pyarrow.parquet as pq
 import pytest
 
 from scenarios.build import DEMO_DEALS, capacity, deal_units, unit_truth
-from scenarios.generate import (QH, demo_path, generate_history, make_spec, make_small_scenario, simulate_truth)
+from scenarios.folders import make_small_scenario
+from scenarios.generate import QH, demo_path, generate_history, make_spec, simulate_truth
 
 ZONES = ["big-zone", "small-zone"]
 NETWORKS = ["news-net", "kids-net", "sports-net"]
@@ -223,7 +224,7 @@ def test_make_small_scenario_is_deterministic(tmp_path):
 def test_shipped_demo_layout():
     from planner.scenario import load_scenario
 
-    sc = load_scenario(demo_path(), generate=False)
+    sc = load_scenario(demo_path())
     assert len(sc.zones) == 12 and sc.zones["market"].nunique() == 4
     assert len(sc.networks) == 10 and sc.networks["genre"].nunique() == 10
     assert [d.name for d in sc.dayparts] == ["early_morning", "daytime", "early_fringe", "prime_access", "prime",

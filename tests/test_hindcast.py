@@ -106,6 +106,30 @@ def test_heldout_table_actuals_match_the_raw_history(fitted_small):
         assert r.actual_impressions == pytest.approx(got * r.universe, rel=1e-4)
 
 
+def test_shipped_common_factor_covers_the_candidates_disagreement(fitted_small):
+    """The plan weeks' common factor (the table's level_sd_common over its mean) is at least the
+    sd of the candidates' plan totals around the combination, recomputed here from the fitted
+    candidates with numpy's weighted variance (`np.cov(aweights=...)`); a replayed refit's table
+    the same with that refit's own disagreement. Catches a floor that never reaches the tables."""
+    sc, model = fitted_small
+    comb = model.combiner_
+    names = [d.name for d in model.dayparts_]
+    use = [c for c in comb.candidates if c in comb.usable_]
+    cands = {"profile": model.plan_raw_mean_, **model.plan_candidates_}
+    stack = np.stack([cands[c] for c in use])
+    ok = np.all(np.isfinite(stack) & (stack > 0), axis=0)
+    ratio = comb.ratio_.loc[names, use].to_numpy(float)  # (P, K)
+    totals = [np.nansum(np.where(ok, stack[k] * ratio[None, :, k, None] * model.universe_s_[:, None, None], 0.0))
+              for k in range(len(use))]
+    want = float(np.cov(np.log(totals), aweights=comb.pooled_weights_[use].to_numpy(float), ddof=0))
+    table = model.forecast_table(sc.universes, units=sc.inventory)
+    rel = (table["level_sd_common"] / table["mean_impressions"]).to_numpy(float)
+    assert want > 0 and np.all(rel >= np.sqrt(want) * (1 - 1e-9))
+    held = model.heldout_table(0, sc.universes, units=sc.inventory)
+    rel0 = (held["level_sd_common"] / held["mean_impressions"]).to_numpy(float)
+    assert np.all(rel0 >= np.sqrt(model.fold_results_[0].disagreement) * (1 - 1e-9))
+
+
 def test_replayed_deals_keep_their_claims_and_rules(fitted_small):
     """Each replayed plan claims at least the confidence it was planned at (the chance constraint,
     Charnes & Cooper 1959), its expected delivery clears the guarantee, and every origin replays.

@@ -15,6 +15,7 @@ import pytest
 from forecasting.ingest import daily_profiles
 from planner.errors import ScenarioError
 from planner.scenario import history_fingerprint, load_history, load_scenario, validate_history
+from planner.workflows import open_scenario
 
 KEY = ["zone", "network", "demo", "date", "quarter_hour"]
 
@@ -73,5 +74,5 @@ def test_empty_history_folder_is_not_a_history(split_scenario):
     _, folder = split_scenario
     shutil.rmtree(folder / "history")
     (folder / "history").mkdir()
-    s = load_scenario(folder)
+    s = open_scenario(folder)
     assert s.history_path == folder / "history.parquet" and s.history_path.is_file()

@@ -11,8 +11,10 @@ import pandas as pd
 import pytest
 
 from planner import book as bk
+from planner import posterior as pst
 from planner import rebalance as rb
 from planner.errors import InputError
+from planner import workflows as wf
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from test_book import greedy_planner, make_synthetic  # noqa: E402
@@ -30,9 +32,9 @@ def _actuals_from_holds(holds, fc, weeks, factor):
 
 def _committed(tmp_path, **kw):
     scn, fc = make_synthetic(tmp_path / "s", **kw)
-    planner = rb.plan_for_commit(fc, solver="highs")
+    planner = wf.plan_for_commit(fc, solver="highs")
     for name in scn.deals:
-        assert bk.commit_deal(scn, name, planner=planner).committed, name
+        assert wf.commit_deal(scn, name, planner=planner).committed, name
     return scn, fc
 
 
@@ -103,7 +105,7 @@ def test_level_posterior_matches_the_conditional_normal_formula(nw, com):
                                      level_sd_network_week=nw * mu, level_sd_common=com * mu))
     obs = pd.DataFrame(rows)
     obs["impressions"] = obs["spots_aired"] * obs["mean_impressions"] * rng.uniform(0.7, 1.1, len(obs))
-    post = rb.level_posterior(obs)
+    post = pst.level_posterior(obs)
     # explicit joint covariance of factors z = [networks, flights] and per-spot averages y
     nets = list(post.networks)
     flts = list(post.flights)
@@ -141,14 +143,14 @@ def test_update_moves_unposted_units_of_the_same_network():
     posted = fc[(fc.zone == "z1") & (fc.network == "n1") & (fc.week <= 4)].copy()
     posted["spots_aired"] = 10
     posted["impressions"] = 0.8 * 10 * posted["mean_impressions"]
-    up = rb.update_forecast(fc, rb.level_posterior(posted))
+    up = pst.update_forecast(fc, pst.level_posterior(posted))
     later = up[up.week == 6].set_index(["zone", "network"])
     assert later.loc[("z1", "n1"), "mean_impressions"] < later.loc[("z2", "n1"), "mean_impressions"] < 1000.0
     assert later.loc[("z2", "n2"), "mean_impressions"] == pytest.approx(1000.0)  # other network untouched
     assert later.loc[("z1", "n1"), "level_sd"] < fc["level_sd"].iloc[0]  # evidence narrows the band
     assert later.loc[("z2", "n2"), "level_sd"] == pytest.approx(fc["level_sd"].iloc[0])
     # the posted units' posterior level variance is kept exactly (a^2 Vnn + b^2 Vff + 2ab Vnf)
-    post = rb.level_posterior(posted)
+    post = pst.level_posterior(posted)
     v = post.cov
     exact = 100 ** 2 * v[0, 0] + 60 ** 2 * v[1, 1] + 2 * 100 * 60 * v[0, 1] + 40 ** 2
     assert later.loc[("z1", "n1"), "level_sd"] ** 2 == pytest.approx(exact)
@@ -170,9 +172,9 @@ def test_common_factor_moves_every_unit_and_keeps_level_variances_exact():
     posted = fc[(fc.network == "n1") & (fc.week <= 4)].copy()
     posted["spots_aired"] = 10
     posted["impressions"] = 0.8 * 10 * posted["mean_impressions"]
-    post = rb.level_posterior(posted)
+    post = pst.level_posterior(posted)
     assert post.common and post.mean[-1] < 0
-    up = rb.update_forecast(fc, post)
+    up = pst.update_forecast(fc, post)
     later = up[up.week == 6].set_index(["zone", "network"])
     assert later.loc[("z1", "n1"), "mean_impressions"] < later.loc[("z1", "n2"), "mean_impressions"] < 1000.0
     assert later.loc[("z1", "n2"), "level_sd_common"] < 60.0  # the common factor is better known
@@ -201,10 +203,10 @@ def test_more_spots_aired_than_held_is_said(tmp_path):
     scn, fc = _committed(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0)])
     holds = bk.get_deal(scn, "alpha").holds
     acts = _actuals_from_holds(holds, fc, range(1, 3), 1.0)
-    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
+    r = wf.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
     assert not any("more spots than the deal holds" in w for w in r.problems + r.warnings)
     acts.loc[acts.index[0], "spots_aired"] += 5
-    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
+    r = wf.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
     assert any(w.startswith("1 posted unit-week(s) aired more spots than the deal holds") for w in r.problems)
 
 
@@ -212,7 +214,7 @@ def test_actuals_20_percent_under_are_caught_up_to_the_deals_confidence(tmp_path
     scn, fc = _committed(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0)])
     holds = bk.get_deal(scn, "alpha").holds
     acts = _actuals_from_holds(holds, fc, range(1, 5), 0.8)
-    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
+    r = wf.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
     assert r.aired_weeks == [1, 2, 3, 4] and r.remaining_weeks == [5, 6, 7, 8]
     assert r.posted_vs_forecast == pytest.approx(-0.2)
     assert r.remaining_guarantee == pytest.approx(scn.deals["alpha"].impressions - acts["impressions"].sum())
@@ -252,7 +254,7 @@ def test_rebalance_commit_replaces_the_remaining_holds(tmp_path):
     scn, fc = _committed(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0), ("beta", 0.2, 0.9, 18.0)])
     holds = bk.get_deal(scn, "alpha").holds
     acts = _actuals_from_holds(holds, fc, range(1, 5), 0.8)
-    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
+    r = wf.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
     assert r.committed
     new = bk.get_deal(scn, "alpha")
     aired_old = holds[holds.week <= 4].reset_index(drop=True)
@@ -266,7 +268,7 @@ def test_rebalance_commit_replaces_the_remaining_holds(tmp_path):
     # the stress then counts the posted weeks as delivered and draws only the remaining weeks
     from planner import stress as st
 
-    model, _ = st.load_book_model(scn, forecast=fc)
+    model, _ = wf.load_book_model(scn, forecast=fc)
     j = model.deals.index("alpha")
     assert model.fixed[j] == pytest.approx(r.delivered) and model.fixed[model.deals.index("beta")] == 0
     rows = model.rows[model.rows["deal"] == "alpha"]
@@ -288,10 +290,10 @@ def test_shortfall_that_cannot_be_closed_is_reported(tmp_path):
     late = scn.inventory[scn.inventory.week >= 5][UNIT]
     left = int(scn.inventory[scn.inventory.week >= 5]["avails"].sum()) - int(
         bk.held_spots(scn).query("week >= 5")["spots"].sum())
-    assert bk.commit_deal(scn, "beta", planner=greedy_planner(left, late)).committed
+    assert wf.commit_deal(scn, "beta", planner=greedy_planner(left, late)).committed
     holds = bk.get_deal(scn, "alpha").holds
     acts = _actuals_from_holds(holds, fc, range(1, 5), 0.8)
-    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
+    r = wf.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
     assert not r.deliverable and not r.committed
     assert r.unmet > 0 and r.max_deliverable < r.remaining_guarantee
     assert r.unmet == pytest.approx(r.remaining_guarantee - r.max_deliverable)
@@ -303,7 +305,7 @@ def test_rebalance_needs_a_committed_deal(tmp_path):
     scn, fc = make_synthetic(tmp_path / "s")
     acts = pd.DataFrame(columns=UNIT + ["spots_aired", "impressions"])
     with pytest.raises(InputError, match="not in the book"):
-        rb.rebalance_deal(scn, "alpha", acts, forecast=fc)
+        wf.rebalance_deal(scn, "alpha", acts, forecast=fc)
 
 
 @pytest.mark.slow
@@ -318,14 +320,14 @@ def test_update_from_simulated_postings_moves_the_forecast_toward_the_truth(demo
     folder = scenario_copy(demo_fitted)
     scn = load_scenario(folder)
     fc = ensure_forecast(scn).table
-    name = next(n for n in scn.deals if bk.commit_deal(scn, n, forecast=fc, solver="highs").committed)
+    name = next(n for n in scn.deals if wf.commit_deal(scn, n, forecast=fc, solver="highs").committed)
     d = bk.get_deal(scn, name)
     spots = d.holds[UNIT + ["spots"]]
     aired = range(d.first_week, d.first_week + 4)
     later = range(d.first_week + 4, d.last_week + 1)
     acts = posted_actuals(scn, spots, d.demo, weeks=aired, seed=0)
     truth = posted_actuals(scn, spots, d.demo, weeks=later, seed=1)
-    r = rb.rebalance_deal(scn, name, acts, forecast=fc, solver="highs")
+    r = wf.rebalance_deal(scn, name, acts, forecast=fc, solver="highs")
     key = fc["demo"] == d.demo
     f = truth.merge(fc[key][UNIT + ["mean_impressions"]], on=UNIT).merge(
         r.forecast[r.forecast["demo"] == d.demo][UNIT + ["mean_impressions"]].rename(
@@ -354,9 +356,9 @@ def _committed_on(tmp_path, fc_transform=None, **kw):
     scn, fc = make_synthetic(tmp_path / "s", **kw)
     if fc_transform is not None:
         fc = fc_transform(fc)
-    planner = rb.plan_for_commit(fc, solver="highs")
+    planner = wf.plan_for_commit(fc, solver="highs")
     for name in scn.deals:
-        assert bk.commit_deal(scn, name, planner=planner).committed, name
+        assert wf.commit_deal(scn, name, planner=planner).committed, name
     return scn, fc
 
 
@@ -375,7 +377,7 @@ def test_stress_values_a_rebalanced_deal_on_the_rebalances_updated_forecast(tmp_
                             deals=[("alpha", 0.20, 0.95, 22.0), ("beta", 0.2, 0.9, 18.0)])
     holds = bk.get_deal(scn, "alpha").holds
     acts = _actuals_from_holds(holds, fc, range(1, 5), 0.8)
-    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
+    r = wf.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
     assert r.committed and r.posted_vs_forecast == pytest.approx(-0.2)
     assert r.posterior.common == optional
     stored = bk.read_postings(scn, deal="alpha")
@@ -385,7 +387,7 @@ def test_stress_values_a_rebalanced_deal_on_the_rebalances_updated_forecast(tmp_
         check_dtype=False)
     assert bk.get_deal(scn, "alpha").summary["posted_unit_weeks"] == len(acts)
 
-    model, _ = st.load_book_model(scn, forecast=fc)
+    model, _ = wf.load_book_model(scn, forecast=fc)
     assert model.warnings == []
     j, k = model.deals.index("alpha"), model.deals.index("beta")
     # exact: the same model of the same rows (the bug gave the prior forecast's higher mean here)
@@ -417,9 +419,9 @@ def test_fold_actuals_on_a_subset_equals_the_whole_table_update(tmp_path):
     own columns and the posterior, so the subset equals the same rows of the whole-table update."""
     scn, fc = _committed_on(tmp_path, _with_optional_factors, deals=[("alpha", 0.20, 0.95, 22.0)])
     acts = _actuals_from_holds(bk.get_deal(scn, "alpha").holds, fc, range(1, 4), 0.85)
-    whole = rb.fold_actuals(fc, acts, "a25-54").forecast
+    whole = pst.fold_actuals(fc, acts, "a25-54").forecast
     pick = fc[(fc.week >= 4) & (fc.network == "net2")]
-    part = rb.fold_actuals(fc, acts, "a25-54", rows=pick).forecast
+    part = pst.fold_actuals(fc, acts, "a25-54", rows=pick).forecast
     pd.testing.assert_frame_equal(part, whole.loc[pick.index])
 
 
@@ -427,7 +429,7 @@ def test_releasing_a_rebalanced_deal_removes_its_postings(tmp_path):
     scn, fc = _committed_on(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0), ("beta", 0.2, 0.9, 18.0)])
     for name in ("alpha", "beta"):
         acts = _actuals_from_holds(bk.get_deal(scn, name).holds, fc, range(1, 3), 0.9)
-        assert rb.rebalance_deal(scn, name, acts, forecast=fc, solver="highs", commit=True).committed
+        assert wf.rebalance_deal(scn, name, acts, forecast=fc, solver="highs", commit=True).committed
     assert set(bk.read_postings(scn)["deal"]) == {"alpha", "beta"}
     removed = bk.release_deal(scn, "alpha")
     assert len(removed.postings) > 0
@@ -449,7 +451,7 @@ def test_a_book_from_before_postings_upgrades_keeps_working_and_cautions(tmp_pat
 
     scn, fc = _committed_on(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0), ("beta", 0.2, 0.9, 18.0)])
     acts = _actuals_from_holds(bk.get_deal(scn, "alpha").holds, fc, range(1, 5), 0.8)
-    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
+    r = wf.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
     assert r.committed
     # make it the book an older pledge would have left: no postings table, schema version 2,
     # and a summary without the posted_unit_weeks key
@@ -465,7 +467,7 @@ def test_a_book_from_before_postings_upgrades_keeps_working_and_cautions(tmp_pat
     conn.commit()
     conn.close()
 
-    model, _ = st.load_book_model(scn, forecast=fc)
+    model, _ = wf.load_book_model(scn, forecast=fc)
     conn = bk.open_book(path)
     assert bk._schema_version(conn) == bk.SCHEMA_VERSION == 4
     conn.close()
@@ -480,23 +482,21 @@ def test_a_book_from_before_postings_upgrades_keeps_working_and_cautions(tmp_pat
     res = st.stress_model(model, draws=2_000, seed=0)
     assert res.warnings == model.warnings and res.as_dict()["warnings"] == model.warnings
 
-    r2 = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
+    r2 = wf.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
     assert r2.committed and len(bk.read_postings(scn, deal="alpha")) == len(acts)
-    model, _ = st.load_book_model(scn, forecast=fc)
+    model, _ = wf.load_book_model(scn, forecast=fc)
     assert model.warnings == []
     assert model.mean[j] == pytest.approx(r2.delivered + r2.expected_remaining, rel=1e-9)
 
 
 def test_rebalance_on_no_postings_gives_no_caution(tmp_path):
     """A committed rebalance with no posted unit-weeks has no evidence to store: nothing to warn of."""
-    from planner import stress as st
-
     scn, fc = _committed_on(tmp_path, deals=[("alpha", 0.20, 0.95, 22.0)])
     acts = pd.DataFrame({c: pd.Series([], dtype=t) for c, t in zip(
         rb.ACTUALS_COLUMNS, [str, str, str, "int64", "int64", float])})
-    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
+    r = wf.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True)
     assert r.committed
-    model, _ = st.load_book_model(scn, forecast=fc)
+    model, _ = wf.load_book_model(scn, forecast=fc)
     assert model.warnings == []
 
 
@@ -511,7 +511,7 @@ def _book_state(scn):
 def _refused(scn, fc, acts, match, **kw):
     before = _book_state(scn)
     with pytest.raises(InputError, match=match) as e:
-        rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True, **kw)
+        wf.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True, **kw)
     assert _book_state(scn) == before  # nothing written
     return str(e.value)
 
@@ -527,7 +527,7 @@ def test_a_stray_later_week_is_refused_not_counted_as_zero(tmp_path):
     msg = _refused(scn, fc, pd.concat([acts, stray], ignore_index=True), "no posted row")
     assert "weeks 3-7" in msg and "--unposted-as-zero" in msg
     # without --commit the answer is given, and the same problem is in it
-    r = rb.rebalance_deal(scn, "alpha", pd.concat([acts, stray], ignore_index=True), forecast=fc, solver="highs")
+    r = wf.rebalance_deal(scn, "alpha", pd.concat([acts, stray], ignore_index=True), forecast=fc, solver="highs")
     assert not r.committed and any("no posted row" in p for p in r.problems)
 
 
@@ -537,7 +537,7 @@ def test_a_missing_week_is_refused_unless_gaps_are_accepted_as_zero(tmp_path):
     acts = _actuals_from_holds(holds, fc, [1, 3], 1.0)  # week 2 missing
     msg = _refused(scn, fc, acts, "no posted row")
     assert "week 2" in msg
-    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True, unposted_as_zero=True)
+    r = wf.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs", commit=True, unposted_as_zero=True)
     assert r.committed and r.problems == []
     assert any("counted as 0 delivered" in w for w in r.warnings)  # said, on purpose
 
@@ -587,7 +587,7 @@ def test_unit_plausibility_threshold_is_six_sds_of_the_stated_error_law(tmp_path
     level = np.sqrt((0.08 ** 2 + 0.06 ** 2 + 0.04 ** 2)) * mu  # make_synthetic's loadings
     sd = np.sqrt(level ** 2 + (0.35 * mu) ** 2 / k)
     acts.loc[i, "impressions"] = k * (mu + sds * sd)
-    r = rb.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
+    r = wf.rebalance_deal(scn, "alpha", acts, forecast=fc, solver="highs")
     assert any("beyond 6 sds" in p for p in r.problems) == refused
 
 

@@ -19,6 +19,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from planner import workflows as wf
+
 VERDICT_KEYS = ("guarantee", "expected_impressions", "probability_of_delivery", "confidence", "cost",
                 "revenue", "margin", "max_guarantee")
 
@@ -225,7 +227,7 @@ def test_unit_history_matches_sql(small_scenario):
     reference engine), including a daypart that wraps past midnight."""
     import duckdb
 
-    from planner.report import unit_history
+    from planner.workflows import unit_history
     from planner.scenario import load_scenario
 
     scn = load_scenario(small_scenario)
@@ -371,7 +373,7 @@ def test_a_booked_deal_is_shown_from_the_book_flagged_when_its_file_differs_and_
     import tomllib
 
     from planner import book as bk
-    from planner.report import build_report
+    from planner.workflows import build_report
     from planner.scenario import load_scenario
     from test_book import synthetic_forecast, use_forecast
 
@@ -380,7 +382,7 @@ def test_a_booked_deal_is_shown_from_the_book_flagged_when_its_file_differs_and_
     fc = synthetic_forecast(scn)
     use_forecast(monkeypatch, fc)
     name = "small-comfortable"
-    assert bk.commit_deal(scn, name, forecast=fc, solver="highs").committed
+    assert wf.commit_deal(scn, name, forecast=fc, solver="highs").committed
     # the book's plan is no longer what a fresh plan would be (as after a rebalance): one
     # unit-week fewer, its own cost and expected delivery
     b = bk.get_deal(scn, name)

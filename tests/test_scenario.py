@@ -15,6 +15,7 @@ import pytest
 
 from planner.cli import main
 from planner.errors import InputError, ScenarioError
+from planner.workflows import open_scenario
 from planner.scenario import (DEFAULT_CONFIDENCE, daypart_quarter_hours, history_fingerprint, load_history,
                               load_scenario, parse_clock, validate_history)
 
@@ -415,7 +416,7 @@ def test_history_generated_on_first_use(small_scenario, scenario_copy):
     folder = scenario_copy(small_scenario)
     original = pq.read_table(folder / "history.parquet")
     (folder / "history.parquet").unlink()
-    sc = load_scenario(folder)
+    sc = open_scenario(folder)
     assert sc.history_path.is_file()
     assert pq.read_table(sc.history_path).equals(original)  # seeded: the same history again
 
@@ -453,12 +454,12 @@ def test_generated_history_remade_when_settings_change(small_scenario, scenario_
     before = pq.read_table(folder / "history.parquet")
     text = (folder / "scenario.toml").read_text()
     (folder / "scenario.toml").write_text(text.replace("seed = 11", "seed = 12"))
-    after = pq.read_table(load_scenario(folder).history_path)
+    after = pq.read_table(open_scenario(folder).history_path)
     assert not after.equals(before)
     # A history the generator did not make is never replaced.
     user = folder / "history.parquet"
     pq.write_table(before.replace_schema_metadata(None), user)
-    load_scenario(folder)
+    open_scenario(folder)
     assert pq.read_table(user).equals(before.replace_schema_metadata(None))
 
 

@@ -15,6 +15,7 @@ from planner import book as bk
 from planner import stress as st
 from planner.delivery import DeliveryModel
 from planner.errors import InputError
+from planner import workflows as wf
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from test_book import greedy_planner, make_synthetic  # noqa: E402
@@ -227,9 +228,9 @@ def test_bad_shocks_are_input_errors(text, msg):
 
 def test_stress_book_end_to_end_from_the_sqlite_book(tmp_path):
     scn, fc = make_synthetic(tmp_path / "s")
-    bk.commit_deal(scn, "alpha", planner=greedy_planner(30))
-    bk.commit_deal(scn, "beta", planner=greedy_planner(30))
-    r = st.stress_book(scn, draws=20_000, seed=9, forecast=fc, shocks=["network=net1:-0.15"])
+    wf.commit_deal(scn, "alpha", planner=greedy_planner(30))
+    wf.commit_deal(scn, "beta", planner=greedy_planner(30))
+    r = wf.stress_book(scn, draws=20_000, seed=9, forecast=fc, shocks=["network=net1:-0.15"])
     d = r.as_dict()
     assert d["draws"] == 20_000 and d["seed"] == 9 and "caution" in d
     assert {"deal", "probability_of_shortfall", "expected_shortfall", "expected_liability"} <= set(d["deals"][0])
@@ -237,7 +238,7 @@ def test_stress_book_end_to_end_from_the_sqlite_book(tmp_path):
     assert r.delivery.shape == (20_000, 2) and r.liability.shape == (20_000, 2)
     assert r.book_liability.shape == (20_000,)
     assert r.deal_names == ["alpha", "beta"]
-    mk = st.stress_book(scn, draws=20_000, seed=9, forecast=fc, liability="makegood")
+    mk = wf.stress_book(scn, draws=20_000, seed=9, forecast=fc, liability="makegood")
     assert mk.liability_basis == "makegood"
     # Reference: each deal's shortfall max(G - D, 0) averaged over the kept draws of delivery, the
     # guarantee and price from the deal definitions, the plan's cost and expected impressions summed
@@ -263,15 +264,15 @@ def test_stress_book_end_to_end_from_the_sqlite_book(tmp_path):
         revenue = deal.impressions * deal.price_cpm / 1000
         assert d.expected_margin == pytest.approx(revenue - h.loc[d.deal, "cost"] - d.expected_liability)
     with pytest.raises(InputError, match="unknown network"):
-        st.stress_book(scn, draws=100, forecast=fc, shocks=["network=nope:-0.1"])
+        wf.stress_book(scn, draws=100, forecast=fc, shocks=["network=nope:-0.1"])
     with pytest.raises(InputError, match="--liability"):
-        st.stress_book(scn, draws=100, forecast=fc, liability="other")
+        wf.stress_book(scn, draws=100, forecast=fc, liability="other")
 
 
 def test_empty_book_is_input_error(tmp_path):
     scn, fc = make_synthetic(tmp_path / "s")
     with pytest.raises(InputError, match="no committed deals"):
-        st.stress_book(scn, draws=100, forecast=fc)
+        wf.stress_book(scn, draws=100, forecast=fc)
 
 
 # --------------------------------------------------------------------------- command line, end to end
@@ -382,17 +383,17 @@ def test_demo_book_stress_agrees_with_the_allocator_and_the_exact_sampler(demo_f
     fc = ensure_forecast(scn).table
     plans = {}
     for name in scn.deals:
-        r = bk.commit_deal(scn, name, forecast=fc, solver="highs")
+        r = wf.commit_deal(scn, name, forecast=fc, solver="highs")
         if r.committed:
             plans[name] = r.plan
     assert len(plans) >= 2
-    fast = st.stress_book(scn, draws=100_000, seed=1, forecast=fc)
+    fast = wf.stress_book(scn, draws=100_000, seed=1, forecast=fc)
     for d in fast.deals:
         p_plan = plans[d.deal].probability
         assert d.probability_of_shortfall_normal == pytest.approx(1 - p_plan, abs=1e-6)
         # Monte Carlo error plus the normal approximation of the per-spot part (CLT)
         assert abs(d.probability_of_shortfall - (1 - p_plan)) < 4 * d.probability_of_shortfall_se + 0.01
-    exact = st.stress_book(scn, draws=20_000, seed=2, forecast=fc, method="exact")
+    exact = wf.stress_book(scn, draws=20_000, seed=2, forecast=fc, method="exact")
     for f, e in zip(fast.deals, exact.deals):
         se = np.hypot(f.probability_of_shortfall_se, e.probability_of_shortfall_se)
         assert abs(f.probability_of_shortfall - e.probability_of_shortfall) < 4 * se + 1e-3

@@ -461,7 +461,7 @@ def test_drift_keys_validated_by_the_loader(tmp_path, drift_world, edit, message
     assert edit[0] in text
     (folder / "scenario.toml").write_text(text.replace(edit[0], edit[1]))
     with pytest.raises(ScenarioError, match=message):
-        load_scenario(folder, generate=False)
+        load_scenario(folder)
 
 
 def test_make_world_refuses_unknown_knobs_and_used_folders(tmp_path, drift_world):

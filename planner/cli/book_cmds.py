@@ -13,8 +13,8 @@ from rich.markup import escape
 from rich.table import Table
 
 from planner.cli import app
-from planner.cli.common import book_option, count, info, money, out_console, print_json, progress
-from planner.cli.deal_cmds import print_warnings, write_plan_files
+from planner.cli.common import book_option, count, money, out_console, print_json, progress
+from planner.cli.output import open_folder, print_table, print_warnings, short, write_plan_files
 from planner.errors import InputError
 
 book_app = typer.Typer(help="The book of sold deals: commit, list, show, release, check, events.", no_args_is_help=True)
@@ -37,9 +37,7 @@ def _folder(scenario: Path) -> Path:
 
 
 def _load(scenario: Path):
-    from planner.scenario import load_scenario
-
-    return load_scenario(_folder(scenario))
+    return open_folder(_folder(scenario))
 
 
 def book_warnings(scn, book) -> list[str]:
@@ -55,22 +53,6 @@ def _load_if_scenario(scenario: Path):
     return _load(scenario) if (_folder(scenario) / "scenario.toml").is_file() else None
 
 
-def print_table(table: Table) -> None:
-    """Print a table on stdout (when stdout is not a terminal, on a page wide enough not to wrap)."""
-    out_console.print(table)
-
-
-def short(value) -> str:
-    """Compact number: 1,076,000 -> '1.08M', 73,550 -> '73.6k'."""
-    if value is None:
-        return "-"
-    v = float(value)
-    for unit, size in (("B", 1e9), ("M", 1e6), ("k", 1e3)):
-        if abs(v) >= size:
-            return f"{v / size:.3g}{unit}"
-    return f"{v:,.0f}"
-
-
 def _f(value, fmt="{:,.0f}", none="-"):
     return none if value is None else fmt.format(value)
 
@@ -84,7 +66,7 @@ def commit_cmd(
     as_json: bool = _JSON_OPT,
 ) -> None:
     """Plan DEAL against the avails not already held and commit it with its spots (one transaction)."""
-    from planner.book import commit_deal
+    from planner.workflows.deal import commit_deal
 
     scn = _load(scenario)
     with progress(f"planning and committing {deal}"):
@@ -268,7 +250,7 @@ def rebalance_cmd(
     """Mid-flight: update the forecast from posted actuals and re-plan the remaining weeks."""
     from planner.deals import plan_frame
     from planner.forecast_job import forecast_caution
-    from planner.rebalance import rebalance_deal
+    from planner.workflows.rebalance import rebalance_deal
 
     if out is not None and out.is_dir():
         raise InputError(f"--out {out}: is a folder, give a file name")

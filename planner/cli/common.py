@@ -3,16 +3,15 @@ from __future__ import annotations
 
 import contextlib
 import json
-import math
 import sys
-from dataclasses import asdict, is_dataclass
 from pathlib import Path
 from typing import Any, Iterator
 
-import numpy as np
 import typer
 from rich.console import Console
 from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
+from planner.plain import plain
 
 # Progress and messages go to stderr so that `--json` keeps stdout one clean JSON object
 # (not wrapped either when stderr is not a terminal).
@@ -33,29 +32,9 @@ def is_quiet() -> bool:
     return _QUIET["on"]
 
 
-def _plain(obj: Any) -> Any:
-    if is_dataclass(obj) and not isinstance(obj, type):
-        return _plain(asdict(obj))
-    if isinstance(obj, dict):
-        return {str(k): _plain(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_plain(v) for v in obj]
-    if isinstance(obj, np.generic):
-        return _plain(obj.item())
-    if isinstance(obj, np.ndarray):
-        return [_plain(v) for v in obj.tolist()]
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    if hasattr(obj, "isoformat"):
-        return obj.isoformat()
-    if hasattr(obj, "__fspath__"):
-        return str(obj)
-    return obj
-
-
 def print_json(obj: Any) -> None:
     """Print one JSON object on stdout (NaN/inf become null, numpy types become plain)."""
-    sys.stdout.write(json.dumps(_plain(obj), indent=2) + "\n")
+    sys.stdout.write(json.dumps(plain(obj), indent=2) + "\n")
     sys.stdout.flush()
 
 

@@ -4,7 +4,6 @@ Exit status: 0 for an answer (a deal that is not deliverable is an answer), 2 fo
 """
 from __future__ import annotations
 
-import re
 from pathlib import Path
 from typing import Optional
 
@@ -14,6 +13,7 @@ from rich.table import Table
 
 from planner.cli import app
 from planner.cli.common import book_option, count, info, money, out_console, print_json, progress
+from planner.cli.output import open_folder, print_warnings, write_plan_files
 from planner.errors import InputError
 
 _JSON_OPT = typer.Option(False, "--json", help="Print one JSON object on stdout.")
@@ -22,11 +22,9 @@ _BOOK_OPT = book_option("Book of committed deals whose spots are held (default: 
 
 
 def _load(scenario: Path):
-    from planner.scenario import load_scenario
-
     if not scenario.is_dir():
         raise InputError(f"{scenario}: not a scenario folder")
-    return load_scenario(scenario)
+    return open_folder(scenario)
 
 
 def _pct(v, digits=1) -> str:
@@ -72,12 +70,6 @@ def _hindcast_text(b: dict | None) -> str:
             f"(~{b.get('effective_deals', 0):.0f} independent)")
 
 
-def print_warnings(warnings) -> None:
-    """Data warnings, part of the answer on stdout (never silenced by --quiet)."""
-    for w in warnings:
-        out_console.print(f"[bold yellow]warning[/]: {escape(w)}", highlight=False)
-
-
 def _kv_table(rows) -> Table:
     t = Table(show_header=False, box=None, pad_edge=False)
     t.add_column("", style="bold")
@@ -102,7 +94,7 @@ def check_cmd(
     as_json: bool = _JSON_OPT,
 ) -> None:
     """Is DEAL deliverable with the avails not held by committed deals? Cost, margin, chance, max guarantee."""
-    from planner.deals import check_deal
+    from planner.workflows.deal import check_deal
 
     scn = _load(scenario)
     with progress(f"checking {deal}"):
@@ -157,26 +149,6 @@ def check_cmd(
     _cautions(r)
 
 
-def _safe(name: str) -> str:
-    return re.sub(r"[^A-Za-z0-9._-]+", "_", str(name))
-
-
-def write_plan_files(frame, out: Path, split_by: str | None) -> list[Path]:
-    """Write a plan CSV (`planner.deals.plan_frame`; or one per zone) atomically; return the paths."""
-    from planner.atomic import write_with_atomic
-
-    if split_by is None:
-        write_with_atomic(out, lambda p: frame.to_csv(p, index=False))
-        return [out]
-    paths = []
-    for key, part in frame.groupby(split_by, sort=True, observed=True):
-        key = key[0] if isinstance(key, tuple) else key
-        path = out.with_name(f"{out.stem}-{_safe(key)}{out.suffix or '.csv'}")
-        write_with_atomic(path, lambda p, part=part: part.to_csv(p, index=False))
-        paths.append(path)
-    return paths
-
-
 @app.command("plan")
 def plan_cmd(
     scenario: Path = typer.Argument(..., help="Scenario folder."),
@@ -190,7 +162,8 @@ def plan_cmd(
     as_json: bool = _JSON_OPT,
 ) -> None:
     """The whole-spot buy plan of DEAL at least cost, with totals and the weekly pacing table."""
-    from planner.deals import plan_deal, plan_frame
+    from planner.deals import plan_frame
+    from planner.workflows.deal import plan_deal
 
     if split_by is not None and split_by != "zone":
         raise InputError(f"--split-by {split_by!r}: only 'zone' is supported")

@@ -9,6 +9,7 @@ import typer
 
 from planner.cli import app
 from planner.cli.common import info, out_console, print_json, progress
+from planner.cli.output import open_folder
 from planner.errors import InputError
 
 forecast_app = typer.Typer(help="Fit, backtest and show the daypart forecasts of a scenario.",
@@ -62,9 +63,8 @@ def fit_cmd(
 ) -> None:
     """Fit the forecast on the history and write <scenario>/forecast/ (table, model, meta)."""
     from planner.forecast_job import fit_forecast, shared_error_caution
-    from planner.scenario import load_scenario
 
-    scn = load_scenario(scenario)
+    scn = open_folder(scenario)
     with _progress("forecast fit") as cb:
         res = fit_forecast(scn, demo=demo, engine=_engine(engine), seed=seed, progress=cb)
     meta = res.meta
@@ -108,6 +108,15 @@ def fit_cmd(
                               "within it; every chance of delivery includes it")
         if caution:
             out_console.print(f"[yellow]caution: {caution}[/yellow]")
+    scale = le.get("sd_scale_by_daypart") or {}
+    if scale and max(abs(v - 1.0) for v in scale.values()) > 0.01:
+        out_console.print("error law carried from the refits' candidates to the plan weeks' (where a candidate could "
+                          "not forecast in a refit, its combination erred differently): sds x "
+                          + ", ".join(f"{k} {v:.2f}" for k, v in scale.items()))
+    floor = float(le.get("common_floor_sd") or 0.0)
+    if floor > 0 and floor >= float(le.get("rel_sd_common") or 0.0) - 1e-12:
+        out_console.print(f"the candidate forecasts disagree about the plan weeks' total by an sd of {floor:.1%}: the "
+                          "shift shared by all units is at least that, and every chance of delivery includes it")
     out_console.print(CAUTION)
 
 
@@ -144,9 +153,8 @@ def backtest_cmd(
 ) -> None:
     """Refit before a cut-off and score the held-out weeks (CRPS, WAPE, coverage) against baselines."""
     from planner.forecast_job import backtest_scenario
-    from planner.scenario import load_scenario
 
-    scn = load_scenario(scenario)
+    scn = open_folder(scenario)
     with _progress("forecast backtest") as cb:
         s = backtest_scenario(scn, holdout_weeks=holdout_weeks, demo=demo, engine=_engine(engine), seed=seed,
                               gap_days=lead_days, windows=windows, progress=cb)
@@ -227,9 +235,8 @@ def show_cmd(
 ) -> None:
     """Print one zone x network's daypart forecasts with their bands (fits first if needed)."""
     from planner.forecast_job import ensure_forecast
-    from planner.scenario import load_scenario
 
-    scn = load_scenario(scenario)
+    scn = open_folder(scenario)
     if zone not in set(map(str, scn.zone_names)):
         raise InputError(f"--zone {zone!r}: not in zones.csv")
     if network not in set(map(str, scn.network_names)):
@@ -277,10 +284,9 @@ def hindcast_cmd(
     chances of delivery came true (a reliability table)."""
     from planner.deals import check_solver
     from planner.hindcast import hindcast_scenario
-    from planner.scenario import load_scenario
 
     check_solver(solver)
-    scn = load_scenario(scenario)
+    scn = open_folder(scenario)
     if not scn.deals:
         raise InputError(f"{scenario}: no deals/*.toml to shape the replayed deals on")
     with _progress("forecast hindcast") as cb:
@@ -309,6 +315,6 @@ def hindcast_cmd(
     out_console.print(f"scale of the shared level factors that makes the PIT uniform: {s['shared_scale']:.2f}; "
                       f"shrunk for the ~{s['effective_deals']:.0f} independent outcomes behind it: "
                       f"{s['scale_to_apply']:.2f}"
-                      + (f", applied to the cached forecast" if apply else
+                      + (", applied to the cached forecast" if apply else
                          " (--apply widens the cached forecast by it)"))
     out_console.print(s["caution"])

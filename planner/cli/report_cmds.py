@@ -11,9 +11,9 @@ from rich.table import Table
 
 from planner.cli import app
 from planner.cli.common import book_option, count, info, money, out_console, print_json, progress
+from planner.cli.output import open_folder
 from planner.errors import InputError
 from planner.forecast_job import forecast_caution
-from planner.scenario import load_scenario
 from planner.stress import DEFAULT_DRAWS
 
 CAUTION = ("Forecasts are estimates from past audiences; contract terms decide what is owed on "
@@ -83,7 +83,8 @@ def report_cmd(
 ) -> None:
     """Write one HTML report: verdicts, frontier, pacing, where the money goes, stress, forecast bands."""
     from planner.book import list_deals
-    from planner.report import build_report, write_report
+    from planner.report import write_report
+    from planner.workflows.report import build_report
 
     if not scenario.is_dir():
         raise InputError(f"{scenario}: not a scenario folder")
@@ -93,7 +94,7 @@ def report_cmd(
         raise InputError(f"--out {out}: is a folder; give a file name ending in .html")
     if draws < 2:
         raise InputError(f"--draws {draws}: need at least 2 draws")
-    scn = load_scenario(scenario)
+    scn = open_folder(scenario)
     known = set(scn.deals) | {d.name for d in list_deals(scn, book)}
     for name in deal or ():
         if name not in known:
@@ -134,7 +135,7 @@ def demo_cmd(
     import contextlib
     import time
 
-    from planner.demo import run_demo
+    from planner.workflows.demo import run_demo
 
     t0 = time.perf_counter()
 
@@ -145,7 +146,8 @@ def demo_cmd(
             yield advance
         info(f"{description}: done in {time.perf_counter() - t:,.1f} s")
 
-    result = run_demo(out, draws=draws, seed=seed, solver=solver, stage=stage, say=lambda text: info(f"  {text}"))
+    result = run_demo(out, draws=draws, seed=seed, solver=solver, stage=stage, say=lambda text: info(f"  {text}"),
+                      info=info)
     elapsed = time.perf_counter() - t0
     if as_json:
         print_json({**result.as_dict(), "elapsed_seconds": round(elapsed, 1), "caution": CAUTION})
@@ -160,7 +162,7 @@ def demo_cmd(
         basis = result.stress.get("liability_basis", "refund")
         out_console.print(f"book of {len(result.committed)} deal(s): {book_line(b, basis, cur)} "
                           f"({count(result.draws)} draws, seed {result.seed})")
-    scn = load_scenario(result.folder)
+    scn = open_folder(result.folder)
     print_cautions(result.warnings, forecast_caution(scn), forecast_caution(scn, brief=True))
     out_console.print(f"report: [bold]{result.report}[/]   (done in {elapsed:,.0f} s)")
     if result.actuals_example is not None:

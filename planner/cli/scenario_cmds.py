@@ -9,14 +9,15 @@ from rich.markup import escape
 from planner.cli import app
 from planner.cli.common import info, out_console, print_json
 from planner.book import book_path, book_warnings, list_deals
-from planner.scenario import load_scenario, validate_history
+from planner.cli.output import open_folder
+from planner.scenario import validate_history
 
 
 def scenario_summary(path: str | Path) -> dict:
     """Load and fully validate a scenario (history rows included); return a plain summary dict."""
     folder = Path(path)
     generated = not (folder / "history.parquet").exists() and not (folder / "history.csv").exists()
-    sc = load_scenario(folder)
+    sc = open_folder(folder)
     info("checking history rows ...")
     h = validate_history(sc)
     inv = sc.inventory

@@ -9,8 +9,8 @@ from rich.markup import escape
 from rich.table import Table
 
 from planner.cli import app
-from planner.cli.book_cmds import print_table, short
 from planner.cli.common import book_option, count, money, out_console, print_json, progress
+from planner.cli.output import open_folder, print_table, short
 from planner.errors import InputError
 from planner.stress import DEFAULT_DRAWS
 
@@ -30,8 +30,8 @@ def stress_cmd(
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object on stdout."),
 ) -> None:
     """Stress every committed deal at once: shortfall chances, liability, VaR95, CVaR95."""
-    from planner.scenario import load_scenario
-    from planner.stress import CAUTION, LIABILITY_BASES, parse_shock, stress_book
+    from planner.stress import CAUTION, LIABILITY_BASES, parse_shock
+    from planner.workflows.stress import stress_book
 
     if not scenario.is_dir():
         raise InputError(f"{scenario}: not a scenario folder")
@@ -41,7 +41,7 @@ def stress_cmd(
         raise InputError(f"--liability {liability!r}: expected one of {', '.join(LIABILITY_BASES)}")
     if preempt_multiplier < 0:
         raise InputError(f"--preempt-multiplier {preempt_multiplier}: must be >= 0")
-    scn = load_scenario(scenario)
+    scn = open_folder(scenario)
     inv = scn.inventory
     shocks = [parse_shock(s, networks=inv["network"].astype(str).unique().tolist(),
                           dayparts=[d.name for d in scn.dayparts], zones=inv["zone"].astype(str).unique().tolist())

@@ -10,13 +10,28 @@ exists but is not a demo folder is refused.
 from __future__ import annotations
 
 import contextlib
+import json
 import time
+import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, ContextManager
 
+from planner import forecast_job
+from planner.atomic import write_text_atomic, write_with_atomic
+from planner.book import get_deal, held_spots, list_deals, release_deal
+from planner.deals import check_solver, plan_result
 from planner.errors import InputError
+from planner.hindcast import cached_hindcast, hindcast_scenario
+from planner.plain import plain
+from planner.report import write_report
+from planner.scenario import load_scenario
 from planner.stress import DEFAULT_DRAWS
+from planner.workflows.deal import commit_deal, plan_deal, run_deal
+from planner.workflows.report import build_report
+from planner.workflows.stress import stress_book
+from scenarios.actuals import posted_actuals
+from scenarios.folders import copy_demo, demo_path
 
 DEFAULT_FOLDER = "pledge-demo"
 REPORT_NAME = "report.html"
@@ -70,23 +85,16 @@ def _null_stage(description: str, total: float | None = None) -> ContextManager:
 
 
 def _demo_name() -> str:
-    import tomllib
-
-    from scenarios.generate import demo_path
-
     with open(demo_path() / "scenario.toml", "rb") as fh:
         return str(tomllib.load(fh).get("name", ""))
 
 
-def prepare_folder(out: str | Path) -> tuple[Path, bool]:
+def prepare_folder(out: str | Path, info: Callable[[str], None] | None = None) -> tuple[Path, bool]:
     """Copy the demo into `out` or reuse a demo folder already there. Returns (folder, reused).
 
     Raises InputError when `out` is a file, or a non-empty folder that is not a demo folder.
+    `info` receives the note that the history is being generated.
     """
-    import tomllib
-
-    from scenarios.generate import copy_demo
-
     out = Path(out)
     if out.exists() and not out.is_dir():
         raise InputError(f"{out}: exists and is not a folder; choose another --out")
@@ -103,9 +111,9 @@ def prepare_folder(out: str | Path) -> tuple[Path, bool]:
             raise InputError(f"{out}: folder exists and is not a pledge demo folder (no demo scenario.toml); "
                              f"choose another --out or remove it")
         if not (out / "history.parquet").exists():  # a copy interrupted before its history was made
-            copy_demo(out)
+            copy_demo(out, info=info)
         return out, True
-    copy_demo(out)
+    copy_demo(out, info=info)
     return out, False
 
 
@@ -118,8 +126,6 @@ def _reuse_plan(plan: Any, forecast: Any) -> Callable[..., Any]:
         calls["n"] += 1
         if calls["n"] == 1:
             return plan
-        from planner.deals import plan_deal
-
         return plan_deal(scenario, deal_name, held=held, forecast=forecast, **kwargs)
 
     return planner
@@ -132,10 +138,6 @@ def example_actuals(scenario: Any, deal_name: str, weeks: int = EXAMPLE_WEEKS, s
     The held spots air against the invented generator's simulated future
     (`scenarios.actuals.posted_actuals`), as a station's posting would report them.
     """
-    from planner.atomic import write_with_atomic
-    from planner.book import get_deal
-    from scenarios.actuals import posted_actuals
-
     d = get_deal(scenario, deal_name)
     aired = range(d.first_week, min(d.first_week + weeks, d.last_week + 1))
     acts = posted_actuals(scenario, d.holds[["zone", "network", "daypart", "week", "spots"]], d.demo,
@@ -145,26 +147,19 @@ def example_actuals(scenario: Any, deal_name: str, weeks: int = EXAMPLE_WEEKS, s
     return write_with_atomic(path, lambda p: acts.to_csv(p, index=False))
 
 
-def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, seed: int = DEFAULT_SEED,
-             solver: str = "cbc", stage: Callable[..., ContextManager] | None = None,
-             say: Callable[[str], None] | None = None) -> DemoResult:
-    """Run the whole job on the demo scenario in folder `out`; see the module docstring.
 
-    `stage(description)` is a context manager factory shown around each stage (the CLI passes
-    its progress display); `say(text)` receives one-line notes. Returns a `DemoResult`.
-    """
-    from planner.deals import check_solver
-    from planner.scenario import load_scenario
 
-    # Every option is checked before the folder or its book is touched.
+def _check_options(solver: str, draws: int, seed: int) -> None:
+    """Every option is checked before the folder or its book is touched."""
     check_solver(solver)
     if int(draws) < 2:
         raise InputError(f"--draws {draws}: need at least 2 draws")
     if int(seed) < 0:
         raise InputError(f"--seed {seed}: must be a whole number >= 0")
-    stage = stage or _null_stage
-    say = say or (lambda text: None)
-    seconds: dict[str, float] = {}
+
+
+def _timer(stage: Callable[..., ContextManager], seconds: dict[str, float]) -> Callable[..., ContextManager]:
+    """`timed(key, description, total)`: `stage` around a block, its duration (s) into `seconds[key]`."""
 
     def timed(key: str, description: str, total: float | None = None):
         @contextlib.contextmanager
@@ -176,29 +171,32 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
 
         return cm()
 
-    with timed("copy", "1/5 copying the invented demo scenario"):
-        folder, reused_folder = prepare_folder(out)
-        scn = load_scenario(folder)
-    say(f"{'reusing' if reused_folder else 'created'} demo folder {folder}")
-    from planner.book import list_deals, release_deal
-    from planner.forecast_job import ensure_forecast
-    from planner.hindcast import cached_hindcast, hindcast_scenario
-    from planner.report import build_report, write_report
+    return timed
 
-    with timed("forecast", "2/5 fitting the forecasts, replaying past deals (reused when already done)"):
-        fc = ensure_forecast(scn)
-        reused_forecast = not bool(fc.fitted_now)
-        hindcast = cached_hindcast(scn)
-        if hindcast is None:  # replayed deals set the shared factors' scale (pledge forecast hindcast --apply)
-            hindcast = hindcast_scenario(scn, apply=True)
-            fc = ensure_forecast(scn)
-    say(f"forecast {'reused from' if reused_forecast else 'fitted and saved in'} {folder / 'forecast'}")
+
+def _fit_and_replay(scn: Any) -> tuple[Any, bool, dict]:
+    """The folder's forecast (fitted, or reused) widened by replayed deals when it has no hindcast
+    of that fit (`pledge forecast hindcast --apply`). Returns (ForecastResult, reused, hindcast)."""
+    fc = forecast_job.ensure_forecast(scn)
+    reused = not bool(fc.fitted_now)
+    hindcast = cached_hindcast(scn)
+    if hindcast is None:  # replayed deals set the shared factors' scale (pledge forecast hindcast --apply)
+        hindcast = hindcast_scenario(scn, apply=True)
+        fc = forecast_job.ensure_forecast(scn)
+    return fc, reused, hindcast
+
+
+def _say_forecast(folder: Path, reused: bool, hindcast: dict, say: Callable[[str], None]) -> None:
+    say(f"forecast {'reused from' if reused else 'fitted and saved in'} {folder / 'forecast'}")
     if hindcast.get("deals"):
         c95 = hindcast["claimed_95"]
         came = f"claims of 95% came true in {c95['realised']:.0%}; " if c95.get("realised") is not None else ""
         say(f"replayed {hindcast['deals']} deals at {hindcast['origins']} past origins: {came}shared level factors "
             f"widened x{hindcast['applied_scale']:.2f} (pledge forecast hindcast)")
 
+
+def _release_demo_deals(scn: Any, say: Callable[[str], None]) -> list[str]:
+    """Release the demo's deals a previous run committed (the book starts afresh)."""
     released = []
     for d in list_deals(scn):
         if d.name in scn.deals:
@@ -206,30 +204,55 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
             released.append(d.name)
     if released:
         say(f"re-run: released {', '.join(released)} from the demo book to start it afresh")
+    return released
 
-    from planner.book import commit_deal, held_spots
-    from planner.deals import plan_result, run_deal
 
+def _commit_in_turn(scn: Any, forecast: Any, solver: str, advance: Callable) -> tuple[list[str], dict[str, str]]:
+    """The desk's order of work: plan a deal against the book as it stands, commit it if it is
+    deliverable, then the next deal (it sees the spots the earlier ones hold)."""
     committed: list[str] = []
     not_committed: dict[str, str] = {}
+    for name in scn.deals:
+        plan = plan_result(run_deal(scn, name, solver=solver, held=held_spots(scn), forecast=forecast),
+                           explain=False)
+        if plan.deliverable:
+            r = commit_deal(scn, name, planner=_reuse_plan(plan, forecast), solver=solver)
+            if r.committed:
+                committed.append(name)
+            else:
+                not_committed[name] = r.reason
+        else:
+            not_committed[name] = "not deliverable"
+        advance(1)
+    return committed, not_committed
+
+
+def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, seed: int = DEFAULT_SEED,
+             solver: str = "cbc", stage: Callable[..., ContextManager] | None = None,
+             say: Callable[[str], None] | None = None, info: Callable[[str], None] | None = None) -> DemoResult:
+    """Run the whole job on the demo scenario in folder `out`; see the module docstring.
+
+    `stage(description)` is a context manager factory shown around each stage (the CLI passes
+    its progress display); `say(text)` receives one-line notes; `info(text)` the note that the
+    invented history is being generated. Returns a `DemoResult`.
+    """
+    _check_options(solver, draws, seed)
+    say = say or (lambda text: None)
+    seconds: dict[str, float] = {}
+    timed = _timer(stage or _null_stage, seconds)
+    with timed("copy", "1/5 copying the invented demo scenario"):
+        folder, reused_folder = prepare_folder(out, info=info)
+        scn = load_scenario(folder)
+    say(f"{'reusing' if reused_folder else 'created'} demo folder {folder}")
+    with timed("forecast", "2/5 fitting the forecasts, replaying past deals (reused when already done)"):
+        fc, reused_forecast, hindcast = _fit_and_replay(scn)
+    _say_forecast(folder, reused_forecast, hindcast, say)
+    released = _release_demo_deals(scn, say)
     names = list(scn.deals)
-    # The desk's order of work: plan a deal against the book as it stands, commit it if it is
-    # deliverable, then the next deal (it sees the spots the earlier ones hold).
     with timed("check_commit", f"3/5 checking {len(names)} demo deals, committing the deliverable ones",
                total=len(names)) as advance:
-        for name in names:
-            plan = plan_result(run_deal(scn, name, solver=solver, held=held_spots(scn), forecast=fc.table),
-                               explain=False)
-            if plan.deliverable:
-                r = commit_deal(scn, name, planner=_reuse_plan(plan, fc.table), solver=solver)
-                if r.committed:
-                    committed.append(name)
-                else:
-                    not_committed[name] = r.reason
-            else:
-                not_committed[name] = "not deliverable"
-            advance(1)
-    example = None
+        committed, not_committed = _commit_in_turn(scn, fc.table, solver, advance)
+    example, deal = None, None
     if committed:
         # a deal with weeks left after the example's weeks, the longest flight first
         deal = max(committed, key=lambda n: scn.deals[n].last_week - scn.deals[n].first_week)
@@ -237,8 +260,6 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
         say(f"invented posted actuals of {deal}'s first weeks in {example}")
     stress = None
     if committed:
-        from planner.stress import stress_book
-
         with timed("stress", f"4/5 stress test of the book ({draws:,} draws)"):
             stress = stress_book(scn, draws=draws, seed=seed, forecast=fc.table)
     report = folder / REPORT_NAME
@@ -252,17 +273,12 @@ def run_demo(out: str | Path = DEFAULT_FOLDER, *, draws: int = DEFAULT_DRAWS, se
         write_report(data, report)
     # One book, one answer: the demo's table is the report's (a deal in the book from the book,
     # its largest guarantee against the other deals' holds).
-    checks = {d.name: d.verdict for d in data.deals}
     result = DemoResult(folder=folder, report=report, scenario=scn.name, currency=scn.currency,
-                        reused_folder=reused_folder, reused_forecast=reused_forecast, checks=checks,
-                        committed=committed, not_committed=not_committed, released=released,
+                        reused_folder=reused_folder, reused_forecast=reused_forecast,
+                        checks={d.name: d.verdict for d in data.deals}, committed=committed,
+                        not_committed=not_committed, released=released,
                         stress=stress.as_dict() if stress is not None else None, seconds=seconds,
                         draws=draws, seed=seed, warnings=list(data.warnings), actuals_example=example,
                         actuals_deal=deal if example is not None else None)
-    from planner.atomic import write_text_atomic
-    import json
-
-    from planner.cli.common import _plain
-
-    write_text_atomic(folder / SUMMARY_NAME, json.dumps(_plain(result.as_dict()), indent=2) + "\n")
+    write_text_atomic(folder / SUMMARY_NAME, json.dumps(plain(result.as_dict()), indent=2) + "\n")
     return result
