@@ -21,6 +21,7 @@ import pandas as pd
 
 from .baselines import BASELINES, last_year, trailing_mean
 from .dayparts import as_specs, daypart_week_means
+from .factors import LEVEL_FACTORS
 from .pipeline import DaypartForecaster, Progress
 from .profiles import ProfileCube
 from .scoring import (coverage, coverage_if_calibrated, crps_gaussian, measured_factor_sds, pit_histogram,
@@ -238,9 +239,8 @@ def _block_scores(df: pd.DataFrame, seed: int = CALIBRATED_SEED) -> dict:
     return out
 
 
-#: level factors (the names of `forecasting.scoring.measured_factor_sds`, and "common") -> the law's
-#: relative-sd column
-FACTOR_COLUMNS = {col.removeprefix("rel_sd_"): col for col, _ in COMPONENT_KEYS}
+#: level factors (`forecasting.factors.LEVEL_FACTORS`' names) -> the law's relative-sd column
+FACTOR_COLUMNS = {f.name: f.rel_column for f in LEVEL_FACTORS}
 
 
 def factor_sd_measured_and_law(scored: pd.DataFrame) -> dict:

@@ -29,6 +29,7 @@ from scipy.stats import chi2, norm
 from .baselines import last_year, spread_by_daypart, trailing_mean
 from .candidates import SIMPLE_CANDIDATES, simple_candidates
 from .dayparts import DaypartSpec, as_specs, daypart_week_means, daypart_week_sums
+from .factors import LEVEL_FACTORS, TABLE_COLUMNS
 from .models import ProfileForecaster
 from .profiles import ProfileCube
 from .scoring import coverage, total_bias_sd
@@ -49,10 +50,11 @@ Z90 = norm.ppf(0.90)  # 1.2816 (NIST/SEMATECH table: z(0.90) = 1.2816)
 
 
 def with_level_bands(table: pd.DataFrame) -> pd.DataFrame:
-    """`table` (forecast-table columns) with ``level_sd`` = sqrt(sum of the ``level_sd_*`` loadings
-    squared) and the 10% / 90% quantiles of one spot, ``mean -+ z(0.90) sqrt(level_sd^2 +
-    airing_sd^2)`` (the 10% one floored at 0), all in impressions; columns set in place."""
-    level_cols = [c for c in table.columns if c.startswith("level_sd_")]
+    """`table` (forecast-table columns) with ``level_sd`` = sqrt(sum of the level loadings squared,
+    `forecasting.factors.TABLE_COLUMNS` that `table` has, summed in that order) and the 10% / 90%
+    quantiles of one spot, ``mean -+ z(0.90) sqrt(level_sd^2 + airing_sd^2)`` (the 10% one
+    floored at 0), all in impressions; columns set in place."""
+    level_cols = [c for c in TABLE_COLUMNS if c in table]
     table["level_sd"] = np.sqrt(sum(table[c] ** 2 for c in level_cols))
     spot_sd = np.sqrt(table["level_sd"] ** 2 + table["airing_sd"] ** 2)
     mu = table["mean_impressions"]
@@ -583,8 +585,8 @@ class DaypartForecaster:
         Returns
         -------
         DataFrame with ``zone, network, daypart, week, demo, universe, mean_rating,
-        mean_impressions, airing_sd, level_sd, level_sd_network, level_sd_flight, level_sd_week,
-        q10_impressions, q90_impressions, history_weeks, level_sd_network_week, level_sd_common``.
+        mean_impressions, airing_sd, level_sd``, the level loadings ``level_sd_*`` in the order of
+        `forecasting.factors.LEVEL_FACTORS`, ``q10_impressions, q90_impressions, history_weeks``.
         """
         t = self._table(self.plan_mean_, self.history_weeks_, universes, units, self.plan_law())
         return t.drop(columns="series")
@@ -639,9 +641,8 @@ class DaypartForecaster:
         sd = law.predict(t)
         t["mean_impressions"] = mu
         t["airing_sd"] = t["cv"].to_numpy() * mu
-        level_cols = [col.replace("rel_sd_", "level_sd_") for col, _ in COMPONENT_KEYS]
-        for col, level_col in zip((c for c, _ in COMPONENT_KEYS), level_cols):
-            t[level_col] = sd[col].to_numpy() * mu
+        for f in LEVEL_FACTORS:
+            t[f.table_column] = sd[f.rel_column].to_numpy() * mu
         t = with_level_bands(t)
         if units is not None:
             keys = units[["zone", "network", "daypart", "week"]].drop_duplicates().copy()
@@ -650,8 +651,7 @@ class DaypartForecaster:
                 keys[c] = keys[c].astype(str)
             t = t.merge(keys, on=["zone", "network", "daypart", "week"], how="inner")
         cols = ["zone", "network", "daypart", "week", "demo", "universe", "mean_rating", "mean_impressions",
-                "airing_sd", "level_sd", "level_sd_network", "level_sd_flight", "level_sd_week",
-                "q10_impressions", "q90_impressions", "history_weeks", "level_sd_network_week", "level_sd_common",
+                "airing_sd", "level_sd", *TABLE_COLUMNS, "q10_impressions", "q90_impressions", "history_weeks",
                 "series"]
         return t[cols].sort_values(["zone", "network", "daypart", "week", "demo"]).reset_index(drop=True)
 

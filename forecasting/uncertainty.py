@@ -43,16 +43,13 @@ import numpy as np
 import pandas as pd
 from scipy.stats import norm
 
+from .factors import LEVEL_FACTORS, factor_named
 from .scoring import pooled_level_ratio
 
-FLIGHT_KEYS = ["fold", "zone", "network", "daypart", "demo"]
-#: the four relative-sd columns of `LevelErrorModel.predict` and the keys of the unit-weeks that
-#: share each factor within one refit (None: each unit-week alone)
-COMPONENT_KEYS = (("rel_sd_common", []),
-                  ("rel_sd_network", ["network"]),
-                  ("rel_sd_network_week", ["network", "week"]),
-                  ("rel_sd_flight", [k for k in FLIGHT_KEYS if k != "fold"]),
-                  ("rel_sd_week", None))
+FLIGHT_KEYS = ["fold", *factor_named("flight").keys]
+#: the relative-sd columns of `LevelErrorModel.predict` and the keys of the unit-weeks that share
+#: each factor within one refit (None: each unit-week alone), from `forecasting.factors`
+COMPONENT_KEYS = tuple((f.rel_column, None if f.keys is None else list(f.keys)) for f in LEVEL_FACTORS)
 
 
 

@@ -32,14 +32,17 @@ import numpy as np
 import pandas as pd
 from scipy.special import ndtr
 
+from forecasting.factors import LEVEL_FACTORS
+
 UNIT_KEY = ["zone", "network", "daypart", "week"]
 FLIGHT_KEY = ["zone", "network", "daypart"]
-REQUIRED = UNIT_KEY + ["mean_impressions", "airing_sd", "level_sd_network", "level_sd_flight",
-                       "level_sd_week", "preempt_rate"]
+#: level-sd columns every forecast table has (`forecasting.factors.LEVEL_FACTORS`, not optional)
+REQUIRED_LEVEL_COLS = [f.table_column for f in LEVEL_FACTORS if not f.optional]
+REQUIRED = UNIT_KEY + ["mean_impressions", "airing_sd", *REQUIRED_LEVEL_COLS, "preempt_rate"]
 
 
 #: level-sd columns a forecast table may lack (written before they existed): read as zeros
-OPTIONAL_LEVEL_COLS = ["level_sd_network_week", "level_sd_common"]
+OPTIONAL_LEVEL_COLS = [f.table_column for f in LEVEL_FACTORS if f.optional]
 
 
 def optional_sd(units: pd.DataFrame, column: str) -> np.ndarray:

@@ -37,6 +37,7 @@ import numpy as np
 import pandas as pd
 from scipy.stats import norm
 
+from forecasting.factors import LEVEL_FACTORS
 from forecasting.pipeline import with_level_bands
 from planner import allocate as al
 from planner.atomic import write_text_atomic, write_with_atomic
@@ -230,7 +231,7 @@ def reliability_for(summary: dict | None, claimed: float) -> dict | None:
 # ----------------------------------------------------------------------------- scenario level
 HINDCAST_FILE = "hindcast.json"
 #: level-sd columns of the forecast table that a shared-factor scale multiplies
-SHARED_COLUMNS = ("level_sd_common", "level_sd_network", "level_sd_network_week", "level_sd_flight")
+SHARED_COLUMNS = tuple(f.table_column for f in LEVEL_FACTORS if f.shared)
 
 
 def scale_shared_factors(table: pd.DataFrame, factor: float) -> pd.DataFrame:

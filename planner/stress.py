@@ -49,6 +49,7 @@ import pandas as pd
 from scipy import sparse
 from scipy.special import ndtr
 
+from forecasting.factors import LEVEL_FACTORS
 from planner.book import over_avails_warning
 from planner.delivery import FLIGHT_KEY, OPTIONAL_LEVEL_COLS, UNIT_KEY, DeliveryModel, common_sd, network_week_sd
 from planner.errors import InputError
@@ -61,8 +62,7 @@ ALPHA = 0.95
 DEFAULT_DRAWS = 100_000
 LIABILITY_BASES = ("refund", "makegood")
 _CHUNK = 100_000
-_FORECAST_COLS = ["mean_impressions", "airing_sd", "level_sd_network", "level_sd_flight", "level_sd_week",
-                  *OPTIONAL_LEVEL_COLS]
+_FORECAST_COLS = ["mean_impressions", "airing_sd", *(f.table_column for f in LEVEL_FACTORS)]
 
 
 # --------------------------------------------------------------------------- shocks
@@ -203,8 +203,8 @@ def book_units(deals: Sequence[Any], holds: pd.DataFrame, forecast: pd.DataFrame
                inventory: pd.DataFrame) -> pd.DataFrame:
     """One row per (deal, held unit): holds joined with the forecast row of the deal's demo and
     the inventory's preemption rate. Columns `deal, demo, zone, network, daypart, week, spots,
-    mean_impressions, airing_sd, level_sd_network, level_sd_flight, level_sd_week,
-    level_sd_network_week, level_sd_common, preempt_rate`."""
+    mean_impressions, airing_sd`, the level loadings `level_sd_*` (`forecasting.factors.LEVEL_FACTORS`)
+    and `preempt_rate`."""
     demo_of = {d.name: d.demo for d in deals}
     h = holds[holds["deal"].isin(list(demo_of))]
     units = h[["deal"] + UNIT_KEY + ["spots"]].reset_index(drop=True)

@@ -16,8 +16,9 @@ import pandas as pd
 
 from forecasting.backtest import score_levels
 from forecasting.dayparts import as_specs, daypart_week_means
+from forecasting.factors import LEVEL_FACTORS
 from forecasting.scoring import total_bias_sd
-from forecasting.uncertainty import COMPONENT_KEYS, factor_components
+from forecasting.uncertainty import factor_components
 from scenarios.families import simulate_scenario_truth
 from scenarios.generate import QH
 
@@ -138,7 +139,7 @@ def plan_week_scores(scenario, table: pd.DataFrame) -> dict:
     out["units"] = int(len(m))
     mu = m["mean_impressions"].to_numpy(float)
     # the table's level_sd_* columns are the level model's rel_sd_* components times the mean
-    spec = [(col.replace("rel_sd_", "level_sd_"), keys) for col, keys in COMPONENT_KEYS]
+    spec = [(f.table_column, None if f.keys is None else list(f.keys)) for f in LEVEL_FACTORS]
     out["bias_sd"] = total_bias_sd(mu, factor_components(m, spec, divide_by=mu))
     out["bias_z"] = out["bias"] / out["bias_sd"]
     return out

@@ -11,8 +11,8 @@ from planner.cli import main
 from planner.errors import InputError
 
 CONTRACT = ["zone", "network", "daypart", "week", "demo", "universe", "mean_rating", "mean_impressions",
-            "airing_sd", "level_sd", "level_sd_network", "level_sd_flight", "level_sd_week",
-            "q10_impressions", "q90_impressions", "history_weeks", "level_sd_network_week", "level_sd_common"]
+            "airing_sd", "level_sd", "level_sd_common", "level_sd_network", "level_sd_network_week",
+            "level_sd_flight", "level_sd_week", "q10_impressions", "q90_impressions", "history_weeks"]
 
 
 @pytest.fixture(scope="module")
@@ -133,7 +133,7 @@ def test_backtest_json_on_small_scenario(fitted_small, capsys):
     assert 0 <= cal["share_within"] <= 1 and cal["tolerance"] == 0.05
     # each factor's sd as measured in the block and as the law has it (the common one: law only)
     fs = s["factor_sd"]
-    assert set(fs) == {"common", "network", "network_week", "flight", "week"} and fs["common"]["measured"] is None
+    assert list(fs) == ["common", "network", "network_week", "flight", "week"] and fs["common"]["measured"] is None
     assert all(v["law"] >= 0 for v in fs.values()) and fs["week"]["measured"] > 0 and fs["week"]["law"] > 0
     # --lead-days moves the cut-off: held-out days start that many days after it
     assert main(["forecast", "backtest", str(dest), "--holdout-weeks", "6", "--lead-days", "7", "--json"]) == 0
@@ -240,3 +240,13 @@ def test_shared_error_caution_follows_the_chi_square_test():
     widened = meta(0.003, 0.062)
     widened["fit"]["level_error"] = {"rel_sd_common": 0.08, "common_widened_by_sd": 0.05}
     assert shared_error_caution(widened, "demo") is None  # the law holds the misses: no caution due
+
+
+def test_table_level_columns_are_the_spec_factors_in_order(fitted_small):
+    t = fitted_small[2].table
+    level = [c for c in t.columns if c.startswith("level_sd_")]
+    assert level == ["level_sd_common", "level_sd_network", "level_sd_network_week", "level_sd_flight",
+                     "level_sd_week"]
+    # level_sd is their root sum of squares, row by row
+    rss = np.sqrt(sum(t[c].to_numpy(float) ** 2 for c in level))
+    assert np.allclose(t["level_sd"].to_numpy(float), rss, rtol=1e-12)

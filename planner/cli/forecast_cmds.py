@@ -7,6 +7,7 @@ from typing import Iterator
 
 import typer
 
+from forecasting.factors import LEVEL_FACTORS
 from planner.cli import app
 from planner.cli.common import info, out_console, print_json, progress
 from planner.cli.output import open_folder
@@ -205,14 +206,15 @@ def backtest_cmd(
 
 
 #: printed names of the level factors of the backtest's ``factor_sd``
-FACTOR_LABELS = {"network": "network", "network_week": "network-week", "flight": "flight", "week": "own unit-week"}
+FACTOR_LABELS = {f.name: f.label for f in LEVEL_FACTORS if f.measured}
 
 
 def _factor_sds(scores: dict) -> str:
     """'network 9.5% (10.8%), ...; common: the law's 0.0%, one draw per block (see the bias)'."""
     fs = scores["factor_sd"]
     parts = [f"{label} {fs[k]['measured']:.1%} ({fs[k]['law']:.1%})" for k, label in FACTOR_LABELS.items()]
-    return ", ".join(parts) + f"; shared by all units: the law's {fs['common']['law']:.1%}, one draw per block (see the bias)"
+    unmeasured = [f"{f.label}: the law's {fs[f.name]['law']:.1%}" for f in LEVEL_FACTORS if not f.measured]
+    return ", ".join(parts) + "; " + ", ".join(unmeasured) + ", one draw per block (see the bias)"
 
 
 def _law_windows(window: dict) -> str:
