@@ -7,6 +7,11 @@ import pytest
 
 from forecasting.backtest import score_levels
 
+# The demo's fit (about 45 s) is the quick suite's largest cost; the faults these tests caught first
+# (a table scaled after the fit, bands narrowed) are killed in seconds by tests/test_faults.py
+# (bench/faults.py), so the whole module runs with the slow suite (CI runs both).
+pytestmark = pytest.mark.slow
+
 
 @pytest.fixture(scope="module")
 def scored(demo_fitted):
