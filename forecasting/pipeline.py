@@ -63,6 +63,13 @@ def with_level_bands(table: pd.DataFrame) -> pd.DataFrame:
     return table
 
 
+def _daypart_sum_count(values: np.ndarray, mask) -> np.ndarray:
+    """(P, 2): per daypart (axis 1 of (S, P, W) `values`), the sum and the count of the finite
+    values where `mask` holds."""
+    use = mask & np.isfinite(values)
+    return np.stack([np.where(use, values, 0.0).sum(axis=(0, 2)), use.sum(axis=(0, 2))], axis=1)
+
+
 def _noop(message: str, fraction: float) -> None:
     return None
 
@@ -286,8 +293,7 @@ class DaypartForecaster:
             f.combined = comb_j.combine(f.all_candidates(), list(names))
             f.disagreement = comb_j.disagreement(f.all_candidates(), list(names), self.universe_s_)
             mv = comb.mixture_variance(f.all_candidates(), list(names))  # one set of spreads for every refit and the plan
-            law_rows = (f.counts >= need) & np.isfinite(f.actual) & ~f.truncated[:, None, None] & np.isfinite(mv)
-            f.mixture_var = np.stack([np.where(law_rows, mv, 0.0).sum(axis=(0, 2)), law_rows.sum(axis=(0, 2))], axis=1)
+            f.mixture_var = _daypart_sum_count(mv, (f.counts >= need) & np.isfinite(f.actual) & ~f.truncated[:, None, None])
         return comb
 
     def _new_combiner(self) -> StackedCombiner:
@@ -320,9 +326,8 @@ class DaypartForecaster:
             except ValueError:
                 continue
             if results is not None:
-                others = [i for i in folds if i != j]
-                lm = lm.with_daypart_scale(self.law_scale(results[int(j)].mixture_var, others, results))
-                lm = lm.with_common_floor(results[int(j)].disagreement)
+                r = results[int(j)]
+                lm = self._carried(lm, r.mixture_var, r.disagreement, [i for i in folds if i != j], results)
             held = errors[(errors["fold"] == j) & ~errors["truncated"]]
             sd = lm.predict(held)
             tot = np.sqrt(sum(sd[col] ** 2 for col, _ in COMPONENT_KEYS))
@@ -510,9 +515,7 @@ class DaypartForecaster:
         names = [dp.name for dp in dayparts]
         plan_cands = {PROFILE: raw_mean, **self.plan_candidates_}
         self.plan_disagreement_var_ = self.combiner_.disagreement(plan_cands, names, self.universe_s_)
-        mv = self.combiner_.mixture_variance(plan_cands, names)
-        have = np.isfinite(mv)
-        self.plan_mixture_var_ = np.stack([np.where(have, mv, 0.0).sum(axis=(0, 2)), have.sum(axis=(0, 2))], axis=1)
+        self.plan_mixture_var_ = _daypart_sum_count(self.combiner_.mixture_variance(plan_cands, names), True)
         self.plan_mean_ = self.plan_combined_ * self.level_factor(self.plan_recent_)
         # Airing noise: dispersion of cells within daypart weeks of the recent history.
         a_start = max(T - 7 * self.airing_weeks, 0)
@@ -559,8 +562,7 @@ class DaypartForecaster:
         law = LevelErrorModel().fit(self.heldout_errors_[self.heldout_errors_["fold"] != j])
         if self.level_.widened_common_var_ > 0:
             law.widen_common(self.level_.widened_common_var_, J - 1)
-        others = [i for i in range(J) if i != int(j)]
-        law = law.with_daypart_scale(self.law_scale(f.mixture_var, others)).with_common_floor(f.disagreement)
+        law = self._carried(law, f.mixture_var, f.disagreement, [i for i in range(J) if i != int(j)])
         mean = f.combined * self.level_factor(f.recent, law)
         need = (self.min_cells if min_cells is None else min_cells) * self._expected_cells(self.dayparts_)
         ok = (f.counts >= need[None, :, None]) & np.isfinite(f.actual) & np.isfinite(mean) & (mean > 0)
@@ -595,8 +597,15 @@ class DaypartForecaster:
         """The error law of the plan weeks: the fitted (and widened) law, scaled by daypart to the
         plan's candidates (`law_scale`), its common factor at least the candidates' disagreement
         about the plan weeks' total (`StackedCombiner.disagreement`)."""
-        scale = self.law_scale(self.plan_mixture_var_, range(len(self.fold_results_)))
-        return self.level_.with_daypart_scale(scale).with_common_floor(self.plan_disagreement_var_)
+        return self._carried(self.level_, self.plan_mixture_var_, self.plan_disagreement_var_,
+                             range(len(self.fold_results_)))
+
+    def _carried(self, law: LevelErrorModel, mixture_var: np.ndarray, disagreement: float, folds,
+                 results=None) -> LevelErrorModel:
+        """`law` (learned on refits `folds`) carried to a forecast (a refit, or the plan weeks) whose
+        mixture variance is `mixture_var` ((P, 2) sum and count): sds scaled by daypart
+        (`law_scale`), the common factor at least its candidate `disagreement` (fraction^2)."""
+        return law.with_daypart_scale(self.law_scale(mixture_var, folds, results)).with_common_floor(disagreement)
 
     def law_scale(self, target: np.ndarray, folds, results: Sequence[FoldResult] | None = None) -> dict:
         """{daypart: sd multiplier} carrying a law learned on refits `folds` to a forecast whose

@@ -216,17 +216,24 @@ class StackedCombiner:
         """The combined mean: ``sum_k w_k b_k m_k`` with weights renormalised over the candidates
         that have a finite, positive forecast. `forecasts` maps each candidate to an array whose
         axis 1 is the daypart (in the order of `dayparts`), e.g. (S, P, W). NaN where none has one."""
-        stack = np.stack([np.asarray(forecasts[c], float) for c in self.candidates], axis=0)  # (K, S, P, ...)
-        shape = [1] * stack.ndim
-        shape[0], shape[2] = len(self.candidates), len(dayparts)
-        w = self._table(self.weights_, dayparts, self.pooled_weights_.to_numpy()).T.reshape(shape)
-        b = self._table(self.ratio_, dayparts, 1.0).T.reshape(shape)
-        ok = np.isfinite(stack) & (stack > 0)
-        wk = np.where(ok, w, 0.0)
-        total = wk.sum(axis=0)
+        stack, ok, wk, total = self._available(forecasts, dayparts)
+        b = self._per_candidate(self.ratio_, dayparts, 1.0, stack.ndim)
         with np.errstate(invalid="ignore", divide="ignore"):
             out = (np.where(ok, stack * b, 0.0) * wk).sum(axis=0) / total
         return np.where(total > 0, out, np.nan)
+
+    def _available(self, forecasts: Mapping[str, np.ndarray], dayparts: Sequence[str]):
+        """(stack (K, S, P, ...), ok: finite and > 0, the weights where ok else 0, their sum over K)."""
+        stack = np.stack([np.asarray(forecasts[c], float) for c in self.candidates], axis=0)
+        ok = np.isfinite(stack) & (stack > 0)
+        wk = np.where(ok, self._per_candidate(self.weights_, dayparts, self.pooled_weights_.to_numpy(), stack.ndim), 0.0)
+        return stack, ok, wk, wk.sum(axis=0)
+
+    def _per_candidate(self, frame: pd.DataFrame, dayparts: Sequence[str], unseen, ndim: int) -> np.ndarray:
+        """`frame`'s (daypart x candidate) values shaped to broadcast against a (K, S, P, ...) stack."""
+        shape = [1] * ndim
+        shape[0], shape[2] = len(self.candidates), len(dayparts)
+        return self._table(frame, dayparts, unseen).T.reshape(shape)
 
     def mixture_variance(self, forecasts: Mapping[str, np.ndarray], dayparts: Sequence[str]) -> np.ndarray:
         """Expected relative variance (fraction^2) of the combination each unit gets, from the
@@ -236,13 +243,8 @@ class StackedCombiner:
         forecast them: where a good one is missing (last year's weeks before the history began)
         it is larger. (The candidates' disagreement unit by unit is left out: a few units where
         one candidate is far off would dominate it.)"""
-        stack = np.stack([np.asarray(forecasts[c], float) for c in self.candidates], axis=0)  # (K, S, P, ...)
-        shape = [1] * stack.ndim
-        shape[0], shape[2] = len(self.candidates), len(dayparts)
-        w = self._table(self.weights_, dayparts, self.pooled_weights_.to_numpy()).T.reshape(shape)
-        s = self._table(self.spread_, dayparts, self.spread_.mean().to_numpy()).T.reshape(shape)
-        wk = np.where(np.isfinite(stack) & (stack > 0), w, 0.0)
-        total = wk.sum(axis=0)
+        stack, _, wk, total = self._available(forecasts, dayparts)
+        s = self._per_candidate(self.spread_, dayparts, self.spread_.mean().to_numpy(), stack.ndim)
         with np.errstate(invalid="ignore", divide="ignore"):
             out = (wk * s * s).sum(axis=0) / total
         return np.where(total > 0, out, np.nan)

@@ -291,25 +291,18 @@ def test_forecast_table_carries_the_disagreement_floor():
     from types import SimpleNamespace
 
     sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from test_faults import ONE_UNIT_UNIVERSE, one_unit_forecaster
     from test_forecast_uncertainty import _nested_errors
 
     from forecasting.uncertainty import LevelErrorModel
 
-    fc = DaypartForecaster.__new__(DaypartForecaster)
-    fc.info_ = pd.DataFrame({"zone": ["z1"], "network": ["n1"], "demo": ["p18+"], "genre": ["news"]})
-    fc.dayparts_ = [SimpleNamespace(name="day")]
-    fc.airing_cv_ = np.array([[0.30]])
-    fc.universe_s_ = np.array([100_000.0])
-    fc.plan_mean_ = np.full((1, 1, 2), 0.01)
-    fc.history_weeks_ = np.array([60.0])
-    fc.level_ = LevelErrorModel().fit(_nested_errors(folds=6, seed=5))
+    fc = one_unit_forecaster(LevelErrorModel().fit(_nested_errors(folds=6, seed=5)), "day", "news")
     fc.fold_results_ = [SimpleNamespace(mixture_var=np.array([[0.4, 10.0]]))]
     fc.plan_mixture_var_ = np.array([[0.04, 1.0]])  # the same mean: scale 1
     own = float(np.sqrt(fc.level_.var_common_))
     assert own < 0.03
-    uni = pd.DataFrame({"zone": ["z1"], "demo": ["p18+"], "universe": [100_000.0]})
     for dis_sd in (0.05, 0.001):
         fc.plan_disagreement_var_ = dis_sd ** 2
-        t = fc.forecast_table(uni)
+        t = fc.forecast_table(ONE_UNIT_UNIVERSE)
         rel = (t["level_sd_common"] / t["mean_impressions"]).to_numpy()
         np.testing.assert_allclose(rel, max(own, dis_sd), rtol=1e-9)

@@ -343,6 +343,28 @@ class _KnownLaw:
         return pd.DataFrame({k: np.full(len(t), v) for k, v in self.REL.items()})
 
 
+ONE_UNIT_UNIVERSE = pd.DataFrame({"zone": ["z1"], "demo": ["p18+"], "universe": [100_000.0]})
+
+
+def one_unit_forecaster(law, daypart: str, genre: str):
+    """A `DaypartForecaster` in a known fitted state without a fit: one unit (zone z1, network n1,
+    demo p18+) of rating 0.01 in `daypart` for two plan weeks, universe 100,000 (1,000 impressions
+    per spot), airing cv 0.30, 60 weeks of history, error law `law`."""
+    from types import SimpleNamespace
+
+    from forecasting.pipeline import DaypartForecaster
+
+    fc = DaypartForecaster.__new__(DaypartForecaster)
+    fc.info_ = pd.DataFrame({"zone": ["z1"], "network": ["n1"], "demo": ["p18+"], "genre": [genre]})
+    fc.dayparts_ = [SimpleNamespace(name=daypart)]
+    fc.airing_cv_ = np.array([[0.30]])
+    fc.universe_s_ = np.array([100_000.0])
+    fc.plan_mean_ = np.full((1, 1, 2), 0.01)
+    fc.history_weeks_ = np.array([60.0])
+    fc.level_ = law
+    return fc
+
+
 def test_forecast_table_carries_the_error_law_at_full_width():
     """Fault caught: level sds scaled (e.g. x 0.8, bands 20% too narrow) between the error law
     and the forecast table, with or without the quantiles recomputed.
@@ -353,20 +375,9 @@ def test_forecast_table_carries_the_error_law_at_full_width():
     table") gives loadings 20, 100, 40, 50, 80 impressions, level_sd = sqrt(20^2 + 100^2 + 40^2
     + 50^2 + 80^2) = sqrt(20,900) = 144.57, one spot's sd sqrt(20,900 + 300^2) = sqrt(110,900)
     = 333.02, q10/q90 = 1000 -/+ z(0.90) x 333.02 with z(0.90) from scipy."""
-    from types import SimpleNamespace
-
-    from forecasting.pipeline import DaypartForecaster
-
-    fc = DaypartForecaster.__new__(DaypartForecaster)
-    fc.info_ = pd.DataFrame({"zone": ["z1"], "network": ["n1"], "demo": ["p18+"], "genre": ["drama"]})
-    fc.dayparts_ = [SimpleNamespace(name="prime")]
-    fc.airing_cv_ = np.array([[0.30]])
-    fc.universe_s_ = np.array([100_000.0])
-    fc.plan_mean_ = np.full((1, 1, 2), 0.01)
-    fc.history_weeks_ = np.array([60.0])
-    fc.level_ = _KnownLaw()
+    fc = one_unit_forecaster(_KnownLaw(), "prime", "drama")
     fc.plan_law = lambda: fc.level_  # carrying the law to the plan's candidates: test_forecast_uncertainty
-    t = fc.forecast_table(pd.DataFrame({"zone": ["z1"], "demo": ["p18+"], "universe": [100_000.0]}))
+    t = fc.forecast_table(ONE_UNIT_UNIVERSE)
     assert len(t) == 2
     r = t.iloc[0]
     assert r["mean_impressions"] == pytest.approx(1000.0)
