@@ -5,9 +5,9 @@ structurally different forecasters of a daypart-week mean rating are made at eve
 the history before it only:
 
 - ``last_year_scaled``: the same weeks one year (364 days) earlier (each averaged with its two
-  neighbours), scaled by half the recent
-  year-over-year change pooled over every series (up to 26 weeks before the origin over the same
-  weeks a year earlier); it carries each unit's seasonality and, partly, erosion.
+  neighbours), scaled by half the recent year-over-year change pooled over every series (up to 26
+  weeks before the origin over the same weeks a year earlier); it carries each unit's seasonality
+  and, partly, erosion.
 - ``trailing``: the mean of the last `recent_weeks` weeks before the origin; it carries level
   shifts and launches.
 - ``regression``: a random-effects regression of log unit-week levels (`LevelRegression`): the
