@@ -43,6 +43,8 @@ from .scoring import pooled_level_ratio
 
 #: season weight every held-out row keeps in the weights' CRPS (so refits of other seasons count a little)
 SEASON_FLOOR = 0.05
+#: share of the (season-weighted) held-out rows a candidate must have a forecast on to get a weight
+MIN_EVIDENCE_SHARE = 0.25
 
 
 def _abs_normal_mean(mu: np.ndarray, var: np.ndarray) -> np.ndarray:
@@ -142,11 +144,16 @@ class StackedCombiner:
         """Fit on held-out unit-weeks: columns ``fold, daypart, actual`` and one column per
         candidate (all in impressions, or all in ratings: one unit throughout; NaN where a
         candidate has no forecast). Each candidate's level ratio and spread come from the rows where
-        it has a forecast; the weights from the rows where every usable candidate has one (a
-        candidate with a forecast on fewer than a tenth of the rows gets weight 0)."""
+        it has a forecast; the weights from the rows where every usable candidate has one. A
+        candidate is usable when it has a forecast on at least `MIN_EVIDENCE_SHARE` of the rows,
+        counted with their season weights (plus `SEASON_FLOOR`) as the weights' CRPS counts them:
+        else the weights would be learned only where it exists, which may be the refits least
+        like the plan weeks (a candidate needing a year of history exists only in the latest)."""
         cands = list(self.candidates)
         have = np.isfinite(rows[cands].to_numpy(float)) & (rows[cands].to_numpy(float) > 0)
-        self.usable_ = [c for c, share in zip(cands, have.mean(axis=0)) if share >= 0.1]
+        rw = rows["season_weight"].to_numpy(float) + SEASON_FLOOR if "season_weight" in rows else np.ones(len(rows))
+        share = rw @ have / max(float(rw.sum()), 1e-300)
+        self.usable_ = [c for c, sh in zip(cands, share) if sh >= MIN_EVIDENCE_SHARE]
         ratio, spread = {}, {}
         for dp, g in rows.groupby("daypart", sort=True):
             ratio[dp], spread[dp] = {}, {}

@@ -78,6 +78,16 @@ def _units(scenario, table: pd.DataFrame, deal) -> pd.DataFrame:
     return inv.merge(fc, on=["zone", "network", "daypart", "week"], how="inner")
 
 
+def scope_miss(scope: pd.DataFrame) -> float:
+    """The miss of the units a deal could buy, taken together: ``sum actual / sum forecast - 1``
+    over the scope's unit-weeks (impressions per spot; rows with both known), NaN without any.
+    A deal's own miss beyond it is what choosing among them did (`selection_gap`)."""
+    a = scope["actual_impressions"].to_numpy(float)
+    m = scope["mean_impressions"].to_numpy(float)
+    ok = np.isfinite(a) & np.isfinite(m) & (m > 0)
+    return float(a[ok].sum() / m[ok].sum() - 1.0) if ok.any() else float("nan")
+
+
 def _replay_one(scope: pd.DataFrame, deal, guarantee: float, rng: np.random.Generator, solver: str) -> dict | None:
     """Plan one sized deal on a past forecast and deliver it from what happened; None if undeliverable."""
     prob = al.make_problem(scope, guarantee, rules_of(deal), deal.weeks)
@@ -120,6 +130,7 @@ def replay_deals(scenario, forecaster, *, fractions: Sequence[float] = FRACTIONS
             scope = al.candidate_units(_units(scenario, table, deal), weeks=deal.weeks,
                                        exclude_networks=mix.exclude_networks, exclude_zones=mix.exclude_zones,
                                        max_spots_per_unit=mix.max_spots_per_unit)
+            miss = scope_miss(scope)
             for variant in _variants(deal, confidences):
                 cap = al.max_guarantee(al.make_problem(scope, 1.0, rules_of(variant), variant.weeks)).value
                 if not cap or cap <= 0:
@@ -129,7 +140,7 @@ def replay_deals(scenario, forecaster, *, fractions: Sequence[float] = FRACTIONS
                     out = _replay_one(scope, variant, float(frac) * cap, rng, solver)
                     if out is not None:
                         rows.append({"origin": origin, "template": deal.name, "risk": risk, "fraction": float(frac),
-                                     **out})
+                                     "units_miss": miss, **out})
     progress("scoring the replayed deals", 1.0)
     deals = pd.DataFrame(rows)
     if deals.empty:
@@ -165,12 +176,42 @@ def cramer_von_mises(u: np.ndarray) -> float:
     return float(1.0 / (12 * n) + np.sum(((2 * np.arange(1, n + 1) - 1) / (2 * n) - u) ** 2))
 
 
-def shared_scale(deals: pd.DataFrame, grid=np.arange(0.5, 4.0001, 0.01)) -> float:
+def selection_gap(deals: pd.DataFrame) -> dict:
+    """How much less (or more) the replayed deals delivered than the units they could buy, taken
+    together: the optimizer's curse of a plan that picks the units whose forecast runs high.
+
+    Per deal ``r = (delivered / expected) / (1 + units_miss) - 1`` (its miss beyond its scope's
+    miss, `scope_miss`, which takes out the shocks the origin's units shared); per origin the
+    mean of r; ``gap`` the mean over origins, ``se`` their sd / sqrt(origins) (NaN with one).
+    ``factor`` is the multiplier on planned delivery to apply, ``1 + gap max(0, 1 - se^2 / gap^2)``:
+    the gap shrunk by its own noise (none applied when it is within one se of 0, or unknown).
+
+    References
+    ----------
+    Smith, J. E. & Winkler, R. L. (2006). The optimizer's curse: skepticism and postdecision
+    surprise in decision analysis. Management Science 52(3), 311-322.
+    """
+    if "units_miss" not in deals or deals.empty:
+        return {"gap": 0.0, "se": float("nan"), "origins": 0, "factor": 1.0}
+    r = deals["delivered"] / deals["expected"] / (1.0 + deals["units_miss"]) - 1.0
+    ok = np.isfinite(r.to_numpy(float))
+    per = r[ok].groupby(deals.loc[ok, "origin"]).mean()
+    n = int(len(per))
+    if n == 0:
+        return {"gap": 0.0, "se": float("nan"), "origins": 0, "factor": 1.0}
+    gap = float(per.mean())
+    se = float(per.std(ddof=1) / np.sqrt(n)) if n > 1 else float("nan")
+    keep = max(0.0, 1.0 - se * se / (gap * gap)) if np.isfinite(se) and gap != 0.0 else 0.0
+    return {"gap": gap, "se": se, "origins": n, "factor": float(1.0 + gap * keep)}
+
+
+def shared_scale(deals: pd.DataFrame, grid=np.arange(0.5, 4.0001, 0.01), factor: float = 1.0) -> float:
     """The factor k on the shared (quadratic) part of each replayed deal's variance that makes the
-    PIT of the deal totals closest to uniform (Cramer-von Mises), ``sd^2 = k^2 shared + other``."""
-    d = deals["delivered"].to_numpy(float) - deals["expected"].to_numpy(float)
-    q = deals["shared_var"].to_numpy(float)
-    lin = deals["other_var"].to_numpy(float)
+    PIT of the deal totals closest to uniform (Cramer-von Mises), ``sd^2 = k^2 shared + other``,
+    the planned delivery (mean and sds) first multiplied by `factor` (`selection_gap`)."""
+    d = deals["delivered"].to_numpy(float) - factor * deals["expected"].to_numpy(float)
+    q = factor ** 2 * deals["shared_var"].to_numpy(float)
+    lin = factor ** 2 * deals["other_var"].to_numpy(float)
     stats = [cramer_von_mises(norm.cdf(d / np.sqrt(k * k * q + lin))) for k in grid]
     return float(grid[int(np.argmin(stats))])
 
@@ -193,6 +234,7 @@ def summarise(deals: pd.DataFrame) -> dict:
     count, standard error), deal-total bias, PIT histogram (10 bins) and the shared-factor scale."""
     n_eff, rho = effective_count(deals["z"].to_numpy(float), deals["origin"].to_numpy())
     design = len(deals) / n_eff if n_eff > 0 else 1.0
+    sel = selection_gap(deals)
     bins = []
     for lo, hi in CLAIM_BINS:
         b = deals[(deals["claimed"] >= lo) & (deals["claimed"] < hi)]
@@ -215,8 +257,10 @@ def summarise(deals: pd.DataFrame) -> dict:
         "deal_total_bias": float(deals["delivered"].sum() / deals["expected"].sum() - 1.0),
         "z_rms": float(np.sqrt(np.mean(deals["z"] ** 2))),
         "pit_histogram": np.histogram(deals["pit"], bins=10, range=(0, 1))[0].tolist(),
-        "shared_scale": shared_scale(deals),
-        "scale_to_apply": applied_scale(shared_scale(deals), n_eff),
+        "selection": sel,
+        "deal_factor_to_apply": sel["factor"],
+        "shared_scale": shared_scale(deals, factor=sel["factor"]),
+        "scale_to_apply": applied_scale(shared_scale(deals, factor=sel["factor"]), n_eff),
     }
 
 
@@ -244,6 +288,21 @@ def scale_shared_factors(table: pd.DataFrame, factor: float) -> pd.DataFrame:
     return with_level_bands(table)
 
 
+#: columns of the forecast table in impressions (or ratings) per spot that a planned-delivery factor multiplies
+DELIVERY_COLUMNS = ("mean_rating", "mean_impressions", "airing_sd", *(f.table_column for f in LEVEL_FACTORS))
+
+
+def scale_planned_delivery(table: pd.DataFrame, factor: float) -> pd.DataFrame:
+    """A copy of forecast `table` whose expected delivery per spot and its sds (`DELIVERY_COLUMNS`)
+    are times `factor` (relative sds unchanged), ``level_sd`` and the spot quantiles recomputed:
+    what the allocator, the book and the stress test then plan on (`selection_gap`)."""
+    table = table.copy()
+    for col in DELIVERY_COLUMNS:
+        if col in table:
+            table[col] = table[col] * factor
+    return with_level_bands(table)
+
+
 def hindcast_scenario(scenario, *, seed: int = 0, solver: str = "highs", apply: bool = False,
                       progress: Progress | None = None) -> dict:
     """Replay deals on the scenario's fitted forecast (fitted now when missing or stale) and write
@@ -258,16 +317,17 @@ def hindcast_scenario(scenario, *, seed: int = 0, solver: str = "highs", apply: 
     out = replay_deals(scenario, model, seed=seed, solver=solver, progress=lambda m, f: progress(m, 0.3 + 0.7 * f))
     summary = dict(out.summary)
     summary["fit_key"] = res.meta.get("key")
-    applied = 1.0
+    applied, factor = 1.0, 1.0
     if apply and summary.get("deals"):
-        applied = float(summary["scale_to_apply"])
-        previous = float(res.meta.get("hindcast_scale", 1.0))
-        table = scale_shared_factors(res.table, applied / previous)
+        applied, factor = float(summary["scale_to_apply"]), float(summary["deal_factor_to_apply"])
+        table = scale_planned_delivery(res.table, factor / float(res.meta.get("hindcast_deal_factor", 1.0)))
+        table = scale_shared_factors(table, applied / float(res.meta.get("hindcast_scale", 1.0)))
         folder = forecast_dir(scenario)
         write_with_atomic(folder / TABLE_FILE, lambda p: table.to_parquet(p, index=False))
-        meta = dict(res.meta, hindcast_scale=applied)
+        meta = dict(res.meta, hindcast_scale=applied, hindcast_deal_factor=factor)
         write_text_atomic(folder / META_FILE, json.dumps(meta, indent=2, default=str))
     summary["applied_scale"] = applied
+    summary["applied_deal_factor"] = factor
     write_text_atomic(forecast_dir(scenario) / HINDCAST_FILE, json.dumps(summary, indent=2, default=str))
     return summary
 

@@ -314,6 +314,12 @@ def hindcast_cmd(
         out_console.print(f"claimed at 95%: {c95['deals']} deals, delivered in {c95['realised']:.1%}")
     out_console.print(f"deal totals: delivered / expected - 1 = {s['deal_total_bias']:+.1%}; z RMS {s['z_rms']:.2f} "
                       f"(1 if the law is right); PIT deciles {s['pit_histogram']}")
+    sel = s["selection"]
+    se = f" (se {sel['se']:.1%} over {sel['origins']} origins)" if sel["origins"] > 1 else ""
+    out_console.print(f"the plans delivered {sel['gap']:+.1%}{se} beyond what the units they could buy delivered "
+                      f"together (a plan picks the units whose forecast runs high); planned delivery x "
+                      f"{s['deal_factor_to_apply']:.3f} after shrinking by its noise"
+                      + (", applied to the cached forecast" if apply else " (--apply applies it)"))
     out_console.print(f"scale of the shared level factors that makes the PIT uniform: {s['shared_scale']:.2f}; "
                       f"shrunk for the ~{s['effective_deals']:.0f} independent outcomes behind it: "
                       f"{s['scale_to_apply']:.2f}"

@@ -191,8 +191,9 @@ def _say_forecast(folder: Path, reused: bool, hindcast: dict, say: Callable[[str
     if hindcast.get("deals"):
         c95 = hindcast["claimed_95"]
         came = f"claims of 95% came true in {c95['realised']:.0%}; " if c95.get("realised") is not None else ""
-        say(f"replayed {hindcast['deals']} deals at {hindcast['origins']} past origins: {came}shared level factors "
-            f"widened x{hindcast['applied_scale']:.2f} (pledge forecast hindcast)")
+        say(f"replayed {hindcast['deals']} deals at {hindcast['origins']} past origins: {came}planned delivery "
+            f"x{hindcast.get('applied_deal_factor', 1.0):.3f}, shared level factors widened "
+            f"x{hindcast['applied_scale']:.2f} (pledge forecast hindcast)")
 
 
 def _release_demo_deals(scn: Any, say: Callable[[str], None]) -> list[str]:
