@@ -365,8 +365,9 @@ class DaypartForecaster:
         actual = raw * (1.0 + held["rel_error"].to_numpy(float))
         comps = factor_components(held.assign(**{col: sd[col] for col, _ in COMPONENT_KEYS}))
         bias = float(actual.sum() / weight.sum() - 1.0)
-        common = total_bias_sd(weight, comps[:1])  # the COMPONENT_KEYS' first: the common factor
-        rest2 = total_bias_sd(weight, comps[1:]) ** 2
+        every = [f.shared_by_all for f in LEVEL_FACTORS]  # COMPONENT_KEYS follow LEVEL_FACTORS
+        common = total_bias_sd(weight, [c for c, a in zip(comps, every) if a])  # the common factor
+        rest2 = total_bias_sd(weight, [c for c, a in zip(comps, every) if not a]) ** 2
         law = float(np.sqrt(common ** 2 + rest2 * (1.0 + 1.0 / (n_refits - 1))))
         return {"bias": bias, "bias_sd": law, "z": bias / law if law > 0 else float("nan")}
 

@@ -11,6 +11,8 @@ import numpy as np
 import pandas as pd
 from scipy.stats import norm
 
+from .factors import LEVEL_FACTORS, LevelFactor
+
 
 def crps_gaussian(y, mu, sigma) -> np.ndarray:
     """CRPS of a normal forecast N(mu, sigma^2) at observation y (same unit as y).
@@ -168,7 +170,24 @@ def total_bias_sd(weight, components) -> float:
     return float(np.sqrt(var))
 
 
-def measured_factor_sds(rel_error, network, week, unit) -> dict:
+#: the nested layout's terms (`measured_factor_sds`) by the set of a factor's grouping keys (None:
+#: the unit-week's own); the unit is zone x daypart x demo within a network
+_LAYOUT_TERMS = {frozenset({"network"}): "network", frozenset({"network", "week"}): "network_week",
+                 frozenset({"zone", "network", "daypart", "demo"}): "unit", None: "own"}
+
+
+def layout_term(factor: LevelFactor) -> str:
+    """The term of `measured_factor_sds`' nested layout that measures `factor` (``network``,
+    ``network_week``, ``unit``, ``own``); ValueError for a factor the layout cannot measure (its
+    specification should say ``measured=False``)."""
+    key = None if factor.keys is None else frozenset(factor.keys)
+    if key not in _LAYOUT_TERMS:
+        raise ValueError(f"level factor {factor.name!r}: the nested layout of measured_factor_sds has no term "
+                         f"for the keys {factor.keys}; give it measured=False or a term of its own")
+    return _LAYOUT_TERMS[key]
+
+
+def measured_factor_sds(rel_error, network, week, unit, factors: tuple[LevelFactor, ...] = LEVEL_FACTORS) -> dict:
     """Standard deviations of the level-error factors measured in one set of scored unit-weeks.
 
     The relative errors are taken as ``e = a[n] + g[n, w] + b[n, u] + c[n, u, w]`` (network;
@@ -185,10 +204,13 @@ def measured_factor_sds(rel_error, network, week, unit) -> dict:
     network, week, unit : (n,) labels of each row's network (one per block when several blocks
         are pooled), week and unit within the network (zone x daypart x demo).
 
+    factors : the level factors (`forecasting.factors.LEVEL_FACTORS`); each one with
+        ``measured=True`` is named by its layout term (`layout_term`).
+
     Returns
     -------
-    dict ``network, network_week, flight, week`` -> sd (fraction; a negative moment estimate is
-    reported as 0).
+    dict factor name -> sd (fraction; a negative moment estimate is reported as 0), the measured
+    factors in `factors` order (``network, network_week, flight, week``).
 
     References
     ----------
@@ -227,8 +249,8 @@ def measured_factor_sds(rel_error, network, week, unit) -> dict:
         var_a = float(np.sum((means - means.mean()) ** 2) / (N - 1) - inner.mean())
     else:
         var_a = 0.0
-    return {name: float(np.sqrt(max(v, 0.0))) for name, v in
-            (("network", var_a), ("network_week", var_g), ("flight", var_b), ("week", var_c))}
+    term = {"network": var_a, "network_week": var_g, "unit": var_b, "own": var_c}
+    return {f.name: float(np.sqrt(max(term[layout_term(f)], 0.0))) for f in factors if f.measured}
 
 
 def pooled_level_ratio(actual, forecast, fold, weight=None, prior: float = 1.0) -> float:

@@ -708,8 +708,10 @@ def deal_terms(deal: Any) -> dict:
     mix = getattr(deal, "mix", None)
     rules = {}
     if mix is not None:
+        flat = {k: v for k, v in vars(mix).items() if k != "extra"}
+        flat.update(getattr(mix, "extra", None) or {})  # further families' keys, as in the deal file
         rules = {k: (list(v) if isinstance(v, tuple) else (dict(v) if isinstance(v, dict) else v))
-                 for k, v in vars(mix).items()}
+                 for k, v in flat.items()}
     return {"advertiser": getattr(deal, "advertiser", None), "demo": deal.demo, "impressions": float(deal.impressions),
             "first_week": int(deal.first_week), "last_week": int(deal.last_week),
             "price_cpm": float(deal.price_cpm), "confidence": _opt(getattr(deal, "confidence", None)),
@@ -746,7 +748,8 @@ def deal_from_book(booked: BookDeal, path: Any = None) -> Any:
     mix = Mix(max_network_share=m.get("max_network_share"), daypart_min_share=dict(m.get("daypart_min_share") or {}),
               daypart_max_share=dict(m.get("daypart_max_share") or {}),
               exclude_networks=tuple(m.get("exclude_networks") or ()), exclude_zones=tuple(m.get("exclude_zones") or ()),
-              weekly_tolerance=m.get("weekly_tolerance"), max_spots_per_unit=m.get("max_spots_per_unit"))
+              weekly_tolerance=m.get("weekly_tolerance"), max_spots_per_unit=m.get("max_spots_per_unit"),
+              extra={k: v for k, v in m.items() if k not in Mix.__dataclass_fields__})
     return Deal(name=booked.name, advertiser=booked.advertiser or "", demo=booked.demo, impressions=booked.guarantee,
                 first_week=booked.first_week, last_week=booked.last_week, price_cpm=booked.price_cpm,
                 confidence=booked.confidence, pad=booked.pad, mix=mix, path=path)

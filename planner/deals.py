@@ -244,7 +244,8 @@ def rules_of(deal) -> Rules:
     mix = deal.mix
     return Rules(max_network_share=mix.max_network_share, daypart_min_share=dict(mix.daypart_min_share),
                  daypart_max_share=dict(mix.daypart_max_share), weekly_tolerance=mix.weekly_tolerance,
-                 confidence=deal.confidence if deal.pad is None else None, pad=deal.pad)
+                 confidence=deal.confidence if deal.pad is None else None, pad=deal.pad,
+                 settings=dict(getattr(mix, "extra", None) or {}))
 
 
 def check_solver(solver: str) -> None:

@@ -12,8 +12,9 @@ x (one count per unit) the delivered total D has
     E[D]   = sum_i x_i (1 - p_i) mu_i
     Var[D] = ||A x||^2 + sum_i x_i [(1 - p_i) airing_sd_i^2 + p_i (1 - p_i)(mu_i^2 + level_sd_i^2)]
 
-where A stacks the five level factors (loadings times 1 - p_i); Z_com is one factor shared by
-every unit. The network-week and common loadings (`level_sd_network_week`, `level_sd_common`)
+where A stacks the level factors (loadings times 1 - p_i); Z_com is one factor shared by
+every unit. The factors, their columns and grouping keys come from
+`forecasting.factors.LEVEL_FACTORS` (drawn in `DRAW_ORDER`): the five above are today's. The network-week and common loadings (`level_sd_network_week`, `level_sd_common`)
 are optional: a forecast table without them has none. The first part is quadratic
 in x (shared level errors do not average out), the second linear (per-spot noise and
 preemption do). Everything here works on arrays, one entry per unit row.
@@ -27,12 +28,13 @@ mu'x - z sqrt(x'Sx) >= G: Charnes & Cooper (1959), Management Science 6(1).
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Sequence
 
 import numpy as np
 import pandas as pd
 from scipy.special import ndtr
 
-from forecasting.factors import LEVEL_FACTORS
+from forecasting.factors import DRAWN, LEVEL_FACTORS, LevelFactor
 
 UNIT_KEY = ["zone", "network", "daypart", "week"]
 FLIGHT_KEY = ["zone", "network", "daypart"]
@@ -53,14 +55,61 @@ def optional_sd(units: pd.DataFrame, column: str) -> np.ndarray:
     return np.zeros(len(units))
 
 
-def network_week_sd(units: pd.DataFrame) -> np.ndarray:
-    """`level_sd_network_week` of unit rows (impressions per spot); zeros if absent."""
-    return optional_sd(units, "level_sd_network_week")
+def loading(units: pd.DataFrame, factor: LevelFactor) -> np.ndarray:
+    """The level loading (`factor.table_column`) of unit rows, impressions per spot; zeros for an
+    optional factor the table lacks."""
+    return optional_sd(units, factor.table_column)
 
 
-def common_sd(units: pd.DataFrame) -> np.ndarray:
-    """`level_sd_common` of unit rows (impressions per spot); zeros if absent."""
-    return optional_sd(units, "level_sd_common")
+def group_keys(factor: LevelFactor) -> list[str]:
+    """The unit columns whose rows share one draw of `factor` in the planner: its keys without the
+    demo (`LevelFactor.unit_keys`), the unit key for the unit-week's own factor."""
+    keys = factor.unit_keys
+    return list(UNIT_KEY) if keys is None else list(keys)
+
+
+def factor_groups(units: pd.DataFrame, keys: Sequence[str]) -> tuple[np.ndarray, pd.Index]:
+    """(code (n,) int64, labels): the group of each unit row under `keys`, groups numbered in the
+    sorted order of the keys' values (mixed-radix combination of sorted codes); `labels` an
+    Index (one key) or MultiIndex of the groups. No keys: one group for every row."""
+    n = len(units)
+    if not keys:
+        return np.zeros(n, dtype=np.int64), pd.RangeIndex(1)
+    codes, uniques = zip(*(pd.factorize(units[k], sort=True) for k in keys))
+    combo = np.zeros(n, dtype=np.int64)
+    sizes = [max(len(u), 1) for u in uniques]
+    for c, size in zip(codes, sizes):
+        combo = combo * size + c
+    uniq, code = np.unique(combo, return_inverse=True)
+    parts, rest = [], uniq
+    for u, size in zip(reversed(uniques), reversed(sizes)):
+        parts.append(np.asarray(u)[rest % size] if len(u) else np.asarray(u))
+        rest = rest // size
+    parts.reverse()
+    if len(keys) == 1:
+        return code.astype(np.int64), pd.Index(parts[0], name=keys[0])
+    return code.astype(np.int64), pd.MultiIndex.from_arrays(parts, names=list(keys))
+
+
+def draw_levels(mu: np.ndarray, blocks: Sequence[tuple], k: int, rng: np.random.Generator
+                ) -> tuple[np.ndarray, dict]:
+    """k draws of the level of each unit row, (k, n) impressions per spot, and the standard-normal
+    draws of each factor drawn, {name: (k, groups)}.
+
+    `blocks`: per level factor in draw order (`forecasting.factors.DRAWN`) ``(factor, loading
+    (n,), code (n,) or None, groups)``; None: each row its own draw. A factor every table has is
+    always drawn; an optional one only where some loading is not zero, so a seeded draw of a
+    table without it is what it was before the factor existed.
+    """
+    level = mu
+    z_of = {}
+    for f, w, code, n in blocks:
+        if f.optional and not w.any():
+            continue
+        z = rng.standard_normal((k, n))
+        z_of[f.name] = z
+        level = level + w * (z if code is None else z[:, code])
+    return level, z_of
 
 
 @dataclass
@@ -68,113 +117,109 @@ class FactorLoadings:
     """A plan's delivery as a linear function of the shared level factors.
 
     D = mean + sum_f loading_f Z_f + (independent rest with variance `linear_variance`).
-    `network` is indexed by network, `network_week` by (network, week), `flight` by (zone,
-    network, daypart), `week` by (zone, network, daypart, week); loadings in impressions per
-    unit standard-normal factor. Only factors with a non-zero loading are listed; `common` is
-    the loading on the one factor shared by every unit.
+    `loadings` maps each level factor's name (draw order) to its loadings in impressions per unit
+    standard-normal factor, indexed by the factor's groups (`network` by network, `network_week`
+    by (network, week), `flight` by (zone, network, daypart), `week` by (zone, network, daypart,
+    week)); only non-zero loadings are listed. Attribute access by name (`fl.network`); a factor
+    shared by every unit (`common`) reads as its one loading, a float.
     """
 
     mean: float
-    network: pd.Series
-    flight: pd.Series
-    week: pd.Series
+    loadings: dict
     linear_variance: float
-    network_week: pd.Series | None = None
-    common: float = 0.0
+
+    def __getattr__(self, name: str):
+        loadings = self.__dict__.get("loadings") or {}
+        if name not in loadings:
+            raise AttributeError(name)
+        s = loadings[name]
+        if any(f.name == name and f.shared_by_all for f in LEVEL_FACTORS):
+            return float(s.sum()) if len(s) else 0.0
+        return s
 
     @property
     def quadratic_variance(self) -> float:
         """Variance from the level factors, impressions^2."""
-        nw = 0.0 if self.network_week is None else float((self.network_week ** 2).sum())
-        return (float((self.network ** 2).sum() + (self.flight ** 2).sum() + (self.week ** 2).sum()) + nw
-                + self.common ** 2)
+        total = 0.0
+        for s in self.loadings.values():
+            total = total + (s ** 2).sum()
+        return float(total)
 
 
 class DeliveryModel:
     """Mean and variance of delivered impressions for spot counts `x` (shape (n,)).
 
     Build with `DeliveryModel.from_units(units)`; `units` has one row per unit with the
-    forecast columns (`mean_impressions`, `airing_sd`, `level_sd_network`, `level_sd_flight`,
-    `level_sd_week`, optionally `level_sd_network_week` and `level_sd_common`, impressions per
-    spot) and
-    `preempt_rate` (fraction).
+    forecast columns (`mean_impressions`, `airing_sd`, the level loadings `level_sd_<name>` of
+    `forecasting.factors.LEVEL_FACTORS`, the optional ones read as zeros when absent,
+    impressions per spot) and `preempt_rate` (fraction).
+
+    `factors`: per level factor in draw order, ``(name, loading of one bought spot (n,), group
+    code (n,) or None for one factor per unit, number of groups)``; `raw[name]` the loading of
+    one aired spot and `labels[name]` the groups' labels.
     """
 
-    def __init__(self, mu, airing_sd, w_net, w_flight, w_week, preempt, net_code, flight_code,
-                 networks=None, flights=None, keys=None, w_nw=None, nw_code=None, network_weeks=None,
-                 w_common=None):
+    def __init__(self, mu, airing_sd, preempt, blocks: Sequence[tuple], keys=None):
         self.mu = np.asarray(mu, dtype=float)
         self.airing_sd = np.asarray(airing_sd, dtype=float)
         self.p = np.asarray(preempt, dtype=float)
-        self.w_net_raw = np.asarray(w_net, dtype=float)
-        self.w_flight_raw = np.asarray(w_flight, dtype=float)
-        self.w_week_raw = np.asarray(w_week, dtype=float)
-        self.net_code = np.asarray(net_code, dtype=np.int64)
-        self.flight_code = np.asarray(flight_code, dtype=np.int64)
         self.n = self.mu.size
-        self.n_net = int(self.net_code.max()) + 1 if self.n else 0
-        self.n_flight = int(self.flight_code.max()) + 1 if self.n else 0
-        self.w_nw_raw = np.zeros(self.n) if w_nw is None else np.asarray(w_nw, dtype=float)
-        self.nw_code = self.net_code.copy() if nw_code is None else np.asarray(nw_code, dtype=np.int64)
-        self.n_nw = int(self.nw_code.max()) + 1 if self.n else 0
-        self.w_common_raw = np.zeros(self.n) if w_common is None else np.asarray(w_common, dtype=float)
         keep = 1.0 - self.p
+        self.spec = tuple(f for f, *_ in blocks)
+        self.raw = {f.name: np.asarray(w, dtype=float) for f, w, _, _, _ in blocks}
+        self.labels = {f.name: lab for f, _, _, _, lab in blocks}
         # Loadings of one bought spot on each factor, already times the chance it airs.
-        self.a_net = self.w_net_raw * keep
-        self.a_flight = self.w_flight_raw * keep
-        self.a_week = self.w_week_raw * keep
-        self.a_nw = self.w_nw_raw * keep
-        self.a_common = self.w_common_raw * keep
+        self.factors = [(f.name, self.raw[f.name] * keep, code, n) for f, _, code, n, _ in blocks]
         self.m = keep * self.mu  # expected impressions of one bought spot
-        #: (name, loading of one bought spot, factor code per unit or None for one factor per
-        #: unit, number of factors): every level factor, in one place
-        self.factors = [("network", self.a_net, self.net_code, self.n_net),
-                        ("flight", self.a_flight, self.flight_code, self.n_flight),
-                        ("week", self.a_week, None, self.n),
-                        ("network_week", self.a_nw, self.nw_code, self.n_nw),
-                        ("common", self.a_common, np.zeros(self.n, dtype=np.int64), 1)]
-        #: level variance of one aired spot (sum of its squared raw loadings), impressions^2
-        self.level_var = (self.w_common_raw ** 2 + self.w_net_raw ** 2 + self.w_nw_raw ** 2
-                          + self.w_flight_raw ** 2 + self.w_week_raw ** 2)
+        #: level variance of one aired spot (sum of its squared raw loadings, contract order), impressions^2
+        self.level_var = np.zeros(self.n)
+        for f in LEVEL_FACTORS:
+            if f.name in self.raw:
+                self.level_var = self.level_var + self.raw[f.name] ** 2
         # Per-spot variance that is linear in x: airing noise plus preemption.
         self.v_lin = keep * self.airing_sd ** 2 + self.p * keep * (self.mu ** 2 + self.level_var)
         # Per-spot variance if every error were independent per spot (for comparison only).
         self.v_indep = keep * (self.level_var + self.airing_sd ** 2) + self.p * keep * self.mu ** 2
-        self.networks = networks
-        self.flights = flights
         self.keys = keys
-        self.network_weeks = network_weeks
+
+    def factor(self, name: str) -> tuple:
+        """(name, loading of one bought spot, code or None, groups) of the factor called `name`."""
+        return next(b for b in self.factors if b[0] == name)
+
+    @property
+    def a_net(self) -> np.ndarray:
+        """Loadings of one bought spot on its network factor (n,), impressions."""
+        return self.factor("network")[1]
+
+    @property
+    def net_code(self) -> np.ndarray:
+        """The network factor of each unit (n,), an index of `networks`."""
+        return self.factor("network")[2]
+
+    @property
+    def networks(self) -> pd.Index:
+        """The networks, in the order of the network factors."""
+        return self.labels["network"]
 
     @classmethod
-    def from_units(cls, units: pd.DataFrame) -> "DeliveryModel":
-        """Build from unit rows (forecast joined with inventory); see the class docstring."""
+    def from_units(cls, units: pd.DataFrame, factors: Sequence[LevelFactor] = DRAWN) -> "DeliveryModel":
+        """Build from unit rows (forecast joined with inventory); see the class docstring.
+        `factors`: the level factors, in draw order (default `forecasting.factors.DRAWN`)."""
         missing = [c for c in REQUIRED if c not in units.columns]
+        missing += [f.table_column for f in factors if not f.optional and f.table_column not in units.columns
+                    and f.table_column not in missing]
         if missing:
             raise KeyError(f"units lack columns {missing}")
-        net_code, networks = pd.factorize(units["network"], sort=True)
-        zc, zu = pd.factorize(units["zone"], sort=True)
-        dc, du = pd.factorize(units["daypart"], sort=True)
-        nn, nd = max(len(networks), 1), max(len(du), 1)
-        combo = (zc.astype(np.int64) * nn + net_code) * nd + dc  # one integer per zone x network x daypart
-        uniq, flight_code = np.unique(combo, return_inverse=True)
-        flights = pd.MultiIndex.from_arrays(
-            [np.asarray(zu)[uniq // (nn * nd)], np.asarray(networks)[(uniq // nd) % nn], np.asarray(du)[uniq % nd]],
-            names=FLIGHT_KEY)
         keys = pd.MultiIndex.from_frame(units[UNIT_KEY])
-        wc, wu = pd.factorize(units["week"], sort=True)
-        nw_ = max(len(wu), 1)
-        uniq_nw, nw_code = np.unique(net_code.astype(np.int64) * nw_ + wc, return_inverse=True)
-        network_weeks = pd.MultiIndex.from_arrays(
-            [np.asarray(networks)[uniq_nw // nw_], np.asarray(wu)[uniq_nw % nw_]], names=["network", "week"])
-        return cls(
-            units["mean_impressions"].to_numpy(float), units["airing_sd"].to_numpy(float),
-            units["level_sd_network"].to_numpy(float), units["level_sd_flight"].to_numpy(float),
-            units["level_sd_week"].to_numpy(float), units["preempt_rate"].to_numpy(float),
-            net_code, flight_code, networks=pd.Index(networks, name="network"),
-            flights=flights if len(flights) else None,
-            keys=keys, w_nw=network_week_sd(units), nw_code=nw_code, network_weeks=network_weeks,
-            w_common=common_sd(units),
-        )
+        blocks = []
+        for f in factors:
+            if f.keys is None:  # the unit-week's own: one draw per row
+                blocks.append((f, loading(units, f), None, len(units), keys))
+            else:
+                code, labels = factor_groups(units, group_keys(f))
+                blocks.append((f, loading(units, f), code, len(labels), labels))
+        return cls(units["mean_impressions"].to_numpy(float), units["airing_sd"].to_numpy(float),
+                   units["preempt_rate"].to_numpy(float), blocks, keys=keys)
 
     # -- moments ---------------------------------------------------------------------------
     def mean(self, x) -> float:
@@ -182,8 +227,8 @@ class DeliveryModel:
         return float(np.dot(self.m, x))
 
     def factor_sums(self, x):
-        """(A x) split by level: network (n_net,), flight (n_flight,), week (n,), network-week
-        (n_nw,), common (1,) impressions."""
+        """(A x) split by level factor, in draw order (`factors`): one array per factor, (groups,)
+        impressions (a factor of each unit's own: (n,))."""
         x = np.asarray(x, dtype=float)
         return tuple(a * x if code is None else np.bincount(code, a * x, minlength=n)
                      for _, a, code, n in self.factors)
@@ -233,17 +278,12 @@ class DeliveryModel:
 
     def factor_loadings(self, x) -> FactorLoadings:
         """Per-factor aggregated loadings of the plan x (for joint draws across deals)."""
-        s_net, s_flt, s_wk, s_nw, s_com = self.factor_sums(x)
-        net_index = self.networks if self.networks is not None else pd.RangeIndex(self.n_net)
-        nw_index = self.network_weeks if self.network_weeks is not None else pd.RangeIndex(self.n_nw)
-        nw = pd.Series(s_nw, index=nw_index, name="loading")
-        flt_index = self.flights if self.flights is not None else pd.RangeIndex(self.n_flight)
-        wk_index = self.keys if self.keys is not None else pd.RangeIndex(self.n)
-        net = pd.Series(s_net, index=net_index, name="loading")
-        flt = pd.Series(s_flt, index=flt_index, name="loading")
-        wk = pd.Series(s_wk, index=wk_index, name="loading")
-        return FactorLoadings(self.mean(x), net[net != 0], flt[flt != 0], wk[wk != 0],
-                              self.linear_variance(x), nw[nw != 0], float(s_com[0]))
+        out = {}
+        for (name, _, code, n), s in zip(self.factors, self.factor_sums(x)):
+            index = self.labels[name] if self.labels[name] is not None else pd.RangeIndex(n)
+            ser = pd.Series(s, index=index, name="loading")
+            out[name] = ser[ser != 0]
+        return FactorLoadings(self.mean(x), out, self.linear_variance(x))
 
     # -- Monte Carlo -----------------------------------------------------------------------
     def sample(self, x, draws: int, rng: np.random.Generator, exact: bool = False,
@@ -263,23 +303,18 @@ class DeliveryModel:
             return out
         xa = x[act]
         mu, p, sd_air = self.mu[act], self.p[act], self.airing_sd[act]
-        wn, wf, ww = self.w_net_raw[act], self.w_flight_raw[act], self.w_week_raw[act]
-        wg, wc = self.w_nw_raw[act], self.w_common_raw[act]
-        net_u, net_c = np.unique(self.net_code[act], return_inverse=True)
-        nw_u, nw_c = np.unique(self.nw_code[act], return_inverse=True)
-        flt_u, flt_c = np.unique(self.flight_code[act], return_inverse=True)
+        blocks = []
+        for f, (_, _, code, _) in zip(self.spec, self.factors):
+            if code is None:
+                blocks.append((f, self.raw[f.name][act], None, act.size))
+            else:
+                u, c = np.unique(code[act], return_inverse=True)
+                blocks.append((f, self.raw[f.name][act], c, u.size))
         xi = np.rint(xa).astype(np.int64)
         step = max(1, int(chunk_cells // act.size))
         for start in range(0, draws, step):
             k = min(step, draws - start)
-            z_net = rng.standard_normal((k, net_u.size))
-            z_flt = rng.standard_normal((k, flt_u.size))
-            z_wk = rng.standard_normal((k, act.size))
-            level = mu + wn * z_net[:, net_c] + wf * z_flt[:, flt_c] + ww * z_wk  # (k, n_act)
-            if wg.any():
-                level += wg * rng.standard_normal((k, nw_u.size))[:, nw_c]
-            if wc.any():
-                level += wc * rng.standard_normal((k, 1))
+            level, _ = draw_levels(mu, blocks, k, rng)  # (k, n_act)
             if exact:
                 aired = rng.binomial(xi, 1.0 - p, size=(k, act.size))
                 total = (aired * level).sum(axis=1)

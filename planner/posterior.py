@@ -10,7 +10,9 @@ shrinkage, update: the evidence is weighed against the forecast's prior uncertai
 
     precision  P = I + H' R^-1 H,   mean  m = P^-1 H' R^-1 (y - mu),   covariance  V = P^-1.
 
-The remaining weeks' forecast rows then get mean mu_i + u_i m_com + a_i m_net + b_i m_flight,
+Which factors are unknowns, integrated out or noise follows from their grouping keys in
+`forecasting.factors.LEVEL_FACTORS` (`persistent`, `weekly_shared`, `own`). The remaining
+weeks' forecast rows then get mean mu_i + u_i m_com + a_i m_net + b_i m_flight,
 common loading u_i sqrt(V_cc), network loading sqrt(a_i^2 V_nn + 2 a_i u_i V_nc) and flight
 loading sqrt(b_i^2 V_ff + 2 a_i b_i V_nf + 2 b_i u_i V_fc) (keeping each unit's posterior level
 variance exact; a negative flight part is absorbed by the unit's network loading, a negative
@@ -29,45 +31,135 @@ A.2; Bishop (2006), Pattern Recognition and Machine Learning, sec. 3.3.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Sequence
 
 import numpy as np
 import pandas as pd
 from scipy import sparse
 
-from planner.delivery import FLIGHT_KEY, UNIT_KEY, common_sd, network_week_sd
+from forecasting.factors import DRAWN, LevelFactor
+from planner.delivery import FLIGHT_KEY, UNIT_KEY, group_keys, loading
 
 #: columns of a posted-actuals table (data contract)
 ACTUALS_COLUMNS = ["zone", "network", "daypart", "week", "spots_aired", "impressions"]
 _Z90 = 1.2815515655446004  # standard normal 0.90 quantile (NIST/SEMATECH e-Handbook table)
 
 
+def persistent(factors: Sequence[LevelFactor] = DRAWN) -> tuple[LevelFactor, ...]:
+    """The factors past weeks teach about later weeks (no week among their keys), in draw order:
+    the posterior's factor vector is their blocks in this order (network, flight, common)."""
+    return tuple(f for f in factors if not f.weekly)
+
+
+def weekly_shared(factors: Sequence[LevelFactor] = DRAWN) -> tuple[LevelFactor, ...]:
+    """The factors drawn afresh each week and shared by several units (network-week): integrated out."""
+    return tuple(f for f in factors if f.weekly and f.shared)
+
+
+def own(factors: Sequence[LevelFactor] = DRAWN) -> tuple[LevelFactor, ...]:
+    """The unit-week's own factors: part of each posting's noise."""
+    return tuple(f for f in factors if not f.shared)
+
+
 @dataclass
 class LevelPosterior:
-    """Posterior of the network, flight and common level factors (standard-normal prior).
+    """Posterior of the persistent level factors (`persistent`: network, flight, common; standard-
+    normal prior).
 
-    `networks` (Index) and `flights` (MultiIndex zone,network,daypart) order the factor vector
-    [networks..., flights..., common] (the common factor last, when `common`); `mean` (K,) and
-    `cov` (K, K) dimensionless (factor units)."""
+    `groups` maps each factor in the vector to its groups' labels, in `persistent` order (the
+    network Index, the flight MultiIndex zone,network,daypart; the common factor, one group, only
+    when some posting loads on it); the factor vector is their blocks in that order; `mean` (K,)
+    and `cov` (K, K) dimensionless (factor units)."""
 
-    networks: pd.Index
-    flights: pd.MultiIndex
+    groups: dict
     mean: np.ndarray
     cov: np.ndarray
     observations: int
-    common: bool = False
+
+    def offset(self, name: str) -> int:
+        """Position in the factor vector of the first group of the factor called `name`."""
+        pos = 0
+        for n, labels in self.groups.items():
+            if n == name:
+                return pos
+            pos += len(labels)
+        raise KeyError(name)
+
+    @property
+    def networks(self) -> pd.Index:
+        """The networks of the network factors (the vector's first block)."""
+        return self.groups.get("network", pd.Index([], name="network"))
+
+    @property
+    def flights(self) -> pd.MultiIndex:
+        """The flights (zone, network, daypart) of the flight factors."""
+        return self.groups.get("flight", pd.MultiIndex.from_tuples([], names=FLIGHT_KEY))
+
+    @property
+    def common(self) -> bool:
+        """True when the common factor is in the vector (some posting loads on it)."""
+        return "common" in self.groups
 
 
-def level_posterior(obs: pd.DataFrame) -> LevelPosterior:
+def _posterior_groups(obs: pd.DataFrame, factors: Sequence[LevelFactor]) -> tuple[dict, dict]:
+    """({name: labels}, {name: code (J,)}) of the persistent factors posted rows load on: a factor
+    every table has always, an optional one when some loading is positive; groups sorted."""
+    labels, codes = {}, {}
+    for f in persistent(factors):
+        if f.optional and not np.any(loading(obs, f) > 0):
+            continue
+        keys = group_keys(f)
+        if not keys:
+            codes[f.name], labels[f.name] = np.zeros(len(obs), dtype=np.int64), pd.RangeIndex(1)
+        elif len(keys) == 1:
+            c, u = pd.factorize(obs[keys[0]], sort=True)
+            codes[f.name], labels[f.name] = c, pd.Index(u, name=keys[0])
+        else:
+            c, u = pd.factorize(pd.MultiIndex.from_frame(obs[keys]), sort=True)
+            codes[f.name], labels[f.name] = c, pd.MultiIndex.from_tuples(list(u), names=keys)
+    return labels, codes
+
+
+def _integrate_weekly(obs: pd.DataFrame, H: np.ndarray, r: np.ndarray, resid: np.ndarray,
+                      precision: np.ndarray, rhs: np.ndarray, factors: Sequence[LevelFactor]
+                      ) -> tuple[np.ndarray, np.ndarray]:
+    """Precision and right-hand side with the weekly shared factors (`weekly_shared`) of the posted
+    weeks integrated out of the noise (Woodbury identity). One such factor: each row loads on one
+    of its groups, so the inner matrix I + G' R^-1 G is diagonal; several: solved densely."""
+    J = len(obs)
+    parts = []
+    for f in weekly_shared(factors):
+        g = loading(obs, f)
+        if np.any(g > 0):
+            c, u = pd.factorize(pd.MultiIndex.from_frame(obs[group_keys(f)]))
+            parts.append((g, c, len(u)))
+    if not parts:
+        return precision, rhs
+    if len(parts) == 1:
+        g, nw_c, n = parts[0]
+        Gr = sparse.csr_matrix((g / r, (nw_c, np.arange(J))), shape=(n, J))  # G' R^-1
+        A = np.asarray(Gr @ H)  # (n_nw, K)
+        d = 1.0 + np.bincount(nw_c, g * g / r, minlength=n)
+        return precision - A.T @ (A / d[:, None]), rhs - A.T @ (np.asarray(Gr @ resid) / d)
+    G = sparse.hstack([sparse.csr_matrix((g, (np.arange(J), c)), shape=(J, n)) for g, c, n in parts]).tocsr()
+    Gr = (G.T.multiply(1.0 / r[None, :])).tocsr()
+    M = np.eye(G.shape[1]) + np.asarray((Gr @ G).todense())
+    A = np.asarray(Gr @ H)
+    return precision - A.T @ np.linalg.solve(M, A), rhs - A.T @ np.linalg.solve(M, np.asarray(Gr @ resid))
+
+
+def level_posterior(obs: pd.DataFrame, factors: Sequence[LevelFactor] = DRAWN) -> LevelPosterior:
     """Gaussian posterior of the level factors given posted unit-weeks.
 
     `obs`: posted rows joined with their forecast rows: `zone, network, daypart, week,
-    spots_aired, impressions, mean_impressions, airing_sd, level_sd_network, level_sd_flight,
-    level_sd_week` and optionally `level_sd_network_week`, `level_sd_common` (impressions per
-    spot). Rows with 0
-    aired spots carry no evidence. The network-week factors of the posted weeks are integrated
-    out (they are shared by the posted units of a network in one week and say nothing of later
-    weeks): their covariance joins the noise's, inverted by the Woodbury identity (each row
-    loads on one of them, so the inner matrix is diagonal).
+    spots_aired, impressions, mean_impressions, airing_sd` and the level loadings `level_sd_<name>`
+    of `forecasting.factors.LEVEL_FACTORS` (optional ones may be absent; impressions per spot).
+    Rows with 0 aired spots carry no evidence. `factors`: the level factors in draw order
+    (`forecasting.factors.DRAWN`). The persistent factors (`persistent`) are the unknowns; the
+    weekly shared factors of the posted weeks (`weekly_shared`: shared by the posted units of a
+    group in one week, saying nothing of later weeks) are integrated out: their covariance joins
+    the noise's, inverted by the Woodbury identity; the unit-week's own factors (`own`) are part
+    of each posting's noise.
 
     References
     ----------
@@ -75,89 +167,114 @@ def level_posterior(obs: pd.DataFrame) -> LevelPosterior:
     matrix identity (e.g. Golub & Van Loan, Matrix Computations, 4th ed., sec. 2.1.4).
     """
     obs = obs[obs["spots_aired"] > 0].reset_index(drop=True)
-    net_c, nets = pd.factorize(obs["network"], sort=True)
-    flt_c, flts = pd.factorize(pd.MultiIndex.from_frame(obs[FLIGHT_KEY]), sort=True)
-    J, Nn, Nf = len(obs), len(nets), len(flts)
-    u = common_sd(obs)
-    has_common = bool(np.any(u > 0))
-    K = Nn + Nf + int(has_common)
+    labels, codes = _posterior_groups(obs, factors)
+    J = len(obs)
     if J == 0:
-        return LevelPosterior(pd.Index([], name="network"),
-                              pd.MultiIndex.from_tuples([], names=FLIGHT_KEY), np.zeros(0), np.zeros((0, 0)), 0)
+        return LevelPosterior(labels, np.zeros(0), np.zeros((0, 0)), 0)
+    K = sum(len(lab) for lab in labels.values())
     k = obs["spots_aired"].to_numpy(float)
     y = obs["impressions"].to_numpy(float) / k
     resid = y - obs["mean_impressions"].to_numpy(float)
-    r = obs["level_sd_week"].to_numpy(float) ** 2 + obs["airing_sd"].to_numpy(float) ** 2 / k
+    r = np.zeros(J)
+    for f in own(factors):
+        r = r + loading(obs, f) ** 2
+    r = r + obs["airing_sd"].to_numpy(float) ** 2 / k
     r = np.maximum(r, 1e-12 * np.maximum(obs["mean_impressions"].to_numpy(float) ** 2, 1.0))
     H = np.zeros((J, K))
-    H[np.arange(J), net_c] = obs["level_sd_network"].to_numpy(float)
-    H[np.arange(J), Nn + flt_c] = obs["level_sd_flight"].to_numpy(float)
-    if has_common:
-        H[:, K - 1] = u
+    at = 0
+    for f in persistent(factors):
+        if f.name in labels:
+            H[np.arange(J), at + codes[f.name]] = loading(obs, f)
+            at += len(labels[f.name])
     Hw = H / r[:, None]
-    precision = np.eye(K) + H.T @ Hw
-    rhs = Hw.T @ resid
-    g = network_week_sd(obs)
-    if np.any(g > 0):
-        nw_c, nw_u = pd.factorize(pd.MultiIndex.from_frame(obs[["network", "week"]]))
-        Gr = sparse.csr_matrix((g / r, (nw_c, np.arange(J))), shape=(len(nw_u), J))  # G' R^-1
-        A = np.asarray(Gr @ H)  # (n_nw, K)
-        d = 1.0 + np.bincount(nw_c, g * g / r, minlength=len(nw_u))
-        precision -= A.T @ (A / d[:, None])
-        rhs -= A.T @ (np.asarray(Gr @ resid) / d)
+    precision, rhs = _integrate_weekly(obs, H, r, resid, np.eye(K) + H.T @ Hw, Hw.T @ resid,
+                                    factors)
     cov = np.linalg.inv(precision)
     cov = (cov + cov.T) / 2
-    mean = cov @ rhs
-    return LevelPosterior(pd.Index(nets, name="network"),
-                          pd.MultiIndex.from_tuples(list(flts), names=FLIGHT_KEY), mean, cov, J, has_common)
+    return LevelPosterior(labels, cov @ rhs, cov, J)
 
 
-def update_forecast(forecast: pd.DataFrame, post: LevelPosterior) -> pd.DataFrame:
+def _row_positions(out: pd.DataFrame, post: LevelPosterior, factors: Sequence[LevelFactor]) -> dict:
+    """{name: (has (n,) bool, index (n,) into the factor vector)} of each persistent factor of the
+    posterior, for rows `out` (a row of a group the postings did not reach: has False)."""
+    pos = {}
+    for f in persistent(factors):
+        if f.name not in post.groups:
+            continue
+        labels, keys = post.groups[f.name], group_keys(f)
+        if not len(labels):  # no postings: the prior
+            continue
+        if not keys:
+            at = np.zeros(len(out), dtype=np.int64)
+        elif len(keys) == 1:
+            at = labels.get_indexer(out[keys[0]])
+        else:
+            at = labels.get_indexer(pd.MultiIndex.from_frame(out[keys]))
+        has = at >= 0
+        pos[f.name] = (has, np.where(has, post.offset(f.name) + at, 0))
+    return pos
+
+
+def _posterior_parts(out: pd.DataFrame, post: LevelPosterior, factors: Sequence[LevelFactor]
+                     ) -> tuple[np.ndarray, dict]:
+    """(shift (n,) impressions, {name: new squared loading (n,)}) of rows `out` (`update_forecast`).
+
+    Each unit's posterior level variance is kept exact: along the chain of persistent factors from
+    the most specific (most keys: flight) to the least (common), a factor's part is its own
+    w^2 V + 2 w w' V' with every later factor of the chain, plus the previous part where it is
+    negative (the evidence pins the sum, not its parts); the last part is floored at 0."""
+    m, V = post.mean, post.cov
+    pos = _row_positions(out, post, factors)
+    kept = persistent(factors)
+    w = {f.name: loading(out, f) for f in kept}
+    shift = None
+    for f in kept:
+        if f.name in pos:
+            has, idx = pos[f.name]
+            term = np.where(has, w[f.name] * m[idx] if len(m) else 0.0, 0.0)
+            shift = term if shift is None else shift + term
+
+    def cov(i: str, j: str):
+        if i not in pos or j not in pos:
+            return 1.0 if i == j else 0.0
+        (hi, xi), (hj, xj) = pos[i], pos[j]
+        return np.where(hi & hj, V[xi, xj], 1.0 if i == j else 0.0)
+
+    chain = sorted(kept, key=lambda f: -len(group_keys(f)))
+    parts, prev = {}, None
+    for t, f in enumerate(chain):
+        a = w[f.name]
+        part = a * a * cov(f.name, f.name)
+        for g in chain[t + 1:]:
+            part = part + 2 * a * w[g.name] * cov(f.name, g.name)
+        if prev is not None:
+            part = part + np.minimum(prev, 0.0)
+        parts[f.name], prev = np.maximum(part, 0.0), part
+    return (np.zeros(len(out)) if shift is None else shift), parts
+
+
+def update_forecast(forecast: pd.DataFrame, post: LevelPosterior, factors: Sequence[LevelFactor] = DRAWN
+                    ) -> pd.DataFrame:
     """Forecast rows with the level factors' posterior folded in (module docstring).
 
-    Changes `mean_impressions`, `level_sd_common`, `level_sd_network`, `level_sd_flight`,
-    `level_sd`, `mean_rating` and the normal-approximation `q10_impressions`/`q90_impressions`;
-    impressions per spot.
+    Changes `mean_impressions`, the persistent factors' loadings (`level_sd_network`,
+    `level_sd_flight`, `level_sd_common` when the table has it), `level_sd`, `mean_rating` and the
+    normal-approximation `q10_impressions`/`q90_impressions`; impressions per spot. `factors` as
+    in `level_posterior`.
     """
     out = forecast.copy()
-    Nn = len(post.networks)
-    ni = post.networks.get_indexer(out["network"]) if Nn else np.full(len(out), -1)
-    fi = (post.flights.get_indexer(pd.MultiIndex.from_frame(out[FLIGHT_KEY]))
-          if len(post.flights) else np.full(len(out), -1))
-    a = out["level_sd_network"].to_numpy(float)
-    b = out["level_sd_flight"].to_numpy(float)
-    c = out["level_sd_week"].to_numpy(float)
-    u = common_sd(out)
-    m = post.mean
-    V = post.cov
-    hn, hf = ni >= 0, fi >= 0
-    gi = np.where(hf, Nn + fi, 0)
-    nidx = np.where(hn, ni, 0)
-    shift = np.where(hn, a * m[nidx] if Nn else 0.0, 0.0) + np.where(hf, b * m[gi] if len(m) else 0.0, 0.0)
-    vnn = np.where(hn, V[nidx, nidx] if Nn else 1.0, 1.0)
-    vff = np.where(hf, V[gi, gi] if len(m) else 1.0, 1.0)
-    vnf = np.where(hn & hf, V[nidx, gi] if len(m) else 0.0, 0.0)
-    vcc, vnc, vfc = 1.0, 0.0, 0.0
-    if post.common:
-        shift = shift + u * m[-1]
-        vcc = V[-1, -1]
-        vnc = np.where(hn, V[nidx, -1] if Nn else 0.0, 0.0)
-        vfc = np.where(hf, V[gi, -1], 0.0)
-    # Keep each unit's posterior level variance exact: the flight part takes b^2 Vff + 2ab Vnf
-    # + 2bu Vfc, the network part a^2 Vnn + 2au Vnc, the common part u^2 Vcc; a negative part
-    # (evidence pins the sum, not its parts) is absorbed by the next one (flight -> network ->
-    # common).
-    flt_part = b * b * vff + 2 * a * b * vnf + 2 * b * u * vfc
-    net_part = a * a * vnn + 2 * a * u * vnc + np.minimum(flt_part, 0.0)
-    com_part = np.maximum(u * u * vcc + np.minimum(net_part, 0.0), 0.0)
-    new_b2, new_a2 = np.maximum(flt_part, 0.0), np.maximum(net_part, 0.0)
+    shift, parts = _posterior_parts(out, post, factors)
     out["mean_impressions"] = np.maximum(out["mean_impressions"].to_numpy(float) + shift, 0.0)
-    out["level_sd_network"] = np.sqrt(new_a2)
-    out["level_sd_flight"] = np.sqrt(new_b2)
-    if "level_sd_common" in out:
-        out["level_sd_common"] = np.sqrt(com_part)
-    g = network_week_sd(out)
-    level_sd = np.sqrt(new_a2 + new_b2 + com_part + c ** 2 + g ** 2)
+    for f in persistent(factors):
+        if not f.optional or f.table_column in out:
+            out[f.table_column] = np.sqrt(parts[f.name])
+    level_var = None
+    for f in persistent(factors):
+        level_var = parts[f.name] if level_var is None else level_var + parts[f.name]
+    for f in factors:
+        if f.weekly:
+            level_var = level_var + loading(out, f) ** 2
+    level_sd = np.sqrt(level_var)
     out["level_sd"] = level_sd
     if "universe" in out.columns and "mean_rating" in out.columns:
         with np.errstate(divide="ignore", invalid="ignore"):

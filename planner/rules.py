@@ -25,8 +25,9 @@ Charnes & Cooper (1959), Chance-constrained programming, Management Science 6(1)
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
-from typing import Callable, Sequence
+from typing import Any, Callable, Sequence
 
 import numpy as np
 import pandas as pd
@@ -46,6 +47,8 @@ class Rules:
     confidence: float | None = None
     pad: float | None = None
     extra: tuple = ()
+    #: deal-file settings of families without a field above, by [mix] key (`Mix.extra`)
+    settings: dict = field(default_factory=dict)
 
     @property
     def risk_rule(self) -> str:
@@ -113,11 +116,51 @@ def share_block(kind: str, column: pd.Series, shares: dict, *, cap: bool) -> Row
     return RowBlock(kind, code, -sh, lower, upper, names)
 
 
+def is_int(v: Any) -> bool:
+    """True for a whole number read from a file (a bool is not one)."""
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def is_num(v: Any) -> bool:
+    """True for a finite number read from a file (a bool is not one)."""
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(float(v))
+
+
+@dataclass(frozen=True)
+class DealFile:
+    """A deal file's [mix] table being read (`RuleFamily.parse_mix`): `where` names the file
+    (``deals/NAME.toml``); the scenario's names a setting may refer to."""
+
+    where: str
+    zones: Sequence[str] = ()
+    networks: Sequence[str] = ()
+    dayparts: Sequence[str] = ()
+
+    @property
+    def at(self) -> str:
+        """The prefix of a problem with a [mix] key: ``deals/NAME.toml: [mix]``."""
+        return f"{self.where}: [mix]"
+
+    def known(self, what: str) -> tuple[Sequence[str], str]:
+        """(names, the file that lists them) of `what` ("zone", "network" or "daypart")."""
+        return {"zone": (self.zones, "zones.csv"), "network": (self.networks, "networks.csv"),
+                "daypart": (self.dayparts, "the dayparts of scenario.toml")}[what]
+
+
 class RuleFamily:
     """One family of rules; the base class does nothing (every method has a neutral default)."""
 
     #: row kinds this family's blocks carry (`RowBlock.kind`)
     kinds: tuple[str, ...] = ()
+    #: the deal file's [mix] keys this family reads (the loader, `planner.scenario`, asks every
+    #: family of `FAMILIES` for its keys; any other key is refused)
+    mix_keys: tuple[str, ...] = ()
+
+    def parse_mix(self, raw: dict, deal: DealFile, problem: Callable[[str], None]) -> dict:
+        """The settings of this family's keys present in the [mix] table `raw`, checked: {key: value}
+        (a key with a bad value left out); each problem in words naming the file and the key
+        (``deals/NAME.toml: [mix] KEY ...``), passed to `problem`."""
+        return {}
 
     def check(self, rules: Rules, where: str) -> list[str]:
         return []
@@ -136,6 +179,16 @@ class NetworkShareCap(RuleFamily):
     """`max_network_share`: no network carries more than this share of the plan."""
 
     kinds = ("network",)
+    mix_keys = ("max_network_share",)
+
+    def parse_mix(self, raw, deal, problem):
+        v = raw.get("max_network_share")
+        if v is None:
+            return {}
+        if not is_num(v) or not 0 < v <= 1:
+            problem(f"{deal.at} max_network_share must be a share in (0, 1], got {v!r}")
+            return {}
+        return {"max_network_share": float(v)}
 
     def check(self, rules, where):
         v = rules.max_network_share
@@ -166,6 +219,35 @@ class DaypartShares(RuleFamily):
     """`daypart_min_share` / `daypart_max_share`: a daypart's share of the plan at least / at most."""
 
     kinds = ("daypart_min", "daypart_max")
+    mix_keys = ("daypart_min_share", "daypart_max_share")
+
+    def parse_mix(self, raw, deal, problem):
+        out: dict[str, dict[str, float]] = {}
+        for key in self.mix_keys:
+            v = raw.get(key)
+            if v is None:
+                continue
+            if not isinstance(v, dict):
+                problem(f"{deal.at} {key} must be a table of daypart = share")
+                continue
+            shares: dict[str, float] = {}
+            for dp, s in v.items():
+                if dp not in deal.dayparts:
+                    problem(f"{deal.at} {key}: unknown daypart {dp!r} (dayparts: {', '.join(deal.dayparts)})")
+                elif not is_num(s) or not 0 <= s <= 1:
+                    problem(f"{deal.at} {key}.{dp} must be a share in [0, 1], got {s!r}")
+                else:
+                    shares[dp] = float(s)
+            out[key] = shares
+        mins, maxs = out.get("daypart_min_share", {}), out.get("daypart_max_share", {})
+        total = sum(mins.values())
+        if total > 1 + 1e-9:
+            problem(f"{deal.at} daypart_min_share shares sum to {total:.3g}, more than 1")
+        for dp, lo in mins.items():
+            hi = maxs.get(dp)
+            if hi is not None and lo > hi:
+                problem(f"{deal.at} daypart {dp!r}: min share {lo} is above max share {hi}")
+        return out
 
     def check(self, rules, where):
         out = [f"{where}: [mix] {kind}.{k} must be a share in [0, 1], got {v!r}"
@@ -211,6 +293,16 @@ class WeeklyPacing(RuleFamily):
     """`weekly_tolerance`: each flight week within +-tol of even pacing (T / W, W flight weeks)."""
 
     kinds = ("pacing_max", "pacing_min")
+    mix_keys = ("weekly_tolerance",)
+
+    def parse_mix(self, raw, deal, problem):
+        v = raw.get("weekly_tolerance")
+        if v is None:
+            return {}
+        if not is_num(v) or v < 0:
+            problem(f"{deal.at} weekly_tolerance must be a number >= 0, got {v!r}")
+            return {}
+        return {"weekly_tolerance": float(v)}
 
     def check(self, rules, where):
         v = rules.weekly_tolerance
@@ -303,6 +395,24 @@ class Scope:
 class Exclusions(RuleFamily):
     """`exclude_networks` / `exclude_zones`: units of these networks or zones are not bought."""
 
+    mix_keys = ("exclude_networks", "exclude_zones")
+
+    def parse_mix(self, raw, deal, problem):
+        out = {}
+        for key, what in (("exclude_networks", "network"), ("exclude_zones", "zone")):
+            v = raw.get(key)
+            if v is None:
+                continue
+            if not isinstance(v, list) or any(not isinstance(x, str) for x in v):
+                problem(f"{deal.at} {key} must be a list of {what} names")
+                continue
+            known, source = deal.known(what)
+            for x in v:
+                if x not in known:
+                    problem(f"{deal.at} {key}: unknown {what} {x!r} (not in {source})")
+            out[key] = tuple(v)
+        return out
+
     def keep(self, scope: Scope, units: pd.DataFrame) -> np.ndarray:
         """Boolean mask (rows of `units`) of the units the exclusions leave."""
         return (~units["network"].isin(list(scope.exclude_networks))
@@ -322,6 +432,17 @@ class Exclusions(RuleFamily):
 
 class SpotCap(RuleFamily):
     """`max_spots_per_unit`: at most this many spots of one unit-week."""
+
+    mix_keys = ("max_spots_per_unit",)
+
+    def parse_mix(self, raw, deal, problem):
+        v = raw.get("max_spots_per_unit")
+        if v is None:
+            return {}
+        if not is_int(v) or v < 1:
+            problem(f"{deal.at} max_spots_per_unit must be a whole number >= 1, got {v!r}")
+            return {}
+        return {"max_spots_per_unit": int(v)}
 
     def cap(self, scope: Scope, avail: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(ub, capped): spots that may be bought of each unit (avails left, capped) and where the cap cuts."""
@@ -346,6 +467,21 @@ EXCLUSIONS, SPOT_CAP = Exclusions(), SpotCap()
 ROW_FAMILIES: tuple[RuleFamily, ...] = (NETWORK_SHARE, DAYPART_SHARES, WEEKLY_PACING)
 #: every family, in the order their problems, binding rows and relaxations are told
 FAMILIES: tuple[RuleFamily, ...] = (NETWORK_SHARE, DAYPART_SHARES, WEEKLY_PACING, EXCLUSIONS, SPOT_CAP, RISK)
+
+
+def mix_keys(families: Sequence[RuleFamily] | None = None) -> tuple[str, ...]:
+    """The deal file's [mix] keys, every family's (`families`, default `FAMILIES`) in family order."""
+    return tuple(k for f in (FAMILIES if families is None else families) for k in f.mix_keys)
+
+
+def parse_mix(raw: dict, deal: DealFile, problem: Callable[[str], None],
+              families: Sequence[RuleFamily] | None = None) -> dict:
+    """Every family's settings read from the [mix] table `raw` ({key: value}, checked; problems
+    through `problem`), in family order (`families`, default `FAMILIES`)."""
+    out: dict = {}
+    for f in (FAMILIES if families is None else families):
+        out.update(f.parse_mix(raw, deal, problem))
+    return out
 
 
 def row_rules(rules: Rules) -> tuple:

@@ -23,7 +23,6 @@ from __future__ import annotations
 
 import difflib
 import hashlib
-import math
 import re
 import tomllib
 from dataclasses import dataclass, field
@@ -39,7 +38,10 @@ import pyarrow.compute as pc
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
+from planner import rules as rl
 from planner.errors import ScenarioError
+from planner.rules import is_int as _is_int
+from planner.rules import is_num as _is_num
 
 DEFAULT_CONFIDENCE = 0.95
 DAY_NAMES = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
@@ -49,8 +51,8 @@ _CLOCK = re.compile(r"^(\d{1,2}):(\d{2})$")
 #: the keys of a deal file (data contract, deals/NAME.toml); anything else is refused
 DEAL_KEYS = ("name", "advertiser", "demo", "impressions", "first_week", "last_week", "price_cpm", "confidence",
              "pad", "mix")
-MIX_KEYS = ("max_network_share", "daypart_min_share", "daypart_max_share", "exclude_networks",
-            "exclude_zones", "weekly_tolerance", "max_spots_per_unit")
+#: the keys of a deal file's [mix] table: every rule family's (`planner.rules.FAMILIES`, `mix_keys`)
+MIX_KEYS = rl.mix_keys()
 HISTORY_COLUMNS = ("zone", "network", "demo", "date", "quarter_hour", "rating")
 #: families of invented history a [history_generator] table may name (`family`; absent: "profile")
 GENERATOR_FAMILIES = ("profile", "drift")
@@ -139,6 +141,8 @@ class Mix:
     exclude_zones: tuple[str, ...] = ()
     weekly_tolerance: float | None = None
     max_spots_per_unit: int | None = None
+    #: settings of rule families without a field above, by [mix] key (`planner.rules`)
+    extra: dict[str, Any] = field(default_factory=dict)
 
 
 @dataclass
@@ -378,14 +382,6 @@ def _as_date(value: Any) -> date:
     raise ValueError(f"must be a date (YYYY-MM-DD), got {value!r}")
 
 
-def _is_int(v: Any) -> bool:
-    return isinstance(v, int) and not isinstance(v, bool)
-
-
-def _is_num(v: Any) -> bool:
-    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(float(v))
-
-
 # ----------------------------------------------------------------------------- scenario.toml
 
 def _parse_dayparts(raw: Any, problems: _Problems) -> list[Daypart]:
@@ -543,63 +539,16 @@ def _parse_deal(path: Path, raw: dict, *, weeks: int, demos: Sequence[str], zone
 
 
 def _parse_mix(f: str, raw: Any, *, zones, networks, dayparts, problems: _Problems) -> Mix:
+    """The deal's [mix] table: each rule family of `planner.rules.FAMILIES` reads and checks its
+    own keys (`RuleFamily.parse_mix`); a key no family reads is a problem."""
     if not isinstance(raw, dict):
         problems.add(f"{f}: [mix] must be a table")
         return Mix()
-    _unknown_keys(f, raw, MIX_KEYS, problems, "[mix]")
-    mix = Mix()
-    v = raw.get("max_network_share")
-    if v is not None:
-        if not _is_num(v) or not 0 < v <= 1:
-            problems.add(f"{f}: [mix] max_network_share must be a share in (0, 1], got {v!r}")
-        else:
-            mix.max_network_share = float(v)
-    for key in ("daypart_min_share", "daypart_max_share"):
-        v = raw.get(key)
-        if v is None:
-            continue
-        if not isinstance(v, dict):
-            problems.add(f"{f}: [mix] {key} must be a table of daypart = share")
-            continue
-        shares: dict[str, float] = {}
-        for dp, s in v.items():
-            if dp not in dayparts:
-                problems.add(f"{f}: [mix] {key}: unknown daypart {dp!r} (dayparts: {', '.join(dayparts)})")
-            elif not _is_num(s) or not 0 <= s <= 1:
-                problems.add(f"{f}: [mix] {key}.{dp} must be a share in [0, 1], got {s!r}")
-            else:
-                shares[dp] = float(s)
-        setattr(mix, key, shares)
-    total = sum(mix.daypart_min_share.values())
-    if total > 1 + 1e-9:
-        problems.add(f"{f}: [mix] daypart_min_share shares sum to {total:.3g}, more than 1")
-    for dp, lo in mix.daypart_min_share.items():
-        hi = mix.daypart_max_share.get(dp)
-        if hi is not None and lo > hi:
-            problems.add(f"{f}: [mix] daypart {dp!r}: min share {lo} is above max share {hi}")
-    for key, known, what in (("exclude_networks", networks, "network"), ("exclude_zones", zones, "zone")):
-        v = raw.get(key)
-        if v is None:
-            continue
-        if not isinstance(v, list) or any(not isinstance(x, str) for x in v):
-            problems.add(f"{f}: [mix] {key} must be a list of {what} names")
-            continue
-        for x in v:
-            if x not in known:
-                problems.add(f"{f}: [mix] {key}: unknown {what} {x!r} (not in {_source_of(what)})")
-        setattr(mix, key, tuple(v))
-    v = raw.get("weekly_tolerance")
-    if v is not None:
-        if not _is_num(v) or v < 0:
-            problems.add(f"{f}: [mix] weekly_tolerance must be a number >= 0, got {v!r}")
-        else:
-            mix.weekly_tolerance = float(v)
-    v = raw.get("max_spots_per_unit")
-    if v is not None:
-        if not _is_int(v) or v < 1:
-            problems.add(f"{f}: [mix] max_spots_per_unit must be a whole number >= 1, got {v!r}")
-        else:
-            mix.max_spots_per_unit = int(v)
+    _unknown_keys(f, raw, rl.mix_keys(), problems, "[mix]")
+    settings = rl.parse_mix(raw, rl.DealFile(f, zones=zones, networks=networks, dayparts=dayparts), problems.add)
+    fields = {k for k in Mix.__dataclass_fields__ if k != "extra"}
+    mix = Mix(**{k: v for k, v in settings.items() if k in fields})
+    mix.extra = {k: v for k, v in settings.items() if k not in fields}
     return mix
 
 

@@ -49,9 +49,9 @@ import pandas as pd
 from scipy import sparse
 from scipy.special import ndtr
 
-from forecasting.factors import LEVEL_FACTORS
+from forecasting.factors import DRAWN, LEVEL_FACTORS
 from planner.book import over_avails_warning
-from planner.delivery import FLIGHT_KEY, OPTIONAL_LEVEL_COLS, UNIT_KEY, DeliveryModel, common_sd, network_week_sd
+from planner.delivery import OPTIONAL_LEVEL_COLS, UNIT_KEY, DeliveryModel, draw_levels, group_keys, loading
 from planner.errors import InputError
 from planner.posterior import fold_actuals
 
@@ -63,6 +63,9 @@ DEFAULT_DRAWS = 100_000
 LIABILITY_BASES = ("refund", "makegood")
 _CHUNK = 100_000
 _FORECAST_COLS = ["mean_impressions", "airing_sd", *(f.table_column for f in LEVEL_FACTORS)]
+#: the level factor drawn explicitly by the samplers (`BookModel.net_loadings`), to attribute the
+#: book's tail to its groups; every other factor's part is drawn jointly (`BookModel.other_cov`)
+EXPLICIT = "network"
 
 
 # --------------------------------------------------------------------------- shocks
@@ -258,14 +261,15 @@ def build_book_model(deals: Sequence[Any], units: pd.DataFrame) -> BookModel:
     x = units["spots"].to_numpy(float)
     mean = np.bincount(deal_c, dm.m * x, minlength=D)
     lin = np.bincount(deal_c, dm.v_lin * x, minlength=D)
-    networks = [str(n) for n in dm.networks]
-    net_load = sparse.csr_matrix((dm.a_net * x, (deal_c, dm.net_code)), shape=(D, len(networks))).toarray()
+    networks = [str(n) for n in dm.labels[EXPLICIT]]
+    _, a_exp, code_exp, _ = dm.factor(EXPLICIT)
+    net_load = sparse.csr_matrix((a_exp * x, (deal_c, code_exp)), shape=(D, len(networks))).toarray()
     week_c = units.groupby(UNIT_KEY, sort=False, observed=True).ngroup().to_numpy()
     other = np.diag(lin)
     for name, a, code, n in dm.factors:
-        if name == "network":  # drawn explicitly (net_load)
+        if name == EXPLICIT:  # drawn explicitly (net_load)
             continue
-        if name == "week":  # keyed by the unit, shared by deals holding it (a row is a deal x unit)
+        if code is None:  # a unit's own: keyed by the unit, shared by deals holding it (a row is a deal x unit)
             code, n = week_c, int(week_c.max()) + 1
         B = sparse.csr_matrix((a * x, (deal_c, code)), shape=(D, n))  # duplicates are summed
         other = other + (B @ B.T).toarray()
@@ -306,6 +310,27 @@ def fast_chunks(model: BookModel, draws: int, rng: np.random.Generator, *, chunk
         yield model.mean + dev.astype(np.float64), z_net
 
 
+def _row_blocks(model: BookModel, rows: pd.DataFrame) -> list[tuple]:
+    """Per level factor in draw order, ``(factor, loading (R,), group code (R,), groups)`` of the
+    book's hold rows for `planner.delivery.draw_levels`: the explicit factor's groups are the
+    model's (`model.networks`); the others' are numbered in order of first appearance, keyed by
+    the unit (`planner.delivery.group_keys`), so deals holding the same units share them."""
+    out = []
+    for f in DRAWN:
+        if f.name == EXPLICIT:
+            code, n = pd.Index(model.networks).get_indexer(rows["network"].astype(str)), len(model.networks)
+        else:
+            keys = group_keys(f)
+            if keys:
+                frame = rows[keys].astype({k: ("int64" if k == "week" else str) for k in keys})
+                code, uniq = pd.factorize(pd.MultiIndex.from_frame(frame))
+                n = len(uniq)
+            else:
+                code, n = np.zeros(len(rows), dtype=np.int64), 1
+        out.append((f, loading(rows, f), code, n))
+    return out
+
+
 def exact_chunks(model: BookModel, draws: int, rng: np.random.Generator, *, per_spot: bool = False,
                  chunk_cells: int = 4_000_000):
     """Yield exact draws (delivery (k, D) float64, network factors (k, N) float32) in chunks.
@@ -321,14 +346,9 @@ def exact_chunks(model: BookModel, draws: int, rng: np.random.Generator, *, per_
             k = min(_CHUNK, draws - start)
             yield np.tile(model.mean, (k, 1)), rng.standard_normal((k, N)).astype(np.float32)
         return
-    net_c = pd.Index(model.networks).get_indexer(rows["network"].astype(str))
-    flt_c, flt_u = pd.factorize(pd.MultiIndex.from_frame(rows[FLIGHT_KEY].astype(str)))
-    wk_c, wk_u = pd.factorize(pd.MultiIndex.from_frame(rows[UNIT_KEY].astype({"week": "int64"})))
-    nw_c, nw_u = pd.factorize(pd.MultiIndex.from_frame(rows[["network", "week"]].astype({"network": str, "week": "int64"})))
-    wg, wc = network_week_sd(rows), common_sd(rows)
+    blocks = _row_blocks(model, rows)
     deal_c = pd.Index(model.deals).get_indexer(rows["deal"])
     mu = rows["mean_impressions"].to_numpy(float)
-    wn, wf, ww = (rows[c].to_numpy(float) for c in ("level_sd_network", "level_sd_flight", "level_sd_week"))
     sd = rows["airing_sd"].to_numpy(float)
     p = rows["preempt_rate"].to_numpy(float)
     x = np.rint(rows["spots"].to_numpy(float)).astype(np.int64)
@@ -344,17 +364,14 @@ def exact_chunks(model: BookModel, draws: int, rng: np.random.Generator, *, per_
     else:
         agg = sparse.csr_matrix((np.ones(R), (np.arange(R), deal_c)), shape=(R, D))
         width = R
-    step = max(1, int(chunk_cells // (width + len(flt_u) + len(wk_u) + len(nw_u))))
+    # cells per draw: the rows (or spots) and the groups of the factors keyed below the network
+    # (the explicit factor's groups and a factor shared by every unit are few)
+    groups = sum(n for f, _, _, n in blocks if f.name != EXPLICIT and not f.shared_by_all)
+    step = max(1, int(chunk_cells // (width + groups)))
     for start in range(0, draws, step):
         k = min(step, draws - start)
-        z_net = rng.standard_normal((k, N))
-        z_flt = rng.standard_normal((k, len(flt_u)))
-        z_wk = rng.standard_normal((k, len(wk_u)))
-        level = mu + wn * z_net[:, net_c] + wf * z_flt[:, flt_c] + ww * z_wk[:, wk_c]  # (k, R)
-        if wg.any():
-            level += wg * rng.standard_normal((k, len(nw_u)))[:, nw_c]
-        if wc.any():
-            level += wc * rng.standard_normal((k, 1))
+        level, z_of = draw_levels(mu, blocks, k, rng)  # (k, R)
+        z_net = z_of.get(EXPLICIT, np.zeros((k, N)))
         if per_spot:
             lv = level[:, spot_row]
             aired = rng.random((k, spot_row.size)) >= p[spot_row]

@@ -7,12 +7,14 @@ import pandas as pd
 import pytest
 
 from forecasting.backtest import COMPONENTS, FACTOR_COLUMNS, factor_sd_measured_and_law
-from forecasting.factors import LEVEL_FACTORS, TABLE_COLUMNS, factor_named
+from forecasting.factors import DRAWN, LEVEL_FACTORS, TABLE_COLUMNS, factor_named
 from forecasting.pipeline import with_level_bands
+from forecasting.scoring import layout_term
 from forecasting.uncertainty import COMPONENT_KEYS
 from planner.cli.forecast_cmds import FACTOR_LABELS, _factor_sds
-from planner.delivery import OPTIONAL_LEVEL_COLS, REQUIRED
+from planner.delivery import OPTIONAL_LEVEL_COLS, REQUIRED, group_keys
 from planner.hindcast import SHARED_COLUMNS
+from planner.posterior import own, persistent, weekly_shared
 
 NAMES = ["common", "network", "network_week", "flight", "week"]  # DEVELOPERS.md, "Forecast table"
 
@@ -74,3 +76,17 @@ def test_level_sd_is_the_root_sum_of_squares_of_the_spec_columns():
     old = pd.DataFrame({"mean_impressions": [50.0], "airing_sd": [0.0], "level_sd_network": [6.0],
                         "level_sd_flight": [8.0], "level_sd_week": [0.0], "level_sd_other": [99.0]})
     assert with_level_bands(old)["level_sd"].iloc[0] == pytest.approx(10.0)
+
+
+def test_the_planner_roles_follow_the_spec():
+    """Hand-written lists (DEVELOPERS.md, "Forecast table" and "Add a level factor"): the draw order
+    of the samplers, the posterior's roles, the common factor of the refits' total check and the
+    measured-sd layout terms, each derived from the specification."""
+    assert [f.name for f in DRAWN] == ["network", "flight", "week", "network_week", "common"]
+    assert [f.name for f in persistent()] == ["network", "flight", "common"]
+    assert [f.name for f in weekly_shared()] == ["network_week"]
+    assert [f.name for f in own()] == ["week"]
+    assert [f.name for f in LEVEL_FACTORS if f.shared_by_all] == ["common"]
+    assert [group_keys(f) for f in DRAWN] == [["network"], ["zone", "network", "daypart"],
+                                            ["zone", "network", "daypart", "week"], ["network", "week"], []]
+    assert [layout_term(f) for f in LEVEL_FACTORS if f.measured] == ["network", "network_week", "unit", "own"]

@@ -197,6 +197,33 @@ def test_common_factor_moves_every_unit_and_keeps_level_variances_exact():
                                                    + r["level_sd_common"] ** 2 + 40.0 ** 2)
 
 
+
+def test_posterior_split_gives_cross_terms_to_the_most_specific_factor():
+    """The split of a posted unit's posterior level variance among its columns, worked by hand from
+    the module docstring: the flight (most specific) takes b^2 V_ff + 2ab V_nf + 2bu V_fc, the
+    network a^2 V_nn + 2au V_nc, the common u^2 V_cc (one spot posted: weak evidence, every part
+    positive, none absorbed); V from the posterior, loadings a = 80, b = 60, u = 60 as in the table."""
+    rows = [dict(zone=z, network=n, daypart="prime", week=w, demo="a", mean_impressions=1000.0, airing_sd=300.0,
+                 level_sd_network=80.0, level_sd_flight=60.0, level_sd_week=40.0, level_sd_common=60.0,
+                 level_sd=100.0) for z in ("z1", "z2") for n in ("n1", "n2") for w in range(1, 9)]
+    fc = pd.DataFrame(rows)
+    posted = fc[(fc.zone == "z1") & (fc.network == "n1") & (fc.week == 1)].copy()
+    posted["spots_aired"] = 1
+    posted["impressions"] = 0.8 * posted["mean_impressions"]
+    post = pst.level_posterior(posted)
+    V = post.cov
+    n, f = list(post.networks).index("n1"), len(post.networks) + list(post.flights).index(("z1", "n1", "prime"))
+    a, b, u = 80.0, 60.0, 60.0
+    flt = b * b * V[f, f] + 2 * a * b * V[n, f] + 2 * b * u * V[f, -1]
+    net = a * a * V[n, n] + 2 * a * u * V[n, -1]
+    com = u * u * V[-1, -1]
+    assert min(flt, net, com) > 0 and abs(V[n, f]) > 0.04
+    r = pst.update_forecast(fc, post).set_index(["zone", "network", "week"]).loc[("z1", "n1", 6)]
+    assert r["level_sd_flight"] ** 2 == pytest.approx(flt, rel=1e-10)
+    assert r["level_sd_network"] ** 2 == pytest.approx(net, rel=1e-10)
+    assert r["level_sd_common"] ** 2 == pytest.approx(com, rel=1e-10)
+
+
 # --------------------------------------------------------------------------- the re-plan
 
 def test_more_spots_aired_than_held_is_said(tmp_path):
