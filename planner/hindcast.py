@@ -303,6 +303,16 @@ def scale_planned_delivery(table: pd.DataFrame, factor: float) -> pd.DataFrame:
     return with_level_bands(table)
 
 
+def applied_table(table: pd.DataFrame, factor: float, scale: float, previous_factor: float = 1.0,
+                  previous_scale: float = 1.0) -> pd.DataFrame:
+    """The cached forecast `table` (which holds `previous_factor` and `previous_scale` from an
+    earlier `--apply`) with planned delivery times `factor` (`scale_planned_delivery`) and the
+    shared level sds times `scale` (`scale_shared_factors`) in place of those: applying twice
+    does not compound."""
+    table = scale_planned_delivery(table, factor / previous_factor)
+    return scale_shared_factors(table, scale / previous_scale)
+
+
 def hindcast_scenario(scenario, *, seed: int = 0, solver: str = "highs", apply: bool = False,
                       progress: Progress | None = None) -> dict:
     """Replay deals on the scenario's fitted forecast (fitted now when missing or stale) and write
@@ -320,8 +330,8 @@ def hindcast_scenario(scenario, *, seed: int = 0, solver: str = "highs", apply: 
     applied, factor = 1.0, 1.0
     if apply and summary.get("deals"):
         applied, factor = float(summary["scale_to_apply"]), float(summary["deal_factor_to_apply"])
-        table = scale_planned_delivery(res.table, factor / float(res.meta.get("hindcast_deal_factor", 1.0)))
-        table = scale_shared_factors(table, applied / float(res.meta.get("hindcast_scale", 1.0)))
+        table = applied_table(res.table, factor, applied, float(res.meta.get("hindcast_deal_factor", 1.0)),
+                              float(res.meta.get("hindcast_scale", 1.0)))
         folder = forecast_dir(scenario)
         write_with_atomic(folder / TABLE_FILE, lambda p: table.to_parquet(p, index=False))
         meta = dict(res.meta, hindcast_scale=applied, hindcast_deal_factor=factor)

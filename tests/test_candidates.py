@@ -306,3 +306,20 @@ def test_forecast_table_carries_the_disagreement_floor():
         t = fc.forecast_table(ONE_UNIT_UNIVERSE)
         rel = (t["level_sd_common"] / t["mean_impressions"]).to_numpy()
         np.testing.assert_allclose(rel, max(own, dis_sd), rtol=1e-9)
+
+
+def test_candidate_forecasting_only_unlike_refits_gets_no_weight():
+    """Three refits of 600 rows; candidate 'late' has forecasts only in refit 0, whose season weight
+    is 0.02 against 0.20 and 0.68 (a third of the rows, but (0.02 + 0.05) / (0.07 + 0.25 + 0.73) =
+    6.7% of the plan-like evidence, hand-worked with SEASON_FLOOR 0.05). Weighing it would confine
+    the weights to refit 0: it must get none, and 'good' (the truth's mean) nearly all. With the
+    season weights swapped (refit 0 the plan-like one) it is usable. Catches the usable share
+    counted over rows instead of the evidence."""
+    rows = _rows(np.random.default_rng(4))
+    rows["late"] = np.where(rows["fold"] == 0, rows["biased"], np.nan)
+    rows["season_weight"] = rows["fold"].map({0: 0.02, 1: 0.20, 2: 0.68})
+    comb = StackedCombiner(["good", "biased", "late"]).fit(rows)
+    assert comb.usable_ == ["good", "biased"]
+    assert comb.weights_.loc["prime", "late"] == 0.0 and comb.weights_.loc["prime", "good"] > 0.85
+    swapped = rows.assign(season_weight=rows["fold"].map({0: 0.68, 1: 0.20, 2: 0.02}))
+    assert StackedCombiner(["good", "biased", "late"]).fit(swapped).usable_ == ["good", "biased", "late"]

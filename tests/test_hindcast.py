@@ -290,3 +290,20 @@ def test_scale_planned_delivery_scales_means_and_sds_alike():
     assert r["level_sd"] == pytest.approx(0.9 * np.sqrt(1489.0))
     assert r["q90_impressions"] == pytest.approx(900.0 + norm.ppf(0.9) * 0.9 * np.sqrt(1489.0 + 2500.0))
     assert t["mean_impressions"].iloc[0] == 1000.0
+
+
+def test_applied_table_replaces_an_earlier_application():
+    """Hand-worked: a table already applied at factor 0.95 and scale 1.2 (mean 950, network sd 19 x
+    1.2 = 22.8, week sd 28.5), applied again at factor 0.9 and scale 1.5: mean 900, network sd
+    18 x 1.5 = 27, week sd 27 (shared scale does not touch it). Catches the factor left out, or
+    applied on top of the earlier one (855)."""
+    from planner.hindcast import applied_table
+
+    t = pd.DataFrame({"mean_rating": [1.9], "mean_impressions": [950.0], "airing_sd": [47.5],
+                      "level_sd_common": [0.0], "level_sd_network": [22.8], "level_sd_network_week": [0.0],
+                      "level_sd_flight": [0.0], "level_sd_week": [28.5], "level_sd": [0.0],
+                      "q10_impressions": [0.0], "q90_impressions": [0.0]})
+    r = applied_table(t, 0.9, 1.5, previous_factor=0.95, previous_scale=1.2).iloc[0]
+    assert r["mean_impressions"] == pytest.approx(900.0)
+    assert r["level_sd_network"] == pytest.approx(27.0)
+    assert r["level_sd_week"] == pytest.approx(27.0) and r["airing_sd"] == pytest.approx(45.0)
