@@ -201,6 +201,17 @@ class DaypartForecaster:
             r = np.log(a / pm)
         return np.where((c >= need) & np.isfinite(r), r, 0.0)
 
+    def naturally_short(self, history_weeks: np.ndarray, truncated: np.ndarray) -> np.ndarray:
+        """(S,) bool: series not truncated on purpose whose history at a refit's origin is as short
+        as the truncated ones' (under the longest `truncate_weeks`) and under half the refit's
+        typical length: a network launched after the refit's origin, a series that started late.
+        Their held-out errors join the truncated ones' (how short histories degrade, by
+        ``history_weeks``) instead of the full-history units' factors, which a few unit-weeks of
+        a network the refit never saw, missing by 5-10x, would otherwise inflate for every unit."""
+        rest = history_weeks[~truncated]
+        typical = float(np.median(rest)) if rest.size else 0.0
+        return ~truncated & (history_weeks < min(float(max(self.truncate_weeks, default=0)), 0.5 * typical))
+
     def _run_fold(self, cube: ProfileCube, info: pd.DataFrame, dayparts, origin: int, gap: int,
                   weeks: int, k: int) -> FoldResult:
         rng = np.random.default_rng([self.random_state, 101, k])
@@ -216,6 +227,7 @@ class DaypartForecaster:
             keep_from = max(origin - 7 * int(lengths[pair[s]]), 0)
             train[s, :keep_from] = np.nan
         history_weeks = np.isfinite(train).any(axis=2).sum(axis=1) / 7.0
+        truncated = truncated | self.naturally_short(history_weeks, truncated)
         model = self._new_model(1000 * (k + 1)).fit(train, info, cube.day0)
         start = origin + gap
         horizon = 7 * weeks

@@ -41,7 +41,7 @@ TABLE_FILE = "forecast.parquet"
 MODEL_FILE = "model.pkl"
 META_FILE = "meta.json"
 #: bump when the model or the table changes meaning (old caches are then refitted)
-MODEL_VERSION = "7"  # 3: network-week factor; 4: common factor; 5: stacked candidates, widened law; 6: disagreement floor; 7: weights from plan-like evidence
+MODEL_VERSION = "8"  # 3: network-week factor; 4: common factor; 5: stacked candidates, widened law; 6: disagreement floor; 7: weights from plan-like evidence; 8: series launched after a refit set apart
 
 Progress = Callable[[str, float], None]
 

@@ -323,3 +323,15 @@ def test_candidate_forecasting_only_unlike_refits_gets_no_weight():
     assert comb.weights_.loc["prime", "late"] == 0.0 and comb.weights_.loc["prime", "good"] > 0.85
     swapped = rows.assign(season_weight=rows["fold"].map({0: 0.68, 1: 0.20, 2: 0.02}))
     assert StackedCombiner(["good", "biased", "late"]).fit(swapped).usable_ == ["good", "biased", "late"]
+
+
+def test_naturally_short_series_are_set_apart_hand_worked():
+    """Hand-worked: histories 0, 10, 60, 60 (truncated on purpose), 60, 30 weeks at a refit's origin;
+    the others' median is 30, so the threshold is min(26, 15) = 15 weeks: the 0- and 10-week series
+    are short (a network launched after the origin), the truncated one is already counted as such.
+    When every series is young (20 weeks each: threshold min(26, 10)) none is. Catches a launched
+    network's errors left among the full-history units' (whose factors they inflated 5-10x)."""
+    fc = DaypartForecaster()
+    got = fc.naturally_short(np.array([0.0, 10, 60, 60, 60, 30]), np.array([False, False, False, True, False, False]))
+    assert got.tolist() == [True, True, False, False, False, False]
+    assert not fc.naturally_short(np.full(3, 20.0), np.zeros(3, bool)).any()

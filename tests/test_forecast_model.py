@@ -149,3 +149,18 @@ def test_same_seed_same_table_different_seed_differs():
     pd.testing.assert_frame_equal(a, b)
     _, c = _fit(cube, info, 300, weeks=4, seed=8)
     assert not np.allclose(a["mean_rating"], c["mean_rating"])
+
+
+def test_a_network_launched_late_is_not_a_full_history_unit_in_the_refits():
+    """Synthetic history of 420 days where network n3 starts airing on day 330 (no rating before, in
+    every zone): at each refit's origin it has at most 34 days of history against about a year
+    for the others, so its held-out unit-weeks are short-history rows (`truncated`) in every
+    refit, and the law's factors are measured without them. Catches a launched network left among
+    the full-history units (its 5-10x misses then set every unit's network sd)."""
+    cube, info, _ = synthetic(seed=3)
+    launched = (info["network"] == "n3").to_numpy()
+    cube.values[launched, :330] = np.nan
+    fc, _ = _fit(cube, info, 420)
+    for f in fc.fold_results_:
+        assert f.truncated[launched].all()
+        assert (f.history_weeks[launched] < 5.0).all()
