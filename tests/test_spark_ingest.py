@@ -53,7 +53,7 @@ def spark():
         pytest.skip(why)
     try:
         # The JVM of these few small queries starts and runs faster on its first JIT tier alone
-        # and the serial collector (about 10 s less on 2 cores); the results do not depend on it.
+        # and the serial collector (about half the time on 2 cores); the results do not depend on it.
         with pytest.MonkeyPatch.context() as mp:
             mp.setenv("JAVA_TOOL_OPTIONS", " ".join(filter(None, [os.environ.get("JAVA_TOOL_OPTIONS"),
                                                                   *QUICK_JVM])))
