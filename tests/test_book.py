@@ -526,6 +526,7 @@ def test_fast_hold_read_equals_sql_order_by(tmp_path):
     conn = bk.open_book(path)
     rng = np.random.default_rng(3)
     deals = ["zeta", "Alpha", "beta\x1fodd"]
+    conn.execute("BEGIN")  # one transaction: the autocommit connection would sync the file once per row
     for d in deals:
         conn.execute("INSERT INTO deals (name, demo, guarantee, price_cpm, first_week, last_week, committed_at) "
                      "VALUES (?, 'hh', 1, 1, 1, 2, '2026-01-01')", (d,))
@@ -533,6 +534,7 @@ def test_fast_hold_read_equals_sql_order_by(tmp_path):
              int(rng.integers(1, 14))) for d in deals for _ in range(400)}
     conn.executemany("INSERT INTO holds (deal, zone, network, daypart, week, spots) VALUES (?, ?, ?, ?, ?, ?)",
                      [(*r, int(rng.integers(1, 5))) for r in sorted(rows, key=lambda r: rng.random())])
+    conn.execute("COMMIT")
     cols = ["deal", "zone", "network", "daypart", "week", "spots"]
     sql = "SELECT " + ", ".join(cols) + " FROM holds {} ORDER BY deal, week, zone, network, daypart"
     for deal in (None, "zeta", "beta\x1fodd"):

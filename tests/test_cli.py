@@ -1,7 +1,7 @@
 """The whole job through the command line, once, with nothing stubbed (planner.cli).
 
-A small invented scenario (2 zones x 2 networks, 6 plan weeks) is fitted for real
-(`planner.forecast_job.ensure_forecast`), then checked, planned, committed, stressed and reported
+A small invented scenario (3 zones x 3 networks, 8 plan weeks) is fitted for real
+(`pledge forecast fit`, once per session: tests/conftest.py), then checked, planned, committed, stressed and reported
 by `pledge` commands. Every output is compared with facts read independently from the files:
 the deal files and scenario.toml (tomllib), inventory.csv and forecast.parquet (pandas), the
 book's holds (sqlite3), the report's HTML (regular expressions), the normal law (scipy).
@@ -29,16 +29,16 @@ UNIT = ["zone", "network", "daypart", "week"]
 DRAWS = 20_000
 
 
-@pytest.fixture(scope="module")
-def fitted(tmp_path_factory):
-    """A small scenario folder fitted for real (about 5-15 s on 2 cores)."""
+@pytest.fixture()
+def fitted(small_fit, fitted_copy, tmp_path):
+    """A copy of the session's small scenario, fitted for real by `pledge forecast fit`
+    (tests/conftest.py; the copy shares its history file and its forecast is current)."""
     from planner.forecast_job import ensure_forecast
     from planner.scenario import load_scenario
-    from scenarios.folders import make_small_scenario
 
-    folder = make_small_scenario(tmp_path_factory.mktemp("cli") / "small", seed=5, n_zones=2, n_networks=2,
-                                 weeks=6)
-    assert ensure_forecast(load_scenario(folder)).fitted_now
+    assert small_fit.result.fitted_now
+    folder = fitted_copy(small_fit.folder, tmp_path / "small")
+    assert not ensure_forecast(load_scenario(folder)).fitted_now
     return folder
 
 

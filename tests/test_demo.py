@@ -14,9 +14,11 @@ from pathlib import Path
 import pytest
 
 from test_report import assert_verdict_equal, assert_verdict_facts, report_fields
+from test_report import pledge as pledge_here
 
 
 def pledge(*args, cwd=None) -> subprocess.CompletedProcess:
+    """The installed command line in a fresh interpreter (`python -m planner.cli`)."""
     return subprocess.run([sys.executable, "-m", "planner.cli", *map(str, args)], capture_output=True, text=True,
                           cwd=cwd, timeout=900)
 
@@ -143,6 +145,7 @@ def test_demo_bad_option_leaves_the_book_alone(demo_run, bad):
 
 
 def test_demo_rejects_a_negative_seed_in_one_line(tmp_path):
+    """In a fresh interpreter: the entry point's parse error is one line, exit 2, no traceback."""
     r = pledge("demo", "--out", tmp_path / "d", "--seed", "-1")
     assert r.returncode == 2
     assert r.stderr.strip().count("\n") == 0 and "--seed" in r.stderr and "Traceback" not in r.stderr
@@ -153,7 +156,7 @@ def test_demo_refuses_a_folder_that_is_not_a_demo(tmp_path):
     folder = tmp_path / "mine"
     folder.mkdir()
     (folder / "notes.txt").write_text("not a demo")
-    r = pledge("demo", "--out", folder)
+    r = pledge_here("demo", "--out", folder)
     assert r.returncode == 2
     assert "not a pledge demo folder" in r.stderr and "Traceback" not in r.stderr
     assert (folder / "notes.txt").read_text() == "not a demo"  # left as it was
@@ -162,5 +165,5 @@ def test_demo_refuses_a_folder_that_is_not_a_demo(tmp_path):
 def test_demo_refuses_a_file(tmp_path):
     f = tmp_path / "afile"
     f.write_text("x")
-    r = pledge("demo", "--out", f)
+    r = pledge_here("demo", "--out", f)
     assert r.returncode == 2 and "not a folder" in r.stderr

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import json
+import shutil
 
 import numpy as np
 import pandas as pd
@@ -16,17 +17,13 @@ CONTRACT = ["zone", "network", "daypart", "week", "demo", "universe", "mean_rati
 
 
 @pytest.fixture(scope="module")
-def fitted_small(small_scenario, tmp_path_factory):
-    import shutil
-
-    from planner.forecast_job import ensure_forecast
+def fitted_small(small_fit, fitted_copy, tmp_path_factory):
+    """A copy of the session's fitted small scenario (tests/conftest.py: fitted once by `pledge
+    forecast fit`), its scenario, and the `ForecastResult` that fit returned."""
     from planner.scenario import load_scenario
 
-    dest = tmp_path_factory.mktemp("fc") / "small"
-    shutil.copytree(small_scenario, dest, ignore=shutil.ignore_patterns("forecast"))
-    scn = load_scenario(dest)
-    first = ensure_forecast(scn)
-    return dest, scn, first
+    dest = fitted_copy(small_fit.folder, tmp_path_factory.mktemp("fc") / "small")
+    return dest, load_scenario(dest), small_fit.result
 
 
 def test_table_follows_the_contract(fitted_small):
@@ -203,10 +200,11 @@ def test_demo_forecast_table(demo_fitted):
     assert rel[short].median() > rel[~short].median()
 
 
-def test_cli_fit_text_reports_the_refit_totals(small_scenario, scenario_copy, capsys):
-    dest = scenario_copy(small_scenario)
-    assert main(["forecast", "fit", str(dest)]) == 0
-    out = " ".join(capsys.readouterr().out.split())  # undo the console's line wrapping
+def test_cli_fit_text_reports_the_refit_totals(small_fit):
+    """What `pledge forecast fit` printed (the session's fit, tests/conftest.py) against the
+    meta.json it wrote."""
+    dest = small_fit.folder
+    out = " ".join(small_fit.printed.split())  # undo the console's line wrapping
     cal = json.loads((dest / "forecast" / "meta.json").read_text())["fit"]["calibration"]
     assert "held-out total of each refit" in out
     for day, t in cal["leave_one_fold_out_total"].items():
@@ -217,6 +215,25 @@ def test_cli_fit_text_reports_the_refit_totals(small_scenario, scenario_copy, ca
     assert ("was widened by an sd of" in out) == (le["common_widened_by_sd"] > 0)
     if cal["total_z_rms"] > 1.0:
         assert le["common_widened_by_sd"] > 0
+
+
+def test_ensure_forecast_fits_when_missing_stale_or_forced_and_reads_the_cache_otherwise(
+        fitted_small, scenario_copy, monkeypatch):
+    """`ensure_forecast` calls `fit_forecast` (stubbed here: the fit itself is the session's) when
+    the folder has no forecast, when the fit key differs (another seed) and under `force`, and
+    only then. Catches a cache that is never (or always) refitted."""
+    import planner.forecast_job as fj
+    from planner.scenario import load_scenario
+
+    dest, scn, first = fitted_small
+    calls = []
+    monkeypatch.setattr(fj, "fit_forecast", lambda scenario, **kw: calls.append(kw) or "fitted")
+    assert not fj.ensure_forecast(scn).fitted_now and calls == []
+    assert fj.ensure_forecast(scn, seed=3) == "fitted" and calls[-1]["seed"] == 3
+    assert fj.ensure_forecast(scn, force=True) == "fitted" and len(calls) == 2
+    bare = scenario_copy(dest, "bare")
+    shutil.rmtree(bare / "forecast")
+    assert fj.ensure_forecast(load_scenario(bare)) == "fitted" and len(calls) == 3
 
 
 def test_shared_error_caution_follows_the_chi_square_test():

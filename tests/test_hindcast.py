@@ -66,16 +66,13 @@ def test_reliability_table_counts_claims_and_outcomes():
 
 
 @pytest.fixture(scope="module")
-def fitted_small(small_scenario, tmp_path_factory):
-    import shutil
-
+def fitted_small(small_fitted, fitted_copy, tmp_path_factory):
+    """A copy of the session's fitted small scenario (tests/conftest.py) and its fitted model."""
     from planner.forecast_job import ensure_forecast, load_model
     from planner.scenario import load_scenario
 
-    dest = tmp_path_factory.mktemp("hind") / "small"
-    shutil.copytree(small_scenario, dest)
-    sc = load_scenario(dest)
-    ensure_forecast(sc)
+    sc = load_scenario(fitted_copy(small_fitted, tmp_path_factory.mktemp("hind") / "small"))
+    assert not ensure_forecast(sc).fitted_now  # the session's fit, current in the copy
     return sc, load_model(sc)
 
 

@@ -5,30 +5,42 @@ browser test is skipped, unless PLEDGE_REQUIRE_BROWSER=1 (set by CI), when it fa
 """
 from __future__ import annotations
 
+import contextlib
 import html
+import io
 import json
 import os
 import re
 import shutil
-import subprocess
-import sys
 from html.parser import HTMLParser
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 import pandas as pd
 import pytest
 
 from planner import workflows as wf
+from planner.cli import main
 
 VERDICT_KEYS = ("guarantee", "expected_impressions", "probability_of_delivery", "confidence", "cost",
                 "revenue", "margin", "max_guarantee")
 
 
-def pledge(*args: str, cwd: Path | None = None) -> subprocess.CompletedProcess:
-    """Run the real command line in a fresh interpreter."""
-    return subprocess.run([sys.executable, "-m", "planner.cli", *map(str, args)], capture_output=True, text=True,
-                          cwd=cwd, timeout=600)
+class Ran(NamedTuple):
+    returncode: int
+    stdout: str
+    stderr: str
+
+
+def pledge(*args) -> Ran:
+    """Run the command line in this process (`planner.cli.main`, what the `pledge` script calls),
+    stdout and stderr captured. The installed script in a fresh interpreter is run by
+    tests/test_demo.py and tests/test_book.py."""
+    out, err = io.StringIO(), io.StringIO()
+    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+        code = main([str(a) for a in args])
+    return Ran(code, out.getvalue(), err.getvalue())
 
 
 def pledge_json(*args: str) -> dict:
@@ -141,17 +153,13 @@ def assert_verdict_facts(fields: dict, folder: Path, deal: str, booked: bool, dr
 
 # ----------------------------------------------------------------------------------------------
 @pytest.fixture(scope="module")
-def booked_report(small_scenario, tmp_path_factory):
-    """A copy of the small scenario with its first deal committed, the checks made the way a desk
-    would make them, and the report written by the command line."""
+def booked_report(small_fitted, fitted_copy, tmp_path_factory):
+    """A copy of the session's fitted small scenario (tests/conftest.py) with its first deal
+    committed, the checks made the way a desk would make them, and the report written by the
+    command line."""
     from planner.scenario import load_scenario
 
-    folder = tmp_path_factory.mktemp("report") / "small"
-    shutil.copytree(small_scenario, folder, ignore=shutil.ignore_patterns("book.sqlite*"))
-    # Link the history instead of copying it: a forecast another test already fitted in the
-    # shared folder (keyed on the history file) then stays current in this copy.
-    (folder / "history.parquet").unlink()
-    (folder / "history.parquet").symlink_to((Path(small_scenario) / "history.parquet").resolve())
+    folder = fitted_copy(small_fitted, tmp_path_factory.mktemp("report") / "small")
     names = sorted(load_scenario(folder).deals)
     first, rest = names[0], names[1:]
     checks = {first: pledge_json("check", folder, first, "--frontier")}

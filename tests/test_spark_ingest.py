@@ -22,6 +22,7 @@ from forecasting.ingest import QH_COLUMNS, daily_profiles
 pytestmark = pytest.mark.spark
 
 REQUIRE = os.environ.get("PLEDGE_REQUIRE_SPARK", "") not in ("", "0")
+QUICK_JVM = ("-XX:TieredStopAtLevel=1", "-XX:+UseSerialGC")
 
 
 def _small_history(seed: int = 5) -> pd.DataFrame:
@@ -51,7 +52,12 @@ def spark():
             pytest.fail(f"PLEDGE_REQUIRE_SPARK is set but Spark cannot run: {why}")
         pytest.skip(why)
     try:
-        session = get_spark_session("local[1]", shuffle_partitions=1)
+        # The JVM of these few small queries starts and runs faster on its first JIT tier alone
+        # and the serial collector (about half the time on 2 cores); the results do not depend on it.
+        with pytest.MonkeyPatch.context() as mp:
+            mp.setenv("JAVA_TOOL_OPTIONS", " ".join(filter(None, [os.environ.get("JAVA_TOOL_OPTIONS"),
+                                                                  *QUICK_JVM])))
+            session = get_spark_session("local[1]", shuffle_partitions=1)
     except Exception as exc:  # the JVM did not start
         if REQUIRE:
             pytest.fail(f"PLEDGE_REQUIRE_SPARK is set but Spark did not start: {exc}")
