@@ -253,6 +253,16 @@ FAULTS: tuple[Fault, ...] = (
           "(wk >= 1) & (wk <= weeks) & (wk == np.round(wk))",
           "(wk >= 1) & (wk <= weeks + 1) & (wk == np.round(wk))",
           ("tests/test_scenario.py",)),
+    Fault("preempted-spots-billed",
+          "allocator: the objective and the plan cost at the card rate (preempted spots billed)",
+          "return self.rate * (1.0 - self.model.p)",
+          "return self.rate",
+          ("tests/test_allocate.py",)),
+    Fault("cost-sd-bernoulli-dropped",
+          "plan: the billed cost's sd without the (1 - p) of the binomial variance",
+          'out["cost_sd"] = out["rate"].to_numpy() * np.sqrt(xs * p * (1.0 - p))',
+          'out["cost_sd"] = out["rate"].to_numpy() * np.sqrt(xs * p)',
+          ("tests/test_deals.py",)),
 )
 
 

@@ -654,6 +654,7 @@ def _plan_summary(plan: Any, spots: pd.DataFrame) -> dict:
         "sd": num("sd"),
         "probability": num("probability"),
         "cost": cost,
+        "cost_sd": num("cost_sd"),
         "spots": int(spots["spots"].sum()),
         "margin": num("margin"),
         "solver": getattr(plan, "solver", None),

@@ -297,7 +297,8 @@ def _verdict_panel(d: DealSection, currency: str) -> str:
               "risk" if (prob is not None and conf is not None and prob < conf - 1e-9) else ""),
         _tile(name, "confidence", "required chance" if conf is not None else "risk margin", conf, fmt_pct(conf) if conf is not None
               else ("pad " + fmt_pct(v.get("pad"), 0) if v.get("pad") is not None else "\u2014")),
-        _tile(name, "cost", "minimum cost", v.get("cost"), fmt_money(v.get("cost"), currency)),
+        _tile(name, "cost", "expected cost (spots that air)", v.get("cost"), fmt_money(v.get("cost"), currency)
+              + (f" \u00b1 {fmt_money(v.get('cost_sd'), currency)}" if _num(v.get("cost_sd")) is not None else "")),
         _tile(name, "revenue", "revenue", revenue, fmt_money(revenue, currency)),
         _tile(name, "margin", "margin" + (f" ({margin_pct:.1%} of revenue)" if margin_pct is not None else ""),
               margin, fmt_money(margin, currency), "risk" if (margin is not None and margin < 0) else ""),
@@ -389,7 +390,7 @@ def _summary_table(data: ReportData) -> str:
             f"<td>{fmt_count(v.get('max_guarantee'))}</td>"
             "</tr>")
     return ('<table class="summary"><thead><tr><th>deal</th><th>deliverable</th><th>guarantee (imp.)</th>'
-            f'<th>minimum cost</th><th>margin</th><th>chance of delivery</th><th>largest guarantee (imp.)</th>'
+            f'<th>expected cost</th><th>margin</th><th>chance of delivery</th><th>largest guarantee (imp.)</th>'
             f'</tr></thead><tbody>{"".join(rows)}</tbody></table>')
 
 
@@ -597,7 +598,8 @@ def book_verdict(booked: Any) -> dict:
             "price_cpm": booked.price_cpm, "confidence": booked.confidence, "pad": booked.pad,
             "risk_rule": "pad" if booked.pad is not None else "confidence",
             "expected_impressions": booked.expected_impressions, "sd_impressions": booked.sd,
-            "probability_of_delivery": booked.probability, "cost": cost, "revenue": revenue,
+            "probability_of_delivery": booked.probability, "cost": cost,
+            "cost_sd": (getattr(booked, "summary", None) or {}).get("cost_sd"), "revenue": revenue,
             "margin": None if cost is None else revenue - cost,
             "margin_pct": None if cost is None or not revenue else (revenue - cost) / revenue,
             "cost_cpm": None if cost is None else 1000 * cost / booked.guarantee, "spots": booked.spots,

@@ -117,7 +117,7 @@ def check_cmd(
             ("chance of delivery", _pct(r.probability_of_delivery)),
             ("  claims like it on this history", _hindcast_text(claim)),
             ("  if errors were independent", f"{_pct(r.probability_if_independent)} (overstated)"),
-            ("cost", _money(r.cost, cur)),
+            ("cost (spots that air)", f"{_money(r.cost, cur)} (sd {_money(r.cost_sd, cur)})"),
             ("revenue", f"{_money(r.revenue, cur)} at {r.price_cpm:,.2f} CPM"),
             ("margin", f"{_money(r.margin, cur)} ({_pct(r.margin_pct)})"),
             ("cost per thousand guaranteed", f"{r.cost_cpm:,.2f}"),
@@ -198,7 +198,7 @@ def plan_cmd(
     print_warnings(r.warnings)
     out_console.print(_kv_table([
         ("spots", f"{_num(t['spots'])} in {_num(t['units'])} units"),
-        ("cost", _money(t["cost"], cur)),
+        ("cost (spots that air)", f"{_money(t['cost'], cur)} (sd {_money(t['cost_sd'], cur)})"),
         ("guarantee", _num(t["guarantee"])),
         ("expected delivery", f"{_num(t['expected_impressions'])} (sd {_num(t['sd_impressions'])})"),
         ("chance of delivery", _pct(t["probability_of_delivery"])),
