@@ -263,6 +263,21 @@ FAULTS: tuple[Fault, ...] = (
           'out["cost_sd"] = out["rate"].to_numpy() * np.sqrt(xs * p * (1.0 - p))',
           'out["cost_sd"] = out["rate"].to_numpy() * np.sqrt(xs * p)',
           ("tests/test_deals.py",)),
+    Fault("makegood-at-threshold-owed",
+          "make-good terms: delivery exactly at the threshold owes the shortfall",
+          "return np.where(d < terms.threshold * g, np.minimum(g - d, terms.cap * g), 0.0)",
+          "return np.where(d <= terms.threshold * g, np.minimum(g - d, terms.cap * g), 0.0)",
+          ("tests/test_terms.py",)),
+    Fault("makegood-cap-point-unclipped",
+          "expected make-good: the cap's break point not clipped to the threshold",
+          "a = min((1.0 - terms.cap) * g, b)",
+          "a = (1.0 - terms.cap) * g",
+          ("tests/test_terms.py",)),
+    Fault("makegood-cash-at-cost",
+          "expected make-good: cash settled at the plan's cost per impression, not the CPM",
+          "    cash = float(price_cpm) / 1000.0",
+          "    cash = float(cost_per_impression)",
+          ("tests/test_terms.py",)),
 )
 
 

@@ -17,6 +17,7 @@ import pandas as pd
 from scipy.special import ndtr
 
 from planner import allocate as al
+from planner import terms as tm
 from planner.delivery import UNIT_KEY, DeliveryModel
 from planner.errors import InputError
 from planner.rules import EXCLUSIONS, RISK, SPOT_CAP, Rules, Scope, row_rules
@@ -39,6 +40,8 @@ PAD_CHANCE_NOTE = 0.95
 #: the order (the deal, each week's Monday and Sunday, the daypart's days and clock times)
 PLAN_COLUMNS = ["zone", "network", "daypart", "week", "spots", "rate", "cost", "expected_impressions",
                 "preempt_rate", "sd_impressions", "cost_sd", "deal", "week_start", "week_end", "days", "start", "end"]
+#: the expected make-good's keys in check/plan results and their --json (`makegood_of`)
+MAKEGOOD_KEYS = ("expected_shortfall_impressions", "expected_makegood_cost", "margin_net_of_makegoods")
 _DAY_NAMES = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
 
 
@@ -125,6 +128,10 @@ class PlanResult:
     expected_impressions: float | None
     sd: float | None
     probability: float | None
+    expected_shortfall_impressions: float | None
+    expected_makegood_cost: float | None
+    margin_net_of_makegoods: float | None
+    makegood_terms: dict
     probability_if_independent: float | None
     solver: str
     gap: float | None
@@ -173,6 +180,11 @@ class CheckResult:
     cost_cpm: float | None
     target_margin: float | None
     cpm_needed: float | None
+    expected_shortfall_impressions: float | None
+    expected_makegood_cost: float | None
+    margin_net_of_makegoods: float | None
+    cpm_needed_net_of_makegoods: float | None
+    makegood_terms: dict
     max_guarantee: float
     max_guarantee_lp: float
     binding: list
@@ -432,6 +444,21 @@ def _summary(run: DealRun) -> dict:
                 probability_if_independent=p_ind, spots=int(x.sum()), units=int((x > 0).sum()))
 
 
+def makegood_of(run: DealRun, s: dict, target_margin: float | None = None) -> dict:
+    """The plan's expected make-good under the deal's terms (`planner.terms.makegood_summary` on
+    the plan's normal delivery law, `s` from `_summary`): expected_shortfall_impressions,
+    expected_makegood_cost, margin_net_of_makegoods, cpm_needed_net_of_makegoods (currency,
+    impressions); None values when there is no plan."""
+    deal = run.deal
+    terms = getattr(deal, "terms", None) or tm.Terms()
+    if s["cost"] is None:
+        return {"expected_shortfall_impressions": None, "expected_makegood_cost": None,
+                "margin_net_of_makegoods": None, "cpm_needed_net_of_makegoods": None, "terms": terms.as_dict()}
+    return tm.makegood_summary(mean=s["expected_impressions"], sd=s["sd"], guarantee=deal.impressions,
+                               cost=s["cost"], revenue=s["revenue"], price_cpm=deal.price_cpm, terms=terms,
+                               target_margin=target_margin)
+
+
 def _verdict(run: DealRun, binding_reason: str = "") -> str:
     a = run.allocation
     if a.feasible:
@@ -492,8 +519,9 @@ def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
             reason += " (" + "; ".join(binding[:3]) + ")"
     spots = _spots_frame(run)
     pacing = pacing_table(run)
+    mg = makegood_of(run, s)
     totals = {"spots": s["spots"], "units": s["units"], "cost": s["cost"], "cost_sd": s["cost_sd"],
-              "expected_impressions": s["expected_impressions"],
+              **{k: mg[k] for k in MAKEGOOD_KEYS}, "expected_impressions": s["expected_impressions"],
               "sd_impressions": s["sd"], "guarantee": deal.impressions, "probability_of_delivery": s["probability"],
               "revenue": s["revenue"], "margin": s["margin"], "margin_pct": s["margin_pct"]}
     return PlanResult(
@@ -503,6 +531,7 @@ def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
         pacing=pacing, totals=totals, cost=s["cost"], cost_sd=s["cost_sd"], revenue=s["revenue"], margin=s["margin"],
         margin_pct=s["margin_pct"], expected_impressions=s["expected_impressions"], sd=s["sd"],
         probability=s["probability"], probability_if_independent=s["probability_if_independent"],
+        **{k: mg[k] for k in MAKEGOOD_KEYS}, makegood_terms=mg["terms"],
         solver=a.solver, gap=a.gap, lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts,
         iterations=a.iterations, build_seconds=a.build_seconds, solve_seconds=a.solve_seconds,
         fitted_forecast_first=run.fitted_now, held_spots_excluded=run.held_spots, binding=binding,
@@ -560,6 +589,7 @@ def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=a
                    f"({100 * max_g / deal.impressions:.0f}% of the {deal.impressions:,.0f} asked)"]
         binding += al.diagnose(prob, current=mg.value, levers=scope_levers(run, mg.value)) + scope_diagnosis(run)
     cpm = al.cpm_needed(a.cost, deal.impressions, target_margin) if (a.feasible and target_margin is not None) else None
+    owed = makegood_of(run, s, target_margin)
     fr = None
     if with_frontier:
         sizes = [deal.impressions * f for f in FRONTIER_SIZES] + ([max_g] if max_g > 0 else [])
@@ -573,7 +603,9 @@ def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=a
         probability_of_delivery=s["probability"], probability_if_independent=s["probability_if_independent"],
         cost=s["cost"], cost_sd=s["cost_sd"], revenue=s["revenue"], margin=s["margin"], margin_pct=s["margin_pct"],
         cost_cpm=1000 * s["cost"] / deal.impressions if s["cost"] is not None else None,
-        target_margin=target_margin, cpm_needed=cpm, max_guarantee=max_g, max_guarantee_lp=mg.value,
+        target_margin=target_margin, cpm_needed=cpm, **{k: owed[k] for k in MAKEGOOD_KEYS},
+        cpm_needed_net_of_makegoods=owed["cpm_needed_net_of_makegoods"], makegood_terms=owed["terms"],
+        max_guarantee=max_g, max_guarantee_lp=mg.value,
         binding=binding, spots=s["spots"], units_bought=s["units"], solver=a.solver, gap=a.gap,
         lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts, iterations=a.iterations,
         build_seconds=a.build_seconds, solve_seconds=a.solve_seconds, fitted_forecast_first=run.fitted_now,

@@ -28,6 +28,7 @@ import numpy as np
 import pandas as pd
 
 from planner import plots
+from planner import terms as tm
 from planner.atomic import write_text_atomic
 
 CAUTIONS = (
@@ -305,6 +306,12 @@ def _verdict_panel(d: DealSection, currency: str) -> str:
         _tile(name, "max_guarantee", "largest deliverable guarantee", v.get("max_guarantee"),
               _imp(v.get("max_guarantee"))),
     ]
+    if _num(v.get("expected_makegood_cost")) is not None:
+        net = v.get("margin_net_of_makegoods")
+        tiles.append(_tile(name, "expected_makegood_cost", "expected make-good cost", v.get("expected_makegood_cost"),
+                           fmt_money(v.get("expected_makegood_cost"), currency)))
+        tiles.append(_tile(name, "margin_net_of_makegoods", "margin net of make-goods", net, fmt_money(net, currency),
+                           "risk" if (_num(net) is not None and float(net) < 0) else ""))
     if _num(v.get("cost_cpm")) is not None:
         tiles.append(_tile(name, "cost_cpm", "cost CPM", v.get("cost_cpm"), f"{currency} {float(v['cost_cpm']):,.2f}"))
     if _num(v.get("cpm_needed")) is not None:
@@ -588,13 +595,25 @@ def deal_section(scenario: Any, name: str, check: Any, plan: Any, in_book: bool,
         frontier_relaxed=any(isinstance(r, dict) and r.get("relaxed") for r in rows))
 
 
+def _book_makegood(booked: Any) -> dict:
+    """The held plan's expected make-good under the terms it was committed on (`planner.terms`;
+    the defaults for a deal committed before terms were stored); {} without the plan's figures."""
+    terms = tm.terms_from_dict((getattr(booked, "terms", None) or {}).get("terms"))
+    mean, sd, cost = (_num(getattr(booked, k, None)) for k in ("expected_impressions", "sd", "cost"))
+    if mean is None or sd is None or cost is None:
+        return {}
+    mg = tm.makegood_summary(mean=mean, sd=sd, guarantee=float(booked.guarantee), cost=cost,
+                             revenue=float(booked.revenue), price_cpm=float(booked.price_cpm), terms=terms)
+    return {k: mg[k] for k in ("expected_shortfall_impressions", "expected_makegood_cost", "margin_net_of_makegoods")}
+
+
 def book_verdict(booked: Any) -> dict:
     """A booked deal's answer as the book holds it (the keys of `pledge check --json` the report
     shows): its committed terms, the held plan's cost, expected delivery, sd and chance of
     delivery as committed (or as its last re-plan stored them); money in the scenario currency."""
     cost = booked.cost
     revenue = booked.revenue
-    return {"deliverable": True, "verdict": "held in the book", "guarantee": booked.guarantee,
+    return {**_book_makegood(booked), "deliverable": True, "verdict": "held in the book", "guarantee": booked.guarantee,
             "price_cpm": booked.price_cpm, "confidence": booked.confidence, "pad": booked.pad,
             "risk_rule": "pad" if booked.pad is not None else "confidence",
             "expected_impressions": booked.expected_impressions, "sd_impressions": booked.sd,
