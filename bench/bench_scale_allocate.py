@@ -45,7 +45,7 @@ def build_pulp(prob):
     r = prob.rules
     n = prob.n
     m = (prob.model.m * SCALE).tolist()
-    ub, rate = prob.ub.tolist(), prob.rate.tolist()
+    ub, rate = prob.ub.tolist(), prob.billed.tolist()
     lp = pulp.LpProblem("national_check", pulp.LpMinimize)
     x = []
     for i in range(n):

@@ -5,7 +5,9 @@ deal's flight, in the deal's demo), 0 <= x_i <= ub_i (avails less holds, capped 
 `max_spots_per_unit`). With m_i = (1 - p_i) mu_i the expected impressions of one bought spot and
 T = sum_i m_i x_i the plan's total expected impressions:
 
-- minimise   sum_i rate_i x_i
+- minimise   sum_i rate_i (1 - p_i) x_i, the expected billed cost: a preempted spot is not billed
+  (common practice), so each bought spot costs its rate with probability 1 - p_i (its sd,
+  sqrt(sum_i x_i rate_i^2 p_i (1 - p_i)), is `AllocationProblem.cost_sd`)
 - network n: sum_{i in n} m_i x_i <= max_network_share * T
 - daypart d: daypart_min_share[d] * T <= sum_{i in d} m_i x_i <= daypart_max_share[d] * T
 - week w:    (1 - tol) T / W <= sum_{i in w} m_i x_i <= (1 + tol) T / W   ("even pacing" is the
@@ -135,7 +137,20 @@ class AllocationProblem:
 
     @property
     def rate(self) -> np.ndarray:
+        """Rate card price of one spot (currency, (n,))."""
         return self.units["rate"].to_numpy(float)
+
+    @property
+    def billed(self) -> np.ndarray:
+        """Expected billed cost of one bought spot (currency, (n,)): rate x (1 - preempt_rate), a
+        preempted spot being not billed (common practice). The allocator minimises `billed @ x`."""
+        return self.rate * (1.0 - self.model.p)
+
+    def cost_sd(self, x: np.ndarray) -> float:
+        """Sd of the billed cost of spots `x` (currency): each spot airs (and is billed) or is
+        preempted independently, Bernoulli(1 - p_i), so var = sum_i x_i rate_i^2 p_i (1 - p_i)."""
+        p = self.model.p
+        return float(np.sqrt(np.sum(np.asarray(x, float) * self.rate ** 2 * p * (1.0 - p))))
 
 
 def candidate_units(units: pd.DataFrame, *, weeks, exclude_networks=(), exclude_zones=(),
@@ -237,7 +252,7 @@ class _Model:
         self.A = sp.csc_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(nrow, n))
         self.A.sum_duplicates()
         self.A_T = self.A.T.tocsr()  # for pricing: A^T y
-        self.cost_x = prob.rate.copy() if mode == "cost" else np.zeros(n)
+        self.cost_x = prob.billed if mode == "cost" else np.zeros(n)
         self.labels = labels
         self.n_struct = nrow
         self.row_lo, self.row_hi = np.concatenate(lo), np.concatenate(hi)
@@ -302,7 +317,7 @@ class _Model:
         dm = prob.model
         u = prob.units
         capacity = SIFT_CAPACITY if capacity is None else capacity
-        cpi = np.where(dm.m > 0, prob.rate / np.maximum(dm.m, 1e-12), np.inf)
+        cpi = np.where(dm.m > 0, prob.billed / np.maximum(dm.m, 1e-12), np.inf)
         g = pd.factorize(pd.MultiIndex.from_frame(u[["network", "daypart", "week"]]))[0]
         order = np.lexsort((cpi, g))
         gs = g[order]
@@ -633,7 +648,7 @@ def _solve_mip_cbc(model: _Model, gap: float, time_limit: float) -> MIPResult:
         if not np.any(col[: model.prob.n] > 0.5) and model.prob.guarantee > 0:  # stopped with no plan
             return MIPResult(False, None, None, None, status, time.perf_counter() - t0)
         mobj = re.search(r"objective value\s+" + _CBC_NUM, first)
-        obj = float(mobj.group(1)) if mobj else float(np.dot(model.prob.rate, col[: model.prob.n]))
+        obj = float(mobj.group(1)) if mobj else float(np.dot(model.prob.billed, col[: model.prob.n]))
         mlb = re.search(r"Lower bound:\s+" + _CBC_NUM, out)
         bound = float(mlb.group(1)) if mlb else obj
     return MIPResult(True, col, obj, bound, status, time.perf_counter() - t0)
@@ -655,7 +670,8 @@ def solve_mip(model: _Model, solver: str, gap: float, time_limit: float) -> MIPR
 class Allocation:
     """Result of one min-cost allocation.
 
-    x: whole spots per candidate unit (shape (n,)); cost in currency; lp_bound: the LP
+    x: whole spots per candidate unit (shape (n,)); cost: expected billed cost in currency
+    (`AllocationProblem.billed`, preempted spots not billed); lp_bound: the LP
     relaxation's cost (a lower bound); mip_bound: the integer solver's dual bound; gap:
     (cost - best bound) / cost; cuts: Kelley cuts added; iterations: LP solves.
     """
@@ -692,7 +708,7 @@ def _search_all(model: _Model, prob: AllocationProblem, lp_x: np.ndarray, x: np.
     if full.ok:
         xf = np.rint(full.x[: prob.n])
         ok_f = prob.rules.confidence is None or _slack(prob, xf, None, prob.guarantee) >= -1e-9 * prob.guarantee
-        if ok_f and float(np.dot(prob.rate, xf)) < cost:
+        if ok_f and float(np.dot(prob.billed, xf)) < cost:
             return xf, full
     return best
 
@@ -719,7 +735,7 @@ def _integer_plan(model: _Model, prob: AllocationProblem, lp: LPResult, lp_x: np
             model.add_cut(np.concatenate([x, mip.x[prob.n:]]), l0)
             x = None
             continue
-        cost = float(np.dot(prob.rate, x))
+        cost = float(np.dot(prob.billed, x))
         if restricted and cost > 0 and (cost - lp.objective) / cost > gap:
             # the neighbourhood plan misses the stated gap against the LP bound: search every column
             x, mip = _search_all(model, prob, lp_x, x, mip, cost, solver, gap, time_limit)
@@ -773,7 +789,7 @@ def allocate(prob: AllocationProblem, *, solver: str = "cbc", gap: float = DEFAU
                           status=(f"{UNDECIDED}: " if timed_out else "") + f"integer plan not found ({why})",
                           solve_seconds=time.perf_counter() - t0, lp_x=lp_x, row_duals=duals,
                           row_values=values, **base)
-    cost = float(np.dot(prob.rate, x))
+    cost = float(np.dot(prob.billed, x))
     # A bound from a MIP over the LP neighbourhood is not a global bound: use the LP bound there.
     mip_bound = None if restricted else mip.bound
     bound = max(lp.objective, mip_bound if mip_bound is not None else -np.inf)
@@ -1093,7 +1109,8 @@ def pulp_reference_model(prob: AllocationProblem, *, integer: bool = True, cuts=
     cat = pulp.LpInteger if integer else pulp.LpContinuous
     x = [pulp_variable(lp, f"x{i}", 0, float(prob.ub[i]), cat) for i in range(prob.n)]
     m = dm.m * SCALE
-    lp += pulp.lpSum(float(prob.rate[i]) * x[i] for i in range(prob.n))
+    billed = prob.billed
+    lp += pulp.lpSum(float(billed[i]) * x[i] for i in range(prob.n))
     T = pulp.lpSum(float(m[i]) * x[i] for i in range(prob.n))
     for b in row_blocks(r, prob.units, prob.weeks):
         for j in range(len(b.keys)):

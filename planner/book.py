@@ -43,6 +43,7 @@ import pandas as pd
 from planner.atomic import ordinary_mode
 from planner.errors import InputError
 from planner.scenario import Deal, Mix
+from planner.terms import Terms, terms_from_dict
 
 BOOK_FILENAME = "book.sqlite"
 UNIT_KEY = ["zone", "network", "daypart", "week"]
@@ -654,6 +655,7 @@ def _plan_summary(plan: Any, spots: pd.DataFrame) -> dict:
         "sd": num("sd"),
         "probability": num("probability"),
         "cost": cost,
+        "cost_sd": num("cost_sd"),
         "spots": int(spots["spots"].sum()),
         "margin": num("margin"),
         "solver": getattr(plan, "solver", None),
@@ -715,7 +717,8 @@ def deal_terms(deal: Any) -> dict:
     return {"advertiser": getattr(deal, "advertiser", None), "demo": deal.demo, "impressions": float(deal.impressions),
             "first_week": int(deal.first_week), "last_week": int(deal.last_week),
             "price_cpm": float(deal.price_cpm), "confidence": _opt(getattr(deal, "confidence", None)),
-            "pad": _opt(getattr(deal, "pad", None)), "mix": rules}
+            "pad": _opt(getattr(deal, "pad", None)), "mix": rules,
+            "terms": (getattr(deal, "terms", None) or Terms()).as_dict()}
 
 
 def terms_differ(booked: BookDeal, deal: Any) -> list[str]:
@@ -730,8 +733,8 @@ def terms_differ(booked: BookDeal, deal: Any) -> list[str]:
     out = []
     for key, was in then.items():
         new = now.get(key)
-        if key == "mix":
-            out += [f"mix.{k}: {was.get(k)!r} in the book, {new.get(k)!r} in the file"
+        if key in ("mix", "terms"):
+            out += [f"{key}.{k}: {was.get(k)!r} in the book, {new.get(k)!r} in the file"
                     for k in sorted(set(was) | set(new)) if was.get(k) != new.get(k)]
         elif was != new:
             fmt = (lambda v: f"{v:,.0f}") if key == "impressions" else repr
@@ -742,7 +745,8 @@ def terms_differ(booked: BookDeal, deal: Any) -> list[str]:
 
 def deal_from_book(booked: BookDeal, path: Any = None) -> Any:
     """The `planner.scenario.Deal` a committed deal was committed on (its stored terms; mix rules
-    empty for a deal committed before they were stored)."""
+    empty and make-good terms the defaults, `planner.terms.Terms()`, for a deal committed before
+    they were stored)."""
     t = booked.terms or {}
     m = t.get("mix") or {}
     mix = Mix(max_network_share=m.get("max_network_share"), daypart_min_share=dict(m.get("daypart_min_share") or {}),
@@ -752,7 +756,8 @@ def deal_from_book(booked: BookDeal, path: Any = None) -> Any:
               extra={k: v for k, v in m.items() if k not in Mix.__dataclass_fields__})
     return Deal(name=booked.name, advertiser=booked.advertiser or "", demo=booked.demo, impressions=booked.guarantee,
                 first_week=booked.first_week, last_week=booked.last_week, price_cpm=booked.price_cpm,
-                confidence=booked.confidence, pad=booked.pad, mix=mix, path=path)
+                confidence=booked.confidence, pad=booked.pad, mix=mix, path=path,
+                terms=terms_from_dict(t.get("terms")))
 
 
 def _opt(value) -> float | None:

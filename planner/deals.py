@@ -17,6 +17,7 @@ import pandas as pd
 from scipy.special import ndtr
 
 from planner import allocate as al
+from planner import terms as tm
 from planner.delivery import UNIT_KEY, DeliveryModel
 from planner.errors import InputError
 from planner.rules import EXCLUSIONS, RISK, SPOT_CAP, Rules, Scope, row_rules
@@ -38,7 +39,9 @@ PAD_CHANCE_NOTE = 0.95
 #: columns of a buy-plan CSV (`plan_frame`): the allocation's, then what a buyer needs to place
 #: the order (the deal, each week's Monday and Sunday, the daypart's days and clock times)
 PLAN_COLUMNS = ["zone", "network", "daypart", "week", "spots", "rate", "cost", "expected_impressions",
-                "preempt_rate", "sd_impressions", "deal", "week_start", "week_end", "days", "start", "end"]
+                "preempt_rate", "sd_impressions", "cost_sd", "deal", "week_start", "week_end", "days", "start", "end"]
+#: the expected make-good's keys in check/plan results and their --json (`makegood_of`)
+MAKEGOOD_KEYS = ("expected_shortfall_impressions", "expected_makegood_cost", "margin_net_of_makegoods")
 _DAY_NAMES = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
 
 
@@ -96,8 +99,10 @@ class DealRun:
 class PlanResult:
     """Whole-spot buy plan of one deal.
 
-    spots: DataFrame zone, network, daypart, week, spots, rate, cost (currency),
-    expected_impressions, preempt_rate, sd_impressions (and `sd`, the same) per bought unit;
+    spots: DataFrame zone, network, daypart, week, spots, rate (card rate of one spot), cost (the
+    expected billed cost, spots x rate x (1 - preempt_rate): preempted spots are not billed),
+    expected_impressions, preempt_rate, sd_impressions (and `sd`, the same), cost_sd (currency,
+    binomial preemption) per bought unit; cost is the expected billed cost, cost_sd its sd;
     pacing: DataFrame week, expected_impressions, sd, p10, p90, even_pacing (impressions);
     totals: dict of plan totals. `deliverable` False means no plan meets the deal's rules.
     """
@@ -116,12 +121,17 @@ class PlanResult:
     pacing: pd.DataFrame
     totals: dict
     cost: float | None
+    cost_sd: float | None
     revenue: float
     margin: float | None
     margin_pct: float | None
     expected_impressions: float | None
     sd: float | None
     probability: float | None
+    expected_shortfall_impressions: float | None
+    expected_makegood_cost: float | None
+    margin_net_of_makegoods: float | None
+    makegood_terms: dict
     probability_if_independent: float | None
     solver: str
     gap: float | None
@@ -163,12 +173,18 @@ class CheckResult:
     probability_of_delivery: float | None
     probability_if_independent: float | None
     cost: float | None
+    cost_sd: float | None
     revenue: float
     margin: float | None
     margin_pct: float | None
     cost_cpm: float | None
     target_margin: float | None
     cpm_needed: float | None
+    expected_shortfall_impressions: float | None
+    expected_makegood_cost: float | None
+    margin_net_of_makegoods: float | None
+    cpm_needed_net_of_makegoods: float | None
+    makegood_terms: dict
     max_guarantee: float
     max_guarantee_lp: float
     binding: list
@@ -350,7 +366,8 @@ def _cautions(run: DealRun) -> list[str]:
 
 def _spots_frame(run: DealRun) -> pd.DataFrame:
     prob, x = run.problem, run.allocation.x
-    cols = UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "preempt_rate", "sd_impressions", "sd"]
+    cols = UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "preempt_rate", "sd_impressions", "sd",
+                       "cost_sd"]
     if x is None:
         return pd.DataFrame({c: pd.Series([], dtype=float) for c in cols})
     dm = prob.model
@@ -361,11 +378,13 @@ def _spots_frame(run: DealRun) -> pd.DataFrame:
     out = u.loc[sel, UNIT_KEY].reset_index(drop=True)
     out["spots"] = xs.astype("int64")
     out["rate"] = u.loc[sel, "rate"].to_numpy(float)
-    out["cost"] = out["spots"] * out["rate"]
+    p = dm.p[sel]
+    out["cost"] = xs * out["rate"].to_numpy() * (1.0 - p)  # preempted spots are not billed
     out["expected_impressions"] = xs * dm.m[sel]
-    out["preempt_rate"] = dm.p[sel]
+    out["preempt_rate"] = p
     out["sd_impressions"] = sd_line
     out["sd"] = sd_line
+    out["cost_sd"] = out["rate"].to_numpy() * np.sqrt(xs * p * (1.0 - p))
     return out.sort_values(UNIT_KEY).reset_index(drop=True)
 
 
@@ -413,16 +432,31 @@ def _summary(run: DealRun) -> dict:
     prob, a, deal = run.problem, run.allocation, run.deal
     revenue = deal.impressions / 1000.0 * deal.price_cpm
     if not a.feasible:
-        return dict(cost=None, revenue=revenue, margin=None, margin_pct=None, expected_impressions=None,
+        return dict(cost=None, cost_sd=None, revenue=revenue, margin=None, margin_pct=None, expected_impressions=None,
                     sd=None, probability=None, probability_if_independent=None, spots=0, units=0)
     dm, x, G = prob.model, a.x, prob.guarantee
     mean, sd = dm.mean(x), dm.sd(x)
     ind_sd = math.sqrt(dm.independent_variance(x))
     p_ind = float(ndtr((mean - G) / ind_sd)) if ind_sd > 0 else float(mean >= G)
     margin = revenue - a.cost
-    return dict(cost=a.cost, revenue=revenue, margin=margin, margin_pct=margin / revenue if revenue > 0 else None,
+    return dict(cost=a.cost, cost_sd=prob.cost_sd(x), revenue=revenue, margin=margin, margin_pct=margin / revenue if revenue > 0 else None,
                 expected_impressions=mean, sd=sd, probability=dm.probability(x, G),
                 probability_if_independent=p_ind, spots=int(x.sum()), units=int((x > 0).sum()))
+
+
+def makegood_of(run: DealRun, s: dict, target_margin: float | None = None) -> dict:
+    """The plan's expected make-good under the deal's terms (`planner.terms.makegood_summary` on
+    the plan's normal delivery law, `s` from `_summary`): expected_shortfall_impressions,
+    expected_makegood_cost, margin_net_of_makegoods, cpm_needed_net_of_makegoods (currency,
+    impressions); None values when there is no plan."""
+    deal = run.deal
+    terms = getattr(deal, "terms", None) or tm.Terms()
+    if s["cost"] is None:
+        return {"expected_shortfall_impressions": None, "expected_makegood_cost": None,
+                "margin_net_of_makegoods": None, "cpm_needed_net_of_makegoods": None, "terms": terms.as_dict()}
+    return tm.makegood_summary(mean=s["expected_impressions"], sd=s["sd"], guarantee=deal.impressions,
+                               cost=s["cost"], revenue=s["revenue"], price_cpm=deal.price_cpm, terms=terms,
+                               target_margin=target_margin)
 
 
 def _verdict(run: DealRun, binding_reason: str = "") -> str:
@@ -485,16 +519,19 @@ def plan_result(run: DealRun, explain: bool = True) -> PlanResult:
             reason += " (" + "; ".join(binding[:3]) + ")"
     spots = _spots_frame(run)
     pacing = pacing_table(run)
-    totals = {"spots": s["spots"], "units": s["units"], "cost": s["cost"], "expected_impressions": s["expected_impressions"],
+    mg = makegood_of(run, s)
+    totals = {"spots": s["spots"], "units": s["units"], "cost": s["cost"], "cost_sd": s["cost_sd"],
+              **{k: mg[k] for k in MAKEGOOD_KEYS}, "expected_impressions": s["expected_impressions"],
               "sd_impressions": s["sd"], "guarantee": deal.impressions, "probability_of_delivery": s["probability"],
               "revenue": s["revenue"], "margin": s["margin"], "margin_pct": s["margin_pct"]}
     return PlanResult(
         deal=deal.name, deliverable=a.feasible, verdict=_verdict(run), reason=reason, currency=run.scenario.currency,
         guarantee=deal.impressions, risk_rule=prob.rules.risk_rule, confidence=prob.rules.confidence,
         pad=prob.rules.pad, default_confidence_used=bool(deal.risk_default_used), spots=spots,
-        pacing=pacing, totals=totals, cost=s["cost"], revenue=s["revenue"], margin=s["margin"],
+        pacing=pacing, totals=totals, cost=s["cost"], cost_sd=s["cost_sd"], revenue=s["revenue"], margin=s["margin"],
         margin_pct=s["margin_pct"], expected_impressions=s["expected_impressions"], sd=s["sd"],
         probability=s["probability"], probability_if_independent=s["probability_if_independent"],
+        **{k: mg[k] for k in MAKEGOOD_KEYS}, makegood_terms=mg["terms"],
         solver=a.solver, gap=a.gap, lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts,
         iterations=a.iterations, build_seconds=a.build_seconds, solve_seconds=a.solve_seconds,
         fitted_forecast_first=run.fitted_now, held_spots_excluded=run.held_spots, binding=binding,
@@ -552,6 +589,7 @@ def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=a
                    f"({100 * max_g / deal.impressions:.0f}% of the {deal.impressions:,.0f} asked)"]
         binding += al.diagnose(prob, current=mg.value, levers=scope_levers(run, mg.value)) + scope_diagnosis(run)
     cpm = al.cpm_needed(a.cost, deal.impressions, target_margin) if (a.feasible and target_margin is not None) else None
+    owed = makegood_of(run, s, target_margin)
     fr = None
     if with_frontier:
         sizes = [deal.impressions * f for f in FRONTIER_SIZES] + ([max_g] if max_g > 0 else [])
@@ -563,9 +601,11 @@ def check_result(run: DealRun, *, target_margin=None, with_frontier=False, gap=a
         confidence=prob.rules.confidence, pad=prob.rules.pad, default_confidence_used=bool(deal.risk_default_used),
         expected_impressions=s["expected_impressions"], sd_impressions=s["sd"],
         probability_of_delivery=s["probability"], probability_if_independent=s["probability_if_independent"],
-        cost=s["cost"], revenue=s["revenue"], margin=s["margin"], margin_pct=s["margin_pct"],
+        cost=s["cost"], cost_sd=s["cost_sd"], revenue=s["revenue"], margin=s["margin"], margin_pct=s["margin_pct"],
         cost_cpm=1000 * s["cost"] / deal.impressions if s["cost"] is not None else None,
-        target_margin=target_margin, cpm_needed=cpm, max_guarantee=max_g, max_guarantee_lp=mg.value,
+        target_margin=target_margin, cpm_needed=cpm, **{k: owed[k] for k in MAKEGOOD_KEYS},
+        cpm_needed_net_of_makegoods=owed["cpm_needed_net_of_makegoods"], makegood_terms=owed["terms"],
+        max_guarantee=max_g, max_guarantee_lp=mg.value,
         binding=binding, spots=s["spots"], units_bought=s["units"], solver=a.solver, gap=a.gap,
         lp_bound=a.lp_bound, mip_bound=a.mip_bound, cuts=a.cuts, iterations=a.iterations,
         build_seconds=a.build_seconds, solve_seconds=a.solve_seconds, fitted_forecast_first=run.fitted_now,

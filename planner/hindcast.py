@@ -101,7 +101,7 @@ def _replay_one(scope: pd.DataFrame, deal, guarantee: float, rng: np.random.Gene
     delivered = float(np.sum(aired * units["actual_impressions"].to_numpy(float)))
     return {"guarantee": guarantee, "claimed": m.probability(x, guarantee), "expected": m.mean(x),
             "sd": m.sd(x), "shared_var": m.quadratic_variance(x), "other_var": m.linear_variance(x),
-            "delivered": delivered, "spots": int(x.sum()), "cost": float(np.sum(x * units["rate"].to_numpy(float)))}
+            "delivered": delivered, "spots": int(x.sum()), "cost": float(np.sum(aired * units["rate"].to_numpy(float)))}  # aired spots are billed
 
 
 def replay_deals(scenario, forecaster, *, fractions: Sequence[float] = FRACTIONS,

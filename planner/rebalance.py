@@ -436,10 +436,11 @@ def buy_order(held: pd.DataFrame, new: pd.DataFrame, inventory: pd.DataFrame) ->
 
     `held`: the deal's holds in the remaining weeks (`UNIT_KEY`, spots, rate); `new`: the
     re-plan (`PlanResult.spots`). Columns `UNIT_KEY`, spots (the new count; 0 releases the
-    unit-week), rate, cost, expected_impressions, preempt_rate, sd_impressions (of the new
-    count; impressions, currency), held (spots held before) and change (spots - held).
+    unit-week), rate, cost (expected billed), expected_impressions, preempt_rate, sd_impressions,
+    cost_sd (of the new count; impressions, currency), held (spots held before) and change
+    (spots - held).
     """
-    cols = UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "preempt_rate", "sd_impressions"]
+    cols = UNIT_KEY + ["spots", "rate", "cost", "expected_impressions", "preempt_rate", "sd_impressions", "cost_sd"]
     h = held[UNIT_KEY + ["spots", "rate"]].rename(columns={"spots": "held", "rate": "held_rate"})
     m = new[cols].merge(h, on=UNIT_KEY, how="outer")
     inv = inventory[UNIT_KEY + ["preempt_rate"]].astype({"week": "int64"}).rename(columns={"preempt_rate": "p"})
@@ -448,7 +449,7 @@ def buy_order(held: pd.DataFrame, new: pd.DataFrame, inventory: pd.DataFrame) ->
         m[c] = m[c].fillna(0).astype("int64")
     m["rate"] = m["rate"].fillna(m["held_rate"])
     m["preempt_rate"] = m["preempt_rate"].fillna(m["p"])
-    for c in ("cost", "expected_impressions", "sd_impressions"):
+    for c in ("cost", "expected_impressions", "sd_impressions", "cost_sd"):
         m[c] = m[c].fillna(0.0)
     m["change"] = m["spots"] - m["held"]
     return m[cols + ["held", "change"]].sort_values(UNIT_KEY).reset_index(drop=True)

@@ -28,6 +28,7 @@ import numpy as np
 import pandas as pd
 
 from planner import plots
+from planner import terms as tm
 from planner.atomic import write_text_atomic
 
 CAUTIONS = (
@@ -297,13 +298,20 @@ def _verdict_panel(d: DealSection, currency: str) -> str:
               "risk" if (prob is not None and conf is not None and prob < conf - 1e-9) else ""),
         _tile(name, "confidence", "required chance" if conf is not None else "risk margin", conf, fmt_pct(conf) if conf is not None
               else ("pad " + fmt_pct(v.get("pad"), 0) if v.get("pad") is not None else "\u2014")),
-        _tile(name, "cost", "minimum cost", v.get("cost"), fmt_money(v.get("cost"), currency)),
+        _tile(name, "cost", "expected cost (spots that air)", v.get("cost"), fmt_money(v.get("cost"), currency)
+              + (f" \u00b1 {fmt_money(v.get('cost_sd'), currency)}" if _num(v.get("cost_sd")) is not None else "")),
         _tile(name, "revenue", "revenue", revenue, fmt_money(revenue, currency)),
         _tile(name, "margin", "margin" + (f" ({margin_pct:.1%} of revenue)" if margin_pct is not None else ""),
               margin, fmt_money(margin, currency), "risk" if (margin is not None and margin < 0) else ""),
         _tile(name, "max_guarantee", "largest deliverable guarantee", v.get("max_guarantee"),
               _imp(v.get("max_guarantee"))),
     ]
+    if _num(v.get("expected_makegood_cost")) is not None:
+        net = v.get("margin_net_of_makegoods")
+        tiles.append(_tile(name, "expected_makegood_cost", "expected make-good cost", v.get("expected_makegood_cost"),
+                           fmt_money(v.get("expected_makegood_cost"), currency)))
+        tiles.append(_tile(name, "margin_net_of_makegoods", "margin net of make-goods", net, fmt_money(net, currency),
+                           "risk" if (_num(net) is not None and float(net) < 0) else ""))
     if _num(v.get("cost_cpm")) is not None:
         tiles.append(_tile(name, "cost_cpm", "cost CPM", v.get("cost_cpm"), f"{currency} {float(v['cost_cpm']):,.2f}"))
     if _num(v.get("cpm_needed")) is not None:
@@ -389,7 +397,7 @@ def _summary_table(data: ReportData) -> str:
             f"<td>{fmt_count(v.get('max_guarantee'))}</td>"
             "</tr>")
     return ('<table class="summary"><thead><tr><th>deal</th><th>deliverable</th><th>guarantee (imp.)</th>'
-            f'<th>minimum cost</th><th>margin</th><th>chance of delivery</th><th>largest guarantee (imp.)</th>'
+            f'<th>expected cost</th><th>margin</th><th>chance of delivery</th><th>largest guarantee (imp.)</th>'
             f'</tr></thead><tbody>{"".join(rows)}</tbody></table>')
 
 
@@ -587,17 +595,30 @@ def deal_section(scenario: Any, name: str, check: Any, plan: Any, in_book: bool,
         frontier_relaxed=any(isinstance(r, dict) and r.get("relaxed") for r in rows))
 
 
+def _book_makegood(booked: Any) -> dict:
+    """The held plan's expected make-good under the terms it was committed on (`planner.terms`;
+    the defaults for a deal committed before terms were stored); {} without the plan's figures."""
+    terms = tm.terms_from_dict((getattr(booked, "terms", None) or {}).get("terms"))
+    mean, sd, cost = (_num(getattr(booked, k, None)) for k in ("expected_impressions", "sd", "cost"))
+    if mean is None or sd is None or cost is None:
+        return {}
+    mg = tm.makegood_summary(mean=mean, sd=sd, guarantee=float(booked.guarantee), cost=cost,
+                             revenue=float(booked.revenue), price_cpm=float(booked.price_cpm), terms=terms)
+    return {k: mg[k] for k in ("expected_shortfall_impressions", "expected_makegood_cost", "margin_net_of_makegoods")}
+
+
 def book_verdict(booked: Any) -> dict:
     """A booked deal's answer as the book holds it (the keys of `pledge check --json` the report
     shows): its committed terms, the held plan's cost, expected delivery, sd and chance of
     delivery as committed (or as its last re-plan stored them); money in the scenario currency."""
     cost = booked.cost
     revenue = booked.revenue
-    return {"deliverable": True, "verdict": "held in the book", "guarantee": booked.guarantee,
+    return {**_book_makegood(booked), "deliverable": True, "verdict": "held in the book", "guarantee": booked.guarantee,
             "price_cpm": booked.price_cpm, "confidence": booked.confidence, "pad": booked.pad,
             "risk_rule": "pad" if booked.pad is not None else "confidence",
             "expected_impressions": booked.expected_impressions, "sd_impressions": booked.sd,
-            "probability_of_delivery": booked.probability, "cost": cost, "revenue": revenue,
+            "probability_of_delivery": booked.probability, "cost": cost,
+            "cost_sd": (getattr(booked, "summary", None) or {}).get("cost_sd"), "revenue": revenue,
             "margin": None if cost is None else revenue - cost,
             "margin_pct": None if cost is None or not revenue else (revenue - cost) / revenue,
             "cost_cpm": None if cost is None else 1000 * cost / booked.guarantee, "spots": booked.spots,

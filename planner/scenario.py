@@ -39,6 +39,7 @@ import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 
 from planner import rules as rl
+from planner import terms as tm
 from planner.errors import ScenarioError
 from planner.rules import is_int as _is_int
 from planner.rules import is_num as _is_num
@@ -50,7 +51,9 @@ _IDENT = re.compile(r"^[a-z][a-z0-9_\-]*$")
 _CLOCK = re.compile(r"^(\d{1,2}):(\d{2})$")
 #: the keys of a deal file (data contract, deals/NAME.toml); anything else is refused
 DEAL_KEYS = ("name", "advertiser", "demo", "impressions", "first_week", "last_week", "price_cpm", "confidence",
-             "pad", "mix")
+             "pad", "mix", "terms")
+#: the keys of a [terms] table (deal file, scenario.toml defaults): `planner.terms`
+TERMS_KEYS = tm.TERMS_KEYS
 #: the keys of a deal file's [mix] table: every rule family's (`planner.rules.FAMILIES`, `mix_keys`)
 MIX_KEYS = rl.mix_keys()
 HISTORY_COLUMNS = ("zone", "network", "demo", "date", "quarter_hour", "rating")
@@ -166,6 +169,8 @@ class Deal:
     mix: Mix
     path: Path
     risk_default_used: bool = False
+    #: make-good terms (`planner.terms.Terms`): the deal file's [terms] over scenario.toml's
+    terms: tm.Terms = field(default_factory=tm.Terms)
 
     @property
     def weeks(self) -> list[int]:
@@ -202,6 +207,8 @@ class Scenario:
     demos: list[str]
     history_path: Path
     history_generator: dict | None = None
+    #: scenario.toml's [terms]: the make-good terms of a deal file without its own
+    terms: tm.Terms = field(default_factory=tm.Terms)
 
     def week_start(self, w: int) -> date:
         """The Monday that starts plan week `w` (1-based)."""
@@ -493,7 +500,8 @@ def _unknown_keys(f: str, raw: dict, known: Sequence[str], problems: _Problems, 
 
 
 def _parse_deal(path: Path, raw: dict, *, weeks: int, demos: Sequence[str], zones: Sequence[str],
-                networks: Sequence[str], dayparts: Sequence[str], problems: _Problems) -> Deal | None:
+                networks: Sequence[str], dayparts: Sequence[str], problems: _Problems,
+                terms: tm.Terms | None = None) -> Deal | None:
     f = f"deals/{path.name}"
     start = len(problems.items)
     _unknown_keys(f, raw, DEAL_KEYS, problems)
@@ -529,13 +537,15 @@ def _parse_deal(path: Path, raw: dict, *, weeks: int, demos: Sequence[str], zone
     if pad is not None and (not _is_num(pad) or pad < 0):
         problems.add(f"{f}: pad must be a number >= 0, got {pad!r}")
     mix = _parse_mix(f, raw.get("mix", {}), zones=zones, networks=networks, dayparts=dayparts, problems=problems)
+    deal_terms = tm.parse_terms(raw.get("terms"), f, terms or tm.Terms(), problems.add)
     if len(problems.items) > start:
         return None
     default = conf is None and pad is None
     return Deal(name=name.strip(), advertiser=adv, demo=demo, impressions=float(imp), first_week=int(fw),
                 last_week=int(lw), price_cpm=float(cpm),
                 confidence=DEFAULT_CONFIDENCE if default else (float(conf) if conf is not None else None),
-                pad=float(pad) if pad is not None else None, mix=mix, path=path, risk_default_used=default)
+                pad=float(pad) if pad is not None else None, mix=mix, path=path, risk_default_used=default,
+                terms=deal_terms)
 
 
 def _parse_mix(f: str, raw: Any, *, zones, networks, dayparts, problems: _Problems) -> Mix:
@@ -585,13 +595,14 @@ def _read_header(folder: Path, problems: _Problems) -> dict:
         problems.add(f"{f}: preempt_rate must be a number with 0 <= p < 1, got {preempt!r}")
         preempt = 0.0
     dayparts = _parse_dayparts(cfg.get("daypart"), problems)
+    terms = tm.parse_terms(cfg.get("terms"), f, tm.Terms(), problems.add)
     generator = _parse_generator(cfg.get("history_generator"), problems)
     demos_cfg = cfg.get("demos")
     if demos_cfg is not None and (not isinstance(demos_cfg, list) or not all(isinstance(x, str) for x in demos_cfg)):
         problems.add(f"{f}: demos must be a list of demo names")
         demos_cfg = None
     return dict(name=name, first_week=first_week, weeks=weeks, currency=currency, preempt=preempt,
-                dayparts=dayparts, generator=generator, demos=demos_cfg)
+                dayparts=dayparts, generator=generator, demos=demos_cfg, terms=terms)
 
 
 def _read_zones_networks(folder: Path, problems: _Problems) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -629,7 +640,8 @@ def _read_universes(folder: Path, zone_names: list, demos_cfg: list | None,
 
 
 def _read_deals(folder: Path, problems: _Problems, **context) -> dict[str, Deal]:
-    """deals/*.toml, each checked against `context` (weeks, demos, zones, networks, dayparts)."""
+    """deals/*.toml, each checked against `context` (weeks, demos, zones, networks, dayparts, and
+    the scenario's default `terms`)."""
     deals: dict[str, Deal] = {}
     deal_dir = folder / "deals"
     if deal_dir.exists() and not deal_dir.is_dir():
@@ -746,7 +758,7 @@ def load_scenario(path: str | Path, *, allow_empty_inventory: bool = False) -> S
     problems.raise_if_any()
     # deal demos must be in universes; collected before the coverage check
     deals = _read_deals(folder, problems, weeks=h["weeks"], demos=demos, zones=zone_names, networks=network_names,
-                        dayparts=dp_names)
+                        dayparts=dp_names, terms=h["terms"])
     _check_universe_coverage(universes, zone_names, demos, problems)
     inventory = _read_inventory(folder, problems, weeks=h["weeks"], preempt=h["preempt"], zone_names=zone_names,
                                 network_names=network_names, dp_names=dp_names, allow_empty=allow_empty_inventory)
@@ -757,7 +769,8 @@ def load_scenario(path: str | Path, *, allow_empty_inventory: bool = False) -> S
     scenario = Scenario(path=folder, name=h["name"], first_week=h["first_week"], weeks=int(h["weeks"]),
                         currency=h["currency"].strip(), preempt_rate=float(h["preempt"]), dayparts=h["dayparts"],
                         zones=zones.copy(), universes=universes, networks=networks_df, inventory=inventory,
-                        deals=deals, demos=demos, history_path=history_path, history_generator=h["generator"])
+                        deals=deals, demos=demos, history_path=history_path, history_generator=h["generator"],
+                        terms=h["terms"])
     if not _history_exists(history_path) and h["generator"] is None:
         raise ScenarioError("history.parquet: file is missing (no history.csv, and scenario.toml has no "
                             "[history_generator] table to make one)")

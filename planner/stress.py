@@ -207,10 +207,10 @@ def book_units(deals: Sequence[Any], holds: pd.DataFrame, forecast: pd.DataFrame
     """One row per (deal, held unit): holds joined with the forecast row of the deal's demo and
     the inventory's preemption rate. Columns `deal, demo, zone, network, daypart, week, spots,
     mean_impressions, airing_sd`, the level loadings `level_sd_*` (`forecasting.factors.LEVEL_FACTORS`)
-    and `preempt_rate`."""
+    and `preempt_rate` (and the holds' `rate`, currency per spot, when they carry it)."""
     demo_of = {d.name: d.demo for d in deals}
     h = holds[holds["deal"].isin(list(demo_of))]
-    units = h[["deal"] + UNIT_KEY + ["spots"]].reset_index(drop=True)
+    units = h[["deal"] + UNIT_KEY + ["spots"] + (["rate"] if "rate" in h else [])].reset_index(drop=True)
     units.insert(1, "demo", units["deal"].map(demo_of).astype(str))
     units["week"] = units["week"].astype("int64")
     absent = {c: 0.0 for c in OPTIONAL_LEVEL_COLS if c not in forecast}  # a table from before them
@@ -441,6 +441,7 @@ class DealStress:
     expected_margin: float
     tail_contribution: float
     probability_of_shortfall_normal: float
+    cost_sd: float = 0.0  # sd of the billed cost (currency): each held spot billed only if it airs
 
 
 @dataclass
@@ -588,6 +589,7 @@ def _deal_figures(model: BookModel, sums: _Sums, w: np.ndarray, contrib: np.ndar
     q05 = np.quantile(sums.dev, 1 - 0.95, axis=0).astype(np.float64) if n else np.zeros(D)
     liab_p95 = w * np.maximum(G - (model.mean + q05), 0.0)  # liability falls as delivery rises
     deals = []
+    csd = billed_cost_sd(model)
     for j, name in enumerate(model.deals):
         el = float(w[j] * e_sf[j])
         deals.append(DealStress(
@@ -599,8 +601,23 @@ def _deal_figures(model: BookModel, sums: _Sums, w: np.ndarray, contrib: np.ndar
             liability_p95=float(liab_p95[j]), revenue=float(model.revenue[j]), cost=float(model.cost[j]),
             expected_margin=float(model.revenue[j] - model.cost[j] - el),
             tail_contribution=float(contrib[j]), probability_of_shortfall_normal=float(p_norm[j]),
+            cost_sd=float(csd[j]),
         ))
     return deals
+
+
+def billed_cost_sd(model: BookModel) -> np.ndarray:
+    """Sd of each deal's billed cost (D,), currency: a held spot is billed only if it airs
+    (Bernoulli(1 - p), common practice), so var = sum spots x rate^2 p (1 - p); zeros when the
+    holds carry no rate."""
+    rows = model.rows
+    D = len(model.deals)
+    if rows is None or not len(rows) or "rate" not in rows:
+        return np.zeros(D)
+    j = pd.Index(model.deals).get_indexer(rows["deal"])
+    p = rows["preempt_rate"].to_numpy(float)
+    v = rows["spots"].to_numpy(float) * rows["rate"].fillna(0.0).to_numpy(float) ** 2 * p * (1.0 - p)
+    return np.sqrt(np.bincount(j[j >= 0], v[j >= 0], minlength=D))
 
 
 def _book_figures(model: BookModel, sums: _Sums, var: float, cvar: float, alpha: float) -> dict:
@@ -614,6 +631,7 @@ def _book_figures(model: BookModel, sums: _Sums, var: float, cvar: float, alpha:
         "cvar95_se": _se_cvar(book_liab, var, alpha) if n > 1 else 0.0,
         "probability_any_shortfall": sums.any_short / n, "expected_deals_short": sums.deals_short / n,
         "revenue": float(model.revenue.sum()), "cost": float(model.cost.sum()),
+        "cost_sd": float(np.sqrt(np.sum(billed_cost_sd(model) ** 2))),
         "expected_margin": float(model.revenue.sum() - model.cost.sum() - el_book),
         "liability_p99": float(np.quantile(book_liab, 0.99)),
     }

@@ -73,6 +73,7 @@ class DealSpec:
     kind: str
     risk: str = "confidence = 0.95"
     mix: dict = field(default_factory=dict)
+    terms: dict = field(default_factory=dict)  # the deal file's [terms] (make-good terms, planner.terms)
 
 
 def toml_value(v) -> str:
@@ -108,10 +109,14 @@ def scenario_header(*, name: str, first_week: date, weeks: int, preempt_rate: fl
 
 def scenario_toml(*, name: str, first_week: date, weeks: int, seed: int, start: date, end: date,
                   short_history: list[tuple[str, str]], short_history_days: int, horizon_days: int,
-                  preempt_rate: float = 0.03, comment: str = "") -> str:
-    """Text of a scenario.toml with the seven dayparts and a [history_generator] table (profile family)."""
+                  preempt_rate: float = 0.03, comment: str = "", terms: dict | None = None) -> str:
+    """Text of a scenario.toml with the seven dayparts, the default make-good `terms` of its deals
+    (a [terms] table, when given) and a [history_generator] table (profile family)."""
     lines = scenario_header(name=name, first_week=first_week, weeks=weeks, preempt_rate=preempt_rate,
                             comment=comment)
+    if terms:
+        lines += ["# Make-good terms of every deal file without its own [terms] (planner.terms).",
+                  "[terms]"] + [f"{k} = {toml_value(v)}" for k, v in terms.items()] + [""]
     lines += ["# Addition to the data contract: how history.parquet is generated when it is missing",
               "# (scenarios.generate, seeded; the history is invented).",
               "[history_generator]", f"seed = {seed}", f"start = {start.isoformat()}", f"end = {end.isoformat()}",
@@ -234,6 +239,8 @@ def deal_toml(spec: DealSpec, impressions: int, price_cpm: float, cap: float) ->
         lines.append("# no confidence or pad given: the default confidence (0.95) applies")
     if spec.mix:
         lines += ["", "[mix]"] + [f"{k} = {toml_value(v)}" for k, v in spec.mix.items()]
+    if spec.terms:
+        lines += ["", "[terms]"] + [f"{k} = {toml_value(v)}" for k, v in spec.terms.items()]
     return "\n".join(lines) + "\n"
 
 
@@ -333,19 +340,24 @@ DEMO_DEALS = [
     DealSpec("brambleford-outdoor.toml", "brambleford-spring", "Brambleford Outdoor Supply (invented)", "a25-54",
              1, 13, 0.15, 1.6, "comfortably deliverable",
              mix={"max_network_share": 0.3, "daypart_min_share": {"prime": 0.2},
-                  "daypart_max_share": {"overnight": 0.05}, "weekly_tolerance": 0.25}),
+                  "daypart_max_share": {"overnight": 0.05}, "weekly_tolerance": 0.25},
+             terms={"settlement": "units", "window_weeks": 6}),
     DealSpec("corvella-motors.toml", "corvella-launch", "Corvella Motors (invented)", "hh", 3, 8, 0.73, 1.35,
              "tight (most of the allowed avails, thin margin)", risk="",
              mix={"max_network_share": 0.25, "daypart_min_share": {"prime": 0.4, "prime_access": 0.15},
-                  "exclude_networks": ["marbleberry-kids"], "weekly_tolerance": 0.2}),
+                  "exclude_networks": ["marbleberry-kids"], "weekly_tolerance": 0.2},
+             terms={"settlement": "cash", "threshold": 0.95, "cap": 0.25}),
     DealSpec("saltmarsh-pharmacy.toml", "saltmarsh-flu", "Saltmarsh Pharmacy (invented)", "a25-54", 1, 4, 1.35, 1.3,
              "not deliverable (guarantee larger than the avails can carry under the mix)",
              risk="confidence = 0.9",
              mix={"daypart_min_share": {"daytime": 0.3}, "exclude_zones": ["marrowdale-central"]}),
     DealSpec("wrenfield-grocers.toml", "wrenfield-weekly", "Wrenfield Grocers (invented)", "hh", 5, 13, 0.3, 1.7,
              "deliverable with room to spare (risk margin given as a pad)", risk="pad = 0.1",
-             mix={"max_network_share": 0.35, "daypart_max_share": {"overnight": 0.1}, "max_spots_per_unit": 6}),
+             mix={"max_network_share": 0.35, "daypart_max_share": {"overnight": 0.1}, "max_spots_per_unit": 6},
+             terms={"settlement": "both"}),
 ]
+#: the demo's default make-good terms (scenario.toml [terms]); saltmarsh-flu has none of its own
+DEMO_TERMS = {"settlement": "units", "threshold": 0.9, "window_weeks": 4, "cap": 0.5}
 
 
 def build_demo(dest: Path | None = None) -> dict:
@@ -356,7 +368,7 @@ def build_demo(dest: Path | None = None) -> dict:
     (dest / "scenario.toml").write_text(scenario_toml(
         name="demo-spring-2027", first_week=date(2027, 3, 29), weeks=13, seed=DEMO_SEED,
         start=date(2024, 11, 30), end=date(2026, 11, 29), short_history=DEMO_SHORT, short_history_days=150,
-        horizon_days=240,
+        horizon_days=240, terms=DEMO_TERMS,
         comment="Invented demo scenario: every zone, market, network, advertiser and number is made up."))
     return finish_scenario(dest, DEMO_DEALS, seed=DEMO_SEED, generate=False)
 

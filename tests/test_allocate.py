@@ -22,6 +22,13 @@ def problem(guarantee=1.0e6, seed=1, max_spots=5, held=None, **rules):
     return al.make_problem(scope, guarantee, al.Rules(**r), WEEKS)
 
 
+def billed_cost(prob):
+    """Expected billed cost of one bought spot, written here from the unit columns: the rate when
+    the spot airs, nothing when it is preempted (common practice), so rate x (1 - preempt_rate)."""
+    u = prob.units
+    return (u["rate"] * (1.0 - u["preempt_rate"])).to_numpy(float)
+
+
 def linear_rows(prob):
     """Independent dense formulation of the mix and pacing rules: A_ub x <= 0."""
     u = prob.units
@@ -48,7 +55,7 @@ def test_pad_lp_relaxation_matches_scipy_linprog():
     m, A = linear_rows(prob)
     A_ub = np.vstack([A, -m])
     b_ub = np.append(np.zeros(len(A)), -(1.1) * prob.guarantee)
-    ref = linprog(prob.rate, A_ub=A_ub, b_ub=b_ub, bounds=list(zip(np.zeros(prob.n), prob.ub)), method="highs")
+    ref = linprog(billed_cost(prob), A_ub=A_ub, b_ub=b_ub, bounds=list(zip(np.zeros(prob.n), prob.ub)), method="highs")
     assert ref.status == 0 and ours.feasible
     assert ours.cost == pytest.approx(ref.fun, rel=1e-6)
 
@@ -68,7 +75,7 @@ def test_confidence_lp_relaxation_matches_cvxpy_conic_optimum():
     z = 1.6448536269514722  # z(0.95), NIST/SEMATECH table 1.6449
     cons = [x >= 0, x <= prob.ub, A @ x <= 0,
             m @ x - z * cp.norm(cp.hstack([L.T @ x, np.array([np.sqrt(l0)])])) >= prob.guarantee]
-    ref = cp.Problem(cp.Minimize(prob.rate @ x), cons)
+    ref = cp.Problem(cp.Minimize(billed_cost(prob) @ x), cons)
     ref.solve(solver=cp.CLARABEL)
     assert ref.status == "optimal"
     assert abs(ours.cost - ref.value) / ref.value < 0.005
@@ -206,7 +213,7 @@ def _linprog_pad_cost(prob, pad):
     """LP cost of a pad plan by scipy.optimize.linprog (HiGHS) on the dense formulation of
     `linear_rows` (written here from the rules, not by the allocator)."""
     m, A = linear_rows(prob)
-    ref = linprog(prob.rate, A_ub=np.vstack([A, -m]), b_ub=np.append(np.zeros(len(A)), -(1 + pad) * prob.guarantee),
+    ref = linprog(billed_cost(prob), A_ub=np.vstack([A, -m]), b_ub=np.append(np.zeros(len(A)), -(1 + pad) * prob.guarantee),
                   bounds=list(zip(np.zeros(prob.n), prob.ub)), method="highs")
     assert ref.status == 0
     return ref.fun
@@ -236,7 +243,7 @@ def test_whole_spot_plan_matches_scipy_milp(solver):
     scope = al.candidate_units(u, weeks=WEEKS)
     prob = al.make_problem(scope, 3.0e5, al.Rules(**{**MIX, "max_network_share": 0.6}, pad=0.05), WEEKS)
     m, A = linear_rows(prob)
-    ref = milp(prob.rate, integrality=np.ones(prob.n),
+    ref = milp(billed_cost(prob), integrality=np.ones(prob.n),
                bounds=Bounds(np.zeros(prob.n), prob.ub),
                constraints=[LinearConstraint(A, -np.inf, 0.0), LinearConstraint(m, 1.05 * prob.guarantee, np.inf)])
     assert ref.status == 0
@@ -369,3 +376,80 @@ def test_cbc_is_found_without_pulps_deprecated_class():
         path = al.cbc_path()
     out = subprocess.run([path, "-quit"], capture_output=True, text=True, timeout=60).stdout
     assert "CBC" in out.upper() or "Coin" in out
+
+
+# ---------------------------------------------------------------------------------------------
+# Preemption is not billed (common practice): the plan's cost is the expected cost of the spots
+# that air, and the allocator minimises it.
+def _two_units():
+    """Two invented units of one zone, network and week, hand-sized for the worked case below."""
+    u = synthetic_units(zones=1, networks=1, dayparts=("day", "prime"), weeks=1, seed=0)
+    u["mean_impressions"] = 10_000.0
+    u["airing_sd"] = 1_000.0
+    for c in ("level_sd_network", "level_sd_flight", "level_sd_week"):
+        u[c] = 500.0
+    u["avails"] = 4
+    u["rate"] = [100.0, 150.0]        # day: 100 a spot, prime: 150
+    u["preempt_rate"] = [0.5, 0.0]    # day is preempted half the time, prime never
+    return u
+
+
+def test_hand_worked_plan_pays_only_for_the_spots_that_air():
+    """Fault caught: cost or objective at the card rate (spots x rate), billing preempted spots.
+
+    Worked by hand: guarantee 20,000, pad 0. Day: 5,000 expected impressions a bought spot, billed
+    100 x 0.5 = 50 expected, i.e. 0.010 per expected impression; prime: 10,000 for 150, 0.015. So the
+    least expected cost is 4 day spots (the avails), expected cost 200, sd
+    sqrt(4 x 100^2 x 0.5 x 0.5) = 100. At the card rate day would cost 0.020 per expected
+    impression and the plan would be 2 prime spots for 300."""
+    scope = al.candidate_units(_two_units(), weeks=(1,))
+    prob = al.make_problem(scope, 20_000.0, al.Rules(pad=0.0), (1,))
+    a = al.allocate(prob, gap=0.0)
+    assert a.feasible
+    day = prob.units["daypart"].to_numpy() == "day"
+    assert a.x[day].tolist() == [4.0] and a.x[~day].tolist() == [0.0]
+    assert a.cost == pytest.approx(200.0, rel=1e-9)
+    assert prob.cost_sd(a.x) == pytest.approx(100.0, rel=1e-9)
+
+
+def _brute_force(prob, ok):
+    """Least expected billed cost over every whole-spot plan 0..ub (enumerated), among those `ok`
+    accepts (ok(X) -> bool array for plans X (k, n)); the cost written here from the unit columns."""
+    grids = np.meshgrid(*[np.arange(int(b) + 1) for b in prob.ub], indexing="ij")
+    X = np.stack([g.ravel() for g in grids], axis=1).astype(float)
+    cost = X @ billed_cost(prob)
+    good = ok(X)
+    return float(cost[good].min()), X[good][np.argmin(cost[good])]
+
+
+@pytest.mark.parametrize("risk", [dict(pad=0.05), dict(confidence=0.9)])
+def test_least_billed_cost_matches_brute_force_enumeration(risk):
+    """Fault caught: the allocator minimising anything but the expected billed cost (card rate,
+    or the billing applied twice), or a plan whose cost is not that of its spots.
+
+    Reference: enumeration of all 4^6 = 4,096 whole-spot plans of a tiny instance (1 zone x 3
+    networks x 2 dayparts x 1 week, up to 3 spots each, preemption 0-60% per unit) with a network
+    cap of 60%; feasibility by the pad written here, or by the chance of delivery of
+    `DeliveryModel.probability` (itself checked against a dense covariance and Monte Carlo in
+    tests/test_delivery.py)."""
+    u = synthetic_units(zones=1, networks=3, dayparts=("day", "prime"), weeks=1, seed=7)
+    u["avails"] = 3
+    u["preempt_rate"] = [0.0, 0.6, 0.3, 0.1, 0.5, 0.2]
+    scope = al.candidate_units(u, weeks=(1,))
+    dm_m = ((1 - scope["preempt_rate"]) * scope["mean_impressions"]).to_numpy()
+    G = 0.45 * float(dm_m.sum() * 3)
+    prob = al.make_problem(scope, G, al.Rules(max_network_share=0.6, **risk), (1,))
+    net = prob.units["network"].to_numpy()
+
+    def ok(X):
+        T = X @ dm_m
+        share = np.all([X @ (dm_m * (net == n)) <= 0.6 * T + 1e-9 for n in np.unique(net)], axis=0)
+        if "pad" in risk:
+            return share & (T >= 1.05 * G)
+        return share & np.array([prob.model.probability(x, G) >= 0.9 - 1e-12 for x in X])
+
+    ref_cost, ref_x = _brute_force(prob, ok)
+    a = al.allocate(prob, gap=0.0)
+    assert a.feasible
+    assert a.cost == pytest.approx(ref_cost, rel=1e-9)
+    assert a.cost == pytest.approx(float(a.x @ billed_cost(prob)), rel=1e-12)

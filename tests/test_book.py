@@ -744,3 +744,20 @@ def test_a_deal_file_that_differs_from_its_commit_is_named_key_by_key(tmp_path):
                     "mix.max_network_share: None in the book, 0.4 in the file"]
     back = bk.deal_from_book(booked)
     assert bk.terms_differ(booked, back) == [] and back.mix == deal.mix
+
+
+def test_make_good_terms_are_stored_with_the_commit(tmp_path):
+    """Faults caught: a deal's make-good terms lost at commit (the book's deal would fall back to
+    the defaults) or a change of terms in the file not named."""
+    from dataclasses import replace
+
+    from planner.terms import Terms
+
+    scn, _ = make_synthetic(tmp_path / "s")
+    mine = Terms(settlement="cash", threshold=0.9, window_weeks=6, cap=0.5)
+    scn.deals["alpha"] = replace(scn.deals["alpha"], terms=mine)
+    wf.commit_deal(scn, "alpha", planner=greedy_planner(4))
+    booked = bk.get_deal(scn, "alpha")
+    assert bk.deal_from_book(booked).terms == mine
+    edited = replace(scn.deals["alpha"], terms=replace(mine, threshold=0.95))
+    assert bk.terms_differ(booked, edited) == ["terms.threshold: 0.9 in the book, 0.95 in the file"]

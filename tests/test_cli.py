@@ -86,7 +86,9 @@ def test_check_plan_commit_stress_report_on_a_fitted_scenario(fitted, capsys, tm
     m = plan.merge(inv, on=UNIT, suffixes=("", "_inv"), validate="one_to_one")
     assert len(m) == len(plan) and (m["spots"] >= 1).all() and (m["spots"] <= m["avails"]).all()
     assert set(plan["week"]) <= set(range(comfy["first_week"], comfy["last_week"] + 1))
-    assert (m["spots"] * m["rate_inv"]).sum() == pytest.approx(check["cost"], rel=1e-9)
+    # a preempted spot is not billed (common practice): expected cost = spots x rate x (1 - preemption)
+    keep = 1 - tomllib.loads((folder / "scenario.toml").read_text())["preempt_rate"]
+    assert (m["spots"] * m["rate_inv"] * keep).sum() == pytest.approx(check["cost"], rel=1e-9)
     e = plan.merge(_expected_per_spot(folder, comfy["demo"]), on=UNIT)
     expected = float((e["spots"] * e["per_spot"]).sum())
     assert expected == pytest.approx(check["expected_impressions"], rel=1e-6)

@@ -61,14 +61,19 @@ def test_check_comfortable_deal(scn, fc):
     assert r.deliverable and r.verdict == "deliverable"
     d = scn.deals["small-comfortable"]
     # Reference: the deal file read by hand (tomllib) and the plan's spots costed at inventory.csv's
-    # rates (pandas); revenue = impressions x CPM / 1000 (CPM: cost per thousand, common practice).
+    # rates (pandas), billed only when they air (a preempted spot is not billed, common practice:
+    # rate x (1 - preemption), the preemption from inventory.csv or scenario.toml's default);
+    # revenue = impressions x CPM / 1000 (CPM: cost per thousand, common practice).
     import tomllib
 
     raw = tomllib.loads(d.path.read_text())
     revenue = raw["impressions"] * raw["price_cpm"] / 1000
     spots = wf.plan_deal(scn, "small-comfortable", forecast=fc, held=None, solver="highs").spots
     inv = pd.read_csv(scn.path / "inventory.csv")
-    cost = float(spots[["zone", "network", "daypart", "week", "spots"]].merge(inv).eval("spots * rate").sum())
+    default_p = tomllib.loads((scn.path / "scenario.toml").read_text()).get("preempt_rate", 0.0)
+    inv["p"] = inv["preempt_rate"].fillna(default_p) if "preempt_rate" in inv else default_p
+    cost = float(spots[["zone", "network", "daypart", "week", "spots"]].merge(inv)
+                 .eval("spots * rate * (1 - p)").sum())
     assert r.revenue == pytest.approx(revenue)
     assert r.cost == pytest.approx(cost, rel=1e-9)
     assert r.margin == pytest.approx(revenue - cost)
@@ -118,7 +123,13 @@ def test_plan_tables(scn, fc):
     assert "preempt_rate" in s and "sd_impressions" in s
     assert s["cost"].sum() == pytest.approx(p.cost)
     assert s["expected_impressions"].sum() == pytest.approx(p.expected_impressions)
-    assert np.allclose(s["cost"], s["spots"] * s["rate"])
+    # a preempted spot is not billed (common practice): cost = spots x rate x (1 - preemption), its sd
+    # that of a binomial count of aired spots; the inventory's preemption rate is read here, not the plan's
+    inv = scn.inventory.set_index(["zone", "network", "daypart", "week"])["preempt_rate"]
+    pr = inv.reindex(pd.MultiIndex.from_frame(s[["zone", "network", "daypart", "week"]])).to_numpy()
+    assert np.allclose(s["cost"], s["spots"] * s["rate"] * (1 - pr))
+    assert np.allclose(s["cost_sd"], s["rate"] * np.sqrt(s["spots"] * pr * (1 - pr)))
+    assert p.cost_sd == pytest.approx(float(np.sqrt((s["cost_sd"] ** 2).sum())), rel=1e-9)
     pc = p.pacing
     d = scn.deals["small-comfortable"]
     assert list(pc["week"]) == d.weeks

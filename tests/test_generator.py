@@ -232,6 +232,13 @@ def test_shipped_demo_layout():
     assert sc.first_week == date(2027, 3, 29) and sc.first_week.weekday() == 0 and sc.weeks == 13
     assert sc.preempt_rate == 0.03 and sc.demos == ["hh", "a25-54"]
     assert set(sc.deals) == {d.name for d in DEMO_DEALS}
+    # make-good terms: the files carry what the builder writes (scenarios/build.py DEMO_TERMS and
+    # each DealSpec's terms over them), at least one deal settled in ADUs and one in cash
+    from scenarios.build import DEMO_TERMS
+
+    for spec in DEMO_DEALS:
+        assert sc.deals[spec.name].terms.as_dict() == {**DEMO_TERMS, **spec.terms}
+    assert {"units", "cash"} <= {d.terms.settlement for d in sc.deals.values()}
     assert sc.history_generator["end"] == date(2026, 11, 29)
     assert (sc.history_generator["end"] - sc.history_generator["start"]).days + 1 == 730
     inv = sc.inventory

@@ -126,7 +126,8 @@ def booked_units(folder: Path, name: str) -> pd.DataFrame:
 def assert_verdict_facts(fields: dict, folder: Path, deal: str, booked: bool, draws: int = 20_000) -> None:
     """The report's figures for `deal` against facts read independently: guarantee, revenue
     (impressions x CPM / 1000, common practice) and risk rule from the deal file; for a booked
-    deal, cost (holds x inventory.csv rates), expected delivery (holds x (1 - preemption) x
+    deal, cost (holds x inventory.csv rates x (1 - preemption): a preempted spot is not billed,
+    common practice), expected delivery (holds x (1 - preemption) x
     forecast mean per spot) and margin from the book's holds, and the chance of delivery against
     a Monte Carlo of the documented error law (tests/test_faults.py::_mc_probability; standard
     error at most 0.5 / sqrt(draws) = 0.0035 at 20,000 draws; the normal approximation may differ
@@ -142,7 +143,7 @@ def assert_verdict_facts(fields: dict, folder: Path, deal: str, booked: bool, dr
     if not booked:
         return
     u = booked_units(folder, deal)
-    cost = float((u["spots"] * u["rate"]).sum())
+    cost = float((u["spots"] * u["rate"] * (1 - u["preempt_rate"])).sum())
     assert float(fields[(deal, "cost")]) == pytest.approx(cost, rel=1e-9)
     assert float(fields[(deal, "margin")]) == pytest.approx(revenue - cost, rel=1e-9)
     expected = float((u["spots"] * (1 - u["preempt_rate"]) * u["mean_impressions"]).sum())

@@ -248,6 +248,20 @@ BAD_INPUTS = [
      r"scenario\.toml \[history_generator\]: seed must be an integer, got 'eleven'"),
     ("generator-unknown-short", lambda f: _edit_text(f, "scenario.toml", '[["pellham-lower"', '[["atlantis"'),
      "load", r"short_history \['atlantis', 'marbleberry-kids'\] names an unknown zone or network"),
+    ("deal-terms-unknown-key", _extra_deal("[terms]\nthreshhold = 0.9"), "load",
+     r"deals/extra\.toml: \[terms\] unknown key 'threshhold' \(did you mean 'threshold'\? known: settlement, "),
+    ("deal-terms-settlement", _extra_deal('[terms]\nsettlement = "barter"'), "load",
+     r"deals/extra\.toml: \[terms\] settlement must be one of units, cash, both, got 'barter'"),
+    ("deal-terms-threshold-above-one", _extra_deal("[terms]\nthreshold = 1.1"), "load",
+     r"deals/extra\.toml: \[terms\] threshold must be a fraction of the guarantee, 0 < t <= 1, got 1\.1"),
+    ("deal-terms-cap-zero", _extra_deal("[terms]\ncap = 0"), "load",
+     r"deals/extra\.toml: \[terms\] cap must be a fraction of the guarantee, 0 < c <= 1, got 0"),
+    ("deal-terms-window-fraction", _extra_deal("[terms]\nwindow_weeks = 2.5"), "load",
+     r"deals/extra\.toml: \[terms\] window_weeks must be a whole number of weeks 1\.\.52, got 2\.5"),
+    ("deal-terms-not-table", _extra_deal('terms = "units"'), "load", r"deals/extra\.toml: \[terms\] must be a table"),
+    ("scenario-terms-unknown-key", lambda f: _edit_text(f, "scenario.toml", "[history_generator]",
+                                                        "[terms]\nwindow = 4\n\n[history_generator]"), "load",
+     r"scenario\.toml: \[terms\] unknown key 'window' \(did you mean 'window_weeks'\?"),
     ("history-none", _no_history_no_generator, "load", r"history\.parquet: file is missing"),
     ("history-missing-column", _edit_history(lambda t: t.drop(columns=["rating"])), "load",
      r"history\.parquet: missing column\(s\) rating"),
@@ -332,6 +346,34 @@ def test_clock_parsing():
         parse_clock("7:05")
     assert daypart_quarter_hours(88, 96) == tuple(range(88, 96))  # 22:00-24:00 does not wrap
     assert daypart_quarter_hours(92, 0) == tuple(range(92, 96))  # 23:00-00:00 wraps to the midnight
+
+
+def test_deal_terms_defaults_and_overrides(small_scenario, scenario_copy):
+    """Faults caught: scenario.toml's [terms] not reaching a deal without its own, a deal's key not
+    overriding it, or a key the deal leaves out not inherited. Expected values are the ones written
+    in the files here (defaults when neither says: planner.terms.Terms())."""
+    from planner.terms import Terms
+
+    plain = load_scenario(small_scenario)
+    assert plain.terms == Terms() and all(d.terms == Terms() for d in plain.deals.values())  # files stay valid
+    folder = scenario_copy(small_scenario)
+    _edit_text(folder, "scenario.toml", "[history_generator]",
+               '[terms]\nsettlement = "cash"\nthreshold = 0.9\ncap = 0.5\n\n[history_generator]')
+    _extra_deal('[terms]\nsettlement = "units"\nwindow_weeks = 6')(folder)
+    sc = load_scenario(folder)
+    assert sc.terms == Terms(settlement="cash", threshold=0.9, window_weeks=4, cap=0.5)
+    assert sc.deals["small-comfortable"].terms == sc.terms
+    assert sc.deals["extra-deal"].terms == Terms(settlement="units", threshold=0.9, window_weeks=6, cap=0.5)
+
+
+def test_bad_terms_exit_two_naming_file_and_key(small_scenario, scenario_copy, capsys):
+    """Fault caught: a bad [terms] key reaching the user as a traceback or exit 1 (the CLI must say
+    which file and key, exit status 2)."""
+    folder = scenario_copy(small_scenario)
+    _extra_deal("[terms]\ncap = 2")(folder)
+    assert main(["validate", str(folder)]) == 2
+    err = capsys.readouterr().err
+    assert "deals/extra.toml: [terms] cap must be a fraction" in err
 
 
 def test_deal_risk_defaults(small_scenario):

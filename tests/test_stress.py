@@ -427,3 +427,22 @@ def test_preempt_multiplier_keeps_preemption_below_100_percent(tmp_path):
         st.apply_shocks(units, (), 100.0)
     with pytest.raises(InputError, match="--preempt-multiplier"):
         st.apply_shocks(units, (), 1 / 0.03)
+
+
+def test_billed_cost_sd_of_the_book_hand_worked():
+    """Fault caught: the stress test's cost sd not that of spots billed only when they air
+    (binomial preemption, common practice), or summed over deals in the wrong place.
+
+    Hand-worked: deal a holds 3 spots at 100 with p = 0.1 and 2 at 50 with p = 0.5:
+    var = 3 x 100^2 x 0.1 x 0.9 + 2 x 50^2 x 0.5 x 0.5 = 2,700 + 1,250 = 3,950, sd 62.849...;
+    deal b holds 4 spots at 10 with p = 0 (always aired): sd 0."""
+    rows = (_rows("a", ["n1"], zones=("z1",), dayparts=("prime",), weeks=[1], spots=3, p=0.1)
+            + _rows("a", ["n1"], zones=("z1",), dayparts=("day",), weeks=[1], spots=2, p=0.5)
+            + _rows("b", ["n2"], zones=("z1",), dayparts=("prime",), weeks=[1], spots=4, p=0.0))
+    units = pd.DataFrame(rows)
+    units["rate"] = [100.0, 50.0, 10.0]
+    model = st.build_book_model([_deal("a", 1.0), _deal("b", 1.0)], units)
+    assert st.billed_cost_sd(model) == pytest.approx([np.sqrt(3950.0), 0.0], rel=1e-12)
+    res = st.stress_model(model, draws=1000, seed=0)
+    assert [d.cost_sd for d in res.deals] == pytest.approx([np.sqrt(3950.0), 0.0], rel=1e-12)
+    assert res.book["cost_sd"] == pytest.approx(np.sqrt(3950.0), rel=1e-12)

@@ -70,6 +70,22 @@ def _hindcast_text(b: dict | None) -> str:
             f"(~{b.get('effective_deals', 0):.0f} independent)")
 
 
+def _terms_text(t: dict) -> str:
+    """Make-good terms in words: 'ADUs within 4 weeks, owed below 90% of the guarantee, capped at 50%'."""
+    how = {"units": f"ADUs within {t['window_weeks']} weeks", "cash": "cash at the CPM",
+           "both": f"ADUs within {t['window_weeks']} weeks or cash, the dearer counted"}[t["settlement"]]
+    return (f"{how}, owed below {_pct(t['threshold'], 0)} of the guarantee"
+            + (f", capped at {_pct(t['cap'], 0)}" if t["cap"] < 1 else ""))
+
+
+def _makegood_rows(r, cur) -> list:
+    """The expected make-good lines of a check or plan answer."""
+    return [("expected shortfall owed", f"{_num(r.expected_shortfall_impressions)} impressions "
+                                        f"({_terms_text(r.makegood_terms)})"),
+            ("expected make-good cost", _money(r.expected_makegood_cost, cur)),
+            ("margin net of make-goods", _money(r.margin_net_of_makegoods, cur))]
+
+
 def _kv_table(rows) -> Table:
     t = Table(show_header=False, box=None, pad_edge=False)
     t.add_column("", style="bold")
@@ -117,14 +133,18 @@ def check_cmd(
             ("chance of delivery", _pct(r.probability_of_delivery)),
             ("  claims like it on this history", _hindcast_text(claim)),
             ("  if errors were independent", f"{_pct(r.probability_if_independent)} (overstated)"),
-            ("cost", _money(r.cost, cur)),
+            ("cost (spots that air)", f"{_money(r.cost, cur)} (sd {_money(r.cost_sd, cur)})"),
             ("revenue", f"{_money(r.revenue, cur)} at {r.price_cpm:,.2f} CPM"),
             ("margin", f"{_money(r.margin, cur)} ({_pct(r.margin_pct)})"),
+            *_makegood_rows(r, cur),
             ("cost per thousand guaranteed", f"{r.cost_cpm:,.2f}"),
             ("spots", f"{_num(r.spots)} in {_num(r.units_bought)} units"),
         ]
         if r.cpm_needed is not None:
             rows.append((f"CPM for a {_pct(r.target_margin, 0)} margin", f"{r.cpm_needed:,.2f}"))
+            net = r.cpm_needed_net_of_makegoods
+            rows.append(("  net of expected make-goods", "unreachable (cash owed too large)" if net is None
+                         else f"{net:,.2f}"))
     else:
         rows.append(("revenue asked", f"{_money(r.revenue, cur)} at {r.price_cpm:,.2f} CPM"))
     rows.append(("largest deliverable guarantee", f"{_num(r.max_guarantee)} impressions"))
@@ -179,7 +199,10 @@ def plan_cmd(
         print_json({"deal": r.deal, "deliverable": r.deliverable, "verdict": r.verdict, "reason": r.reason,
                     "currency": r.currency, "guarantee": r.guarantee, "risk_rule": r.risk_rule,
                     "confidence": r.confidence, "pad": r.pad, "default_confidence_used": r.default_confidence_used,
-                    "totals": r.totals, "pacing": r.pacing.to_dict(orient="records"),
+                    "cost": r.cost, "cost_sd": r.cost_sd,
+                    **{k: getattr(r, k) for k in ("expected_shortfall_impressions", "expected_makegood_cost",
+                                                  "margin_net_of_makegoods")},
+                    "makegood_terms": r.makegood_terms, "totals": r.totals, "pacing": r.pacing.to_dict(orient="records"),
                     "files": [str(p) for p in files], "solver": r.solver, "gap": r.gap, "lp_bound": r.lp_bound,
                     "cuts": r.cuts, "binding": r.binding, "fitted_forecast_first": r.fitted_forecast_first,
                     "warnings": r.warnings, "notes": r.notes, "cautions": r.cautions,
@@ -198,12 +221,13 @@ def plan_cmd(
     print_warnings(r.warnings)
     out_console.print(_kv_table([
         ("spots", f"{_num(t['spots'])} in {_num(t['units'])} units"),
-        ("cost", _money(t["cost"], cur)),
+        ("cost (spots that air)", f"{_money(t['cost'], cur)} (sd {_money(t['cost_sd'], cur)})"),
         ("guarantee", _num(t["guarantee"])),
         ("expected delivery", f"{_num(t['expected_impressions'])} (sd {_num(t['sd_impressions'])})"),
         ("chance of delivery", _pct(t["probability_of_delivery"])),
         ("  claims like it on this history", _hindcast_text(claim)),
         ("margin", f"{_money(t['margin'], cur)} ({_pct(t['margin_pct'])})"),
+        *_makegood_rows(r, cur),
         ("risk margin", _risk(r)),
         ("solver", f"{r.solver}, gap {_pct(r.gap, 2)}"),
     ]))
