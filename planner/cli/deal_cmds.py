@@ -71,17 +71,17 @@ def _hindcast_text(b: dict | None) -> str:
 
 
 def _terms_text(t: dict) -> str:
-    """Make-good terms in words: 'ADUs within 4 weeks, owed below 90% of the guarantee, capped at 50%'."""
+    """Make-good terms, short: 'ADUs within 4 weeks; owed below 90% of the guarantee, cap 50%'."""
     how = {"units": f"ADUs within {t['window_weeks']} weeks", "cash": "cash at the CPM",
-           "both": f"ADUs within {t['window_weeks']} weeks or cash, the dearer counted"}[t["settlement"]]
-    return (f"{how}, owed below {_pct(t['threshold'], 0)} of the guarantee"
-            + (f", capped at {_pct(t['cap'], 0)}" if t["cap"] < 1 else ""))
+           "both": f"ADUs ({t['window_weeks']} weeks) or cash, the dearer"}[t["settlement"]]
+    return (f"{how}; owed below {_pct(t['threshold'], 0)} of the guarantee"
+            + (f", cap {_pct(t['cap'], 0)}" if t["cap"] < 1 else ""))
 
 
 def _makegood_rows(r, cur) -> list:
     """The expected make-good lines of a check or plan answer."""
-    return [("expected shortfall owed", f"{_num(r.expected_shortfall_impressions)} impressions "
-                                        f"({_terms_text(r.makegood_terms)})"),
+    return [("expected shortfall owed", f"{_num(r.expected_shortfall_impressions)} impressions"),
+            ("  under the terms", _terms_text(r.makegood_terms)),
             ("expected make-good cost", _money(r.expected_makegood_cost, cur)),
             ("margin net of make-goods", _money(r.margin_net_of_makegoods, cur))]
 
