@@ -157,7 +157,7 @@ def test_a_network_launched_late_is_not_a_full_history_unit_in_the_refits():
     for the others, so its held-out unit-weeks are short-history rows (`truncated`) in every
     refit, and the law's factors are measured without them. Catches a launched network left among
     the full-history units (its 5-10x misses then set every unit's network sd)."""
-    cube, info, _ = synthetic(seed=3)
+    cube, info, _ = synthetic(zones=3, seed=3)
     launched = (info["network"] == "n3").to_numpy()
     cube.values[launched, :330] = np.nan
     fc, _ = _fit(cube, info, 420)
