@@ -327,7 +327,9 @@ def hindcast_scenario(scenario, *, seed: int = 0, solver: str = "highs", apply: 
     out = replay_deals(scenario, model, seed=seed, solver=solver, progress=lambda m, f: progress(m, 0.3 + 0.7 * f))
     summary = dict(out.summary)
     summary["fit_key"] = res.meta.get("key")
-    applied, factor = 1.0, 1.0
+    # what the cached table holds now (an earlier --apply), unless applied afresh below
+    applied = float(res.meta.get("hindcast_scale", 1.0))
+    factor = float(res.meta.get("hindcast_deal_factor", 1.0))
     if apply and summary.get("deals"):
         applied, factor = float(summary["scale_to_apply"]), float(summary["deal_factor_to_apply"])
         table = applied_table(res.table, factor, applied, float(res.meta.get("hindcast_deal_factor", 1.0)),

@@ -164,6 +164,11 @@ def test_hindcast_command_json_and_apply(fitted_small):
     np.testing.assert_allclose(after["level_sd_week"], before["level_sd_week"] * f, rtol=1e-12)
     np.testing.assert_allclose(after["mean_impressions"], before["mean_impressions"] * f, rtol=1e-12)
     assert (sc.path / "forecast" / "hindcast.json").is_file()
+    # a hindcast without --apply leaves the table as it is and says what it holds
+    r = CliRunner().invoke(app, ["forecast", "hindcast", str(sc.path), "--json"])
+    again = json.loads(r.stdout)
+    assert (again["applied_scale"], again["applied_deal_factor"]) == pytest.approx((k, f))
+    np.testing.assert_allclose(load_forecast(sc)["mean_impressions"], after["mean_impressions"], rtol=0)
     # check shows, beside its chance of delivery, what the replays found for claims like it
     r = CliRunner().invoke(app, ["check", str(sc.path), "small-comfortable", "--json"])
     assert r.exit_code == 0, r.output
