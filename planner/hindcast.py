@@ -235,6 +235,7 @@ def summarise(deals: pd.DataFrame) -> dict:
     n_eff, rho = effective_count(deals["z"].to_numpy(float), deals["origin"].to_numpy())
     design = len(deals) / n_eff if n_eff > 0 else 1.0
     sel = selection_gap(deals)
+    scale = shared_scale(deals, factor=sel["factor"])
     bins = []
     for lo, hi in CLAIM_BINS:
         b = deals[(deals["claimed"] >= lo) & (deals["claimed"] < hi)]
@@ -259,8 +260,8 @@ def summarise(deals: pd.DataFrame) -> dict:
         "pit_histogram": np.histogram(deals["pit"], bins=10, range=(0, 1))[0].tolist(),
         "selection": sel,
         "deal_factor_to_apply": sel["factor"],
-        "shared_scale": shared_scale(deals, factor=sel["factor"]),
-        "scale_to_apply": applied_scale(shared_scale(deals, factor=sel["factor"]), n_eff),
+        "shared_scale": scale,
+        "scale_to_apply": applied_scale(scale, n_eff),
     }
 
 
@@ -278,14 +279,20 @@ HINDCAST_FILE = "hindcast.json"
 SHARED_COLUMNS = tuple(f.table_column for f in LEVEL_FACTORS if f.shared)
 
 
-def scale_shared_factors(table: pd.DataFrame, factor: float) -> pd.DataFrame:
-    """A copy of forecast `table` with its shared level sds (`SHARED_COLUMNS`) times `factor` and
-    ``level_sd`` and the spot quantiles recomputed (`forecasting.pipeline.with_level_bands`)."""
+def _columns_times(table: pd.DataFrame, columns: Sequence[str], factor: float) -> pd.DataFrame:
+    """A copy of forecast `table` with `columns` (those it has) times `factor`, ``level_sd`` and the
+    spot quantiles recomputed (`forecasting.pipeline.with_level_bands`)."""
     table = table.copy()
-    for col in SHARED_COLUMNS:
+    for col in columns:
         if col in table:
             table[col] = table[col] * factor
     return with_level_bands(table)
+
+
+def scale_shared_factors(table: pd.DataFrame, factor: float) -> pd.DataFrame:
+    """A copy of forecast `table` with its shared level sds (`SHARED_COLUMNS`) times `factor` and
+    ``level_sd`` and the spot quantiles recomputed (`forecasting.pipeline.with_level_bands`)."""
+    return _columns_times(table, SHARED_COLUMNS, factor)
 
 
 #: columns of the forecast table in impressions (or ratings) per spot that a planned-delivery factor multiplies
@@ -296,11 +303,7 @@ def scale_planned_delivery(table: pd.DataFrame, factor: float) -> pd.DataFrame:
     """A copy of forecast `table` whose expected delivery per spot and its sds (`DELIVERY_COLUMNS`)
     are times `factor` (relative sds unchanged), ``level_sd`` and the spot quantiles recomputed:
     what the allocator, the book and the stress test then plan on (`selection_gap`)."""
-    table = table.copy()
-    for col in DELIVERY_COLUMNS:
-        if col in table:
-            table[col] = table[col] * factor
-    return with_level_bands(table)
+    return _columns_times(table, DELIVERY_COLUMNS, factor)
 
 
 def applied_table(table: pd.DataFrame, factor: float, scale: float, previous_factor: float = 1.0,

@@ -126,6 +126,19 @@ def is_num(v: Any) -> bool:
     return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(float(v))
 
 
+def one_value(raw: dict, key: str, valid: Callable[[Any], bool], need: str, cast: Callable, deal,
+              problem: Callable[[str], None]) -> dict:
+    """A deal file's [mix] value `key` as ``{key: cast(v)}`` when `valid`, {} when absent; else
+    `problem` says "<file> <key> must be <need>, got <v>" and {} is returned."""
+    v = raw.get(key)
+    if v is None:
+        return {}
+    if not valid(v):
+        problem(f"{deal.at} {key} must be {need}, got {v!r}")
+        return {}
+    return {key: cast(v)}
+
+
 @dataclass(frozen=True)
 class DealFile:
     """A deal file's [mix] table being read (`RuleFamily.parse_mix`): `where` names the file
@@ -182,13 +195,8 @@ class NetworkShareCap(RuleFamily):
     mix_keys = ("max_network_share",)
 
     def parse_mix(self, raw, deal, problem):
-        v = raw.get("max_network_share")
-        if v is None:
-            return {}
-        if not is_num(v) or not 0 < v <= 1:
-            problem(f"{deal.at} max_network_share must be a share in (0, 1], got {v!r}")
-            return {}
-        return {"max_network_share": float(v)}
+        return one_value(raw, "max_network_share", lambda v: is_num(v) and 0 < v <= 1, "a share in (0, 1]",
+                         float, deal, problem)
 
     def check(self, rules, where):
         v = rules.max_network_share
@@ -296,13 +304,7 @@ class WeeklyPacing(RuleFamily):
     mix_keys = ("weekly_tolerance",)
 
     def parse_mix(self, raw, deal, problem):
-        v = raw.get("weekly_tolerance")
-        if v is None:
-            return {}
-        if not is_num(v) or v < 0:
-            problem(f"{deal.at} weekly_tolerance must be a number >= 0, got {v!r}")
-            return {}
-        return {"weekly_tolerance": float(v)}
+        return one_value(raw, "weekly_tolerance", lambda v: is_num(v) and v >= 0, "a number >= 0", float, deal, problem)
 
     def check(self, rules, where):
         v = rules.weekly_tolerance
@@ -436,13 +438,8 @@ class SpotCap(RuleFamily):
     mix_keys = ("max_spots_per_unit",)
 
     def parse_mix(self, raw, deal, problem):
-        v = raw.get("max_spots_per_unit")
-        if v is None:
-            return {}
-        if not is_int(v) or v < 1:
-            problem(f"{deal.at} max_spots_per_unit must be a whole number >= 1, got {v!r}")
-            return {}
-        return {"max_spots_per_unit": int(v)}
+        return one_value(raw, "max_spots_per_unit", lambda v: is_int(v) and v >= 1, "a whole number >= 1", int,
+                         deal, problem)
 
     def cap(self, scope: Scope, avail: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(ub, capped): spots that may be bought of each unit (avails left, capped) and where the cap cuts."""

@@ -21,7 +21,7 @@ from planner import rules as rl
 from planner.book import deal_from_book, deal_terms
 from planner.deals import rules_of
 from planner.errors import ScenarioError
-from planner.rules import INF, RowBlock, RuleFamily, is_num, pct
+from planner.rules import INF, RowBlock, RuleFamily, is_num, one_value, pct
 from planner.scenario import load_scenario
 from test_delivery import synthetic_units
 
@@ -106,13 +106,8 @@ class ZoneShareKey(ZoneShareCap):
         super().__init__(1.0)
 
     def parse_mix(self, raw, deal, problem):
-        v = raw.get("max_zone_share")
-        if v is None:
-            return {}
-        if not is_num(v) or not 0 < v <= 1:
-            problem(f"{deal.at} max_zone_share must be a share in (0, 1], got {v!r}")
-            return {}
-        return {"max_zone_share": float(v)}
+        return one_value(raw, "max_zone_share", lambda v: is_num(v) and 0 < v <= 1, "a share in (0, 1]",
+                         float, deal, problem)
 
     def blocks(self, rules, units, weeks):
         cap = rules.settings.get("max_zone_share")
