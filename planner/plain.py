@@ -28,3 +28,13 @@ def plain(obj: Any) -> Any:
     if hasattr(obj, "__fspath__"):
         return str(obj)
     return obj
+
+
+def is_int(v: Any) -> bool:
+    """True for a whole number read from a file (a bool is not one)."""
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def is_num(v: Any) -> bool:
+    """True for a finite number read from a file (a bool is not one)."""
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(float(v))

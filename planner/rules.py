@@ -25,12 +25,13 @@ Charnes & Cooper (1959), Chance-constrained programming, Management Science 6(1)
 """
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from typing import Any, Callable, Sequence
 
 import numpy as np
 import pandas as pd
+
+from planner.plain import is_int, is_num
 
 INF = float("inf")
 
@@ -114,16 +115,6 @@ def share_block(kind: str, column: pd.Series, shares: dict, *, cap: bool) -> Row
     sh = np.array([shares[d] for d in names], float)
     lower, upper = (np.full(k, -INF), np.zeros(k)) if cap else (np.zeros(k), np.full(k, INF))
     return RowBlock(kind, code, -sh, lower, upper, names)
-
-
-def is_int(v: Any) -> bool:
-    """True for a whole number read from a file (a bool is not one)."""
-    return isinstance(v, int) and not isinstance(v, bool)
-
-
-def is_num(v: Any) -> bool:
-    """True for a finite number read from a file (a bool is not one)."""
-    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(float(v))
 
 
 def one_value(raw: dict, key: str, valid: Callable[[Any], bool], need: str, cast: Callable, deal,

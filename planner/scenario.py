@@ -41,8 +41,8 @@ import pyarrow.parquet as pq
 from planner import rules as rl
 from planner import terms as tm
 from planner.errors import ScenarioError
-from planner.rules import is_int as _is_int
-from planner.rules import is_num as _is_num
+from planner.plain import is_int as _is_int
+from planner.plain import is_num as _is_num
 
 DEFAULT_CONFIDENCE = 0.95
 DAY_NAMES = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")

@@ -37,6 +37,8 @@ from typing import Any, Callable
 import numpy as np
 from scipy.special import ndtr
 
+from planner.plain import is_int, is_num
+
 SETTLEMENTS = ("units", "cash", "both")
 #: the keys of a [terms] table (deal file or scenario.toml); anything else is refused
 TERMS_KEYS = ("settlement", "threshold", "window_weeks", "cap")
@@ -59,20 +61,16 @@ class Terms:
         return asdict(self)
 
 
-def _is_num(v: Any) -> bool:
-    return isinstance(v, (int, float)) and not isinstance(v, bool) and bool(np.isfinite(v))
-
-
 def _check_value(key: str, v: Any) -> str | None:
     """What is wrong with value `v` of key `key`, or None."""
     if key == "settlement":
         return None if v in SETTLEMENTS else f"must be one of {', '.join(SETTLEMENTS)}, got {v!r}"
     if key == "threshold":
-        return None if _is_num(v) and 0 < v <= 1 else f"must be a fraction of the guarantee, 0 < t <= 1, got {v!r}"
+        return None if is_num(v) and 0 < v <= 1 else f"must be a fraction of the guarantee, 0 < t <= 1, got {v!r}"
     if key == "window_weeks":
-        ok = isinstance(v, int) and not isinstance(v, bool) and 1 <= v <= 52
+        ok = is_int(v) and 1 <= v <= 52
         return None if ok else f"must be a whole number of weeks 1..52, got {v!r}"
-    return None if _is_num(v) and 0 < v <= 1 else f"must be a fraction of the guarantee, 0 < c <= 1, got {v!r}"
+    return None if is_num(v) and 0 < v <= 1 else f"must be a fraction of the guarantee, 0 < c <= 1, got {v!r}"
 
 
 def parse_terms(raw: Any, where: str, base: Terms, problem: Callable[[str], None]) -> Terms:
